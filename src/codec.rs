@@ -1,0 +1,407 @@
+//! Decoding and encoding frames: PBM (P1 plain, P4 raw) and PNG.
+//!
+//! Pure functions from bytes to [`BitFrame`] and back; no file access. The
+//! PBM reader follows the Netpbm PBM specification: the magic number, then
+//! width and height as ASCII decimals separated by whitespace, with `#`
+//! comments running to the end of a line allowed anywhere in the header;
+//! one whitespace character after the height; then the raster. In P1 the
+//! raster is `0`/`1` characters, whitespace between them optional; in P4 it
+//! is 8 pixels a byte, most significant bit first, each row padded to a
+//! whole byte. A 1 is black, which treeline reads as set ("ink").
+//!
+//! Design decision: sizes are checked against [`DecodeLimits`] *before* any
+//! pixel buffer is allocated, so a hostile header cannot make the box
+//! allocate gigabytes. PNG goes through the `image` crate (any colour
+//! type), converted to 8-bit luma and thresholded: darker than the
+//! threshold is set, unless `invert` is on.
+
+use crate::error::{Error, ErrorKind, Result};
+use crate::frame::BitFrame;
+
+/// Limits and PNG options for decoding.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct DecodeLimits {
+    /// Largest accepted width in pixels.
+    pub max_width: usize,
+    /// Largest accepted height in pixels.
+    pub max_height: usize,
+    /// PNG: a pixel whose 8-bit luma is below this is set (dark = ink).
+    pub png_threshold: u8,
+    /// PNG: set the light pixels instead of the dark ones.
+    pub png_invert: bool,
+}
+
+impl Default for DecodeLimits {
+    fn default() -> Self {
+        DecodeLimits {
+            max_width: 8192,
+            max_height: 8192,
+            png_threshold: 128,
+            png_invert: false,
+        }
+    }
+}
+
+/// The on-disk formats treeline reads.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Format {
+    PbmPlain,
+    PbmRaw,
+    Png,
+}
+
+const PNG_MAGIC: &[u8] = b"\x89PNG\r\n\x1a\n";
+
+/// Recognises the format from the first bytes.
+pub fn sniff(bytes: &[u8]) -> Result<Format> {
+    if bytes.starts_with(b"P1") {
+        Ok(Format::PbmPlain)
+    } else if bytes.starts_with(b"P4") {
+        Ok(Format::PbmRaw)
+    } else if bytes.starts_with(PNG_MAGIC) {
+        Ok(Format::Png)
+    } else {
+        let head: String = bytes
+            .iter()
+            .take(8)
+            .map(|&b| {
+                if b.is_ascii_graphic() || b == b' ' {
+                    b as char
+                } else {
+                    '.'
+                }
+            })
+            .collect();
+        Err(ErrorKind::BadMagic { found: head }.into())
+    }
+}
+
+/// Decodes a PBM or PNG file's bytes.
+pub fn decode(bytes: &[u8], limits: &DecodeLimits) -> Result<BitFrame> {
+    match sniff(bytes)? {
+        Format::PbmPlain | Format::PbmRaw => decode_pbm(bytes, limits),
+        Format::Png => decode_png(bytes, limits),
+    }
+}
+
+fn check_size(width: u64, height: u64, limits: &DecodeLimits) -> Result<()> {
+    if width > limits.max_width as u64 || height > limits.max_height as u64 {
+        return Err(ErrorKind::TooLarge {
+            width,
+            height,
+            max_width: limits.max_width,
+            max_height: limits.max_height,
+        }
+        .into());
+    }
+    Ok(())
+}
+
+/// Header reader: whitespace and `#` comments between tokens.
+struct Header<'a> {
+    bytes: &'a [u8],
+    pos: usize,
+}
+
+impl Header<'_> {
+    fn skip_space_and_comments(&mut self) {
+        while self.pos < self.bytes.len() {
+            let b = self.bytes[self.pos];
+            if b == b'#' {
+                while self.pos < self.bytes.len()
+                    && self.bytes[self.pos] != b'\n'
+                    && self.bytes[self.pos] != b'\r'
+                {
+                    self.pos += 1;
+                }
+            } else if is_pbm_space(b) {
+                self.pos += 1;
+            } else {
+                break;
+            }
+        }
+    }
+
+    /// Reads an unsigned decimal; fails past `u32::MAX` digits' worth.
+    fn number(&mut self, what: &str) -> Result<u64> {
+        self.skip_space_and_comments();
+        let start = self.pos;
+        let mut value: u64 = 0;
+        while self.pos < self.bytes.len() && self.bytes[self.pos].is_ascii_digit() {
+            value = value
+                .saturating_mul(10)
+                .saturating_add((self.bytes[self.pos] - b'0') as u64);
+            self.pos += 1;
+        }
+        if self.pos == start {
+            return Err(if self.pos >= self.bytes.len() {
+                Error::header(start, format!("file ends before the {what}"))
+            } else {
+                Error::header(
+                    start,
+                    format!(
+                        "expected the {what} as a decimal number, found {:?}",
+                        self.bytes[self.pos] as char
+                    ),
+                )
+            });
+        }
+        Ok(value)
+    }
+}
+
+/// Whitespace as the Netpbm specification defines it (blanks, TABs, CRs,
+/// LFs, and also vertical tab and form feed, as C's `isspace`).
+fn is_pbm_space(b: u8) -> bool {
+    matches!(b, b' ' | b'\t' | b'\n' | b'\r' | 0x0b | 0x0c)
+}
+
+/// Decodes PBM, plain (P1) or raw (P4).
+pub fn decode_pbm(bytes: &[u8], limits: &DecodeLimits) -> Result<BitFrame> {
+    let plain = match sniff(bytes)? {
+        Format::PbmPlain => true,
+        Format::PbmRaw => false,
+        Format::Png => return Err(Error::header(0, "PNG data where PBM was expected")),
+    };
+    let mut h = Header { bytes, pos: 2 };
+    // The magic must be followed by whitespace or a comment.
+    if let Some(&b) = bytes.get(2) {
+        if !is_pbm_space(b) && b != b'#' {
+            return Err(Error::header(2, "magic number not followed by whitespace"));
+        }
+    }
+    let width = h.number("width")?;
+    let height = h.number("height")?;
+    check_size(width, height, limits)?;
+    let (width, height) = (width as usize, height as usize);
+    // Exactly one whitespace character ends the header.
+    match bytes.get(h.pos) {
+        Some(&b) if is_pbm_space(b) => h.pos += 1,
+        Some(&b) => {
+            return Err(Error::header(
+                h.pos,
+                format!("expected whitespace after the height, found {:?}", b as char),
+            ))
+        }
+        None if plain || width == 0 || height == 0 => {}
+        None => {
+            return Err(ErrorKind::Truncated {
+                expected: width.div_ceil(8) * height,
+                found: 0,
+                unit: "bytes",
+            }
+            .into())
+        }
+    }
+    let raster = &bytes[h.pos..];
+    if plain {
+        decode_p1_raster(raster, h.pos, width, height)
+    } else {
+        decode_p4_raster(raster, width, height)
+    }
+}
+
+fn decode_p1_raster(raster: &[u8], base: usize, width: usize, height: usize) -> Result<BitFrame> {
+    let mut frame = BitFrame::new(width, height);
+    let total = width * height;
+    let mut n = 0usize;
+    let mut i = 0usize;
+    while n < total {
+        let Some(&b) = raster.get(i) else {
+            return Err(ErrorKind::Truncated {
+                expected: total,
+                found: n,
+                unit: "pixels",
+            }
+            .into());
+        };
+        match b {
+            b'0' | b'1' => {
+                if b == b'1' {
+                    frame.set(n % width, n / width, true);
+                }
+                n += 1;
+            }
+            b'#' => {
+                // Comments are not allowed in the raster by the spec, but
+                // many writers emit them; skip to end of line.
+                while i < raster.len() && raster[i] != b'\n' {
+                    i += 1;
+                }
+                continue;
+            }
+            b if is_pbm_space(b) => {}
+            other => {
+                return Err(ErrorKind::BadPixelValue {
+                    offset: base + i,
+                    found: other as char,
+                }
+                .into())
+            }
+        }
+        i += 1;
+    }
+    Ok(frame)
+}
+
+fn decode_p4_raster(raster: &[u8], width: usize, height: usize) -> Result<BitFrame> {
+    let row_bytes = width.div_ceil(8);
+    let need = row_bytes * height;
+    if raster.len() < need {
+        return Err(ErrorKind::Truncated {
+            expected: need,
+            found: raster.len(),
+            unit: "bytes",
+        }
+        .into());
+    }
+    let mut frame = BitFrame::new(width, height);
+    for y in 0..height {
+        let src = &raster[y * row_bytes..(y + 1) * row_bytes];
+        let row = frame.row_mut(y);
+        for (i, &byte) in src.iter().enumerate() {
+            // PBM: most significant bit is the leftmost pixel; ours is LSB-first.
+            let b = byte.reverse_bits() as u64;
+            row[i / 8] |= b << ((i % 8) * 8);
+        }
+    }
+    frame.clear_padding();
+    Ok(frame)
+}
+
+/// Decodes a PNG of any colour type and bit depth, thresholding its luma.
+pub fn decode_png(bytes: &[u8], limits: &DecodeLimits) -> Result<BitFrame> {
+    use image::ImageDecoder;
+    let png_err = |e: image::ImageError| Error::new(ErrorKind::Png(e.to_string()));
+    let decoder = image::codecs::png::PngDecoder::new(std::io::Cursor::new(bytes)).map_err(png_err)?;
+    let (w, h) = decoder.dimensions();
+    check_size(w as u64, h as u64, limits)?;
+    let img = image::DynamicImage::from_decoder(decoder).map_err(png_err)?;
+    let luma = img.to_luma8();
+    let (width, height) = (w as usize, h as usize);
+    let mut frame = BitFrame::new(width, height);
+    let raw = luma.as_raw();
+    for y in 0..height {
+        let row = frame.row_mut(y);
+        for x in 0..width {
+            let dark = raw[y * width + x] < limits.png_threshold;
+            if dark != limits.png_invert {
+                row[x / 64] |= 1 << (x % 64);
+            }
+        }
+    }
+    Ok(frame)
+}
+
+/// Encodes raw PBM (P4).
+pub fn encode_pbm(frame: &BitFrame) -> Vec<u8> {
+    let header = format!("P4\n{} {}\n", frame.width(), frame.height());
+    let row_bytes = frame.width().div_ceil(8);
+    let mut out = Vec::with_capacity(header.len() + row_bytes * frame.height());
+    out.extend_from_slice(header.as_bytes());
+    for y in 0..frame.height() {
+        let row = frame.row(y);
+        for i in 0..row_bytes {
+            let byte = (row[i / 8] >> ((i % 8) * 8)) as u8;
+            out.push(byte.reverse_bits());
+        }
+    }
+    out
+}
+
+/// Encodes plain PBM (P1), 35 pixels a line (the spec asks for lines of at
+/// most 70 characters).
+pub fn encode_pbm_plain(frame: &BitFrame) -> Vec<u8> {
+    let mut s = format!("P1\n{} {}\n", frame.width(), frame.height());
+    for y in 0..frame.height() {
+        for x in 0..frame.width() {
+            s.push(if frame.get(x, y) { '1' } else { '0' });
+            let last = x + 1 == frame.width();
+            s.push(if last || (x + 1) % 35 == 0 { '\n' } else { ' ' });
+        }
+    }
+    s.into_bytes()
+}
+
+/// Encodes a frame as an 8-bit grey PNG (set = black).
+pub fn encode_png(frame: &BitFrame) -> Vec<u8> {
+    let mut buf = Vec::new();
+    let pixels: Vec<u8> = (0..frame.height())
+        .flat_map(|y| (0..frame.width()).map(move |x| (x, y)))
+        .map(|(x, y)| if frame.get(x, y) { 0 } else { 255 })
+        .collect();
+    let img = image::GrayImage::from_raw(frame.width() as u32, frame.height() as u32, pixels)
+        .expect("buffer size matches");
+    img.write_to(&mut std::io::Cursor::new(&mut buf), image::ImageFormat::Png)
+        .expect("encoding to memory cannot fail");
+    buf
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn lim() -> DecodeLimits {
+        DecodeLimits::default()
+    }
+
+    #[test]
+    fn p4_roundtrip_odd_widths() {
+        for w in [1, 7, 8, 9, 63, 64, 65, 130] {
+            let f = BitFrame::from_fn(w, 3, |x, y| (x * 7 + y * 3) % 5 == 0);
+            let bytes = encode_pbm(&f);
+            assert_eq!(decode(&bytes, &lim()).unwrap(), f, "width {w}");
+            let plain = encode_pbm_plain(&f);
+            assert_eq!(decode(&plain, &lim()).unwrap(), f, "plain width {w}");
+        }
+    }
+
+    #[test]
+    fn header_comments_and_whitespace() {
+        let f = decode(b"P1\n# a comment\n3 # width\n\t2\n1 0 1\n010", &lim()).unwrap();
+        assert_eq!(f.to_ascii(), "#.#\n.#.\n");
+        // No whitespace between plain bits is allowed by the spec.
+        let g = decode(b"P1 3 2 101010", &lim()).unwrap();
+        assert_eq!(g, f);
+    }
+
+    #[test]
+    fn errors_are_typed() {
+        assert!(matches!(
+            decode(b"GIF89a", &lim()).unwrap_err().kind(),
+            ErrorKind::BadMagic { .. }
+        ));
+        assert!(matches!(
+            decode(b"P4\n16 16\n\x00\x00", &lim()).unwrap_err().kind(),
+            ErrorKind::Truncated { .. }
+        ));
+        assert!(matches!(
+            decode(b"P4\n99999 99999\n", &lim()).unwrap_err().kind(),
+            ErrorKind::TooLarge { .. }
+        ));
+        assert!(matches!(
+            decode(b"P1\n2 1\n1 2", &lim()).unwrap_err().kind(),
+            ErrorKind::BadPixelValue { found: '2', .. }
+        ));
+        assert!(matches!(
+            decode(b"P1\nx 1\n", &lim()).unwrap_err().kind(),
+            ErrorKind::BadHeader { .. }
+        ));
+        assert!(matches!(
+            decode(b"P4\n99999999999999999999999 1\n", &lim()).unwrap_err().kind(),
+            ErrorKind::TooLarge { .. }
+        ));
+    }
+
+    #[test]
+    fn png_threshold_and_invert() {
+        let f = BitFrame::from_fn(5, 4, |x, y| x == y);
+        let png = encode_png(&f);
+        assert_eq!(decode(&png, &lim()).unwrap(), f);
+        let inv = DecodeLimits {
+            png_invert: true,
+            ..lim()
+        };
+        assert_eq!(decode(&png, &inv).unwrap(), f.not());
+    }
+}

@@ -1,0 +1,205 @@
+//! Labelled data folders and frame files: the library's only file access.
+//!
+//! A data folder holds frames `NAME.pbm` or `NAME.png` and their masks
+//! `NAME.mask.pbm` (set = target pixel). Files whose names start with a dot
+//! and files of other types are ignored; subfolders are not read.
+//!
+//! Design decision: one bad file never stops the rest. Reading a folder
+//! returns the good pairs *and* one error per bad file or pair (naming the
+//! file and the problem); the caller decides whether problems are fatal
+//! (`train` without `--skip-bad`) or warnings. Pairs come back sorted by
+//! name so every command sees the same order on every machine.
+
+use std::collections::BTreeMap;
+use std::fs;
+use std::path::{Path, PathBuf};
+
+use crate::codec::{self, DecodeLimits};
+use crate::error::{Error, ErrorKind, Result};
+use crate::frame::BitFrame;
+use crate::learn::LabelledFrame;
+
+/// Suffix of mask files.
+pub const MASK_SUFFIX: &str = ".mask.pbm";
+
+/// Largest file read, in bytes, for the given limits: a plain PBM of the
+/// largest frame with one separator per pixel, plus room for comments.
+pub fn max_file_bytes(limits: &DecodeLimits) -> u64 {
+    (limits.max_width as u64 * limits.max_height as u64) * 2 + (1 << 20)
+}
+
+/// Reads and decodes one frame file.
+pub fn read_frame(path: &Path, limits: &DecodeLimits) -> Result<BitFrame> {
+    let bytes = read_bounded(path, limits)?;
+    codec::decode(&bytes, limits).map_err(|e| e.with_path(path))
+}
+
+/// Reads a whole file, refusing files over [`max_file_bytes`].
+pub fn read_bounded(path: &Path, limits: &DecodeLimits) -> Result<Vec<u8>> {
+    let io = |e: std::io::Error| Error::from(e).with_path(path);
+    let meta = fs::metadata(path).map_err(io)?;
+    let max = max_file_bytes(limits);
+    if meta.len() > max {
+        return Err(Error::new(ErrorKind::Data(format!(
+            "file is {} bytes, over the {} bytes a frame of at most {}x{} can need",
+            meta.len(),
+            max,
+            limits.max_width,
+            limits.max_height
+        )))
+        .with_path(path));
+    }
+    if meta.len() == 0 {
+        return Err(Error::new(ErrorKind::Data("file is empty".into())).with_path(path));
+    }
+    fs::read(path).map_err(io)
+}
+
+/// What kind of file a name denotes in a data folder.
+enum Role {
+    Frame(String),
+    Mask(String),
+    Other,
+}
+
+fn role(name: &str) -> Role {
+    if name.starts_with('.') {
+        return Role::Other;
+    }
+    if let Some(stem) = name.strip_suffix(MASK_SUFFIX) {
+        return Role::Mask(stem.to_string());
+    }
+    for ext in [".pbm", ".png"] {
+        if let Some(stem) = name.strip_suffix(ext) {
+            if !stem.is_empty() {
+                return Role::Frame(stem.to_string());
+            }
+        }
+    }
+    Role::Other
+}
+
+/// The good labelled frames of a folder and one error per bad file.
+pub struct Folder {
+    pub frames: Vec<LabelledFrame>,
+    pub problems: Vec<Error>,
+}
+
+/// Lists the frame/mask pairs of a data folder without decoding them.
+pub fn list_pairs(dir: &Path) -> Result<(Vec<(String, PathBuf, PathBuf)>, Vec<Error>)> {
+    let rd = fs::read_dir(dir).map_err(|e| Error::from(e).with_path(dir))?;
+    let mut frames: BTreeMap<String, Vec<PathBuf>> = BTreeMap::new();
+    let mut masks: BTreeMap<String, PathBuf> = BTreeMap::new();
+    let mut problems = Vec::new();
+    for entry in rd {
+        let entry = entry.map_err(|e| Error::from(e).with_path(dir))?;
+        let path = entry.path();
+        let Ok(ft) = entry.file_type() else { continue };
+        if !ft.is_file() && !ft.is_symlink() {
+            continue;
+        }
+        let Some(name) = path.file_name().and_then(|n| n.to_str()) else {
+            problems.push(
+                Error::new(ErrorKind::Data("file name is not valid UTF-8".into())).with_path(&path),
+            );
+            continue;
+        };
+        match role(name) {
+            Role::Frame(stem) => frames.entry(stem).or_default().push(path.clone()),
+            Role::Mask(stem) => {
+                masks.insert(stem, path.clone());
+            }
+            Role::Other => {}
+        }
+    }
+    let mut pairs = Vec::new();
+    for (stem, paths) in frames {
+        let mask = masks.remove(&stem);
+        if paths.len() > 1 {
+            problems.push(
+                Error::new(ErrorKind::Data(format!(
+                    "frame {stem:?} exists as both {}",
+                    paths
+                        .iter()
+                        .map(|p| p.display().to_string())
+                        .collect::<Vec<_>>()
+                        .join(" and ")
+                )))
+                .with_path(&paths[0]),
+            );
+            continue;
+        }
+        match mask {
+            Some(m) => pairs.push((stem, paths[0].clone(), m)),
+            None => problems.push(
+                Error::new(ErrorKind::Data(format!(
+                    "no mask: expected {stem}{MASK_SUFFIX} beside it"
+                )))
+                .with_path(&paths[0]),
+            ),
+        }
+    }
+    for (stem, m) in masks {
+        problems.push(
+            Error::new(ErrorKind::Data(format!(
+                "mask without a frame: no {stem}.pbm or {stem}.png beside it"
+            )))
+            .with_path(&m),
+        );
+    }
+    Ok((pairs, problems))
+}
+
+/// Reads and decodes every pair of a data folder. `progress(done, total)` is
+/// called as pairs are read. Fails only if the folder itself is unreadable.
+pub fn read_folder(
+    dir: &Path,
+    limits: &DecodeLimits,
+    progress: &mut dyn FnMut(usize, usize),
+) -> Result<Folder> {
+    let (pairs, mut problems) = list_pairs(dir)?;
+    let mut frames = Vec::with_capacity(pairs.len());
+    let total = pairs.len();
+    for (k, (name, fpath, mpath)) in pairs.into_iter().enumerate() {
+        progress(k, total);
+        let frame = match read_frame(&fpath, limits) {
+            Ok(f) => f,
+            Err(e) => {
+                problems.push(e);
+                continue;
+            }
+        };
+        let mask = match read_frame(&mpath, limits) {
+            Ok(m) => m,
+            Err(e) => {
+                problems.push(e);
+                continue;
+            }
+        };
+        if !frame.same_size(&mask) {
+            problems.push(
+                Error::new(ErrorKind::MaskSizeMismatch {
+                    width: frame.width(),
+                    height: frame.height(),
+                    mask_width: mask.width(),
+                    mask_height: mask.height(),
+                })
+                .with_path(&mpath),
+            );
+            continue;
+        }
+        frames.push(LabelledFrame { name, frame, mask });
+    }
+    progress(total, total);
+    problems.sort_by_key(|e| e.path().map(Path::to_path_buf));
+    Ok(Folder { frames, problems })
+}
+
+/// Writes a labelled frame as `NAME.pbm` and `NAME.mask.pbm` in `dir`.
+pub fn write_pair(dir: &Path, name: &str, frame: &BitFrame, mask: &BitFrame) -> Result<()> {
+    let fp = dir.join(format!("{name}.pbm"));
+    fs::write(&fp, codec::encode_pbm(frame)).map_err(|e| Error::from(e).with_path(&fp))?;
+    let mp = dir.join(format!("{name}{MASK_SUFFIX}"));
+    fs::write(&mp, codec::encode_pbm(mask)).map_err(|e| Error::from(e).with_path(&mp))?;
+    Ok(())
+}

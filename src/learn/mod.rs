@@ -1,0 +1,420 @@
+//! Learning a model from labelled frames.
+//!
+//! The pipeline, each stage with its cost:
+//!
+//! 1. **Split** the labelled frames into a growing set and a holdout set,
+//!    deterministically by frame content hash (sorted by hash, the first
+//!    `holdout` share held out): the same frames always split the same way,
+//!    whatever their names or order.
+//! 2. **Label store** of the growing set ([`crate::store`]): linear in
+//!    pixels, one hash-map update per pixel.
+//! 3. **Grow** ([`grow`]): greedy top-down induction over the store's
+//!    entries; a split search is O(features) once the per-feature counts are
+//!    known, and gathering them is O(unique patterns x set bits) for the
+//!    smaller child only.
+//! 4. **Prune** ([`prune`]): the minimal cost-complexity sequence.
+//! 5. **Tune** ([`tune`]): pruning strength, score threshold, `min_area` and
+//!    `merge_distance` chosen on the holdout by object-level F1.
+//! 6. **Freeze** into the evaluator's immutable [`Tree`] and wrap it in a
+//!    [`Model`] with the training summary and drift reference statistics.
+//!
+//! The learner's [`grow::GrownTree`] is not the product: it keeps parent
+//! links and counts of every node and is thrown away after freezing.
+//! Training is deterministic: the same frames and parameters give the same
+//! model bytes.
+
+pub mod criterion;
+pub mod grow;
+pub mod prune;
+pub mod tune;
+
+use sha2::{Digest, Sha256};
+
+pub use criterion::Criterion;
+
+use crate::error::{Error, Result};
+use crate::evaluate;
+use crate::frame::BitFrame;
+use crate::group::GroupParams;
+use crate::model::{
+    DataSummary, HoldoutMetrics, Leaf, Model, Node, Reference, TrainingInfo, Tree,
+};
+use crate::score;
+use crate::store::LabelStore;
+use crate::window::Window;
+
+use grow::{GrowParams, GrownTree};
+use prune::Pruning;
+
+/// How the two classes are weighted during growth and in leaf scores.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub enum ClassWeight {
+    /// Every pixel weighs 1.
+    None,
+    /// `n / (2 * n_class)`: both classes weigh the same in total.
+    Balanced,
+    /// Explicit weights of the clear and target classes.
+    Explicit([f64; 2]),
+}
+
+impl ClassWeight {
+    /// Parses `none`, `balanced` or `CLEAR:TARGET` (two positive numbers).
+    pub fn parse(s: &str) -> Option<ClassWeight> {
+        match s {
+            "none" => Some(ClassWeight::None),
+            "balanced" => Some(ClassWeight::Balanced),
+            _ => {
+                let (a, b) = s.split_once(':')?;
+                let (a, b): (f64, f64) = (a.trim().parse().ok()?, b.trim().parse().ok()?);
+                (a > 0.0 && b > 0.0 && a.is_finite() && b.is_finite())
+                    .then_some(ClassWeight::Explicit([a, b]))
+            }
+        }
+    }
+
+    pub fn name(&self) -> &'static str {
+        match self {
+            ClassWeight::None => "none",
+            ClassWeight::Balanced => "balanced",
+            ClassWeight::Explicit(_) => "explicit",
+        }
+    }
+
+    /// The weights for data with these class totals.
+    pub fn weights(&self, totals: [u64; 2]) -> [f64; 2] {
+        match *self {
+            ClassWeight::None => [1.0, 1.0],
+            ClassWeight::Explicit(w) => w,
+            ClassWeight::Balanced => {
+                let n = (totals[0] + totals[1]) as f64;
+                let w = |c: u64| if c == 0 { 1.0 } else { n / (2.0 * c as f64) };
+                [w(totals[0]), w(totals[1])]
+            }
+        }
+    }
+}
+
+/// Everything `train` can be told.
+#[derive(Clone, Debug, PartialEq)]
+pub struct TrainParams {
+    pub window: Window,
+    pub criterion: Criterion,
+    pub max_depth: u32,
+    pub min_leaf: f64,
+    pub min_gain: f64,
+    pub class_weight: ClassWeight,
+    /// Share of frames held out for pruning and tuning (0 disables both).
+    pub holdout: f64,
+    pub max_nodes: usize,
+    /// Fixed by the user instead of tuned.
+    pub threshold: Option<f64>,
+    pub min_area: Option<u32>,
+    pub merge_distance: Option<u32>,
+}
+
+impl Default for TrainParams {
+    fn default() -> Self {
+        TrainParams {
+            window: Window::default(),
+            criterion: Criterion::Entropy,
+            max_depth: 18,
+            min_leaf: 1.0,
+            min_gain: 0.0,
+            class_weight: ClassWeight::Balanced,
+            holdout: 0.2,
+            max_nodes: 1 << 20,
+            threshold: None,
+            min_area: None,
+            merge_distance: None,
+        }
+    }
+}
+
+impl TrainParams {
+    pub fn validate(&self) -> Result<()> {
+        if !(0.0..1.0).contains(&self.holdout) {
+            return Err(Error::training(format!(
+                "holdout share {} must be at least 0 and below 1",
+                self.holdout
+            )));
+        }
+        if !(self.min_leaf >= 0.0 && self.min_leaf.is_finite()) {
+            return Err(Error::training("min_leaf must be a non-negative number"));
+        }
+        if !(self.min_gain >= 0.0 && self.min_gain.is_finite()) {
+            return Err(Error::training("min_gain must be a non-negative number"));
+        }
+        if self.max_depth > 64 {
+            return Err(Error::training("max_depth must be at most 64"));
+        }
+        if self.max_nodes < 1 || self.max_nodes > crate::model::MAX_NODES {
+            return Err(Error::training(format!(
+                "max_nodes must be between 1 and {}",
+                crate::model::MAX_NODES
+            )));
+        }
+        if let Some(t) = self.threshold {
+            if !(0.0..=1.0).contains(&t) {
+                return Err(Error::training(format!("threshold {t} is outside [0, 1]")));
+            }
+        }
+        if self.min_area == Some(0) {
+            return Err(Error::training("min_area must be at least 1"));
+        }
+        if self.merge_distance.is_some_and(|m| m > crate::group::MAX_MERGE_DISTANCE) {
+            return Err(Error::training(format!(
+                "merge_distance must be at most {}",
+                crate::group::MAX_MERGE_DISTANCE
+            )));
+        }
+        Ok(())
+    }
+}
+
+/// A frame with its target mask.
+#[derive(Clone, Debug)]
+pub struct LabelledFrame {
+    pub name: String,
+    pub frame: BitFrame,
+    pub mask: BitFrame,
+}
+
+impl LabelledFrame {
+    /// SHA-256 of the frame's and mask's pixels (with their sizes): the key
+    /// of the holdout split.
+    pub fn content_hash(&self) -> [u8; 32] {
+        let mut h = Sha256::new();
+        for f in [&self.frame, &self.mask] {
+            h.update((f.width() as u64).to_le_bytes());
+            h.update((f.height() as u64).to_le_bytes());
+            for w in f.words() {
+                h.update(w.to_le_bytes());
+            }
+        }
+        h.finalize().into()
+    }
+}
+
+/// Training stages reported to a progress display.
+#[derive(Clone, Copy, Debug)]
+pub enum Stage {
+    /// Adding frame `done` of `total` to the label store.
+    Store { done: usize, total: usize },
+    Grow,
+    Prune,
+    Tune,
+}
+
+/// Splits frames into (growing, holdout) index lists by content hash.
+pub fn split_holdout(frames: &[LabelledFrame], share: f64) -> (Vec<usize>, Vec<usize>) {
+    let mut keyed: Vec<([u8; 32], usize)> = frames
+        .iter()
+        .enumerate()
+        .map(|(i, f)| (f.content_hash(), i))
+        .collect();
+    keyed.sort();
+    let n = frames.len();
+    let mut k = (n as f64 * share).round() as usize;
+    if share > 0.0 && n >= 2 {
+        k = k.clamp(1, n - 1);
+    } else if n < 2 {
+        k = 0;
+    }
+    let mut hold: Vec<usize> = keyed[..k].iter().map(|x| x.1).collect();
+    let mut grow: Vec<usize> = keyed[k..].iter().map(|x| x.1).collect();
+    hold.sort();
+    grow.sort();
+    (grow, hold)
+}
+
+/// Freezes the grown tree pruned at `alpha` into the evaluator's tree.
+pub fn freeze(
+    tree: &GrownTree,
+    pruning: &Pruning,
+    alpha: f64,
+    window: Window,
+    weights: [f64; 2],
+) -> Result<Tree> {
+    let total = (tree.nodes[0].counts[0] + tree.nodes[0].counts[1]).max(1) as f64;
+    let scores = tune::node_scores(tree, weights);
+    let mut nodes: Vec<Node> = Vec::new();
+    // Breadth-first, so children always come after their parent.
+    let mut queue = std::collections::VecDeque::from([(0usize, usize::MAX, false)]);
+    while let Some((g, parent, is_set)) = queue.pop_front() {
+        let id = nodes.len();
+        if parent != usize::MAX {
+            if let Node::Split {
+                if_clear, if_set, ..
+            } = &mut nodes[parent]
+            {
+                if is_set {
+                    *if_set = id as u32;
+                } else {
+                    *if_clear = id as u32;
+                }
+            }
+        }
+        let n = &tree.nodes[g];
+        match n.split {
+            Some(s) if pruning.collapse[g] > alpha => {
+                nodes.push(Node::Split {
+                    feature: s.feature,
+                    if_clear: 0,
+                    if_set: 0,
+                });
+                queue.push_back((s.if_clear as usize, id, false));
+                queue.push_back((s.if_set as usize, id, true));
+            }
+            _ => nodes.push(Node::Leaf(Leaf {
+                counts: n.counts,
+                score: scores[g],
+                share: (n.counts[0] + n.counts[1]) as f64 / total,
+            })),
+        }
+    }
+    Tree::new(window, nodes)
+}
+
+/// Trains a model from labelled frames.
+pub fn train(
+    frames: &[LabelledFrame],
+    params: &TrainParams,
+    progress: &mut dyn FnMut(Stage),
+) -> Result<Model> {
+    params.validate()?;
+    if frames.is_empty() {
+        return Err(Error::training("no labelled frames"));
+    }
+    for f in frames {
+        if !f.frame.same_size(&f.mask) {
+            return Err(Error::new(crate::error::ErrorKind::MaskSizeMismatch {
+                width: f.frame.width(),
+                height: f.frame.height(),
+                mask_width: f.mask.width(),
+                mask_height: f.mask.height(),
+            })
+            .with_path(&f.name));
+        }
+    }
+    let (grow_idx, hold_idx) = split_holdout(frames, params.holdout);
+    let mut store = LabelStore::new(params.window);
+    for (k, &i) in grow_idx.iter().enumerate() {
+        progress(Stage::Store {
+            done: k,
+            total: grow_idx.len(),
+        });
+        store.add_frame(&frames[i].frame, &frames[i].mask)?;
+    }
+    progress(Stage::Store {
+        done: grow_idx.len(),
+        total: grow_idx.len(),
+    });
+    let totals = store.totals();
+    if totals[1] == 0 {
+        return Err(Error::training(
+            "the growing frames have no target pixels: every mask is empty",
+        ));
+    }
+    let weights = params.class_weight.weights(totals);
+    let mut entries = store.entries();
+    let unique = entries.len() as u64;
+    drop(store);
+    progress(Stage::Grow);
+    let gp = GrowParams {
+        criterion: params.criterion,
+        max_depth: params.max_depth,
+        min_leaf: params.min_leaf,
+        min_gain: params.min_gain,
+        weights,
+        max_nodes: params.max_nodes,
+    };
+    let grown = grow::grow(&mut entries, params.window.features(), &gp);
+    progress(Stage::Prune);
+    let pruning = prune::prune_sequence(&grown, params.criterion, weights);
+    progress(Stage::Tune);
+    let fixed = tune::Fixed {
+        threshold: params.threshold,
+        min_area: params.min_area,
+        merge_distance: params.merge_distance,
+    };
+    let holdout: Vec<tune::HoldoutFrame> = hold_idx
+        .iter()
+        .map(|&i| tune::HoldoutFrame::new(&grown, params.window, &frames[i].frame, &frames[i].mask))
+        .collect();
+    let choice = if holdout.is_empty() {
+        None
+    } else {
+        tune::choose(&grown, &pruning, weights, &holdout, &fixed)
+    };
+    let (alpha, threshold, grouping) = match &choice {
+        Some(c) => (c.alpha, c.threshold, c.grouping),
+        None => (
+            0.0,
+            params.threshold.unwrap_or(0.5),
+            GroupParams {
+                min_area: params.min_area.unwrap_or(1),
+                merge_distance: params.merge_distance.unwrap_or(0),
+            },
+        ),
+    };
+    let tree = freeze(&grown, &pruning, alpha, params.window, weights)?;
+    // Reference statistics over the growing frames.
+    let mut set_pixels = 0u64;
+    let mut detected = 0u64;
+    let mut objects = 0u64;
+    let mut pixels = 0u64;
+    for &i in &grow_idx {
+        let f = &frames[i];
+        set_pixels += f.frame.count_set();
+        pixels += f.frame.len() as u64;
+        detected += evaluate::detect(&tree, threshold, &f.frame).count_set();
+        objects += score::truth_objects(&f.mask).len() as u64;
+    }
+    let share = |a: u64, b: u64| if b == 0 { 0.0 } else { a as f64 / b as f64 };
+    let mut overridden = Vec::new();
+    if params.threshold.is_some() {
+        overridden.push("threshold".to_string());
+    }
+    if params.min_area.is_some() {
+        overridden.push("min_area".to_string());
+    }
+    if params.merge_distance.is_some() {
+        overridden.push("merge_distance".to_string());
+    }
+    Ok(Model {
+        threshold,
+        grouping,
+        model_version: 1,
+        training: TrainingInfo {
+            criterion: params.criterion.name().into(),
+            max_depth: params.max_depth,
+            min_leaf: params.min_leaf,
+            min_gain: params.min_gain,
+            class_weight: params.class_weight.name().into(),
+            class_weights: weights,
+            holdout: params.holdout,
+            pruning_alpha: alpha,
+            grown_leaves: grown.leaves() as u64,
+            pruned_leaves: tree.leaves() as u64,
+            overridden,
+        },
+        data: DataSummary {
+            frames: grow_idx.len() as u64,
+            holdout_frames: hold_idx.len() as u64,
+            pixels: totals[0] + totals[1],
+            unique_patterns: unique,
+            clear_pixels: totals[0],
+            target_pixels: totals[1],
+        },
+        holdout: choice.map(|c| HoldoutMetrics {
+            pixel: c.pixel.prf(),
+            object: c.object.prf(),
+        }),
+        reference: Reference {
+            set_density: share(set_pixels, pixels),
+            detected_share: share(detected, pixels),
+            objects_per_frame: share(objects, grow_idx.len() as u64),
+        },
+        tree,
+    })
+}

@@ -1,0 +1,301 @@
+//! Choosing the pruning strength, score threshold and grouping parameters
+//! on held-out frames, by object-level F1.
+//!
+//! Every held-out pixel is walked once through the grown tree to its grown
+//! leaf. A pruned tree maps each grown leaf to an ancestor, so its score for
+//! any pixel is a table lookup: trying a pruning strength costs a pass over
+//! the held-out pixels, not a new walk. For each strength the candidate
+//! thresholds are the leaf scores that give the best pixel F1 plus a spread
+//! over all leaf scores; for each threshold the masks are grouped once per
+//! merge distance, and every minimum area is scored from those objects.
+//!
+//! Selection is deterministic: highest object F1, then highest pixel F1,
+//! then the smaller tree, then the earlier candidate (smaller merge
+//! distance, smaller minimum area, higher threshold).
+
+use crate::frame::BitFrame;
+use crate::group::{self, GroupParams, Object};
+use crate::score::{self, Confusion};
+use crate::window::{self, Window};
+
+use super::grow::GrownTree;
+use super::prune::Pruning;
+
+/// The candidate values tried when the user fixes none.
+pub const MERGE_DISTANCES: &[u32] = &[0, 1, 2, 3, 4, 6];
+pub const MIN_AREAS: &[u32] = &[1, 2, 3, 4, 5, 6, 8, 10, 12, 16, 20, 25, 32];
+/// At most this many pruning strengths are tried, spread over the sequence.
+pub const MAX_ALPHAS: usize = 24;
+/// Thresholds tried per strength.
+const BEST_PIXEL_THRESHOLDS: usize = 6;
+const SPREAD_THRESHOLDS: usize = 6;
+
+/// A held-out frame, prepared for tuning.
+pub struct HoldoutFrame {
+    width: usize,
+    height: usize,
+    /// Grown-tree leaf of every pixel, row-major.
+    leaf: Vec<u32>,
+    truth_mask: BitFrame,
+    truth: Vec<Object>,
+}
+
+impl HoldoutFrame {
+    pub fn new(tree: &GrownTree, win: Window, frame: &BitFrame, mask: &BitFrame) -> HoldoutFrame {
+        let mut leaf = vec![0u32; frame.len()];
+        let w = frame.width();
+        window::for_each_row(frame, win, |y, pats| {
+            for (x, &p) in pats.iter().enumerate() {
+                leaf[y * w + x] = tree.leaf_of(p) as u32;
+            }
+        });
+        HoldoutFrame {
+            width: w,
+            height: frame.height(),
+            leaf,
+            truth_mask: mask.clone(),
+            truth: score::truth_objects(mask),
+        }
+    }
+}
+
+/// What the user fixed; `None` lets tuning choose.
+#[derive(Clone, Copy, Debug, Default)]
+pub struct Fixed {
+    pub threshold: Option<f64>,
+    pub min_area: Option<u32>,
+    pub merge_distance: Option<u32>,
+}
+
+/// The chosen settings and their held-out scores.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Choice {
+    pub alpha: f64,
+    pub threshold: f64,
+    pub grouping: GroupParams,
+    pub leaves: usize,
+    pub pixel: Confusion,
+    pub object: Confusion,
+}
+
+impl Choice {
+    fn better_than(&self, o: &Choice) -> bool {
+        let (a, b) = (self.object.f1(), o.object.f1());
+        if a != b {
+            return a > b;
+        }
+        let (a, b) = (self.pixel.f1(), o.pixel.f1());
+        if a != b {
+            return a > b;
+        }
+        self.leaves < o.leaves
+    }
+}
+
+/// Picks up to `k` items spread evenly over `v` (always the first and last).
+fn spread<T: Copy>(v: &[T], k: usize) -> Vec<T> {
+    if v.len() <= k {
+        return v.to_vec();
+    }
+    // Indices i * (len - 1) / (k - 1) are distinct because len > k.
+    (0..k).map(|i| v[i * (v.len() - 1) / (k - 1)]).collect()
+}
+
+/// Score of each grown node under the class weights.
+pub fn node_scores(tree: &GrownTree, weights: [f64; 2]) -> Vec<f64> {
+    tree.nodes
+        .iter()
+        .map(|n| {
+            let t = n.counts[1] as f64 * weights[1];
+            let c = n.counts[0] as f64 * weights[0];
+            if t + c > 0.0 {
+                t / (t + c)
+            } else {
+                0.0
+            }
+        })
+        .collect()
+}
+
+/// Evaluates one pruning strength; returns its best choice.
+fn try_alpha(
+    tree: &GrownTree,
+    pruning: &Pruning,
+    alpha: f64,
+    scores: &[f64],
+    frames: &[HoldoutFrame],
+    fixed: &Fixed,
+) -> Option<Choice> {
+    let eff = pruning.effective(tree, alpha);
+    let leaves = pruning.leaves_at(tree, alpha);
+    // Held-out pixel histogram per effective leaf, for pixel F1 per threshold.
+    let n = tree.nodes.len();
+    let mut hist = vec![[0u64; 2]; n];
+    for f in frames {
+        for y in 0..f.height {
+            let trow = f.truth_mask.row(y);
+            for x in 0..f.width {
+                let t = (trow[x / 64] >> (x % 64)) & 1;
+                hist[eff[f.leaf[y * f.width + x] as usize] as usize][t as usize] += 1;
+            }
+        }
+    }
+    let thresholds: Vec<f64> = match fixed.threshold {
+        Some(t) => vec![t],
+        None => {
+            let mut used: Vec<(f64, [u64; 2])> = (0..n)
+                .filter(|&i| hist[i][0] + hist[i][1] > 0)
+                .map(|i| (scores[i], hist[i]))
+                .collect();
+            used.sort_by(|a, b| b.0.total_cmp(&a.0));
+            // Sweep thresholds from high to low.
+            let positives: u64 = used.iter().map(|u| u.1[1]).sum();
+            let mut cand: Vec<(f64, f64)> = Vec::new(); // (threshold, pixel f1)
+            let (mut tp, mut fp) = (0u64, 0u64);
+            let mut i = 0;
+            while i < used.len() {
+                let s = used[i].0;
+                while i < used.len() && used[i].0 == s {
+                    tp += used[i].1[1];
+                    fp += used[i].1[0];
+                    i += 1;
+                }
+                if s <= 0.0 {
+                    break;
+                }
+                let c = Confusion {
+                    tp,
+                    fp,
+                    fn_: positives - tp,
+                    tn: 0,
+                };
+                cand.push((s, c.f1()));
+            }
+            if cand.is_empty() {
+                return None;
+            }
+            let all: Vec<f64> = cand.iter().map(|c| c.0).collect();
+            let mut by_f1 = cand.clone();
+            by_f1.sort_by(|a, b| b.1.total_cmp(&a.1).then(b.0.total_cmp(&a.0)));
+            let mut t: Vec<f64> = by_f1
+                .iter()
+                .take(BEST_PIXEL_THRESHOLDS)
+                .map(|c| c.0)
+                .collect();
+            t.extend(spread(&all, SPREAD_THRESHOLDS));
+            t.sort_by(|a, b| b.total_cmp(a));
+            t.dedup();
+            t
+        }
+    };
+    let mds: Vec<u32> = fixed
+        .merge_distance
+        .map_or_else(|| MERGE_DISTANCES.to_vec(), |m| vec![m]);
+    let areas: Vec<u32> = fixed.min_area.map_or_else(|| MIN_AREAS.to_vec(), |a| vec![a]);
+    let mut best: Option<Choice> = None;
+    for &thr in &thresholds {
+        let masks: Vec<BitFrame> = frames
+            .iter()
+            .map(|f| {
+                let mut m = BitFrame::new(f.width, f.height);
+                for y in 0..f.height {
+                    let row = m.row_mut(y);
+                    for x in 0..f.width {
+                        if scores[eff[f.leaf[y * f.width + x] as usize] as usize] >= thr {
+                            row[x / 64] |= 1 << (x % 64);
+                        }
+                    }
+                }
+                m
+            })
+            .collect();
+        let mut pixel = Confusion::default();
+        for (m, f) in masks.iter().zip(frames) {
+            pixel.add(&score::pixel_confusion(m, &f.truth_mask));
+        }
+        for &md in &mds {
+            let grouped: Vec<Vec<Object>> = masks
+                .iter()
+                .zip(frames)
+                .map(|(m, f)| {
+                    group::group(
+                        m,
+                        GroupParams {
+                            min_area: 1,
+                            merge_distance: md,
+                        },
+                        |x, y| scores[eff[f.leaf[y * f.width + x] as usize] as usize],
+                    )
+                })
+                .collect();
+            for &area in &areas {
+                let mut object = Confusion::default();
+                for (objs, f) in grouped.iter().zip(frames) {
+                    let kept: Vec<Object> = objs
+                        .iter()
+                        .filter(|o| o.area >= area as u64)
+                        .cloned()
+                        .collect();
+                    object.add(&score::object_confusion(&kept, &f.truth));
+                }
+                let c = Choice {
+                    alpha,
+                    threshold: thr,
+                    grouping: GroupParams {
+                        min_area: area,
+                        merge_distance: md,
+                    },
+                    leaves,
+                    pixel,
+                    object,
+                };
+                if best.as_ref().is_none_or(|b| c.better_than(b)) {
+                    best = Some(c);
+                }
+            }
+        }
+    }
+    best
+}
+
+/// Tries the pruning strengths (spread over the sequence, at most
+/// [`MAX_ALPHAS`]) on two threads and returns the best choice.
+pub fn choose(
+    tree: &GrownTree,
+    pruning: &Pruning,
+    weights: [f64; 2],
+    frames: &[HoldoutFrame],
+    fixed: &Fixed,
+) -> Option<Choice> {
+    let scores = node_scores(tree, weights);
+    let alphas = spread(&pruning.alphas, MAX_ALPHAS);
+    let results: Vec<Option<Choice>> = std::thread::scope(|s| {
+        let handles: Vec<_> = (0..2)
+            .map(|k| {
+                let (alphas, scores) = (&alphas, &scores);
+                s.spawn(move || {
+                    alphas
+                        .iter()
+                        .enumerate()
+                        .filter(|(i, _)| i % 2 == k)
+                        .map(|(_, &a)| (a, try_alpha(tree, pruning, a, scores, frames, fixed)))
+                        .collect::<Vec<_>>()
+                })
+            })
+            .collect();
+        let mut all: Vec<(f64, Option<Choice>)> = handles
+            .into_iter()
+            .flat_map(|h| h.join().expect("tuning thread"))
+            .collect();
+        all.sort_by(|a, b| a.0.total_cmp(&b.0));
+        all.into_iter().map(|x| x.1).collect()
+    });
+    // Larger alpha (smaller tree) wins ties: visit from the largest.
+    let mut best: Option<Choice> = None;
+    for c in results.into_iter().rev().flatten() {
+        if best.as_ref().is_none_or(|b| c.better_than(b)) {
+            best = Some(c);
+        }
+    }
+    best
+}

@@ -1,0 +1,180 @@
+//! Scoring detections against labelled masks.
+//!
+//! Pixel level: the confusion counts of the detection mask against the
+//! target mask. Object level: ground-truth objects are the 8-connected
+//! components of the target mask; detections are matched one-to-one,
+//! greedily in order of decreasing score, each to the unmatched ground-truth
+//! object of highest bounding-box IoU, and a match counts only at
+//! IoU >= 0.5 (the PASCAL VOC rule, Everingham et al., 2010).
+//!
+//! Counts add across frames ([`Confusion::add`]), so a data set's score is
+//! computed from the summed counts, never by averaging per-frame ratios.
+
+use serde::{Deserialize, Serialize};
+
+use crate::frame::BitFrame;
+use crate::group::{self, GroupParams, Object};
+
+/// The IoU a detection must reach to match a ground-truth object.
+pub const IOU_MATCH: f64 = 0.5;
+
+/// True/false positives and negatives.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Confusion {
+    pub tp: u64,
+    pub fp: u64,
+    #[serde(rename = "fn")]
+    pub fn_: u64,
+    /// True negatives (pixel level only; 0 for objects, where it has no meaning).
+    pub tn: u64,
+}
+
+impl Confusion {
+    pub fn add(&mut self, o: &Confusion) {
+        self.tp += o.tp;
+        self.fp += o.fp;
+        self.fn_ += o.fn_;
+        self.tn += o.tn;
+    }
+
+    /// Precision, 1 when nothing was detected (no false alarm was raised).
+    pub fn precision(&self) -> f64 {
+        ratio(self.tp, self.tp + self.fp)
+    }
+
+    /// Recall, 1 when there was nothing to find.
+    pub fn recall(&self) -> f64 {
+        ratio(self.tp, self.tp + self.fn_)
+    }
+
+    /// Harmonic mean of precision and recall: 2TP / (2TP + FP + FN); 1 when
+    /// there was nothing to find and nothing was detected.
+    pub fn f1(&self) -> f64 {
+        ratio(2 * self.tp, 2 * self.tp + self.fp + self.fn_)
+    }
+
+    pub fn prf(&self) -> Prf {
+        Prf {
+            precision: self.precision(),
+            recall: self.recall(),
+            f1: self.f1(),
+        }
+    }
+}
+
+fn ratio(a: u64, b: u64) -> f64 {
+    if b == 0 {
+        1.0
+    } else {
+        a as f64 / b as f64
+    }
+}
+
+/// Precision, recall and F1.
+#[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
+pub struct Prf {
+    pub precision: f64,
+    pub recall: f64,
+    pub f1: f64,
+}
+
+/// Pixel-level confusion of a detection mask against the target mask.
+pub fn pixel_confusion(detected: &BitFrame, truth: &BitFrame) -> Confusion {
+    assert!(detected.same_size(truth), "masks of different sizes");
+    let mut c = Confusion::default();
+    for (d, t) in detected.words().iter().zip(truth.words()) {
+        c.tp += (d & t).count_ones() as u64;
+        c.fp += (d & !t).count_ones() as u64;
+        c.fn_ += (!d & t).count_ones() as u64;
+    }
+    c.tn = detected.len() as u64 - c.tp - c.fp - c.fn_;
+    c
+}
+
+/// The ground-truth objects of a target mask (8-connected, every size).
+pub fn truth_objects(truth: &BitFrame) -> Vec<Object> {
+    group::group(truth, GroupParams::default(), |_, _| 1.0)
+}
+
+/// Object-level confusion: greedy one-to-one matching at IoU >= 0.5.
+pub fn object_confusion(detected: &[Object], truth: &[Object]) -> Confusion {
+    let mut order: Vec<&Object> = detected.iter().collect();
+    // Highest score first; ties by id so the result is deterministic.
+    order.sort_by(|a, b| b.score.total_cmp(&a.score).then(a.id.cmp(&b.id)));
+    let mut taken = vec![false; truth.len()];
+    let mut c = Confusion::default();
+    for d in order {
+        let mut best: Option<(usize, f64)> = None;
+        for (i, t) in truth.iter().enumerate() {
+            if taken[i] {
+                continue;
+            }
+            let iou = d.bbox.iou(&t.bbox);
+            if iou >= IOU_MATCH && best.is_none_or(|(_, b)| iou > b) {
+                best = Some((i, iou));
+            }
+        }
+        match best {
+            Some((i, _)) => {
+                taken[i] = true;
+                c.tp += 1;
+            }
+            None => c.fp += 1,
+        }
+    }
+    c.fn_ = taken.iter().filter(|t| !**t).count() as u64;
+    c
+}
+
+/// Pixel and object confusion together, for one frame or summed over many.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize, Deserialize)]
+pub struct Scores {
+    pub pixel: Confusion,
+    pub object: Confusion,
+}
+
+impl Scores {
+    pub fn add(&mut self, o: &Scores) {
+        self.pixel.add(&o.pixel);
+        self.object.add(&o.object);
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::group::BBox;
+
+    fn obj(id: u32, x0: u32, y0: u32, x1: u32, y1: u32, score: f64) -> Object {
+        Object {
+            id,
+            bbox: BBox { x0, y0, x1, y1 },
+            centroid: (0.0, 0.0),
+            area: 1,
+            score,
+        }
+    }
+
+    #[test]
+    fn pixel_counts() {
+        let d = BitFrame::from_ascii("##..\n");
+        let t = BitFrame::from_ascii("#.#.\n");
+        let c = pixel_confusion(&d, &t);
+        assert_eq!((c.tp, c.fp, c.fn_, c.tn), (1, 1, 1, 1));
+        assert_eq!(c.f1(), 0.5);
+    }
+
+    #[test]
+    fn one_to_one_matching() {
+        let truth = vec![obj(1, 0, 0, 9, 9, 1.0)];
+        // Two detections overlap the same object: only one can match.
+        let det = vec![obj(1, 0, 0, 9, 8, 0.5), obj(2, 0, 0, 9, 9, 0.9)];
+        let c = object_confusion(&det, &truth);
+        assert_eq!((c.tp, c.fp, c.fn_), (1, 1, 0));
+        // IoU just under 0.5 does not match: 10x10 against 10x4 = 0.4.
+        let c = object_confusion(&[obj(1, 0, 0, 9, 3, 1.0)], &truth);
+        assert_eq!((c.tp, c.fp, c.fn_), (0, 1, 1));
+        // Nothing to find and nothing found is a perfect score.
+        assert_eq!(object_confusion(&[], &[]).f1(), 1.0);
+    }
+}

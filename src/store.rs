@@ -1,0 +1,284 @@
+//! The label store: window pattern -> [clear count, target count].
+//!
+//! For a learner whose features are the bits of a window, two pixels with the
+//! same pattern are indistinguishable, so the counts per pattern are a
+//! sufficient statistic: learning reads the store, never the frames. Stores
+//! from different sources (seed data now, operator corrections later) merge
+//! by adding counts, which is commutative and associative, so the order in
+//! which labelled data arrives never changes a model.
+//!
+//! Invariants: every entry has a non-zero total; no pattern uses bits past
+//! the window's feature count; the totals equal the sum of the entries.
+//!
+//! File format (little-endian), version 1:
+//! ```text
+//! magic    8 bytes  "TLSTORE\0"
+//! version  u32      1
+//! window   u8       odd, 3..=11
+//! reserved 3 bytes  zero
+//! frames   u64      labelled frames that went into the store
+//! entries  u64      number of entries
+//! clear    u64      total clear pixels
+//! target   u64      total target pixels
+//! entry*   32 bytes pattern u128, clear u64, target u64; patterns strictly ascending
+//! crc32    u32      CRC-32 (IEEE) of every byte before it
+//! ```
+//! The entry count is checked against the file length before anything is
+//! allocated, and the checksum before any entry is trusted.
+
+use rustc_hash::FxHashMap;
+
+use crate::error::{Error, Result};
+use crate::frame::BitFrame;
+use crate::window::{self, Window};
+
+const MAGIC: &[u8; 8] = b"TLSTORE\0";
+const VERSION: u32 = 1;
+const HEADER_LEN: usize = 8 + 4 + 4 + 8 * 4;
+const ENTRY_LEN: usize = 32;
+
+/// Counts of one pattern: index 0 clear pixels, index 1 target pixels.
+pub type Counts = [u64; 2];
+
+/// Pattern -> class counts for one window size.
+#[derive(Clone, Debug)]
+pub struct LabelStore {
+    window: Window,
+    frames: u64,
+    totals: Counts,
+    map: FxHashMap<u128, Counts>,
+}
+
+impl PartialEq for LabelStore {
+    fn eq(&self, other: &Self) -> bool {
+        self.window == other.window
+            && self.frames == other.frames
+            && self.totals == other.totals
+            && self.map == other.map
+    }
+}
+
+impl LabelStore {
+    pub fn new(window: Window) -> LabelStore {
+        LabelStore {
+            window,
+            frames: 0,
+            totals: [0, 0],
+            map: FxHashMap::default(),
+        }
+    }
+
+    pub fn window(&self) -> Window {
+        self.window
+    }
+
+    /// Labelled frames added (directly or through merges).
+    pub fn frames(&self) -> u64 {
+        self.frames
+    }
+
+    /// Total clear and target pixels.
+    pub fn totals(&self) -> Counts {
+        self.totals
+    }
+
+    /// Number of distinct patterns.
+    pub fn unique(&self) -> usize {
+        self.map.len()
+    }
+
+    pub fn get(&self, pattern: u128) -> Option<Counts> {
+        self.map.get(&pattern).copied()
+    }
+
+    /// Adds `clear` and `target` observations of one pattern.
+    pub fn add(&mut self, pattern: u128, counts: Counts) {
+        if counts[0] + counts[1] == 0 {
+            return;
+        }
+        debug_assert!(self.window.features() == 128 || pattern >> self.window.features() == 0);
+        let e = self.map.entry(pattern).or_insert([0, 0]);
+        e[0] += counts[0];
+        e[1] += counts[1];
+        self.totals[0] += counts[0];
+        self.totals[1] += counts[1];
+    }
+
+    /// Adds every pixel of a frame, labelled by its mask (set = target).
+    pub fn add_frame(&mut self, frame: &BitFrame, mask: &BitFrame) -> Result<()> {
+        if !frame.same_size(mask) {
+            return Err(crate::error::ErrorKind::MaskSizeMismatch {
+                width: frame.width(),
+                height: frame.height(),
+                mask_width: mask.width(),
+                mask_height: mask.height(),
+            }
+            .into());
+        }
+        self.map.reserve(frame.len() / 2);
+        window::for_each_row(frame, self.window, |y, pats| {
+            let mrow = mask.row(y);
+            for (x, &p) in pats.iter().enumerate() {
+                let target = (mrow[x / 64] >> (x % 64)) & 1;
+                let e = self.map.entry(p).or_insert([0, 0]);
+                e[target as usize] += 1;
+            }
+        });
+        let t = mask.count_set();
+        self.totals[1] += t;
+        self.totals[0] += frame.len() as u64 - t;
+        self.frames += 1;
+        Ok(())
+    }
+
+    /// Adds all counts of another store of the same window size.
+    pub fn merge(&mut self, other: &LabelStore) -> Result<()> {
+        if other.window != self.window {
+            return Err(Error::bad_store(format!(
+                "cannot merge a {0}x{0} store into a {1}x{1} store",
+                other.window.size(),
+                self.window.size()
+            )));
+        }
+        for (&p, &c) in &other.map {
+            self.add(p, c);
+        }
+        self.frames += other.frames;
+        Ok(())
+    }
+
+    /// Entries sorted by pattern: the deterministic order learning uses.
+    pub fn entries(&self) -> Vec<(u128, Counts)> {
+        let mut v: Vec<(u128, Counts)> = self.map.iter().map(|(&p, &c)| (p, c)).collect();
+        v.sort_unstable_by_key(|e| e.0);
+        v
+    }
+
+    /// Serialises to the versioned, checksummed format described above.
+    pub fn to_bytes(&self) -> Vec<u8> {
+        let entries = self.entries();
+        let mut out = Vec::with_capacity(HEADER_LEN + entries.len() * ENTRY_LEN + 4);
+        out.extend_from_slice(MAGIC);
+        out.extend_from_slice(&VERSION.to_le_bytes());
+        out.extend_from_slice(&[self.window.size(), 0, 0, 0]);
+        out.extend_from_slice(&self.frames.to_le_bytes());
+        out.extend_from_slice(&(entries.len() as u64).to_le_bytes());
+        out.extend_from_slice(&self.totals[0].to_le_bytes());
+        out.extend_from_slice(&self.totals[1].to_le_bytes());
+        for (p, c) in entries {
+            out.extend_from_slice(&p.to_le_bytes());
+            out.extend_from_slice(&c[0].to_le_bytes());
+            out.extend_from_slice(&c[1].to_le_bytes());
+        }
+        let crc = crc32fast::hash(&out);
+        out.extend_from_slice(&crc.to_le_bytes());
+        out
+    }
+
+    /// Parses and validates a stored label store.
+    pub fn from_bytes(bytes: &[u8]) -> Result<LabelStore> {
+        if bytes.len() < HEADER_LEN + 4 || &bytes[..8] != MAGIC {
+            return Err(Error::bad_store("not a treeline label store (bad magic or too short)"));
+        }
+        let u32_at = |i: usize| u32::from_le_bytes(bytes[i..i + 4].try_into().unwrap());
+        let u64_at = |i: usize| u64::from_le_bytes(bytes[i..i + 8].try_into().unwrap());
+        let version = u32_at(8);
+        if version != VERSION {
+            return Err(Error::bad_store(format!(
+                "format version {version} is not known (this build reads {VERSION})"
+            )));
+        }
+        let window = Window::new(bytes[12])
+            .ok_or_else(|| Error::bad_store(format!("window size {} is not 3, 5, 7, 9 or 11", bytes[12])))?;
+        let frames = u64_at(16);
+        let n = u64_at(24);
+        let totals = [u64_at(32), u64_at(40)];
+        let expected = (n as u128) * ENTRY_LEN as u128 + (HEADER_LEN + 4) as u128;
+        if expected != bytes.len() as u128 {
+            return Err(Error::bad_store(format!(
+                "header says {n} entries, which needs {expected} bytes, but the file has {}",
+                bytes.len()
+            )));
+        }
+        let body = &bytes[..bytes.len() - 4];
+        let crc = u32_at(bytes.len() - 4);
+        if crc32fast::hash(body) != crc {
+            return Err(Error::bad_store("checksum mismatch: the file is damaged"));
+        }
+        let mut store = LabelStore::new(window);
+        store.map.reserve(n as usize);
+        let mut prev: Option<u128> = None;
+        for i in 0..n as usize {
+            let at = HEADER_LEN + i * ENTRY_LEN;
+            let p = u128::from_le_bytes(bytes[at..at + 16].try_into().unwrap());
+            let c = [u64_at(at + 16), u64_at(at + 24)];
+            if window.features() < 128 && p >> window.features() != 0 {
+                return Err(Error::bad_store(format!("entry {i} uses bits outside the window")));
+            }
+            if prev.is_some_and(|q| q >= p) {
+                return Err(Error::bad_store(format!("entry {i} is out of order")));
+            }
+            if c[0] + c[1] == 0 {
+                return Err(Error::bad_store(format!("entry {i} has no pixels")));
+            }
+            prev = Some(p);
+            store.add(p, c);
+        }
+        if store.totals != totals {
+            return Err(Error::bad_store(format!(
+                "entries add up to {:?} pixels but the header says {:?}",
+                store.totals, totals
+            )));
+        }
+        store.frames = frames;
+        Ok(store)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn sample() -> LabelStore {
+        let f = BitFrame::from_fn(20, 9, |x, y| (x + y) % 3 == 0);
+        let m = BitFrame::from_fn(20, 9, |x, y| x > 10 && y < 3);
+        let mut s = LabelStore::new(Window::new(5).unwrap());
+        s.add_frame(&f, &m).unwrap();
+        s
+    }
+
+    #[test]
+    fn counts_equal_pixels() {
+        let s = sample();
+        assert_eq!(s.totals(), [180 - 27, 27]);
+        let sum = s
+            .entries()
+            .iter()
+            .fold([0, 0], |a, (_, c)| [a[0] + c[0], a[1] + c[1]]);
+        assert_eq!(sum, s.totals());
+    }
+
+    #[test]
+    fn bytes_roundtrip_and_damage() {
+        let s = sample();
+        let b = s.to_bytes();
+        assert_eq!(LabelStore::from_bytes(&b).unwrap(), s);
+        let mut d = b.clone();
+        d[HEADER_LEN + 3] ^= 1;
+        assert!(LabelStore::from_bytes(&d)
+            .unwrap_err()
+            .to_string()
+            .contains("checksum"));
+        assert!(LabelStore::from_bytes(&b[..b.len() - 1]).is_err());
+        assert!(LabelStore::from_bytes(b"garbage").is_err());
+    }
+
+    #[test]
+    fn mask_mismatch_is_an_error() {
+        let mut s = LabelStore::new(Window::default());
+        let err = s
+            .add_frame(&BitFrame::new(4, 4), &BitFrame::new(4, 5))
+            .unwrap_err();
+        assert!(err.to_string().contains("mask is 4x5"));
+    }
+}
