@@ -6,11 +6,12 @@
 //! `merge_distance + 1`, so distance 0 is plain 8-connectivity); finally
 //! objects smaller than `min_area` pixels are dropped.
 //!
-//! Design decision: one union-find pass over the set pixels in raster order,
-//! looking back only at the `merge_distance + 1` rows above through a ring of
-//! label rows, so memory is `O(width * (merge_distance + 2))` plus the set
-//! pixels, whatever the frame size. Object ids are 1..n in raster order of
-//! each object's first pixel, so the same mask always gives the same ids.
+//! Design decision: labelling works on horizontal runs of set pixels, found
+//! with word operations, joined by union-find; a run looks back only at the
+//! runs of the `merge_distance + 1` rows above. Cost and memory grow with
+//! the number of runs, not with the frame size, which suits masks where
+//! detections are rare. Object ids are 1..n in raster order of each
+//! object's first pixel, so the same mask always gives the same ids.
 
 use serde::{Deserialize, Serialize};
 
@@ -109,65 +110,114 @@ impl UnionFind {
     }
 }
 
-/// Component index (0-based, raster order of first pixel) of every set
-/// pixel, in raster order, plus the number of components. Pixels joined at
-/// Chebyshev distance <= `merge_distance + 1`.
-pub fn label(mask: &BitFrame, merge_distance: u32) -> (Vec<(u32, u32)>, Vec<u32>, usize) {
-    let md = merge_distance.min(MAX_MERGE_DISTANCE) as usize;
-    let reach = md + 1;
-    let w = mask.width();
-    let ring_rows = reach + 1;
-    // label + 1 of the pixel at (x, y) for the last `reach + 1` rows; 0 = clear.
-    let mut ring = vec![0u32; w * ring_rows];
-    let mut uf = UnionFind { parent: Vec::new() };
-    let mut pixels: Vec<(u32, u32)> = Vec::new();
-    let mut nodes: Vec<u32> = Vec::new();
-    for y in 0..mask.height() {
-        let slot = y % ring_rows;
-        ring[slot * w..(slot + 1) * w].fill(0);
-        for (wi, &word) in mask.row(y).iter().enumerate() {
-            let mut bits = word;
-            while bits != 0 {
-                let x = wi * 64 + bits.trailing_zeros() as usize;
-                bits &= bits - 1;
-                let id = uf.push();
-                ring[slot * w + x] = id + 1;
-                let xa = x.saturating_sub(reach);
-                let xb = (x + reach).min(w - 1);
-                // Rows above, within reach.
-                for dy in 1..=reach.min(y) {
-                    let s = (y - dy) % ring_rows;
-                    for &l in &ring[s * w + xa..=s * w + xb] {
-                        if l != 0 {
-                            uf.union(id, l - 1);
-                        }
+/// A horizontal run of set pixels: row `y`, columns `x0..=x1`.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct Run {
+    pub y: u32,
+    pub x0: u32,
+    pub x1: u32,
+}
+
+/// Appends the runs of set pixels of row `y` to `out`, left to right, found
+/// word by word with `trailing_zeros` / `trailing_ones`.
+pub fn row_runs(mask: &BitFrame, y: usize, out: &mut Vec<Run>) {
+    let row = mask.row(y);
+    let mut open: Option<u32> = None;
+    for (wi, &word) in row.iter().enumerate() {
+        let base = (wi * 64) as u32;
+        let mut bit = 0u32;
+        while bit < 64 {
+            let rest = word >> bit;
+            match open {
+                None => {
+                    if rest == 0 {
+                        break;
+                    }
+                    bit += rest.trailing_zeros();
+                    open = Some(base + bit);
+                }
+                Some(x0) => {
+                    let ones = rest.trailing_ones();
+                    bit += ones;
+                    if bit < 64 {
+                        out.push(Run {
+                            y: y as u32,
+                            x0,
+                            x1: base + bit - 1,
+                        });
+                        open = None;
                     }
                 }
-                // Same row, to the left.
-                for &l in &ring[slot * w + xa..slot * w + x] {
-                    if l != 0 {
-                        uf.union(id, l - 1);
-                    }
-                }
-                pixels.push((x as u32, y as u32));
-                nodes.push(id);
             }
         }
     }
-    // Number components by the first pixel's raster position (roots are the
-    // smallest id in their set, and ids follow raster order).
-    let mut comp_of_root = vec![u32::MAX; nodes.len()];
+    if let Some(x0) = open {
+        out.push(Run {
+            y: y as u32,
+            x0,
+            x1: mask.width() as u32 - 1,
+        });
+    }
+}
+
+/// Connected components of the set pixels, as runs: every run of the mask
+/// in raster order with its component index (0-based, components numbered
+/// in raster order of their first pixel), and the number of components.
+/// Two pixels are joined when their Chebyshev distance is at most
+/// `merge_distance + 1`.
+///
+/// Run-based labelling with union-find: a run is compared only with the
+/// runs of the `merge_distance + 1` rows above it and with the run before it
+/// in its own row (any earlier run close enough is also close to that one),
+/// so the cost grows with the number of runs, not of pixels.
+pub fn label(mask: &BitFrame, merge_distance: u32) -> (Vec<Run>, Vec<u32>, usize) {
+    let reach = merge_distance.min(MAX_MERGE_DISTANCE) + 1;
+    let mut runs: Vec<Run> = Vec::new();
+    // Index in `runs` of the first run of each row.
+    let mut row_start: Vec<usize> = Vec::with_capacity(mask.height() + 1);
+    let mut uf = UnionFind { parent: Vec::new() };
+    for y in 0..mask.height() {
+        row_start.push(runs.len());
+        let first = runs.len();
+        row_runs(mask, y, &mut runs);
+        for i in first..runs.len() {
+            let id = uf.push();
+            debug_assert_eq!(id as usize, i);
+            let r = runs[i];
+            let lo = r.x0.saturating_sub(reach);
+            let hi = r.x1 + reach;
+            if i > first && runs[i - 1].x1 + reach >= r.x0 {
+                uf.union(id, (i - 1) as u32);
+            }
+            let top = y.saturating_sub(reach as usize);
+            for yy in top..y {
+                let (a, b) = (row_start[yy], row_start[yy + 1]);
+                for (j, q) in runs[a..b].iter().enumerate() {
+                    if q.x0 > hi {
+                        break;
+                    }
+                    if q.x1 >= lo {
+                        uf.union(id, (a + j) as u32);
+                    }
+                }
+            }
+        }
+    }
+    // Roots are the smallest run index of their set, and runs follow raster
+    // order, so numbering roots by first appearance is raster order of the
+    // components' first pixels.
+    let mut comp_of_root = vec![u32::MAX; runs.len()];
     let mut n = 0usize;
-    let mut comp = Vec::with_capacity(nodes.len());
-    for &id in &nodes {
-        let r = uf.find(id) as usize;
+    let mut comp = Vec::with_capacity(runs.len());
+    for i in 0..runs.len() {
+        let r = uf.find(i as u32) as usize;
         if comp_of_root[r] == u32::MAX {
             comp_of_root[r] = n as u32;
             n += 1;
         }
         comp.push(comp_of_root[r]);
     }
-    (pixels, comp, n)
+    (runs, comp, n)
 }
 
 /// Groups a detection mask into objects. `score(x, y)` gives the score of a
@@ -177,7 +227,7 @@ pub fn group(
     params: GroupParams,
     mut score: impl FnMut(usize, usize) -> f64,
 ) -> Vec<Object> {
-    let (pixels, comp, n) = label(mask, params.merge_distance);
+    let (runs, comp, n) = label(mask, params.merge_distance);
     struct Acc {
         bbox: BBox,
         sx: u64,
@@ -186,15 +236,14 @@ pub fn group(
         score: f64,
     }
     let mut acc: Vec<Acc> = Vec::with_capacity(n);
-    for (&(x, y), &c) in pixels.iter().zip(&comp) {
-        let s = score(x as usize, y as usize);
+    for (r, &c) in runs.iter().zip(&comp) {
         if c as usize == acc.len() {
             acc.push(Acc {
                 bbox: BBox {
-                    x0: x,
-                    y0: y,
-                    x1: x,
-                    y1: y,
+                    x0: r.x0,
+                    y0: r.y,
+                    x1: r.x1,
+                    y1: r.y,
                 },
                 sx: 0,
                 sy: 0,
@@ -203,14 +252,17 @@ pub fn group(
             });
         }
         let a = &mut acc[c as usize];
-        a.bbox.x0 = a.bbox.x0.min(x);
-        a.bbox.x1 = a.bbox.x1.max(x);
-        a.bbox.y0 = a.bbox.y0.min(y);
-        a.bbox.y1 = a.bbox.y1.max(y);
-        a.sx += x as u64;
-        a.sy += y as u64;
-        a.area += 1;
-        a.score += s;
+        a.bbox.x0 = a.bbox.x0.min(r.x0);
+        a.bbox.x1 = a.bbox.x1.max(r.x1);
+        a.bbox.y0 = a.bbox.y0.min(r.y);
+        a.bbox.y1 = a.bbox.y1.max(r.y);
+        let len = (r.x1 - r.x0 + 1) as u64;
+        a.sx += (r.x0 as u64 + r.x1 as u64) * len / 2;
+        a.sy += r.y as u64 * len;
+        a.area += len;
+        for x in r.x0..=r.x1 {
+            a.score += score(x as usize, r.y as usize);
+        }
     }
     acc.into_iter()
         .filter(|a| a.area >= params.min_area.max(1) as u64)
@@ -223,6 +275,64 @@ pub fn group(
             score: a.score / a.area as f64,
         })
         .collect()
+}
+
+/// The straightforward pixel-by-pixel grouping: breadth-first flood fill
+/// over every pixel within Chebyshev distance `merge_distance + 1`. Slow
+/// (`O(pixels x reach^2)`); kept as the reference the run-based labelling is
+/// tested against.
+pub fn group_reference(mask: &BitFrame, params: GroupParams) -> Vec<Object> {
+    let reach = params.merge_distance.min(MAX_MERGE_DISTANCE) as isize + 1;
+    let (w, h) = (mask.width(), mask.height());
+    let mut seen = vec![false; w * h];
+    let mut out = Vec::new();
+    let mut queue = std::collections::VecDeque::new();
+    for (sx, sy) in mask.iter_set() {
+        if seen[sy * w + sx] {
+            continue;
+        }
+        seen[sy * w + sx] = true;
+        queue.push_back((sx, sy));
+        let mut bbox = BBox {
+            x0: sx as u32,
+            y0: sy as u32,
+            x1: sx as u32,
+            y1: sy as u32,
+        };
+        let (mut area, mut tx, mut ty) = (0u64, 0u64, 0u64);
+        while let Some((x, y)) = queue.pop_front() {
+            area += 1;
+            tx += x as u64;
+            ty += y as u64;
+            bbox.x0 = bbox.x0.min(x as u32);
+            bbox.x1 = bbox.x1.max(x as u32);
+            bbox.y0 = bbox.y0.min(y as u32);
+            bbox.y1 = bbox.y1.max(y as u32);
+            for dy in -reach..=reach {
+                for dx in -reach..=reach {
+                    let (nx, ny) = (x as isize + dx, y as isize + dy);
+                    if nx < 0 || ny < 0 || nx >= w as isize || ny >= h as isize {
+                        continue;
+                    }
+                    let k = ny as usize * w + nx as usize;
+                    if !seen[k] && mask.get(nx as usize, ny as usize) {
+                        seen[k] = true;
+                        queue.push_back((nx as usize, ny as usize));
+                    }
+                }
+            }
+        }
+        if area >= params.min_area.max(1) as u64 {
+            out.push(Object {
+                id: out.len() as u32 + 1,
+                bbox,
+                centroid: (tx as f64 / area as f64, ty as f64 / area as f64),
+                area,
+                score: 1.0,
+            });
+        }
+    }
+    out
 }
 
 #[cfg(test)]
@@ -269,6 +379,33 @@ mod tests {
         assert_eq!(objs(t, 6, 1).len(), 1);
         assert_eq!(objs(t, 2, 2).len(), 1);
         assert_eq!(objs(t, 2, 2)[0].id, 1);
+    }
+
+    #[test]
+    fn runs_match_the_pixel_reference() {
+        // Pseudo-random masks of several densities and widths around the
+        // word size; both groupings must give the same objects.
+        let mut state = 12345u64;
+        let mut next = || {
+            state = state.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
+            (state >> 33) as u32
+        };
+        for &(w, h) in &[(1usize, 1usize), (63, 7), (64, 9), (65, 11), (130, 17)] {
+            for density in [0u32, 5, 30, 60, 100] {
+                let m = BitFrame::from_fn(w, h, |_, _| next() % 100 < density);
+                for md in [0, 1, 2, 5] {
+                    for min_area in [1, 3] {
+                        let p = GroupParams {
+                            min_area,
+                            merge_distance: md,
+                        };
+                        let fast: Vec<_> = group(&m, p, |_, _| 1.0);
+                        let slow = group_reference(&m, p);
+                        assert_eq!(fast, slow, "{w}x{h} density {density} md {md}");
+                    }
+                }
+            }
+        }
     }
 
     #[test]

@@ -38,7 +38,7 @@ pub mod model;
 pub mod record;
 pub mod score;
 pub mod store;
-//pub mod synth;
+pub mod synth;
 pub mod window;
 
 pub use error::{Error, ErrorKind, Result};

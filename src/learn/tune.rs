@@ -101,6 +101,31 @@ fn spread<T: Copy>(v: &[T], k: usize) -> Vec<T> {
     (0..k).map(|i| v[i * (v.len() - 1) / (k - 1)]).collect()
 }
 
+/// The minimum area in the middle of the longest run of best object F1.
+/// Neighbouring areas that score the same on the holdout are equally
+/// plausible; the middle of the run is the choice least likely to sit on
+/// the edge of a cliff for new frames.
+fn plateau_centre(row: &[Choice]) -> Choice {
+    let best = row.iter().map(|c| c.object.f1()).fold(f64::MIN, f64::max);
+    let (mut run_start, mut run_len) = (0, 0);
+    let mut i = 0;
+    while i < row.len() {
+        if row[i].object.f1() == best {
+            let start = i;
+            while i < row.len() && row[i].object.f1() == best {
+                i += 1;
+            }
+            if i - start > run_len {
+                run_start = start;
+                run_len = i - start;
+            }
+        } else {
+            i += 1;
+        }
+    }
+    row[run_start + (run_len - 1) / 2]
+}
+
 /// Score of each grown node under the class weights.
 pub fn node_scores(tree: &GrownTree, weights: [f64; 2]) -> Vec<f64> {
     tree.nodes
@@ -174,7 +199,14 @@ fn try_alpha(
             if cand.is_empty() {
                 return None;
             }
-            let all: Vec<f64> = cand.iter().map(|c| c.0).collect();
+            // Thresholds far from the best pixel F1 only flood the masks;
+            // the spread covers those within half of it.
+            let top = cand.iter().map(|c| c.1).fold(0.0, f64::max);
+            let all: Vec<f64> = cand
+                .iter()
+                .filter(|c| c.1 >= 0.5 * top)
+                .map(|c| c.0)
+                .collect();
             let mut by_f1 = cand.clone();
             by_f1.sort_by(|a, b| b.1.total_cmp(&a.1).then(b.0.total_cmp(&a.0)));
             let mut t: Vec<f64> = by_f1
@@ -192,18 +224,33 @@ fn try_alpha(
         .merge_distance
         .map_or_else(|| MERGE_DISTANCES.to_vec(), |m| vec![m]);
     let areas: Vec<u32> = fixed.min_area.map_or_else(|| MIN_AREAS.to_vec(), |a| vec![a]);
+    // Pixels that reach the lowest candidate threshold, per frame, with
+    // their score: detections are rare, so masks are built from this list.
+    let lowest = thresholds.iter().copied().fold(f64::INFINITY, f64::min);
+    let candidates: Vec<Vec<(u32, f64)>> = frames
+        .iter()
+        .map(|f| {
+            f.leaf
+                .iter()
+                .enumerate()
+                .filter_map(|(i, &l)| {
+                    let s = scores[eff[l as usize] as usize];
+                    (s >= lowest).then_some((i as u32, s))
+                })
+                .collect()
+        })
+        .collect();
     let mut best: Option<Choice> = None;
     for &thr in &thresholds {
         let masks: Vec<BitFrame> = frames
             .iter()
-            .map(|f| {
+            .zip(&candidates)
+            .map(|(f, cand)| {
                 let mut m = BitFrame::new(f.width, f.height);
-                for y in 0..f.height {
-                    let row = m.row_mut(y);
-                    for x in 0..f.width {
-                        if scores[eff[f.leaf[y * f.width + x] as usize] as usize] >= thr {
-                            row[x / 64] |= 1 << (x % 64);
-                        }
+                for &(i, s) in cand {
+                    if s >= thr {
+                        let (x, y) = (i as usize % f.width, i as usize / f.width);
+                        m.row_mut(y)[x / 64] |= 1 << (x % 64);
                     }
                 }
                 m
@@ -228,6 +275,7 @@ fn try_alpha(
                     )
                 })
                 .collect();
+            let mut row: Vec<Choice> = Vec::with_capacity(areas.len());
             for &area in &areas {
                 let mut object = Confusion::default();
                 for (objs, f) in grouped.iter().zip(frames) {
@@ -238,7 +286,7 @@ fn try_alpha(
                         .collect();
                     object.add(&score::object_confusion(&kept, &f.truth));
                 }
-                let c = Choice {
+                row.push(Choice {
                     alpha,
                     threshold: thr,
                     grouping: GroupParams {
@@ -248,10 +296,11 @@ fn try_alpha(
                     leaves,
                     pixel,
                     object,
-                };
-                if best.as_ref().is_none_or(|b| c.better_than(b)) {
-                    best = Some(c);
-                }
+                });
+            }
+            let c = plateau_centre(&row);
+            if best.as_ref().is_none_or(|b| c.better_than(b)) {
+                best = Some(c);
             }
         }
     }

@@ -1,0 +1,778 @@
+//! Command-line glue: argument definitions and the offline commands
+//! (`train`, `scan`, `eval`, `rules`, `generate`). Each command parses its
+//! options into library types, calls the library, and prints either a
+//! human-readable table (default) or JSON (`--json`). Errors go to stderr.
+//!
+//! Exit codes: 0 success; 1 the command failed; 2 it finished but some input
+//! files were bad (each named on stderr).
+
+mod progress;
+
+use std::path::{Path, PathBuf};
+use std::time::{Instant, SystemTime};
+
+use anyhow::{bail, Context, Result};
+use clap::{Parser, Subcommand};
+use serde::Serialize;
+
+use treeline::codec::DecodeLimits;
+use treeline::evaluate::{self, Settings};
+use treeline::group::GroupParams;
+use treeline::learn::{self, ClassWeight, Criterion, Stage, TrainParams};
+use treeline::model::{Model, Node};
+use treeline::record::{self, FrameRecord, ObjectRecord};
+use treeline::score::{self, Confusion, Scores};
+use treeline::synth::{self, LoomParams};
+use treeline::window::Window;
+use treeline::{data, model};
+
+use progress::Progress;
+
+#[derive(Parser, Debug)]
+#[command(
+    name = "treeline",
+    version,
+    about = "Finds defects in binarized camera frames with a compiled decision tree over pixel neighbourhoods."
+)]
+pub struct Args {
+    #[command(subcommand)]
+    command: Command,
+}
+
+#[derive(Subcommand, Debug)]
+enum Command {
+    /// Learn a model from a folder of frames and masks.
+    Train(TrainArgs),
+    /// Detect objects in frame files.
+    Scan(ScanArgs),
+    /// Score a model on a folder of frames and masks.
+    Eval(EvalArgs),
+    /// Print a model's tree as if/then rules.
+    Rules(RulesArgs),
+    /// Write seeded synthetic loom frames with their masks.
+    Generate(GenerateArgs),
+}
+
+/// Frame decoding options shared by the commands that read frames.
+#[derive(clap::Args, Debug, Clone)]
+struct DecodeArgs {
+    /// Largest frame width accepted, in pixels.
+    #[arg(long, default_value_t = 8192)]
+    max_width: usize,
+    /// Largest frame height accepted, in pixels.
+    #[arg(long, default_value_t = 8192)]
+    max_height: usize,
+    /// PNG: pixels with 8-bit luma below this are set (ink).
+    #[arg(long, default_value_t = 128)]
+    png_threshold: u8,
+    /// PNG: set the light pixels instead of the dark ones.
+    #[arg(long)]
+    png_invert: bool,
+}
+
+impl DecodeArgs {
+    fn limits(&self) -> DecodeLimits {
+        DecodeLimits {
+            max_width: self.max_width,
+            max_height: self.max_height,
+            png_threshold: self.png_threshold,
+            png_invert: self.png_invert,
+        }
+    }
+}
+
+/// Overrides of the settings a model carries.
+#[derive(clap::Args, Debug, Clone)]
+struct SettingArgs {
+    /// Score a pixel must reach to be a detection (default: the model's).
+    #[arg(long)]
+    threshold: Option<f64>,
+    /// Drop objects with fewer pixels (default: the model's).
+    #[arg(long)]
+    min_area: Option<u32>,
+    /// Merge objects separated by at most this many clear pixels (default: the model's).
+    #[arg(long)]
+    merge_distance: Option<u32>,
+}
+
+impl SettingArgs {
+    fn apply(&self, m: &Model) -> Result<Settings> {
+        let s = Settings {
+            threshold: self.threshold.unwrap_or(m.threshold),
+            grouping: GroupParams {
+                min_area: self.min_area.unwrap_or(m.grouping.min_area),
+                merge_distance: self.merge_distance.unwrap_or(m.grouping.merge_distance),
+            },
+        };
+        model::validate_settings(s.threshold, s.grouping).context("bad setting")?;
+        Ok(s)
+    }
+}
+
+#[derive(clap::Args, Debug)]
+struct TrainArgs {
+    /// Folder of NAME.pbm / NAME.png frames with NAME.mask.pbm masks.
+    #[arg(long)]
+    data: PathBuf,
+    /// Where to write the model (JSON).
+    #[arg(long)]
+    out: PathBuf,
+    /// Split criterion: gini, entropy or gain-ratio.
+    #[arg(long, default_value = "entropy")]
+    criterion: String,
+    /// Deepest level of splits (the root is depth 0).
+    #[arg(long, default_value_t = TrainParams::default().max_depth)]
+    max_depth: u32,
+    /// Least weighted pixel count on each side of a split.
+    #[arg(long, default_value_t = TrainParams::default().min_leaf)]
+    min_leaf: f64,
+    /// Least decrease of the tree's weighted impurity for a split.
+    #[arg(long, default_value_t = 0.0)]
+    min_gain: f64,
+    /// Window side in pixels: 3, 5, 7, 9 or 11.
+    #[arg(long, default_value_t = 11)]
+    window: u8,
+    /// Class weights: none, balanced, or CLEAR:TARGET (e.g. 1:50).
+    #[arg(long, default_value = "balanced")]
+    class_weight: String,
+    /// Share of frames held out to choose pruning, threshold and grouping.
+    #[arg(long, default_value_t = 0.2)]
+    holdout: f64,
+    /// Skip bad frame/mask pairs with a warning instead of failing.
+    #[arg(long)]
+    skip_bad: bool,
+    /// Print the training summary as JSON.
+    #[arg(long)]
+    json: bool,
+    #[command(flatten)]
+    settings: SettingArgs,
+    #[command(flatten)]
+    decode: DecodeArgs,
+}
+
+#[derive(clap::Args, Debug)]
+struct ScanArgs {
+    /// The model file.
+    #[arg(long)]
+    model: PathBuf,
+    /// Frame files (PBM or PNG).
+    #[arg(required = true)]
+    frames: Vec<PathBuf>,
+    /// One JSON record per frame (JSON Lines), as the detection log writes.
+    #[arg(long)]
+    json: bool,
+    #[command(flatten)]
+    settings: SettingArgs,
+    #[command(flatten)]
+    decode: DecodeArgs,
+}
+
+#[derive(clap::Args, Debug)]
+struct EvalArgs {
+    /// Folder of frames with masks.
+    #[arg(long)]
+    data: PathBuf,
+    /// The model file.
+    #[arg(long)]
+    model: PathBuf,
+    /// Print the scores as JSON.
+    #[arg(long)]
+    json: bool,
+    /// Also list every frame's scores.
+    #[arg(long)]
+    per_frame: bool,
+    /// Score the good pairs even if some pairs are bad.
+    #[arg(long)]
+    skip_bad: bool,
+    #[command(flatten)]
+    settings: SettingArgs,
+    #[command(flatten)]
+    decode: DecodeArgs,
+}
+
+#[derive(clap::Args, Debug)]
+struct RulesArgs {
+    /// The model file.
+    #[arg(long)]
+    model: PathBuf,
+    /// Print the rules as JSON.
+    #[arg(long)]
+    json: bool,
+}
+
+#[derive(clap::Args, Debug)]
+struct GenerateArgs {
+    /// Folder to write into (created if missing).
+    #[arg(long)]
+    out: PathBuf,
+    /// Number of frames.
+    #[arg(long, default_value_t = 30)]
+    count: usize,
+    /// Seed: the same seed and preset always give the same frames.
+    #[arg(long, default_value_t = 1)]
+    seed: u64,
+    /// Loom setting: standard, alternate or drifted.
+    #[arg(long, default_value = "standard")]
+    preset: String,
+    /// Frame width in pixels (default: the preset's).
+    #[arg(long)]
+    width: Option<usize>,
+    /// Frame height in pixels (default: the preset's).
+    #[arg(long)]
+    height: Option<usize>,
+    /// Share of pixels flipped by camera noise (default: the preset's).
+    #[arg(long)]
+    noise: Option<f64>,
+    /// Write frames as PNG instead of PBM (masks stay PBM).
+    #[arg(long)]
+    png: bool,
+}
+
+pub fn run(args: Args) -> Result<i32> {
+    match args.command {
+        Command::Train(a) => train(a),
+        Command::Scan(a) => scan(a),
+        Command::Eval(a) => eval(a),
+        Command::Rules(a) => rules(a),
+        Command::Generate(a) => generate(a),
+    }
+}
+
+fn load_model(path: &Path) -> Result<Model> {
+    let text = std::fs::read_to_string(path)
+        .with_context(|| format!("cannot read model {}", path.display()))?;
+    Model::from_json(&text).map_err(|e| anyhow::anyhow!("{}: {e}", path.display()))
+}
+
+/// Reads a data folder, reporting bad pairs; fails on them unless `skip_bad`.
+fn read_data(dir: &Path, limits: &DecodeLimits, skip_bad: bool) -> Result<(data::Folder, usize)> {
+    let mut bar = Progress::new(usize::MAX, 0);
+    let mut first = true;
+    let folder = data::read_folder(dir, limits, &mut |done, total| {
+        if first {
+            bar = Progress::new(total, 20);
+            bar.set_label("reading frames");
+            first = false;
+        }
+        bar.update(done, total);
+    })
+    .with_context(|| format!("cannot read data folder {}", dir.display()))?;
+    bar.finish();
+    let bad = folder.problems.len();
+    for p in &folder.problems {
+        if skip_bad {
+            eprintln!("treeline: warning: skipped {p}");
+        } else {
+            eprintln!("treeline: error: {p}");
+        }
+    }
+    if bad > 0 && !skip_bad {
+        bail!(
+            "{bad} bad file(s) in {}; fix them or pass --skip-bad",
+            dir.display()
+        );
+    }
+    if folder.frames.is_empty() {
+        bail!("no usable frame/mask pairs in {}", dir.display());
+    }
+    Ok((folder, bad))
+}
+
+#[derive(Serialize)]
+struct TrainSummary<'a> {
+    model: String,
+    seconds: f64,
+    skipped: usize,
+    frames: u64,
+    holdout_frames: u64,
+    pixels: u64,
+    unique_patterns: u64,
+    grown_leaves: u64,
+    leaves: u64,
+    depth: u32,
+    threshold: f64,
+    min_area: u32,
+    merge_distance: u32,
+    holdout: &'a Option<model::HoldoutMetrics>,
+}
+
+fn train(a: TrainArgs) -> Result<i32> {
+    let started = Instant::now();
+    let window = Window::new(a.window)
+        .with_context(|| format!("--window {} must be one of 3, 5, 7, 9, 11", a.window))?;
+    let criterion = Criterion::parse(&a.criterion).with_context(|| {
+        format!(
+            "--criterion {:?} must be gini, entropy or gain-ratio",
+            a.criterion
+        )
+    })?;
+    let class_weight = ClassWeight::parse(&a.class_weight).with_context(|| {
+        format!(
+            "--class-weight {:?} must be none, balanced or CLEAR:TARGET with two positive numbers",
+            a.class_weight
+        )
+    })?;
+    let params = TrainParams {
+        window,
+        criterion,
+        max_depth: a.max_depth,
+        min_leaf: a.min_leaf,
+        min_gain: a.min_gain,
+        class_weight,
+        holdout: a.holdout,
+        threshold: a.settings.threshold,
+        min_area: a.settings.min_area,
+        merge_distance: a.settings.merge_distance,
+        ..TrainParams::default()
+    };
+    params.validate().context("bad training option")?;
+    let (folder, skipped) = read_data(&a.data, &a.decode.limits(), a.skip_bad)?;
+    let mut bar = Progress::new(folder.frames.len(), 10);
+    let m = learn::train(&folder.frames, &params, &mut |s| match s {
+        Stage::Store { done, total } => {
+            bar.set_label("building label store");
+            bar.update(done, total)
+        }
+        Stage::Grow => bar.stage("growing tree"),
+        Stage::Prune => bar.stage("pruning"),
+        Stage::Tune => bar.stage("choosing threshold and grouping on held-out frames"),
+    })
+    .with_context(|| format!("training on {} failed", a.data.display()))?;
+    bar.finish();
+    write_atomic(&a.out, m.to_json().as_bytes())?;
+    let seconds = started.elapsed().as_secs_f64();
+    if a.json {
+        let s = TrainSummary {
+            model: a.out.display().to_string(),
+            seconds,
+            skipped,
+            frames: m.data.frames,
+            holdout_frames: m.data.holdout_frames,
+            pixels: m.data.pixels,
+            unique_patterns: m.data.unique_patterns,
+            grown_leaves: m.training.grown_leaves,
+            leaves: m.training.pruned_leaves,
+            depth: m.tree.depth(),
+            threshold: m.threshold,
+            min_area: m.grouping.min_area,
+            merge_distance: m.grouping.merge_distance,
+            holdout: &m.holdout,
+        };
+        println!("{}", serde_json::to_string_pretty(&s)?);
+    } else {
+        println!(
+            "trained on {} frames ({} held out), {} pixels, {} distinct patterns",
+            m.data.frames, m.data.holdout_frames, m.data.pixels, m.data.unique_patterns
+        );
+        println!(
+            "tree: {} leaves grown, {} kept after pruning (alpha {:.3e}), depth {}",
+            m.training.grown_leaves,
+            m.training.pruned_leaves,
+            m.training.pruning_alpha,
+            m.tree.depth()
+        );
+        println!(
+            "settings: threshold {:.4}, min_area {}, merge_distance {}",
+            m.threshold, m.grouping.min_area, m.grouping.merge_distance
+        );
+        match &m.holdout {
+            Some(h) => println!(
+                "held-out frames: objects P {:.3} R {:.3} F1 {:.3}; pixels P {:.3} R {:.3} F1 {:.3}",
+                h.object.precision,
+                h.object.recall,
+                h.object.f1,
+                h.pixel.precision,
+                h.pixel.recall,
+                h.pixel.f1
+            ),
+            None => println!("held-out frames: none (pruning and tuning skipped)"),
+        }
+        if skipped > 0 {
+            println!("skipped {skipped} bad file(s)");
+        }
+        println!("wrote {} in {seconds:.2} s", a.out.display());
+    }
+    Ok(if skipped > 0 { 2 } else { 0 })
+}
+
+/// Writes a file through a temporary sibling and a rename, so a reader
+/// never sees half a model.
+fn write_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
+    let name = path
+        .file_name()
+        .with_context(|| format!("{} is not a file path", path.display()))?;
+    let tmp = path.with_file_name(format!(".{}.tmp", name.to_string_lossy()));
+    std::fs::write(&tmp, bytes).with_context(|| format!("cannot write {}", tmp.display()))?;
+    std::fs::rename(&tmp, path).with_context(|| format!("cannot write {}", path.display()))?;
+    Ok(())
+}
+
+fn scan(a: ScanArgs) -> Result<i32> {
+    let m = load_model(&a.model)?;
+    let settings = a.settings.apply(&m)?;
+    let limits = a.decode.limits();
+    let mut failed = 0;
+    for path in &a.frames {
+        let t0 = Instant::now();
+        let bytes = match data::read_bounded(path, &limits) {
+            Ok(b) => b,
+            Err(e) => {
+                eprintln!("treeline: error: {e}");
+                failed += 1;
+                continue;
+            }
+        };
+        let frame = match treeline::codec::decode(&bytes, &limits) {
+            Ok(f) => f,
+            Err(e) => {
+                eprintln!("treeline: error: {}", e.with_path(path));
+                failed += 1;
+                continue;
+            }
+        };
+        let result = evaluate::run(&m.tree, &settings, &frame);
+        let millis = t0.elapsed().as_secs_f64() * 1000.0;
+        let rec = FrameRecord {
+            time: record::rfc3339(SystemTime::now()),
+            frame: path
+                .file_name()
+                .map(|n| n.to_string_lossy().into_owned())
+                .unwrap_or_default(),
+            sha256: record::sha256_hex(&bytes),
+            width: frame.width() as u32,
+            height: frame.height() as u32,
+            model_version: m.model_version,
+            millis: (millis * 1000.0).round() / 1000.0,
+            objects: result.objects.iter().map(ObjectRecord::from_object).collect(),
+        };
+        if a.json {
+            println!("{}", serde_json::to_string(&rec)?);
+        } else {
+            println!(
+                "{}  {}x{}  {} object(s)  {:.2} ms",
+                path.display(),
+                rec.width,
+                rec.height,
+                rec.objects.len(),
+                rec.millis
+            );
+            for o in &rec.objects {
+                println!(
+                    "  #{:<3} box x {}..{} y {}..{}  area {:<5} centre ({:.1}, {:.1})  score {:.3}",
+                    o.id,
+                    o.bbox[0],
+                    o.bbox[2],
+                    o.bbox[1],
+                    o.bbox[3],
+                    o.area,
+                    o.centroid[0],
+                    o.centroid[1],
+                    o.score
+                );
+            }
+        }
+    }
+    if failed > 0 {
+        eprintln!("treeline: {failed} of {} frame(s) could not be read", a.frames.len());
+        return Ok(if failed == a.frames.len() { 1 } else { 2 });
+    }
+    Ok(0)
+}
+
+#[derive(Serialize)]
+struct Level {
+    tp: u64,
+    fp: u64,
+    #[serde(rename = "fn")]
+    fn_: u64,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    tn: Option<u64>,
+    precision: f64,
+    recall: f64,
+    f1: f64,
+}
+
+impl Level {
+    fn of(c: &Confusion, with_tn: bool) -> Level {
+        Level {
+            tp: c.tp,
+            fp: c.fp,
+            fn_: c.fn_,
+            tn: with_tn.then_some(c.tn),
+            precision: c.precision(),
+            recall: c.recall(),
+            f1: c.f1(),
+        }
+    }
+}
+
+#[derive(Serialize)]
+struct FrameScore {
+    frame: String,
+    pixel: Level,
+    object: Level,
+}
+
+#[derive(Serialize)]
+struct EvalReport {
+    model_version: u64,
+    frames: usize,
+    skipped: usize,
+    threshold: f64,
+    min_area: u32,
+    merge_distance: u32,
+    pixel: Level,
+    object: Level,
+    #[serde(skip_serializing_if = "Vec::is_empty")]
+    per_frame: Vec<FrameScore>,
+}
+
+fn eval(a: EvalArgs) -> Result<i32> {
+    let m = load_model(&a.model)?;
+    let settings = a.settings.apply(&m)?;
+    let (folder, skipped) = read_data(&a.data, &a.decode.limits(), a.skip_bad)?;
+    if let Some(f) = folder
+        .frames
+        .iter()
+        .find(|f| f.frame.width() == 0 || f.frame.height() == 0)
+    {
+        eprintln!("treeline: note: frame {} is empty", f.name);
+    }
+    let mut total = Scores::default();
+    let mut per_frame = Vec::new();
+    let mut bar = Progress::new(folder.frames.len(), 20);
+    bar.set_label("scoring frames");
+    for (k, f) in folder.frames.iter().enumerate() {
+        bar.update(k, folder.frames.len());
+        let r = evaluate::run(&m.tree, &settings, &f.frame);
+        let s = Scores {
+            pixel: score::pixel_confusion(&r.mask, &f.mask),
+            object: score::object_confusion(&r.objects, &score::truth_objects(&f.mask)),
+        };
+        total.add(&s);
+        if a.per_frame {
+            per_frame.push(FrameScore {
+                frame: f.name.clone(),
+                pixel: Level::of(&s.pixel, true),
+                object: Level::of(&s.object, false),
+            });
+        }
+    }
+    bar.finish();
+    let report = EvalReport {
+        model_version: m.model_version,
+        frames: folder.frames.len(),
+        skipped,
+        threshold: settings.threshold,
+        min_area: settings.grouping.min_area,
+        merge_distance: settings.grouping.merge_distance,
+        pixel: Level::of(&total.pixel, true),
+        object: Level::of(&total.object, false),
+        per_frame,
+    };
+    if a.json {
+        println!("{}", serde_json::to_string_pretty(&report)?);
+    } else {
+        println!(
+            "{} frames, threshold {:.4}, min_area {}, merge_distance {}",
+            report.frames, report.threshold, report.min_area, report.merge_distance
+        );
+        println!(
+            "{:<8} {:>9} {:>7} {:>7} {:>9} {:>9} {:>9} {:>11}",
+            "level", "precision", "recall", "F1", "TP", "FP", "FN", "TN"
+        );
+        let line = |name: &str, l: &Level| {
+            println!(
+                "{:<8} {:>9.4} {:>7.4} {:>7.4} {:>9} {:>9} {:>9} {:>11}",
+                name,
+                l.precision,
+                l.recall,
+                l.f1,
+                l.tp,
+                l.fp,
+                l.fn_,
+                l.tn.map_or("-".to_string(), |t| t.to_string())
+            )
+        };
+        line("pixels", &report.pixel);
+        line("objects", &report.object);
+        if !report.per_frame.is_empty() {
+            println!();
+            println!(
+                "{:<24} {:>8} {:>8} {:>6} {:>6} {:>6}",
+                "frame", "pixel F1", "obj F1", "TP", "FP", "FN"
+            );
+            for f in &report.per_frame {
+                println!(
+                    "{:<24} {:>8.3} {:>8.3} {:>6} {:>6} {:>6}",
+                    f.frame, f.pixel.f1, f.object.f1, f.object.tp, f.object.fp, f.object.fn_
+                );
+            }
+        }
+        println!("(objects match at bounding-box IoU >= 0.5, one to one)");
+        if skipped > 0 {
+            println!("skipped {skipped} bad file(s)");
+        }
+    }
+    Ok(if skipped > 0 { 2 } else { 0 })
+}
+
+#[derive(Serialize)]
+struct Condition {
+    dx: i8,
+    dy: i8,
+    set: bool,
+}
+
+#[derive(Serialize)]
+struct Rule {
+    leaf: usize,
+    conditions: Vec<Condition>,
+    score: f64,
+    clear: u64,
+    target: u64,
+    detects: bool,
+}
+
+/// One rule per leaf: the conditions on the path from the root.
+fn rule_list(m: &Model) -> Vec<Rule> {
+    let nodes = m.tree.nodes();
+    // Parent and branch of every node, in one forward pass.
+    let mut up: Vec<Option<(usize, bool)>> = vec![None; nodes.len()];
+    for (i, n) in nodes.iter().enumerate() {
+        if let Node::Split {
+            if_clear, if_set, ..
+        } = n
+        {
+            up[*if_clear as usize] = Some((i, false));
+            up[*if_set as usize] = Some((i, true));
+        }
+    }
+    let mut rules = Vec::new();
+    for (i, n) in nodes.iter().enumerate() {
+        let Node::Leaf(l) = n else { continue };
+        let mut conds = Vec::new();
+        let mut at = i;
+        while let Some((p, set)) = up[at] {
+            if let Node::Split { feature, .. } = nodes[p] {
+                let o = m.tree.offset(feature);
+                conds.push(Condition {
+                    dx: o.dx,
+                    dy: o.dy,
+                    set,
+                });
+            }
+            at = p;
+        }
+        conds.reverse();
+        rules.push(Rule {
+            leaf: i,
+            conditions: conds,
+            score: l.score,
+            clear: l.counts[0],
+            target: l.counts[1],
+            detects: l.score >= m.threshold,
+        });
+    }
+    rules
+}
+
+fn rules(a: RulesArgs) -> Result<i32> {
+    let m = load_model(&a.model)?;
+    let rules = rule_list(&m);
+    if a.json {
+        println!("{}", serde_json::to_string_pretty(&rules)?);
+        return Ok(0);
+    }
+    let w = m.tree.window();
+    println!(
+        "model version {}: {} rules over a {}x{} window; pixel (dx,dy) is relative to the centre, +x right, +y down",
+        m.model_version,
+        rules.len(),
+        w.size(),
+        w.size()
+    );
+    println!(
+        "a pixel is a detection when its rule's score is at least {:.4}",
+        m.threshold
+    );
+    for (k, r) in rules.iter().enumerate() {
+        let conds: Vec<String> = r
+            .conditions
+            .iter()
+            .map(|c| {
+                format!(
+                    "{} is {}",
+                    treeline::window::Offset { dx: c.dx, dy: c.dy },
+                    if c.set { "set" } else { "clear" }
+                )
+            })
+            .collect();
+        let cond = if conds.is_empty() {
+            "always".to_string()
+        } else {
+            format!("if {}", conds.join(" and "))
+        };
+        println!(
+            "rule {:>4}: {cond}\n           then score {:.4} ({} clear, {} target pixels){}",
+            k + 1,
+            r.score,
+            r.clear,
+            r.target,
+            if r.detects { " => DETECT" } else { "" }
+        );
+    }
+    Ok(0)
+}
+
+fn generate(a: GenerateArgs) -> Result<i32> {
+    let mut params = match a.preset.as_str() {
+        "standard" => LoomParams::standard(),
+        "alternate" => LoomParams::alternate(),
+        "drifted" => LoomParams::drifted(),
+        other => bail!("--preset {other:?} must be standard, alternate or drifted"),
+    };
+    if let Some(w) = a.width {
+        params.width = w;
+    }
+    if let Some(h) = a.height {
+        params.height = h;
+    }
+    if let Some(n) = a.noise {
+        if !(0.0..=0.5).contains(&n) {
+            bail!("--noise {n} must be between 0 and 0.5");
+        }
+        params.noise = n;
+    }
+    if params.width < 32 || params.height < 32 || params.width > 8192 || params.height > 8192 {
+        bail!("frame size must be between 32x32 and 8192x8192");
+    }
+    std::fs::create_dir_all(&a.out)
+        .with_context(|| format!("cannot create {}", a.out.display()))?;
+    let mut defects = 0;
+    for i in 0..a.count {
+        let f = synth::generate(&params, a.seed.wrapping_mul(1_000_003).wrapping_add(i as u64));
+        defects += f.defects.len();
+        let name = format!("loom-{}-{:04}", a.preset, i);
+        if a.png {
+            let p = a.out.join(format!("{name}.png"));
+            std::fs::write(&p, treeline::codec::encode_png(&f.frame))
+                .with_context(|| format!("cannot write {}", p.display()))?;
+            let mp = a.out.join(format!("{name}{}", data::MASK_SUFFIX));
+            std::fs::write(&mp, treeline::codec::encode_pbm(&f.mask))
+                .with_context(|| format!("cannot write {}", mp.display()))?;
+        } else {
+            data::write_pair(&a.out, &name, &f.frame, &f.mask)?;
+        }
+    }
+    println!(
+        "wrote {} {} frames ({}x{}, {} defects) to {}",
+        a.count,
+        a.preset,
+        params.width,
+        params.height,
+        defects,
+        a.out.display()
+    );
+    Ok(0)
+}
