@@ -43,7 +43,11 @@ fn main() {
     for (name, p) in [("standard", LoomParams::standard()), ("alternate", LoomParams::alternate())] {
         let train = frames(&p, 1, train_frames);
         let test = frames(&p, 2, 30);
-        let params = TrainParams::default();
+        let params = TrainParams {
+            refit: std::env::var("TREELINE_BENCH_REFIT").is_ok_and(|v| v == "1"),
+            max_depth: std::env::var("TREELINE_BENCH_DEPTH").ok().and_then(|v| v.parse().ok()).unwrap_or(TrainParams::default().max_depth),
+            ..TrainParams::default()
+        };
         let mut total = Vec::new();
         let mut stages: Vec<Vec<f64>> = vec![Vec::new(); 4];
         let mut model = None;

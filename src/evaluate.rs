@@ -34,7 +34,8 @@ impl Settings {
 /// What detection found in one frame.
 #[derive(Clone, Debug)]
 pub struct FrameResult {
-    /// Pixels whose score reached the threshold.
+    /// The detected pixels: score at or above the threshold and part of an
+    /// object that `min_area` kept.
     pub mask: BitFrame,
     pub objects: Vec<Object>,
 }
@@ -66,10 +67,15 @@ pub fn score_at(tree: &Tree, frame: &BitFrame, x: usize, y: usize) -> f64 {
 
 /// Detection and grouping of one frame.
 pub fn run(tree: &Tree, settings: &Settings, frame: &BitFrame) -> FrameResult {
-    let mask = detect(tree, settings.threshold, frame);
-    let objects = group::group(&mask, settings.grouping, |x, y| {
+    let raw = detect(tree, settings.threshold, frame);
+    let objects = group::group(&raw, settings.grouping, |x, y| {
         score_at(tree, frame, x, y)
     });
+    let mask = if settings.grouping.min_area > 1 {
+        group::kept_mask(&raw, settings.grouping)
+    } else {
+        raw
+    };
     FrameResult { mask, objects }
 }
 

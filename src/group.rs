@@ -277,6 +277,26 @@ pub fn group(
         .collect()
 }
 
+/// The pixels of the objects that survive `min_area`: what a frame's
+/// detections are once grouping has dropped the small ones.
+pub fn kept_mask(mask: &BitFrame, params: GroupParams) -> BitFrame {
+    let (runs, comp, n) = label(mask, params.merge_distance);
+    let mut area = vec![0u64; n];
+    for (r, &c) in runs.iter().zip(&comp) {
+        area[c as usize] += (r.x1 - r.x0 + 1) as u64;
+    }
+    let mut out = BitFrame::new(mask.width(), mask.height());
+    for (r, &c) in runs.iter().zip(&comp) {
+        if area[c as usize] >= params.min_area.max(1) as u64 {
+            let row = out.row_mut(r.y as usize);
+            for x in r.x0..=r.x1 {
+                row[x as usize / 64] |= 1 << (x % 64);
+            }
+        }
+    }
+    out
+}
+
 /// The straightforward pixel-by-pixel grouping: breadth-first flood fill
 /// over every pixel within Chebyshev distance `merge_distance + 1`. Slow
 /// (`O(pixels x reach^2)`); kept as the reference the run-based labelling is

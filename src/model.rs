@@ -209,6 +209,10 @@ pub struct TrainingInfo {
     /// Leaves before and after pruning.
     pub grown_leaves: u64,
     pub pruned_leaves: u64,
+    /// Whether the final tree was grown again on all frames, holdout
+    /// included, after the holdout chose the settings.
+    #[serde(default)]
+    pub refit: bool,
     /// Which of threshold / min_area / merge_distance the user fixed.
     #[serde(default)]
     pub overridden: Vec<String>,
@@ -217,9 +221,9 @@ pub struct TrainingInfo {
 /// What the training data looked like.
 #[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
 pub struct DataSummary {
-    /// Frames used to grow the tree.
+    /// Frames used to grow the final tree.
     pub frames: u64,
-    /// Frames held out for pruning and tuning.
+    /// Frames held out to choose pruning strength, threshold and grouping.
     pub holdout_frames: u64,
     /// Labelled pixels in the growing set.
     pub pixels: u64,
@@ -229,7 +233,8 @@ pub struct DataSummary {
     pub target_pixels: u64,
 }
 
-/// Scores on the held-out frames with the chosen settings.
+/// Scores on the held-out frames with the chosen settings, of the tree grown
+/// without them (with `refit`, the final tree has also seen them).
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct HoldoutMetrics {
     pub pixel: Prf,

@@ -106,6 +106,10 @@ pub struct TrainParams {
     /// Share of frames held out for pruning and tuning (0 disables both).
     pub holdout: f64,
     pub max_nodes: usize,
+    /// After choosing the pruning strength and settings on the holdout,
+    /// grow the final tree again on all frames (holdout included) and prune
+    /// it at the chosen strength.
+    pub refit: bool,
     /// Fixed by the user instead of tuned.
     pub threshold: Option<f64>,
     pub min_area: Option<u32>,
@@ -117,12 +121,13 @@ impl Default for TrainParams {
         TrainParams {
             window: Window::default(),
             criterion: Criterion::Entropy,
-            max_depth: 18,
+            max_depth: 48,
             min_leaf: 1.0,
             min_gain: 0.0,
             class_weight: ClassWeight::Balanced,
             holdout: 0.2,
             max_nodes: 1 << 20,
+            refit: false,
             threshold: None,
             min_area: None,
             merge_distance: None,
@@ -203,6 +208,15 @@ pub enum Stage {
     Grow,
     Prune,
     Tune,
+}
+
+/// A grown tree with its pruning sequence and the data facts it came from.
+struct Grown {
+    tree: GrownTree,
+    pruning: Pruning,
+    weights: [f64; 2],
+    totals: [u64; 2],
+    unique: u64,
 }
 
 /// Splits frames into (growing, holdout) index lists by content hash.
@@ -297,40 +311,53 @@ pub fn train(
         }
     }
     let (grow_idx, hold_idx) = split_holdout(frames, params.holdout);
-    let mut store = LabelStore::new(params.window);
-    for (k, &i) in grow_idx.iter().enumerate() {
+    let mut stored = 0usize;
+    let total_store = grow_idx.len() + if params.refit { hold_idx.len() } else { 0 };
+    let mut grow_on = |idx: &[usize], progress: &mut dyn FnMut(Stage)| -> Result<Grown> {
+        let mut store = LabelStore::new(params.window);
+        for &i in idx {
+            progress(Stage::Store {
+                done: stored,
+                total: total_store,
+            });
+            store.add_frame(&frames[i].frame, &frames[i].mask)?;
+            stored += 1;
+        }
         progress(Stage::Store {
-            done: k,
-            total: grow_idx.len(),
+            done: stored,
+            total: total_store,
         });
-        store.add_frame(&frames[i].frame, &frames[i].mask)?;
-    }
-    progress(Stage::Store {
-        done: grow_idx.len(),
-        total: grow_idx.len(),
-    });
-    let totals = store.totals();
-    if totals[1] == 0 {
-        return Err(Error::training(
-            "the growing frames have no target pixels: every mask is empty",
-        ));
-    }
-    let weights = params.class_weight.weights(totals);
-    let mut entries = store.entries();
-    let unique = entries.len() as u64;
-    drop(store);
-    progress(Stage::Grow);
-    let gp = GrowParams {
-        criterion: params.criterion,
-        max_depth: params.max_depth,
-        min_leaf: params.min_leaf,
-        min_gain: params.min_gain,
-        weights,
-        max_nodes: params.max_nodes,
+        let totals = store.totals();
+        if totals[1] == 0 {
+            return Err(Error::training(
+                "the growing frames have no target pixels: every mask is empty",
+            ));
+        }
+        let weights = params.class_weight.weights(totals);
+        let mut entries = store.entries();
+        let unique = entries.len() as u64;
+        drop(store);
+        progress(Stage::Grow);
+        let gp = GrowParams {
+            criterion: params.criterion,
+            max_depth: params.max_depth,
+            min_leaf: params.min_leaf,
+            min_gain: params.min_gain,
+            weights,
+            max_nodes: params.max_nodes,
+        };
+        let tree = grow::grow(&mut entries, params.window.features(), &gp);
+        progress(Stage::Prune);
+        let pruning = prune::prune_sequence(&tree, params.criterion, weights);
+        Ok(Grown {
+            tree,
+            pruning,
+            weights,
+            totals,
+            unique,
+        })
     };
-    let grown = grow::grow(&mut entries, params.window.features(), &gp);
-    progress(Stage::Prune);
-    let pruning = prune::prune_sequence(&grown, params.criterion, weights);
+    let first = grow_on(&grow_idx, progress)?;
     progress(Stage::Tune);
     let fixed = tune::Fixed {
         threshold: params.threshold,
@@ -339,13 +366,30 @@ pub fn train(
     };
     let holdout: Vec<tune::HoldoutFrame> = hold_idx
         .iter()
-        .map(|&i| tune::HoldoutFrame::new(&grown, params.window, &frames[i].frame, &frames[i].mask))
+        .map(|&i| {
+            tune::HoldoutFrame::new(&first.tree, params.window, &frames[i].frame, &frames[i].mask)
+        })
         .collect();
     let choice = if holdout.is_empty() {
         None
     } else {
-        tune::choose(&grown, &pruning, weights, &holdout, &fixed)
+        tune::choose(&first.tree, &first.pruning, first.weights, &holdout, &fixed)
     };
+    drop(holdout);
+    let refit = params.refit && choice.is_some();
+    let (final_grown, used_idx) = if refit {
+        let all: Vec<usize> = (0..frames.len()).collect();
+        (grow_on(&all, progress)?, all)
+    } else {
+        (first, grow_idx.clone())
+    };
+    let Grown {
+        tree: grown,
+        pruning,
+        weights,
+        totals,
+        unique,
+    } = final_grown;
     let (alpha, threshold, grouping) = match &choice {
         Some(c) => (c.alpha, c.threshold, c.grouping),
         None => (
@@ -363,7 +407,7 @@ pub fn train(
     let mut detected = 0u64;
     let mut objects = 0u64;
     let mut pixels = 0u64;
-    for &i in &grow_idx {
+    for &i in &used_idx {
         let f = &frames[i];
         set_pixels += f.frame.count_set();
         pixels += f.frame.len() as u64;
@@ -396,10 +440,11 @@ pub fn train(
             pruning_alpha: alpha,
             grown_leaves: grown.leaves() as u64,
             pruned_leaves: tree.leaves() as u64,
+            refit,
             overridden,
         },
         data: DataSummary {
-            frames: grow_idx.len() as u64,
+            frames: used_idx.len() as u64,
             holdout_frames: hold_idx.len() as u64,
             pixels: totals[0] + totals[1],
             unique_patterns: unique,
@@ -413,7 +458,7 @@ pub fn train(
         reference: Reference {
             set_density: share(set_pixels, pixels),
             detected_share: share(detected, pixels),
-            objects_per_frame: share(objects, grow_idx.len() as u64),
+            objects_per_frame: share(objects, used_idx.len() as u64),
         },
         tree,
     })

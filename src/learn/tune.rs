@@ -256,36 +256,54 @@ fn try_alpha(
                 m
             })
             .collect();
-        let mut pixel = Confusion::default();
-        for (m, f) in masks.iter().zip(frames) {
-            pixel.add(&score::pixel_confusion(m, &f.truth_mask));
-        }
+        let truth_total: u64 = frames.iter().map(|f| f.truth_mask.count_set()).sum();
+        let pixel_all = frames.iter().map(|f| f.truth_mask.len() as u64).sum::<u64>();
         for &md in &mds {
-            let grouped: Vec<Vec<Object>> = masks
+            // Objects (all sizes) and, per object, its area and how many of
+            // its pixels are targets: enough to score every min_area.
+            let grouped: Vec<(Vec<Object>, Vec<u64>)> = masks
                 .iter()
                 .zip(frames)
                 .map(|(m, f)| {
-                    group::group(
+                    let (runs, comp, n) = group::label(m, md);
+                    let mut hits = vec![0u64; n];
+                    for (r, &c) in runs.iter().zip(&comp) {
+                        let trow = f.truth_mask.row(r.y as usize);
+                        for x in r.x0..=r.x1 {
+                            hits[c as usize] += (trow[x as usize / 64] >> (x % 64)) & 1;
+                        }
+                    }
+                    let objs = group::group(
                         m,
                         GroupParams {
                             min_area: 1,
                             merge_distance: md,
                         },
                         |x, y| scores[eff[f.leaf[y * f.width + x] as usize] as usize],
-                    )
+                    );
+                    (objs, hits)
                 })
                 .collect();
             let mut row: Vec<Choice> = Vec::with_capacity(areas.len());
             for &area in &areas {
                 let mut object = Confusion::default();
-                for (objs, f) in grouped.iter().zip(frames) {
+                let mut pixel = Confusion::default();
+                for ((objs, hits), f) in grouped.iter().zip(frames) {
                     let kept: Vec<Object> = objs
                         .iter()
                         .filter(|o| o.area >= area as u64)
                         .cloned()
                         .collect();
                     object.add(&score::object_confusion(&kept, &f.truth));
+                    for (o, &h) in objs.iter().zip(hits) {
+                        if o.area >= area as u64 {
+                            pixel.tp += h;
+                            pixel.fp += o.area - h;
+                        }
+                    }
                 }
+                pixel.fn_ = truth_total - pixel.tp;
+                pixel.tn = pixel_all - pixel.tp - pixel.fp - pixel.fn_;
                 row.push(Choice {
                     alpha,
                     threshold: thr,
