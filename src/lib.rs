@@ -11,6 +11,7 @@
 //!                                  (evaluate)                  (group)              (score)
 //! ```
 //!
+//! - [`config`]: the TOML configuration file, parsed then resolved.
 //! - [`codec`]: PBM/PNG bytes to [`frame::BitFrame`] and back; sizes checked before allocation.
 //! - [`window`]: each pixel's `s x s` neighbourhood as a `u128` pattern; features named by offset.
 //! - [`store`]: pattern -> class counts, the sufficient statistic for learning; mergeable.
@@ -28,6 +29,7 @@
 //! watching or the filesystem.
 
 pub mod codec;
+pub mod config;
 pub mod data;
 pub mod error;
 pub mod evaluate;

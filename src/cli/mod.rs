@@ -24,6 +24,7 @@ use treeline::record::{self, FrameRecord, ObjectRecord};
 use treeline::score::{self, Confusion, Scores};
 use treeline::synth::{self, LoomParams};
 use treeline::window::Window;
+use treeline::config::{self, Config};
 use treeline::{data, model};
 
 use progress::Progress;
@@ -56,27 +57,49 @@ enum Command {
 /// Frame decoding options shared by the commands that read frames.
 #[derive(clap::Args, Debug, Clone)]
 struct DecodeArgs {
-    /// Largest frame width accepted, in pixels.
-    #[arg(long, default_value_t = 8192)]
-    max_width: usize,
-    /// Largest frame height accepted, in pixels.
-    #[arg(long, default_value_t = 8192)]
-    max_height: usize,
-    /// PNG: pixels with 8-bit luma below this are set (ink).
-    #[arg(long, default_value_t = 128)]
-    png_threshold: u8,
+    /// Largest frame width accepted, in pixels [default: 8192].
+    #[arg(long)]
+    max_width: Option<usize>,
+    /// Largest frame height accepted, in pixels [default: 8192].
+    #[arg(long)]
+    max_height: Option<usize>,
+    /// PNG: pixels with 8-bit luma below this are set (ink) [default: 128].
+    #[arg(long)]
+    png_threshold: Option<u8>,
     /// PNG: set the light pixels instead of the dark ones.
     #[arg(long)]
     png_invert: bool,
 }
 
 impl DecodeArgs {
-    fn limits(&self) -> DecodeLimits {
+    fn limits(&self, cfg: &Config) -> DecodeLimits {
+        let d = &cfg.limits;
         DecodeLimits {
-            max_width: self.max_width,
-            max_height: self.max_height,
-            png_threshold: self.png_threshold,
-            png_invert: self.png_invert,
+            max_width: self.max_width.unwrap_or(d.max_width),
+            max_height: self.max_height.unwrap_or(d.max_height),
+            png_threshold: self.png_threshold.unwrap_or(d.png_threshold),
+            png_invert: self.png_invert || d.png_invert,
+        }
+    }
+}
+
+/// The configuration file option shared by the commands.
+#[derive(clap::Args, Debug, Clone)]
+struct ConfigArg {
+    /// Configuration file (TOML); options on the command line win over it.
+    #[arg(long)]
+    config: Option<PathBuf>,
+}
+
+impl ConfigArg {
+    fn load(&self) -> Result<Config> {
+        match &self.config {
+            None => Ok(Config::default()),
+            Some(p) => {
+                let text = std::fs::read_to_string(p)
+                    .with_context(|| format!("cannot read configuration {}", p.display()))?;
+                config::from_str(&text).map_err(|e| anyhow::anyhow!("{}", e.with_path(p)))
+            }
         }
     }
 }
@@ -96,12 +119,15 @@ struct SettingArgs {
 }
 
 impl SettingArgs {
-    fn apply(&self, m: &Model) -> Result<Settings> {
+    fn apply(&self, m: &Model, cfg: &Config) -> Result<Settings> {
         let s = Settings {
-            threshold: self.threshold.unwrap_or(m.threshold),
+            threshold: self.threshold.or(cfg.threshold).unwrap_or(m.threshold),
             grouping: GroupParams {
-                min_area: self.min_area.unwrap_or(m.grouping.min_area),
-                merge_distance: self.merge_distance.unwrap_or(m.grouping.merge_distance),
+                min_area: self.min_area.or(cfg.min_area).unwrap_or(m.grouping.min_area),
+                merge_distance: self
+                    .merge_distance
+                    .or(cfg.merge_distance)
+                    .unwrap_or(m.grouping.merge_distance),
             },
         };
         model::validate_settings(s.threshold, s.grouping).context("bad setting")?;
@@ -111,33 +137,37 @@ impl SettingArgs {
 
 #[derive(clap::Args, Debug)]
 struct TrainArgs {
-    /// Folder of NAME.pbm / NAME.png frames with NAME.mask.pbm masks.
+    /// Folder of NAME.pbm / NAME.png frames with NAME.mask.pbm masks
+    /// [default: training.seed_data of the configuration].
     #[arg(long)]
-    data: PathBuf,
+    data: Option<PathBuf>,
     /// Where to write the model (JSON).
     #[arg(long)]
     out: PathBuf,
-    /// Split criterion: gini, entropy or gain-ratio.
-    #[arg(long, default_value = "entropy")]
-    criterion: String,
-    /// Deepest level of splits (the root is depth 0).
-    #[arg(long, default_value_t = TrainParams::default().max_depth)]
-    max_depth: u32,
-    /// Least weighted pixel count on each side of a split.
-    #[arg(long, default_value_t = TrainParams::default().min_leaf)]
-    min_leaf: f64,
-    /// Least decrease of the tree's weighted impurity for a split.
-    #[arg(long, default_value_t = 0.0)]
-    min_gain: f64,
-    /// Window side in pixels: 3, 5, 7, 9 or 11.
-    #[arg(long, default_value_t = 11)]
-    window: u8,
-    /// Class weights: none, balanced, or CLEAR:TARGET (e.g. 1:50).
-    #[arg(long, default_value = "balanced")]
-    class_weight: String,
-    /// Share of frames held out to choose pruning, threshold and grouping.
-    #[arg(long, default_value_t = 0.2)]
-    holdout: f64,
+    /// Split criterion: gini, entropy or gain-ratio [default: entropy].
+    #[arg(long)]
+    criterion: Option<String>,
+    /// Deepest level of splits, the root being depth 0 [default: 48].
+    #[arg(long)]
+    max_depth: Option<u32>,
+    /// Least weighted pixel count on each side of a split [default: 1].
+    #[arg(long)]
+    min_leaf: Option<f64>,
+    /// Least decrease of the tree's weighted impurity for a split [default: 0].
+    #[arg(long)]
+    min_gain: Option<f64>,
+    /// Window side in pixels: 3, 5, 7, 9 or 11 [default: 11].
+    #[arg(long)]
+    window: Option<u8>,
+    /// Class weights: none, balanced, or CLEAR:TARGET such as 1:50 [default: balanced].
+    #[arg(long)]
+    class_weight: Option<String>,
+    /// Share of frames held out to choose pruning, threshold and grouping [default: 0.2].
+    #[arg(long)]
+    holdout: Option<f64>,
+    /// Grow the final tree again on all frames once the holdout has chosen.
+    #[arg(long)]
+    refit: bool,
     /// Skip bad frame/mask pairs with a warning instead of failing.
     #[arg(long)]
     skip_bad: bool,
@@ -148,6 +178,8 @@ struct TrainArgs {
     settings: SettingArgs,
     #[command(flatten)]
     decode: DecodeArgs,
+    #[command(flatten)]
+    config: ConfigArg,
 }
 
 #[derive(clap::Args, Debug)]
@@ -165,6 +197,8 @@ struct ScanArgs {
     settings: SettingArgs,
     #[command(flatten)]
     decode: DecodeArgs,
+    #[command(flatten)]
+    config: ConfigArg,
 }
 
 #[derive(clap::Args, Debug)]
@@ -188,6 +222,8 @@ struct EvalArgs {
     settings: SettingArgs,
     #[command(flatten)]
     decode: DecodeArgs,
+    #[command(flatten)]
+    config: ConfigArg,
 }
 
 #[derive(clap::Args, Debug)]
@@ -298,35 +334,48 @@ struct TrainSummary<'a> {
 
 fn train(a: TrainArgs) -> Result<i32> {
     let started = Instant::now();
-    let window = Window::new(a.window)
-        .with_context(|| format!("--window {} must be one of 3, 5, 7, 9, 11", a.window))?;
-    let criterion = Criterion::parse(&a.criterion).with_context(|| {
-        format!(
-            "--criterion {:?} must be gini, entropy or gain-ratio",
-            a.criterion
-        )
-    })?;
-    let class_weight = ClassWeight::parse(&a.class_weight).with_context(|| {
-        format!(
-            "--class-weight {:?} must be none, balanced or CLEAR:TARGET with two positive numbers",
-            a.class_weight
-        )
-    })?;
+    let cfg = a.config.load()?;
+    let base = &cfg.training;
+    let window = match a.window {
+        None => base.window,
+        Some(w) => {
+            Window::new(w).with_context(|| format!("--window {w} must be one of 3, 5, 7, 9, 11"))?
+        }
+    };
+    let criterion = match &a.criterion {
+        None => base.criterion,
+        Some(c) => Criterion::parse(c)
+            .with_context(|| format!("--criterion {c:?} must be gini, entropy or gain-ratio"))?,
+    };
+    let class_weight = match &a.class_weight {
+        None => base.class_weight,
+        Some(c) => ClassWeight::parse(c).with_context(|| {
+            format!("--class-weight {c:?} must be none, balanced or CLEAR:TARGET with two positive numbers")
+        })?,
+    };
     let params = TrainParams {
         window,
         criterion,
-        max_depth: a.max_depth,
-        min_leaf: a.min_leaf,
-        min_gain: a.min_gain,
+        max_depth: a.max_depth.unwrap_or(base.max_depth),
+        min_leaf: a.min_leaf.unwrap_or(base.min_leaf),
+        min_gain: a.min_gain.unwrap_or(base.min_gain),
         class_weight,
-        holdout: a.holdout,
-        threshold: a.settings.threshold,
-        min_area: a.settings.min_area,
-        merge_distance: a.settings.merge_distance,
-        ..TrainParams::default()
+        holdout: a.holdout.unwrap_or(base.holdout),
+        refit: a.refit || base.refit,
+        threshold: a.settings.threshold.or(cfg.threshold),
+        min_area: a.settings.min_area.or(cfg.min_area),
+        merge_distance: a.settings.merge_distance.or(cfg.merge_distance),
+        ..base.clone()
     };
     params.validate().context("bad training option")?;
-    let (folder, skipped) = read_data(&a.data, &a.decode.limits(), a.skip_bad)?;
+    let data = a
+        .data
+        .clone()
+        .or_else(|| cfg.seed_data.clone())
+        .context("no data folder: pass --data DIR or set training.seed_data in --config")?;
+    let a = TrainArgs { data: Some(data), ..a };
+    let data_dir = a.data.as_deref().expect("set above");
+    let (folder, skipped) = read_data(data_dir, &a.decode.limits(&cfg), a.skip_bad)?;
     let mut bar = Progress::new(folder.frames.len(), 10);
     let m = learn::train(&folder.frames, &params, &mut |s| match s {
         Stage::Store { done, total } => {
@@ -337,7 +386,7 @@ fn train(a: TrainArgs) -> Result<i32> {
         Stage::Prune => bar.stage("pruning"),
         Stage::Tune => bar.stage("choosing threshold and grouping on held-out frames"),
     })
-    .with_context(|| format!("training on {} failed", a.data.display()))?;
+    .with_context(|| format!("training on {} failed", data_dir.display()))?;
     bar.finish();
     write_atomic(&a.out, m.to_json().as_bytes())?;
     let seconds = started.elapsed().as_secs_f64();
@@ -408,9 +457,10 @@ fn write_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
 }
 
 fn scan(a: ScanArgs) -> Result<i32> {
+    let cfg = a.config.load()?;
     let m = load_model(&a.model)?;
-    let settings = a.settings.apply(&m)?;
-    let limits = a.decode.limits();
+    let settings = a.settings.apply(&m, &cfg)?;
+    let limits = a.decode.limits(&cfg);
     let mut failed = 0;
     for path in &a.frames {
         let t0 = Instant::now();
@@ -528,9 +578,10 @@ struct EvalReport {
 }
 
 fn eval(a: EvalArgs) -> Result<i32> {
+    let cfg = a.config.load()?;
     let m = load_model(&a.model)?;
-    let settings = a.settings.apply(&m)?;
-    let (folder, skipped) = read_data(&a.data, &a.decode.limits(), a.skip_bad)?;
+    let settings = a.settings.apply(&m, &cfg)?;
+    let (folder, skipped) = read_data(&a.data, &a.decode.limits(&cfg), a.skip_bad)?;
     if let Some(f) = folder
         .frames
         .iter()

@@ -1,0 +1,282 @@
+//! The `treeline` binary end to end: generate, train, scan, eval and rules on
+//! temporary folders, bad input, and the committed demo data and model.
+
+use crate::util::{repo, treeline, Dir};
+
+use treeline::record::FrameRecord;
+
+/// Small loom frames (64x64) so training in the test profile stays quick.
+fn small_data(dir: &Dir, name: &str, count: &str, seed: &str) {
+    let out = dir.join(name);
+    let r = treeline(
+        dir.path(),
+        &[
+            "generate",
+            "--out",
+            out.to_str().unwrap(),
+            "--count",
+            count,
+            "--seed",
+            seed,
+            "--width",
+            "96",
+            "--height",
+            "96",
+        ],
+    );
+    assert_eq!(r.code, 0, "generate failed: {}", r.stderr);
+}
+
+fn trained(dir: &Dir) -> std::path::PathBuf {
+    small_data(dir, "train", "12", "5");
+    let model = dir.join("model.json");
+    let r = treeline(
+        dir.path(),
+        &[
+            "train",
+            "--data",
+            "train",
+            "--out",
+            model.to_str().unwrap(),
+        ],
+    );
+    assert_eq!(r.code, 0, "train failed: {}", r.stderr);
+    assert!(r.stdout.contains("wrote"), "{}", r.stdout);
+    model
+}
+
+#[test]
+fn train_scan_eval_rules_round_trip() {
+    let dir = Dir::new();
+    let model = trained(&dir);
+    let m = model.to_str().unwrap();
+    small_data(&dir, "test", "4", "6");
+
+    // eval: human table and JSON with confusion counts.
+    let r = treeline(dir.path(), &["eval", "--data", "test", "--model", m]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert!(r.stdout.contains("pixels") && r.stdout.contains("objects"));
+    let r = treeline(
+        dir.path(),
+        &["eval", "--data", "test", "--model", m, "--json", "--per-frame"],
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let v: serde_json::Value = serde_json::from_str(&r.stdout).expect("eval JSON");
+    assert_eq!(v["frames"], 4);
+    for level in ["pixel", "object"] {
+        for k in ["tp", "fp", "fn", "precision", "recall", "f1"] {
+            assert!(v[level][k].is_number(), "{level}.{k} missing: {v}");
+        }
+    }
+    assert_eq!(v["per_frame"].as_array().unwrap().len(), 4);
+
+    // scan --json: one record per frame, hash of the file's bytes.
+    let frames: Vec<String> = (0..4)
+        .map(|i| format!("test/loom-standard-{i:04}.pbm"))
+        .collect();
+    let mut args = vec!["scan", "--model", m, "--json"];
+    args.extend(frames.iter().map(String::as_str));
+    let r = treeline(dir.path(), &args);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let lines: Vec<&str> = r.stdout.lines().collect();
+    assert_eq!(lines.len(), 4);
+    for (line, f) in lines.iter().zip(&frames) {
+        let rec: FrameRecord = serde_json::from_str(line).expect("record");
+        let bytes = std::fs::read(dir.join(f)).unwrap();
+        assert_eq!(rec.sha256, treeline::record::sha256_hex(&bytes));
+        assert_eq!((rec.width, rec.height), (96, 96));
+        assert_eq!(rec.model_version, 1);
+        assert!(rec.time.ends_with('Z'), "UTC RFC 3339: {}", rec.time);
+        for (k, o) in rec.objects.iter().enumerate() {
+            assert_eq!(o.id as usize, k + 1);
+            assert!(o.bbox[0] <= o.bbox[2] && o.bbox[2] < 96);
+            assert!((0.0..=1.0).contains(&o.score));
+        }
+    }
+
+    // rules: offsets, never bare indices.
+    let r = treeline(dir.path(), &["rules", "--model", m]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert!(r.stdout.contains("rule    1:"), "{}", r.stdout);
+    assert!(r.stdout.contains(" is set") || r.stdout.contains(" is clear"));
+    let r = treeline(dir.path(), &["rules", "--model", m, "--json"]);
+    let rules: serde_json::Value = serde_json::from_str(&r.stdout).expect("rules JSON");
+    let rules = rules.as_array().unwrap();
+    assert!(!rules.is_empty());
+    assert!(rules.iter().any(|r| r["detects"] == true));
+    for rule in rules {
+        for c in rule["conditions"].as_array().unwrap() {
+            assert!(c["dx"].as_i64().unwrap().abs() <= 5 && c["dy"].as_i64().unwrap().abs() <= 5);
+        }
+    }
+}
+
+#[test]
+fn settings_can_be_overridden() {
+    let dir = Dir::new();
+    let model = trained(&dir);
+    let m = model.to_str().unwrap();
+    let frame = "train/loom-standard-0000.pbm";
+    let r = treeline(
+        dir.path(),
+        &["scan", "--model", m, "--json", "--threshold", "0", "--min-area", "1", frame],
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let rec: FrameRecord = serde_json::from_str(r.stdout.trim()).unwrap();
+    // Threshold 0 detects every pixel: one object covering the frame.
+    assert_eq!(rec.objects.len(), 1);
+    assert_eq!(rec.objects[0].area, 96 * 96);
+    let r = treeline(dir.path(), &["scan", "--model", m, "--threshold", "1.5", frame]);
+    assert_eq!(r.code, 1);
+    assert!(r.stderr.contains("threshold"), "{}", r.stderr);
+}
+
+#[test]
+fn bad_files_are_named_and_can_be_skipped() {
+    let dir = Dir::new();
+    small_data(&dir, "data", "6", "9");
+    dir.write("data/garbage.pbm", b"this is not an image");
+    dir.write("data/garbage.mask.pbm", b"P4\n4 4\n\0\0\0\0");
+    dir.write("data/short.pbm", b"P4\n64 64\n\x00\x01");
+    dir.write("data/short.mask.pbm", b"P4\n64 64\n\x00\x01");
+    dir.write("data/huge.pbm", b"P4\n90000 90000\n");
+    dir.write("data/huge.mask.pbm", b"P4\n90000 90000\n");
+    dir.write("data/lonely.pbm", b"P1\n2 2\n0 1 1 0\n");
+    dir.write("data/orphan.mask.pbm", b"P1\n2 2\n0 1 1 0\n");
+    dir.write("data/empty.pbm", b"");
+    dir.write("data/empty.mask.pbm", b"P1\n1 1\n0\n");
+    let frame0 = std::fs::read(dir.join("data/loom-standard-0000.pbm")).unwrap();
+    dir.write("data/sized.pbm", &frame0);
+    dir.write("data/sized.mask.pbm", b"P1\n3 3\n000000000\n");
+    dir.write("data/.hidden.pbm", b"ignored");
+    dir.write("data/notes.txt", b"ignored");
+
+    let r = treeline(dir.path(), &["train", "--data", "data", "--out", "m.json"]);
+    assert_eq!(r.code, 1, "{}", r.stdout);
+    for (name, why) in [
+        ("garbage.pbm", "not a PBM or PNG"),
+        ("short.pbm", "truncated"),
+        ("huge.pbm", "over the limit"),
+        ("lonely.pbm", "no mask"),
+        ("orphan.mask.pbm", "mask without a frame"),
+        ("empty.pbm", "empty"),
+        ("sized.mask.pbm", "mask is 3x3 but its frame is 96x96"),
+    ] {
+        let line = r
+            .stderr
+            .lines()
+            .find(|l| l.contains(name))
+            .unwrap_or_else(|| panic!("no error for {name}:\n{}", r.stderr));
+        assert!(line.contains(why), "{name}: {line}");
+    }
+    assert!(!r.stderr.contains("panicked"), "{}", r.stderr);
+    assert!(!dir.join("m.json").exists());
+
+    let r = treeline(
+        dir.path(),
+        &["train", "--data", "data", "--out", "m.json", "--skip-bad"],
+    );
+    assert_eq!(r.code, 2, "{}", r.stderr);
+    assert!(r.stdout.contains("skipped 7 bad file(s)"), "{}", r.stdout);
+    assert!(r.stderr.contains("warning: skipped"), "{}", r.stderr);
+    assert!(dir.join("m.json").exists());
+
+    // scan keeps going past a bad frame and names it.
+    let r = treeline(
+        dir.path(),
+        &[
+            "scan",
+            "--model",
+            "m.json",
+            "data/garbage.pbm",
+            "data/loom-standard-0001.pbm",
+            "data/missing.pbm",
+        ],
+    );
+    assert_eq!(r.code, 2);
+    assert!(r.stdout.contains("loom-standard-0001.pbm"), "{}", r.stdout);
+    assert!(r.stderr.contains("garbage.pbm: not a PBM or PNG"), "{}", r.stderr);
+    assert!(r.stderr.contains("missing.pbm"), "{}", r.stderr);
+}
+
+#[test]
+fn bad_models_and_options_are_clear_errors() {
+    let dir = Dir::new();
+    dir.write("broken.json", b"{ \"format\": \"treeline-model\" ");
+    let r = treeline(dir.path(), &["rules", "--model", "broken.json"]);
+    assert_eq!(r.code, 1);
+    assert!(r.stderr.contains("broken.json") && r.stderr.contains("invalid model"), "{}", r.stderr);
+    let r = treeline(dir.path(), &["rules", "--model", "absent.json"]);
+    assert_eq!(r.code, 1);
+    assert!(r.stderr.contains("absent.json"), "{}", r.stderr);
+    let r = treeline(
+        dir.path(),
+        &["train", "--data", ".", "--out", "m.json", "--criterion", "purity"],
+    );
+    assert_eq!(r.code, 1);
+    assert!(r.stderr.contains("gini, entropy or gain-ratio"), "{}", r.stderr);
+    let r = treeline(
+        dir.path(),
+        &["train", "--data", ".", "--out", "m.json", "--window", "4"],
+    );
+    assert_eq!(r.code, 1);
+    assert!(r.stderr.contains("3, 5, 7, 9, 11"), "{}", r.stderr);
+    let r = treeline(dir.path(), &["train", "--data", "nowhere", "--out", "m.json"]);
+    assert_eq!(r.code, 1);
+    assert!(r.stderr.contains("nowhere"), "{}", r.stderr);
+}
+
+#[test]
+fn generate_is_deterministic() {
+    let dir = Dir::new();
+    small_data(&dir, "a", "3", "42");
+    small_data(&dir, "b", "3", "42");
+    for i in 0..3 {
+        for suffix in ["pbm", "mask.pbm"] {
+            let name = format!("loom-standard-{i:04}.{suffix}");
+            assert_eq!(
+                std::fs::read(dir.join(&format!("a/{name}"))).unwrap(),
+                std::fs::read(dir.join(&format!("b/{name}"))).unwrap(),
+                "{name}"
+            );
+        }
+    }
+}
+
+#[test]
+fn committed_demo_frames_are_clean_pairs() {
+    for set in ["train", "test", "drifted"] {
+        let dir = repo().join("demo-frames").join(set);
+        let (pairs, problems) = treeline::data::list_pairs(&dir).expect("demo folder");
+        assert!(problems.is_empty(), "{set}: {:?}", problems);
+        assert!(pairs.len() >= 10, "{set} has {} pairs", pairs.len());
+    }
+}
+
+#[test]
+fn committed_model_keeps_loading_and_finding_the_same_objects() {
+    // A model file written by this format version, kept to guard
+    // compatibility, with a frame and the objects it found when committed.
+    let data = repo().join("tests").join("data");
+    let text = std::fs::read_to_string(data.join("model-v1.json")).unwrap();
+    let model = treeline::model::Model::from_json(&text).expect("committed model loads");
+    let frame = treeline::data::read_frame(
+        &data.join("golden-0000.pbm"),
+        &treeline::codec::DecodeLimits::default(),
+    )
+    .unwrap();
+    let got = treeline::evaluate::run(
+        &model.tree,
+        &treeline::evaluate::Settings::of(&model),
+        &frame,
+    );
+    let want: Vec<treeline::record::ObjectRecord> =
+        serde_json::from_str(&std::fs::read_to_string(data.join("golden-0000.objects.json")).unwrap())
+            .unwrap();
+    let got: Vec<_> = got
+        .objects
+        .iter()
+        .map(treeline::record::ObjectRecord::from_object)
+        .collect();
+    assert_eq!(got, want);
+}

@@ -1,0 +1,15 @@
+//! The integration tests: one binary, a module per area, a shared harness.
+//!
+//! - `reference_learning`: impurity, gain and the learner against published
+//!   worked examples and the `smartcore` reference tree;
+//! - `reference_images`: PBM decoding and grouping against the Netpbm
+//!   specification, the `image` crate's decoder and `imageproc`;
+//! - `properties`: property tests of the invariants;
+//! - `cli`: the `treeline` binary end to end on temporary folders.
+
+mod util;
+
+mod cli;
+mod properties;
+mod reference_images;
+mod reference_learning;
