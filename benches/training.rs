@@ -1,24 +1,46 @@
-//! Training benchmark and quality check: `cargo bench --bench training`.
+//! Training benchmark and quality figures: `cargo bench --bench training`.
 //!
-//! Generates seeded loom frames in memory (no files), trains with the
-//! default parameters, and reports the median wall time of each stage over
-//! several runs, plus the object and pixel F1 on separately seeded test
-//! frames, for the standard and the alternate loom settings. Medians, not
-//! means: the machine is shared and noisy.
+//! 1. Speed: training with the default parameters on the first 30 frames of
+//!    `demo-frames/train` (256x256, about 2 million labelled pixels); median
+//!    wall time of each stage over several runs (the machine is shared and
+//!    noisy, so medians, not means).
+//! 2. Label store: time per labelled pixel for 10, 30 and 60 frames (it
+//!    should stay flat: building the store is linear in pixels).
+//! 3. Quality: a model trained with the defaults on all of
+//!    `demo-frames/train`, scored on `demo-frames/test`; and the same on a
+//!    second loom setting (`alternate`: another thread period, width and
+//!    noise level) generated in memory with the same frame counts.
+//!
+//! Environment: `TREELINE_BENCH_RUNS` (default 5) runs for the medians.
 
+use std::path::Path;
 use std::time::Instant;
 
+use treeline::codec::DecodeLimits;
 use treeline::evaluate::{self, Settings};
 use treeline::learn::{self, LabelledFrame, Stage, TrainParams};
+use treeline::model::Model;
 use treeline::score::{self, Scores};
+use treeline::store::LabelStore;
 use treeline::synth::{self, LoomParams};
 
-fn frames(p: &LoomParams, seed: u64, n: usize) -> Vec<LabelledFrame> {
+fn demo(set: &str) -> Vec<LabelledFrame> {
+    let dir = Path::new(env!("CARGO_MANIFEST_DIR"))
+        .join("demo-frames")
+        .join(set);
+    let folder = treeline::data::read_folder(&dir, &DecodeLimits::default(), &mut |_, _| {})
+        .expect("demo frames");
+    assert!(folder.problems.is_empty(), "{:?}", folder.problems);
+    folder.frames
+}
+
+/// Frames as `treeline generate` writes them (same seeds, same bits).
+fn generated(p: &LoomParams, seed: u64, n: usize) -> Vec<LabelledFrame> {
     (0..n)
         .map(|i| {
             let f = synth::generate(p, seed.wrapping_mul(1_000_003).wrapping_add(i as u64));
             LabelledFrame {
-                name: format!("f{i:04}"),
+                name: format!("loom-{i:04}"),
                 frame: f.frame,
                 mask: f.mask,
             }
@@ -31,71 +53,116 @@ fn median(v: &mut [f64]) -> f64 {
     v[v.len() / 2]
 }
 
+fn score(m: &Model, test: &[LabelledFrame]) -> Scores {
+    let settings = Settings::of(m);
+    let mut s = Scores::default();
+    for f in test {
+        let r = evaluate::run(&m.tree, &settings, &f.frame);
+        s.pixel.add(&score::pixel_confusion(&r.mask, &f.mask));
+        s.object.add(&score::object_confusion(
+            &r.objects,
+            &score::truth_objects(&f.mask),
+        ));
+    }
+    s
+}
+
+fn quality(name: &str, train: &[LabelledFrame], test: &[LabelledFrame]) {
+    let t0 = Instant::now();
+    let m = learn::train(train, &TrainParams::default(), &mut |_| {}).expect("training");
+    let secs = t0.elapsed().as_secs_f64();
+    let s = score(&m, test);
+    println!(
+        "quality {name}: trained on {} frames in {secs:.2} s ({} leaves, depth {}, threshold {:.4}, \
+         min_area {}, merge_distance {}); {} test frames: object F1 {:.3} (P {:.3} R {:.3}), \
+         pixel F1 {:.3} (P {:.3} R {:.3})",
+        train.len(),
+        m.tree.leaves(),
+        m.tree.depth(),
+        m.threshold,
+        m.grouping.min_area,
+        m.grouping.merge_distance,
+        test.len(),
+        s.object.f1(),
+        s.object.precision(),
+        s.object.recall(),
+        s.pixel.f1(),
+        s.pixel.precision(),
+        s.pixel.recall(),
+    );
+}
+
 fn main() {
     let runs: usize = std::env::var("TREELINE_BENCH_RUNS")
         .ok()
         .and_then(|s| s.parse().ok())
         .unwrap_or(5);
-    let train_frames: usize = std::env::var("TREELINE_BENCH_FRAMES")
-        .ok()
-        .and_then(|s| s.parse().ok())
-        .unwrap_or(30);
-    for (name, p) in [("standard", LoomParams::standard()), ("alternate", LoomParams::alternate())] {
-        let train = frames(&p, 1, train_frames);
-        let test = frames(&p, 2, 30);
-        let params = TrainParams {
-            refit: std::env::var("TREELINE_BENCH_REFIT").is_ok_and(|v| v == "1"),
-            max_depth: std::env::var("TREELINE_BENCH_DEPTH").ok().and_then(|v| v.parse().ok()).unwrap_or(TrainParams::default().max_depth),
-            ..TrainParams::default()
-        };
-        let mut total = Vec::new();
-        let mut stages: Vec<Vec<f64>> = vec![Vec::new(); 4];
-        let mut model = None;
+    let train = demo("train");
+    let test = demo("test");
+
+    // 1. Speed on 30 frames.
+    let thirty = &train[..30];
+    let pixels: u64 = thirty.iter().map(|f| f.frame.len() as u64).sum();
+    let params = TrainParams::default();
+    let mut stages: Vec<Vec<f64>> = vec![Vec::new(); 5];
+    for _ in 0..runs {
+        let t0 = Instant::now();
+        let mut marks = [0.0f64; 4];
+        learn::train(thirty, &params, &mut |s| {
+            let t = t0.elapsed().as_secs_f64();
+            match s {
+                Stage::Store { .. } => {}
+                Stage::Grow => marks[0] = t,
+                Stage::Prune => marks[1] = t,
+                Stage::Tune => marks[2] = t,
+            }
+        })
+        .expect("training");
+        marks[3] = t0.elapsed().as_secs_f64();
+        stages[0].push(marks[3]);
+        stages[1].push(marks[0]);
+        stages[2].push(marks[1] - marks[0]);
+        stages[3].push(marks[2] - marks[1]);
+        stages[4].push(marks[3] - marks[2]);
+    }
+    println!(
+        "speed: 30 frames of 256x256 ({pixels} labelled pixels), median of {runs}: train {:.3} s \
+         = store {:.3} + grow {:.3} + prune {:.3} + tune {:.3}",
+        median(&mut stages[0]),
+        median(&mut stages[1]),
+        median(&mut stages[2]),
+        median(&mut stages[3]),
+        median(&mut stages[4]),
+    );
+
+    // 2. Label store: linear in pixels.
+    for n in [10usize, 30, 60] {
+        let mut t = Vec::new();
+        let mut unique = 0;
         for _ in 0..runs {
             let t0 = Instant::now();
-            let mut marks = Vec::new();
-            let m = learn::train(&train, &params, &mut |s| {
-                if !matches!(s, Stage::Store { done, total } if done < total) {
-                    marks.push(t0.elapsed().as_secs_f64());
-                }
-            })
-            .expect("training");
-            let end = t0.elapsed().as_secs_f64();
-            total.push(end);
-            marks.push(end);
-            // marks: store done, grow start, prune start, tune start, end.
-            for k in 0..4 {
-                stages[k].push(marks[k + 1] - marks[k.min(marks.len() - 1)]);
+            let mut store = LabelStore::new(params.window);
+            for f in &train[..n] {
+                store.add_frame(&f.frame, &f.mask).unwrap();
             }
-            stages[0].last_mut().map(|v| *v = marks[0]);
-            model = Some(m);
+            t.push(t0.elapsed().as_secs_f64());
+            unique = store.unique();
         }
-        let m = model.unwrap();
-        let settings = Settings::of(&m);
-        let mut s = Scores::default();
-        for f in &test {
-            let r = evaluate::run(&m.tree, &settings, &f.frame);
-            s.pixel.add(&score::pixel_confusion(&r.mask, &f.mask));
-            s.object.add(&score::object_confusion(&r.objects, &score::truth_objects(&f.mask)));
-        }
-        let pixels: u64 = train.iter().map(|f| f.frame.len() as u64).sum();
+        let px = (n * 256 * 256) as f64;
+        let med = median(&mut t);
         println!(
-            "{name}: {train_frames} frames ({pixels} px), median of {runs}: train {:.3} s \
-             [store {:.3}, grow {:.3}, prune {:.3}, tune {:.3}]; leaves {}, depth {}; \
-             test object F1 {:.3} (P {:.3} R {:.3}), pixel F1 {:.3} (P {:.3} R {:.3})",
-            median(&mut total),
-            median(&mut stages[0]),
-            median(&mut stages[1]),
-            median(&mut stages[2]),
-            median(&mut stages[3]),
-            m.tree.leaves(),
-            m.tree.depth(),
-            s.object.f1(),
-            s.object.precision(),
-            s.object.recall(),
-            s.pixel.f1(),
-            s.pixel.precision(),
-            s.pixel.recall(),
+            "store: {n} frames, {unique} distinct patterns, median {:.3} s = {:.1} ns per pixel",
+            med,
+            med / px * 1e9
         );
     }
+
+    // 3. Quality with the defaults.
+    quality("standard (demo-frames)", &train, &test);
+    let alt = LoomParams::alternate();
+    quality(
+        "alternate (generated)",
+        &generated(&alt, 1, train.len()),
+        &generated(&alt, 2, test.len()),
+    );
 }

@@ -180,7 +180,10 @@ pub fn decode_pbm(bytes: &[u8], limits: &DecodeLimits) -> Result<BitFrame> {
         Some(&b) => {
             return Err(Error::header(
                 h.pos,
-                format!("expected whitespace after the height, found {:?}", b as char),
+                format!(
+                    "expected whitespace after the height, found {:?}",
+                    b as char
+                ),
             ))
         }
         None if plain || width == 0 || height == 0 => {}
@@ -273,7 +276,8 @@ fn decode_p4_raster(raster: &[u8], width: usize, height: usize) -> Result<BitFra
 pub fn decode_png(bytes: &[u8], limits: &DecodeLimits) -> Result<BitFrame> {
     use image::ImageDecoder;
     let png_err = |e: image::ImageError| Error::new(ErrorKind::Png(e.to_string()));
-    let decoder = image::codecs::png::PngDecoder::new(std::io::Cursor::new(bytes)).map_err(png_err)?;
+    let decoder =
+        image::codecs::png::PngDecoder::new(std::io::Cursor::new(bytes)).map_err(png_err)?;
     let (w, h) = decoder.dimensions();
     check_size(w as u64, h as u64, limits)?;
     let img = image::DynamicImage::from_decoder(decoder).map_err(png_err)?;
@@ -388,7 +392,9 @@ mod tests {
             ErrorKind::BadHeader { .. }
         ));
         assert!(matches!(
-            decode(b"P4\n99999999999999999999999 1\n", &lim()).unwrap_err().kind(),
+            decode(b"P4\n99999999999999999999999 1\n", &lim())
+                .unwrap_err()
+                .kind(),
             ErrorKind::TooLarge { .. }
         ));
     }

@@ -95,9 +95,7 @@ pub struct Config {
 
 impl Default for Config {
     fn default() -> Self {
-        RawConfig::default()
-            .resolve()
-            .expect("defaults are valid")
+        RawConfig::default().resolve().expect("defaults are valid")
     }
 }
 
@@ -136,8 +134,9 @@ impl RawConfig {
         let dt = TrainParams::default();
         let window = match t.window {
             None => dt.window,
-            Some(s) => Window::new(s)
-                .ok_or_else(|| invalid("training.window", format!("{s} is not 3, 5, 7, 9 or 11")))?,
+            Some(s) => Window::new(s).ok_or_else(|| {
+                invalid("training.window", format!("{s} is not 3, 5, 7, 9 or 11"))
+            })?,
         };
         let criterion = match t.criterion.as_deref() {
             None => dt.criterion,
@@ -174,7 +173,10 @@ impl RawConfig {
             .map_err(|e| invalid("training", e.kind()))?;
         if let Some(th) = det.threshold {
             if !(0.0..=1.0).contains(&th) {
-                return Err(invalid("detection.threshold", format!("{th} is outside [0, 1]")));
+                return Err(invalid(
+                    "detection.threshold",
+                    format!("{th} is outside [0, 1]"),
+                ));
             }
         }
         if det.min_area == Some(0) {
@@ -184,7 +186,10 @@ impl RawConfig {
             if m > crate::group::MAX_MERGE_DISTANCE {
                 return Err(invalid(
                     "detection.merge_distance",
-                    format!("{m} is over the limit of {}", crate::group::MAX_MERGE_DISTANCE),
+                    format!(
+                        "{m} is over the limit of {}",
+                        crate::group::MAX_MERGE_DISTANCE
+                    ),
                 ));
             }
         }
@@ -212,18 +217,27 @@ mod tests {
     fn example_file_is_valid() {
         let text = include_str!("../config/treeline.toml");
         let c = from_str(text).expect("config/treeline.toml");
-        assert_eq!(c.seed_data.as_deref(), Some(std::path::Path::new("demo-frames/train")));
+        assert_eq!(
+            c.seed_data.as_deref(),
+            Some(std::path::Path::new("demo-frames/train"))
+        );
     }
 
     #[test]
     fn unknown_keys_and_bad_values_are_named() {
         let e = from_str("[training]\ndepth = 3\n").unwrap_err().to_string();
         assert!(e.contains("depth") && e.contains("line 2"), "{e}");
-        let e = from_str("[frames]\nmax_width = \"wide\"\n").unwrap_err().to_string();
+        let e = from_str("[frames]\nmax_width = \"wide\"\n")
+            .unwrap_err()
+            .to_string();
         assert!(e.contains("max_width"), "{e}");
-        let e = from_str("[training]\ncriterion = \"purity\"\n").unwrap_err().to_string();
+        let e = from_str("[training]\ncriterion = \"purity\"\n")
+            .unwrap_err()
+            .to_string();
         assert!(e.contains("training.criterion"), "{e}");
-        let e = from_str("[detection]\nthreshold = 2.0\n").unwrap_err().to_string();
+        let e = from_str("[detection]\nthreshold = 2.0\n")
+            .unwrap_err()
+            .to_string();
         assert!(e.contains("detection.threshold"), "{e}");
         let e = from_str("[camera]\n").unwrap_err().to_string();
         assert!(e.contains("camera"), "{e}");

@@ -85,8 +85,18 @@ pub struct Folder {
     pub problems: Vec<Error>,
 }
 
-/// Lists the frame/mask pairs of a data folder without decoding them.
-pub fn list_pairs(dir: &Path) -> Result<(Vec<(String, PathBuf, PathBuf)>, Vec<Error>)> {
+/// A frame file and its mask file, not yet read.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct Pair {
+    /// The shared stem `NAME`.
+    pub name: String,
+    pub frame: PathBuf,
+    pub mask: PathBuf,
+}
+
+/// Lists the frame/mask pairs of a data folder without decoding them, and
+/// one error per file that cannot be paired.
+pub fn list_pairs(dir: &Path) -> Result<(Vec<Pair>, Vec<Error>)> {
     let rd = fs::read_dir(dir).map_err(|e| Error::from(e).with_path(dir))?;
     let mut frames: BTreeMap<String, Vec<PathBuf>> = BTreeMap::new();
     let mut masks: BTreeMap<String, PathBuf> = BTreeMap::new();
@@ -130,7 +140,11 @@ pub fn list_pairs(dir: &Path) -> Result<(Vec<(String, PathBuf, PathBuf)>, Vec<Er
             continue;
         }
         match mask {
-            Some(m) => pairs.push((stem, paths[0].clone(), m)),
+            Some(m) => pairs.push(Pair {
+                name: stem,
+                frame: paths[0].clone(),
+                mask: m,
+            }),
             None => problems.push(
                 Error::new(ErrorKind::Data(format!(
                     "no mask: expected {stem}{MASK_SUFFIX} beside it"
@@ -160,7 +174,15 @@ pub fn read_folder(
     let (pairs, mut problems) = list_pairs(dir)?;
     let mut frames = Vec::with_capacity(pairs.len());
     let total = pairs.len();
-    for (k, (name, fpath, mpath)) in pairs.into_iter().enumerate() {
+    for (
+        k,
+        Pair {
+            name,
+            frame: fpath,
+            mask: mpath,
+        },
+    ) in pairs.into_iter().enumerate()
+    {
         progress(k, total);
         let frame = match read_frame(&fpath, limits) {
             Ok(f) => f,

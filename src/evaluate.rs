@@ -68,9 +68,7 @@ pub fn score_at(tree: &Tree, frame: &BitFrame, x: usize, y: usize) -> f64 {
 /// Detection and grouping of one frame.
 pub fn run(tree: &Tree, settings: &Settings, frame: &BitFrame) -> FrameResult {
     let raw = detect(tree, settings.threshold, frame);
-    let objects = group::group(&raw, settings.grouping, |x, y| {
-        score_at(tree, frame, x, y)
-    });
+    let objects = group::group(&raw, settings.grouping, |x, y| score_at(tree, frame, x, y));
     let mask = if settings.grouping.min_area > 1 {
         group::kept_mask(&raw, settings.grouping)
     } else {

@@ -378,8 +378,24 @@ mod tests {
         assert_eq!(o.len(), 3);
         // Diagonal chain from (0,0) is one object; (4,0)-(4,1) is second.
         assert_eq!(o[0].area, 3);
-        assert_eq!(o[1].bbox, BBox { x0: 4, y0: 0, x1: 4, y1: 1 });
-        assert_eq!(o[2].bbox, BBox { x0: 0, y0: 4, x1: 0, y1: 4 });
+        assert_eq!(
+            o[1].bbox,
+            BBox {
+                x0: 4,
+                y0: 0,
+                x1: 4,
+                y1: 1
+            }
+        );
+        assert_eq!(
+            o[2].bbox,
+            BBox {
+                x0: 0,
+                y0: 4,
+                x1: 0,
+                y1: 4
+            }
+        );
     }
 
     #[test]
@@ -407,7 +423,9 @@ mod tests {
         // word size; both groupings must give the same objects.
         let mut state = 12345u64;
         let mut next = || {
-            state = state.wrapping_mul(6364136223846793005).wrapping_add(1442695040888963407);
+            state = state
+                .wrapping_mul(6364136223846793005)
+                .wrapping_add(1442695040888963407);
             (state >> 33) as u32
         };
         for &(w, h) in &[(1usize, 1usize), (63, 7), (64, 9), (65, 11), (130, 17)] {
@@ -430,8 +448,18 @@ mod tests {
 
     #[test]
     fn iou_of_boxes() {
-        let a = BBox { x0: 0, y0: 0, x1: 1, y1: 1 };
-        let b = BBox { x0: 1, y0: 0, x1: 2, y1: 1 };
+        let a = BBox {
+            x0: 0,
+            y0: 0,
+            x1: 1,
+            y1: 1,
+        };
+        let b = BBox {
+            x0: 1,
+            y0: 0,
+            x1: 2,
+            y1: 1,
+        };
         assert!((a.iou(&b) - 2.0 / 6.0).abs() < 1e-12);
         assert_eq!(a.iou(&a), 1.0);
     }

@@ -93,22 +93,33 @@ impl Tree {
                         }
                         parents[c] += 1;
                         if parents[c] > 1 {
-                            return Err(Error::bad_model(format!("node {c} has more than one parent")));
+                            return Err(Error::bad_model(format!(
+                                "node {c} has more than one parent"
+                            )));
                         }
                     }
                 }
                 Node::Leaf(l) => {
                     if !(0.0..=1.0).contains(&l.score) {
-                        return Err(Error::bad_model(format!("leaf {i} has score {} outside [0, 1]", l.score)));
+                        return Err(Error::bad_model(format!(
+                            "leaf {i} has score {} outside [0, 1]",
+                            l.score
+                        )));
                     }
                     if !(0.0..=1.0).contains(&l.share) {
-                        return Err(Error::bad_model(format!("leaf {i} has share {} outside [0, 1]", l.share)));
+                        return Err(Error::bad_model(format!(
+                            "leaf {i} has share {} outside [0, 1]",
+                            l.share
+                        )));
                     }
                 }
             }
         }
         if let Some(i) = parents.iter().skip(1).position(|&p| p == 0) {
-            return Err(Error::bad_model(format!("node {} is not reachable from the root", i + 1)));
+            return Err(Error::bad_model(format!(
+                "node {} is not reachable from the root",
+                i + 1
+            )));
         }
         Ok(Tree { window, nodes })
     }

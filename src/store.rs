@@ -178,7 +178,9 @@ impl LabelStore {
     /// Parses and validates a stored label store.
     pub fn from_bytes(bytes: &[u8]) -> Result<LabelStore> {
         if bytes.len() < HEADER_LEN + 4 || &bytes[..8] != MAGIC {
-            return Err(Error::bad_store("not a treeline label store (bad magic or too short)"));
+            return Err(Error::bad_store(
+                "not a treeline label store (bad magic or too short)",
+            ));
         }
         let u32_at = |i: usize| u32::from_le_bytes(bytes[i..i + 4].try_into().unwrap());
         let u64_at = |i: usize| u64::from_le_bytes(bytes[i..i + 8].try_into().unwrap());
@@ -188,8 +190,9 @@ impl LabelStore {
                 "format version {version} is not known (this build reads {VERSION})"
             )));
         }
-        let window = Window::new(bytes[12])
-            .ok_or_else(|| Error::bad_store(format!("window size {} is not 3, 5, 7, 9 or 11", bytes[12])))?;
+        let window = Window::new(bytes[12]).ok_or_else(|| {
+            Error::bad_store(format!("window size {} is not 3, 5, 7, 9 or 11", bytes[12]))
+        })?;
         let frames = u64_at(16);
         let n = u64_at(24);
         let totals = [u64_at(32), u64_at(40)];
@@ -213,7 +216,9 @@ impl LabelStore {
             let p = u128::from_le_bytes(bytes[at..at + 16].try_into().unwrap());
             let c = [u64_at(at + 16), u64_at(at + 24)];
             if window.features() < 128 && p >> window.features() != 0 {
-                return Err(Error::bad_store(format!("entry {i} uses bits outside the window")));
+                return Err(Error::bad_store(format!(
+                    "entry {i} uses bits outside the window"
+                )));
             }
             if prev.is_some_and(|q| q >= p) {
                 return Err(Error::bad_store(format!("entry {i} is out of order")));

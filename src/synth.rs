@@ -430,7 +430,13 @@ fn candidate(
         };
         let tw = weave.thread_width as isize;
         let reach = BED_MARGIN as isize;
-        let at = |t: usize, c: isize| if vertical { (c, t as isize) } else { (t as isize, c) };
+        let at = |t: usize, c: isize| {
+            if vertical {
+                (c, t as isize)
+            } else {
+                (t as isize, c)
+            }
+        };
         let in_frame = |(x, y): (isize, isize)| (0..w).contains(&x) && (0..h).contains(&y);
         let index = |(x, y): (isize, isize)| y as usize * weave.width + x as usize;
         let mut px = Vec::with_capacity(len * (weave.thread_width + 2 * reach as usize));
@@ -469,7 +475,8 @@ fn candidate(
             .map(|(x, y)| (cx + x, cy + y, Some(ink)))
             .collect()
     };
-    let inside = |&(x, y, _): &(isize, isize, Option<bool>)| x >= m && y >= m && x < w - m && y < h - m;
+    let inside =
+        |&(x, y, _): &(isize, isize, Option<bool>)| x >= m && y >= m && x < w - m && y < h - m;
     painted.iter().all(inside).then(|| {
         painted
             .iter()

@@ -32,13 +32,7 @@ fn trained(dir: &Dir) -> std::path::PathBuf {
     let model = dir.join("model.json");
     let r = treeline(
         dir.path(),
-        &[
-            "train",
-            "--data",
-            "train",
-            "--out",
-            model.to_str().unwrap(),
-        ],
+        &["train", "--data", "train", "--out", model.to_str().unwrap()],
     );
     assert_eq!(r.code, 0, "train failed: {}", r.stderr);
     assert!(r.stdout.contains("wrote"), "{}", r.stdout);
@@ -58,7 +52,15 @@ fn train_scan_eval_rules_round_trip() {
     assert!(r.stdout.contains("pixels") && r.stdout.contains("objects"));
     let r = treeline(
         dir.path(),
-        &["eval", "--data", "test", "--model", m, "--json", "--per-frame"],
+        &[
+            "eval",
+            "--data",
+            "test",
+            "--model",
+            m,
+            "--json",
+            "--per-frame",
+        ],
     );
     assert_eq!(r.code, 0, "{}", r.stderr);
     let v: serde_json::Value = serde_json::from_str(&r.stdout).expect("eval JSON");
@@ -119,14 +121,27 @@ fn settings_can_be_overridden() {
     let frame = "train/loom-standard-0000.pbm";
     let r = treeline(
         dir.path(),
-        &["scan", "--model", m, "--json", "--threshold", "0", "--min-area", "1", frame],
+        &[
+            "scan",
+            "--model",
+            m,
+            "--json",
+            "--threshold",
+            "0",
+            "--min-area",
+            "1",
+            frame,
+        ],
     );
     assert_eq!(r.code, 0, "{}", r.stderr);
     let rec: FrameRecord = serde_json::from_str(r.stdout.trim()).unwrap();
     // Threshold 0 detects every pixel: one object covering the frame.
     assert_eq!(rec.objects.len(), 1);
     assert_eq!(rec.objects[0].area, 96 * 96);
-    let r = treeline(dir.path(), &["scan", "--model", m, "--threshold", "1.5", frame]);
+    let r = treeline(
+        dir.path(),
+        &["scan", "--model", m, "--threshold", "1.5", frame],
+    );
     assert_eq!(r.code, 1);
     assert!(r.stderr.contains("threshold"), "{}", r.stderr);
 }
@@ -195,7 +210,11 @@ fn bad_files_are_named_and_can_be_skipped() {
     );
     assert_eq!(r.code, 2);
     assert!(r.stdout.contains("loom-standard-0001.pbm"), "{}", r.stdout);
-    assert!(r.stderr.contains("garbage.pbm: not a PBM or PNG"), "{}", r.stderr);
+    assert!(
+        r.stderr.contains("garbage.pbm: not a PBM or PNG"),
+        "{}",
+        r.stderr
+    );
     assert!(r.stderr.contains("missing.pbm"), "{}", r.stderr);
 }
 
@@ -205,23 +224,42 @@ fn bad_models_and_options_are_clear_errors() {
     dir.write("broken.json", b"{ \"format\": \"treeline-model\" ");
     let r = treeline(dir.path(), &["rules", "--model", "broken.json"]);
     assert_eq!(r.code, 1);
-    assert!(r.stderr.contains("broken.json") && r.stderr.contains("invalid model"), "{}", r.stderr);
+    assert!(
+        r.stderr.contains("broken.json") && r.stderr.contains("invalid model"),
+        "{}",
+        r.stderr
+    );
     let r = treeline(dir.path(), &["rules", "--model", "absent.json"]);
     assert_eq!(r.code, 1);
     assert!(r.stderr.contains("absent.json"), "{}", r.stderr);
     let r = treeline(
         dir.path(),
-        &["train", "--data", ".", "--out", "m.json", "--criterion", "purity"],
+        &[
+            "train",
+            "--data",
+            ".",
+            "--out",
+            "m.json",
+            "--criterion",
+            "purity",
+        ],
     );
     assert_eq!(r.code, 1);
-    assert!(r.stderr.contains("gini, entropy or gain-ratio"), "{}", r.stderr);
+    assert!(
+        r.stderr.contains("gini, entropy or gain-ratio"),
+        "{}",
+        r.stderr
+    );
     let r = treeline(
         dir.path(),
         &["train", "--data", ".", "--out", "m.json", "--window", "4"],
     );
     assert_eq!(r.code, 1);
     assert!(r.stderr.contains("3, 5, 7, 9, 11"), "{}", r.stderr);
-    let r = treeline(dir.path(), &["train", "--data", "nowhere", "--out", "m.json"]);
+    let r = treeline(
+        dir.path(),
+        &["train", "--data", "nowhere", "--out", "m.json"],
+    );
     assert_eq!(r.code, 1);
     assert!(r.stderr.contains("nowhere"), "{}", r.stderr);
 }
@@ -270,9 +308,10 @@ fn committed_model_keeps_loading_and_finding_the_same_objects() {
         &treeline::evaluate::Settings::of(&model),
         &frame,
     );
-    let want: Vec<treeline::record::ObjectRecord> =
-        serde_json::from_str(&std::fs::read_to_string(data.join("golden-0000.objects.json")).unwrap())
-            .unwrap();
+    let want: Vec<treeline::record::ObjectRecord> = serde_json::from_str(
+        &std::fs::read_to_string(data.join("golden-0000.objects.json")).unwrap(),
+    )
+    .unwrap();
     let got: Vec<_> = got
         .objects
         .iter()

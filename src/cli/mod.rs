@@ -16,6 +16,7 @@ use clap::{Parser, Subcommand};
 use serde::Serialize;
 
 use treeline::codec::DecodeLimits;
+use treeline::config::{self, Config};
 use treeline::evaluate::{self, Settings};
 use treeline::group::GroupParams;
 use treeline::learn::{self, ClassWeight, Criterion, Stage, TrainParams};
@@ -24,10 +25,23 @@ use treeline::record::{self, FrameRecord, ObjectRecord};
 use treeline::score::{self, Confusion, Scores};
 use treeline::synth::{self, LoomParams};
 use treeline::window::Window;
-use treeline::config::{self, Config};
 use treeline::{data, model};
 
 use progress::Progress;
+
+/// `println!` that ends the program quietly when stdout is closed early
+/// (`treeline rules ... | head`) and reports other write errors.
+macro_rules! out {
+    ($($t:tt)*) => {{
+        use std::io::Write as _;
+        if let Err(e) = writeln!(std::io::stdout(), $($t)*) {
+            if e.kind() == std::io::ErrorKind::BrokenPipe {
+                std::process::exit(0);
+            }
+            return Err(anyhow::Error::from(e).context("cannot write to standard output"));
+        }
+    }};
+}
 
 #[derive(Parser, Debug)]
 #[command(
@@ -123,7 +137,10 @@ impl SettingArgs {
         let s = Settings {
             threshold: self.threshold.or(cfg.threshold).unwrap_or(m.threshold),
             grouping: GroupParams {
-                min_area: self.min_area.or(cfg.min_area).unwrap_or(m.grouping.min_area),
+                min_area: self
+                    .min_area
+                    .or(cfg.min_area)
+                    .unwrap_or(m.grouping.min_area),
                 merge_distance: self
                     .merge_distance
                     .or(cfg.merge_distance)
@@ -373,7 +390,10 @@ fn train(a: TrainArgs) -> Result<i32> {
         .clone()
         .or_else(|| cfg.seed_data.clone())
         .context("no data folder: pass --data DIR or set training.seed_data in --config")?;
-    let a = TrainArgs { data: Some(data), ..a };
+    let a = TrainArgs {
+        data: Some(data),
+        ..a
+    };
     let data_dir = a.data.as_deref().expect("set above");
     let (folder, skipped) = read_data(data_dir, &a.decode.limits(&cfg), a.skip_bad)?;
     let mut bar = Progress::new(folder.frames.len(), 10);
@@ -407,25 +427,30 @@ fn train(a: TrainArgs) -> Result<i32> {
             merge_distance: m.grouping.merge_distance,
             holdout: &m.holdout,
         };
-        println!("{}", serde_json::to_string_pretty(&s)?);
+        out!("{}", serde_json::to_string_pretty(&s)?);
     } else {
-        println!(
+        out!(
             "trained on {} frames ({} held out), {} pixels, {} distinct patterns",
-            m.data.frames, m.data.holdout_frames, m.data.pixels, m.data.unique_patterns
+            m.data.frames,
+            m.data.holdout_frames,
+            m.data.pixels,
+            m.data.unique_patterns
         );
-        println!(
+        out!(
             "tree: {} leaves grown, {} kept after pruning (alpha {:.3e}), depth {}",
             m.training.grown_leaves,
             m.training.pruned_leaves,
             m.training.pruning_alpha,
             m.tree.depth()
         );
-        println!(
+        out!(
             "settings: threshold {:.4}, min_area {}, merge_distance {}",
-            m.threshold, m.grouping.min_area, m.grouping.merge_distance
+            m.threshold,
+            m.grouping.min_area,
+            m.grouping.merge_distance
         );
         match &m.holdout {
-            Some(h) => println!(
+            Some(h) => out!(
                 "held-out frames: objects P {:.3} R {:.3} F1 {:.3}; pixels P {:.3} R {:.3} F1 {:.3}",
                 h.object.precision,
                 h.object.recall,
@@ -434,12 +459,12 @@ fn train(a: TrainArgs) -> Result<i32> {
                 h.pixel.recall,
                 h.pixel.f1
             ),
-            None => println!("held-out frames: none (pruning and tuning skipped)"),
+            None => out!("held-out frames: none (pruning and tuning skipped)"),
         }
         if skipped > 0 {
-            println!("skipped {skipped} bad file(s)");
+            out!("skipped {skipped} bad file(s)");
         }
-        println!("wrote {} in {seconds:.2} s", a.out.display());
+        out!("wrote {} in {seconds:.2} s", a.out.display());
     }
     Ok(if skipped > 0 { 2 } else { 0 })
 }
@@ -450,6 +475,10 @@ fn write_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
     let name = path
         .file_name()
         .with_context(|| format!("{} is not a file path", path.display()))?;
+    if let Some(parent) = path.parent().filter(|p| !p.as_os_str().is_empty()) {
+        std::fs::create_dir_all(parent)
+            .with_context(|| format!("cannot create folder {}", parent.display()))?;
+    }
     let tmp = path.with_file_name(format!(".{}.tmp", name.to_string_lossy()));
     std::fs::write(&tmp, bytes).with_context(|| format!("cannot write {}", tmp.display()))?;
     std::fs::rename(&tmp, path).with_context(|| format!("cannot write {}", path.display()))?;
@@ -493,12 +522,16 @@ fn scan(a: ScanArgs) -> Result<i32> {
             height: frame.height() as u32,
             model_version: m.model_version,
             millis: (millis * 1000.0).round() / 1000.0,
-            objects: result.objects.iter().map(ObjectRecord::from_object).collect(),
+            objects: result
+                .objects
+                .iter()
+                .map(ObjectRecord::from_object)
+                .collect(),
         };
         if a.json {
-            println!("{}", serde_json::to_string(&rec)?);
+            out!("{}", serde_json::to_string(&rec)?);
         } else {
-            println!(
+            out!(
                 "{}  {}x{}  {} object(s)  {:.2} ms",
                 path.display(),
                 rec.width,
@@ -507,7 +540,7 @@ fn scan(a: ScanArgs) -> Result<i32> {
                 rec.millis
             );
             for o in &rec.objects {
-                println!(
+                out!(
                     "  #{:<3} box x {}..{} y {}..{}  area {:<5} centre ({:.1}, {:.1})  score {:.3}",
                     o.id,
                     o.bbox[0],
@@ -523,7 +556,10 @@ fn scan(a: ScanArgs) -> Result<i32> {
         }
     }
     if failed > 0 {
-        eprintln!("treeline: {failed} of {} frame(s) could not be read", a.frames.len());
+        eprintln!(
+            "treeline: {failed} of {} frame(s) could not be read",
+            a.frames.len()
+        );
         return Ok(if failed == a.frames.len() { 1 } else { 2 });
     }
     Ok(0)
@@ -622,18 +658,28 @@ fn eval(a: EvalArgs) -> Result<i32> {
         per_frame,
     };
     if a.json {
-        println!("{}", serde_json::to_string_pretty(&report)?);
+        out!("{}", serde_json::to_string_pretty(&report)?);
     } else {
-        println!(
+        out!(
             "{} frames, threshold {:.4}, min_area {}, merge_distance {}",
-            report.frames, report.threshold, report.min_area, report.merge_distance
+            report.frames,
+            report.threshold,
+            report.min_area,
+            report.merge_distance
         );
-        println!(
+        out!(
             "{:<8} {:>9} {:>7} {:>7} {:>9} {:>9} {:>9} {:>11}",
-            "level", "precision", "recall", "F1", "TP", "FP", "FN", "TN"
+            "level",
+            "precision",
+            "recall",
+            "F1",
+            "TP",
+            "FP",
+            "FN",
+            "TN"
         );
-        let line = |name: &str, l: &Level| {
-            println!(
+        let line = |name: &str, l: &Level| -> Result<()> {
+            out!(
                 "{:<8} {:>9.4} {:>7.4} {:>7.4} {:>9} {:>9} {:>9} {:>11}",
                 name,
                 l.precision,
@@ -643,26 +689,37 @@ fn eval(a: EvalArgs) -> Result<i32> {
                 l.fp,
                 l.fn_,
                 l.tn.map_or("-".to_string(), |t| t.to_string())
-            )
+            );
+            Ok(())
         };
-        line("pixels", &report.pixel);
-        line("objects", &report.object);
+        line("pixels", &report.pixel)?;
+        line("objects", &report.object)?;
         if !report.per_frame.is_empty() {
-            println!();
-            println!(
+            out!();
+            out!(
                 "{:<24} {:>8} {:>8} {:>6} {:>6} {:>6}",
-                "frame", "pixel F1", "obj F1", "TP", "FP", "FN"
+                "frame",
+                "pixel F1",
+                "obj F1",
+                "TP",
+                "FP",
+                "FN"
             );
             for f in &report.per_frame {
-                println!(
+                out!(
                     "{:<24} {:>8.3} {:>8.3} {:>6} {:>6} {:>6}",
-                    f.frame, f.pixel.f1, f.object.f1, f.object.tp, f.object.fp, f.object.fn_
+                    f.frame,
+                    f.pixel.f1,
+                    f.object.f1,
+                    f.object.tp,
+                    f.object.fp,
+                    f.object.fn_
                 );
             }
         }
-        println!("(objects match at bounding-box IoU >= 0.5, one to one)");
+        out!("(objects match at bounding-box IoU >= 0.5, one to one)");
         if skipped > 0 {
-            println!("skipped {skipped} bad file(s)");
+            out!("skipped {skipped} bad file(s)");
         }
     }
     Ok(if skipped > 0 { 2 } else { 0 })
@@ -732,18 +789,18 @@ fn rules(a: RulesArgs) -> Result<i32> {
     let m = load_model(&a.model)?;
     let rules = rule_list(&m);
     if a.json {
-        println!("{}", serde_json::to_string_pretty(&rules)?);
+        out!("{}", serde_json::to_string_pretty(&rules)?);
         return Ok(0);
     }
     let w = m.tree.window();
-    println!(
+    out!(
         "model version {}: {} rules over a {}x{} window; pixel (dx,dy) is relative to the centre, +x right, +y down",
         m.model_version,
         rules.len(),
         w.size(),
         w.size()
     );
-    println!(
+    out!(
         "a pixel is a detection when its rule's score is at least {:.4}",
         m.threshold
     );
@@ -764,7 +821,7 @@ fn rules(a: RulesArgs) -> Result<i32> {
         } else {
             format!("if {}", conds.join(" and "))
         };
-        println!(
+        out!(
             "rule {:>4}: {cond}\n           then score {:.4} ({} clear, {} target pixels){}",
             k + 1,
             r.score,
@@ -802,7 +859,10 @@ fn generate(a: GenerateArgs) -> Result<i32> {
         .with_context(|| format!("cannot create {}", a.out.display()))?;
     let mut defects = 0;
     for i in 0..a.count {
-        let f = synth::generate(&params, a.seed.wrapping_mul(1_000_003).wrapping_add(i as u64));
+        let f = synth::generate(
+            &params,
+            a.seed.wrapping_mul(1_000_003).wrapping_add(i as u64),
+        );
         defects += f.defects.len();
         let name = format!("loom-{}-{:04}", a.preset, i);
         if a.png {
@@ -816,7 +876,7 @@ fn generate(a: GenerateArgs) -> Result<i32> {
             data::write_pair(&a.out, &name, &f.frame, &f.mask)?;
         }
     }
-    println!(
+    out!(
         "wrote {} {} frames ({}x{}, {} defects) to {}",
         a.count,
         a.preset,

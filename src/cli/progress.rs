@@ -44,7 +44,11 @@ impl Progress {
         }
         self.last = Some(now);
         let width = 30;
-        let filled = if total == 0 { width } else { done * width / total };
+        let filled = done
+            .min(total)
+            .saturating_mul(width)
+            .checked_div(total)
+            .unwrap_or(width);
         let bar: String = "#".repeat(filled) + &".".repeat(width - filled);
         let mut err = std::io::stderr();
         let _ = write!(

@@ -310,10 +310,25 @@ mod tests {
 
     #[test]
     fn respects_depth_and_min_leaf() {
-        let mut e: Vec<(u128, Counts)> = (0..64u128).map(|p| (p, [1, (p % 3 == 0) as u64])).collect();
-        let t = grow(&mut e.clone(), 6, &GrowParams { max_depth: 2, ..params() });
+        let mut e: Vec<(u128, Counts)> =
+            (0..64u128).map(|p| (p, [1, (p % 3 == 0) as u64])).collect();
+        let t = grow(
+            &mut e.clone(),
+            6,
+            &GrowParams {
+                max_depth: 2,
+                ..params()
+            },
+        );
         assert!(t.nodes.iter().all(|n| n.depth <= 2));
-        let t = grow(&mut e, 6, &GrowParams { min_leaf: 20.0, ..params() });
+        let t = grow(
+            &mut e,
+            6,
+            &GrowParams {
+                min_leaf: 20.0,
+                ..params()
+            },
+        );
         for n in &t.nodes {
             assert!((n.counts[0] + n.counts[1]) as f64 >= 20.0);
         }

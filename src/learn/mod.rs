@@ -36,9 +36,7 @@ use crate::error::{Error, Result};
 use crate::evaluate;
 use crate::frame::BitFrame;
 use crate::group::GroupParams;
-use crate::model::{
-    DataSummary, HoldoutMetrics, Leaf, Model, Node, Reference, TrainingInfo, Tree,
-};
+use crate::model::{DataSummary, HoldoutMetrics, Leaf, Model, Node, Reference, TrainingInfo, Tree};
 use crate::score;
 use crate::store::LabelStore;
 use crate::window::Window;
@@ -166,7 +164,10 @@ impl TrainParams {
         if self.min_area == Some(0) {
             return Err(Error::training("min_area must be at least 1"));
         }
-        if self.merge_distance.is_some_and(|m| m > crate::group::MAX_MERGE_DISTANCE) {
+        if self
+            .merge_distance
+            .is_some_and(|m| m > crate::group::MAX_MERGE_DISTANCE)
+        {
             return Err(Error::training(format!(
                 "merge_distance must be at most {}",
                 crate::group::MAX_MERGE_DISTANCE
@@ -204,7 +205,10 @@ impl LabelledFrame {
 #[derive(Clone, Copy, Debug)]
 pub enum Stage {
     /// Adding frame `done` of `total` to the label store.
-    Store { done: usize, total: usize },
+    Store {
+        done: usize,
+        total: usize,
+    },
     Grow,
     Prune,
     Tune,
@@ -367,7 +371,12 @@ pub fn train(
     let holdout: Vec<tune::HoldoutFrame> = hold_idx
         .iter()
         .map(|&i| {
-            tune::HoldoutFrame::new(&first.tree, params.window, &frames[i].frame, &frames[i].mask)
+            tune::HoldoutFrame::new(
+                &first.tree,
+                params.window,
+                &frames[i].frame,
+                &frames[i].mask,
+            )
         })
         .collect();
     let choice = if holdout.is_empty() {

@@ -30,9 +30,19 @@ pub struct Pruning {
     pub alphas: Vec<f64>,
 }
 
-#[derive(PartialEq, PartialOrd)]
+/// An `f64` ordered by `total_cmp`, for the heap.
 struct Key(f64);
+impl PartialEq for Key {
+    fn eq(&self, o: &Self) -> bool {
+        self.0.total_cmp(&o.0).is_eq()
+    }
+}
 impl Eq for Key {}
+impl PartialOrd for Key {
+    fn partial_cmp(&self, o: &Self) -> Option<std::cmp::Ordering> {
+        Some(self.cmp(o))
+    }
+}
 impl Ord for Key {
     fn cmp(&self, o: &Self) -> std::cmp::Ordering {
         self.0.total_cmp(&o.0)

@@ -223,7 +223,9 @@ fn try_alpha(
     let mds: Vec<u32> = fixed
         .merge_distance
         .map_or_else(|| MERGE_DISTANCES.to_vec(), |m| vec![m]);
-    let areas: Vec<u32> = fixed.min_area.map_or_else(|| MIN_AREAS.to_vec(), |a| vec![a]);
+    let areas: Vec<u32> = fixed
+        .min_area
+        .map_or_else(|| MIN_AREAS.to_vec(), |a| vec![a]);
     // Pixels that reach the lowest candidate threshold, per frame, with
     // their score: detections are rare, so masks are built from this list.
     let lowest = thresholds.iter().copied().fold(f64::INFINITY, f64::min);
@@ -257,7 +259,10 @@ fn try_alpha(
             })
             .collect();
         let truth_total: u64 = frames.iter().map(|f| f.truth_mask.count_set()).sum();
-        let pixel_all = frames.iter().map(|f| f.truth_mask.len() as u64).sum::<u64>();
+        let pixel_all = frames
+            .iter()
+            .map(|f| f.truth_mask.len() as u64)
+            .sum::<u64>();
         for &md in &mds {
             // Objects (all sizes) and, per object, its area and how many of
             // its pixels are targets: enough to score every min_area.
