@@ -176,10 +176,17 @@ pub fn label(mask: &BitFrame, merge_distance: u32) -> (Vec<Run>, Vec<u32>, usize
     // Index in `runs` of the first run of each row.
     let mut row_start: Vec<usize> = Vec::with_capacity(mask.height() + 1);
     let mut uf = UnionFind { parent: Vec::new() };
+    // Per look-back row, the first run that can still reach the current one;
+    // runs of a row come left to right, so these only move forward and a
+    // row pair costs O(runs in both rows).
+    let mut cursor: Vec<usize> = Vec::with_capacity(reach as usize);
     for y in 0..mask.height() {
         row_start.push(runs.len());
         let first = runs.len();
         row_runs(mask, y, &mut runs);
+        let top = y.saturating_sub(reach as usize);
+        cursor.clear();
+        cursor.extend((top..y).map(|yy| row_start[yy]));
         for i in first..runs.len() {
             let id = uf.push();
             debug_assert_eq!(id as usize, i);
@@ -189,16 +196,16 @@ pub fn label(mask: &BitFrame, merge_distance: u32) -> (Vec<Run>, Vec<u32>, usize
             if i > first && runs[i - 1].x1 + reach >= r.x0 {
                 uf.union(id, (i - 1) as u32);
             }
-            let top = y.saturating_sub(reach as usize);
-            for yy in top..y {
-                let (a, b) = (row_start[yy], row_start[yy + 1]);
-                for (j, q) in runs[a..b].iter().enumerate() {
-                    if q.x0 > hi {
-                        break;
-                    }
-                    if q.x1 >= lo {
-                        uf.union(id, (a + j) as u32);
-                    }
+            for (k, yy) in (top..y).enumerate() {
+                let end = row_start[yy + 1];
+                let mut j = cursor[k];
+                while j < end && runs[j].x1 < lo {
+                    j += 1;
+                }
+                cursor[k] = j;
+                while j < end && runs[j].x0 <= hi {
+                    uf.union(id, j as u32);
+                    j += 1;
                 }
             }
         }

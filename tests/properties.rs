@@ -19,15 +19,11 @@ fn explore_float_roundtrip() {
         }
     }
     println!("bad {bad} first {first:?}");
-    // a leaf score t/(t+c) with weights
     let mut bad2 = 0;
     let mut ex = None;
     for t in 1..200u64 {
         for c in 1..200u64 {
-            let w = [1.3_f64, 7.9];
-            let tt = t as f64 * w[1];
-            let cc = c as f64 * w[0];
-            let a = tt / (tt + cc);
+            let a = t as f64 / (t + c) as f64;
             let b: f64 = serde_json::from_str(&serde_json::to_string(&a).unwrap()).unwrap();
             if a != b {
                 bad2 += 1;

@@ -26,6 +26,9 @@ pub const MERGE_DISTANCES: &[u32] = &[0, 1, 2, 3, 4, 6];
 pub const MIN_AREAS: &[u32] = &[1, 2, 3, 4, 5, 6, 8, 10, 12, 16, 20, 25, 32];
 /// At most this many pruning strengths are tried, spread over the sequence.
 pub const MAX_ALPHAS: usize = 24;
+/// Thresholds detecting more than this many times the held-out target
+/// pixels are grouped with the smallest merge distance only.
+const MAX_DETECTED_RATIO: u64 = 8;
 /// Thresholds tried per strength.
 const BEST_PIXEL_THRESHOLDS: usize = 6;
 const SPREAD_THRESHOLDS: usize = 6;
@@ -259,11 +262,18 @@ fn try_alpha(
             })
             .collect();
         let truth_total: u64 = frames.iter().map(|f| f.truth_mask.count_set()).sum();
+        // Merging is the costliest step on dense masks (many runs, each
+        // joined to many within reach), and where a threshold detects many
+        // times more pixels than there are targets, merging them further
+        // cannot help: such masks are grouped with the smallest distance only.
+        let detected: u64 = masks.iter().map(BitFrame::count_set).sum();
+        let dense = detected > MAX_DETECTED_RATIO * truth_total.max(1) + 1000;
+        let mds: &[u32] = if dense { &mds[..1] } else { &mds };
         let pixel_all = frames
             .iter()
             .map(|f| f.truth_mask.len() as u64)
             .sum::<u64>();
-        for &md in &mds {
+        for &md in mds {
             // Objects (all sizes) and, per object, its area and how many of
             // its pixels are targets: enough to score every min_area.
             let grouped: Vec<(Vec<Object>, Vec<u64>)> = masks
