@@ -59,6 +59,8 @@ pub fn read_bounded(path: &Path, limits: &DecodeLimits) -> Result<Vec<u8>> {
 enum Role {
     Frame(String),
     Mask(String),
+    /// A mask in a format masks may not use.
+    BadMask(String),
     Other,
 }
 
@@ -68,6 +70,9 @@ fn role(name: &str) -> Role {
     }
     if let Some(stem) = name.strip_suffix(MASK_SUFFIX) {
         return Role::Mask(stem.to_string());
+    }
+    if let Some(stem) = name.strip_suffix(".mask.png") {
+        return Role::BadMask(stem.to_string());
     }
     for ext in [".pbm", ".png"] {
         if let Some(stem) = name.strip_suffix(ext) {
@@ -119,6 +124,12 @@ pub fn list_pairs(dir: &Path) -> Result<(Vec<Pair>, Vec<Error>)> {
             Role::Mask(stem) => {
                 masks.insert(stem, path.clone());
             }
+            Role::BadMask(stem) => problems.push(
+                Error::new(ErrorKind::Data(format!(
+                    "masks must be PBM: rename or convert it to {stem}{MASK_SUFFIX}"
+                )))
+                .with_path(&path),
+            ),
             Role::Other => {}
         }
     }

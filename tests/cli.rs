@@ -163,6 +163,14 @@ fn bad_files_are_named_and_can_be_skipped() {
     let frame0 = std::fs::read(dir.join("data/loom-standard-0000.pbm")).unwrap();
     dir.write("data/sized.pbm", &frame0);
     dir.write("data/sized.mask.pbm", b"P1\n3 3\n000000000\n");
+    dir.write(
+        "data/pngmask.png",
+        &treeline::codec::encode_png(&treeline::BitFrame::new(4, 4)),
+    );
+    dir.write(
+        "data/pngmask.mask.png",
+        &treeline::codec::encode_png(&treeline::BitFrame::new(4, 4)),
+    );
     dir.write("data/.hidden.pbm", b"ignored");
     dir.write("data/notes.txt", b"ignored");
 
@@ -176,6 +184,8 @@ fn bad_files_are_named_and_can_be_skipped() {
         ("orphan.mask.pbm", "mask without a frame"),
         ("empty.pbm", "empty"),
         ("sized.mask.pbm", "mask is 3x3 but its frame is 96x96"),
+        ("pngmask.mask.png", "masks must be PBM"),
+        ("pngmask.png", "no mask"),
     ] {
         let line = r
             .stderr
@@ -192,7 +202,7 @@ fn bad_files_are_named_and_can_be_skipped() {
         &["train", "--data", "data", "--out", "m.json", "--skip-bad"],
     );
     assert_eq!(r.code, 2, "{}", r.stderr);
-    assert!(r.stdout.contains("skipped 7 bad file(s)"), "{}", r.stdout);
+    assert!(r.stdout.contains("skipped 9 bad file(s)"), "{}", r.stdout);
     assert!(r.stderr.contains("warning: skipped"), "{}", r.stderr);
     assert!(dir.join("m.json").exists());
 
