@@ -214,8 +214,9 @@ fn tennis_pattern(d: &Day, one_hot: bool) -> u128 {
 #[test]
 fn play_tennis_learner_splits_on_humidity_first() {
     // Between Humidity and Wind, ID3 prefers Humidity (0.151 > 0.048,
-    // Mitchell 1997, section 3.4); the Gini decrease agrees (0.0918 >
-    // 0.0306, computed from the counts of Table 3.2).
+    // Mitchell 1997, section 3.4); the Gini decrease (0.0918 > 0.0306) and
+    // the gain ratio (0.152 > 0.049) agree (both computed here from the
+    // counts of Table 3.2).
     for criterion in [Criterion::Entropy, Criterion::Gini, Criterion::GainRatio] {
         let mut e = merge_entries(
             PLAY_TENNIS
@@ -685,8 +686,8 @@ fn digits_every_split_is_at_least_as_good_as_smartcores_on_the_same_pixels() {
 
 #[test]
 fn smartcore_skips_a_useful_feature_when_the_boundary_labels_agree() {
-    // The quirk on three samples (smartcore sorts fewer than 7 values by
-    // insertion, which keeps ties in row order). Rows (x, y): (0, 0),
+    // The quirk on three samples (smartcore 0.7's argsort_mut sorts up to 7
+    // values by insertion, which keeps ties in row order). Rows (x, y): (0, 0),
     // (1, 0), (1, 1). Sorted by x the boundary pair is (0, 0) -> (1, 0):
     // same label, so smartcore never evaluates x <= 0.5 and makes a leaf,
     // although the split has a positive gain.
@@ -773,7 +774,7 @@ fn ulps(a: f64, b: f64) -> u64 {
 }
 
 /// Every field of the two models equal, floats to within `max_ulps`.
-fn assert_models_match(a: &Model, b: &Model, max_ulps: u64) {
+pub(crate) fn assert_models_match(a: &Model, b: &Model, max_ulps: u64) {
     let near = |x: f64, y: f64, what: &str| assert!(ulps(x, y) <= max_ulps, "{what}: {x} vs {y}");
     assert_eq!(a.tree.window(), b.tree.window());
     assert_eq!(a.tree.nodes().len(), b.tree.nodes().len());
@@ -835,29 +836,25 @@ fn assert_models_match(a: &Model, b: &Model, max_ulps: u64) {
 
 #[test]
 fn model_file_loads_back_to_the_same_model() {
-    // Within one unit in the last place of every float: see the ignored
-    // test below for why not exactly.
+    // Exactly: `max_ulps` 0 (see the next test for why that needs care).
     for base in [2024, 7] {
         let a = learn::train(&loom_frames(base, 6), &TrainParams::default(), &mut |_| {}).unwrap();
         let back = Model::from_json(&a.to_json()).unwrap();
-        assert_models_match(&a, &back, 1);
-        // Loading is a fixed point from the first reload on.
+        assert_models_match(&a, &back, 0);
+        assert_eq!(back, a);
         let again = Model::from_json(&back.to_json()).unwrap();
-        assert_models_match(&back, &again, 1);
+        assert_eq!(again, back);
     }
 }
 
 #[test]
-#[ignore = "src bug: serde_json is built without its `float_roundtrip` feature, so \
-            Model::from_json reads some floats of the file back 1 ulp off (leaf scores, \
-            the threshold) and a reloaded model can detect different pixels"]
 fn model_file_round_trips_floats_exactly() {
-    // Frames of base seed 7: the tuned threshold is the leaf score
-    // 0.9402343750000001, written as such and read back as 0.940234375
-    // (serde_json's default float parser is "best effort"; its
-    // `float_roundtrip` feature makes f64 -> JSON -> f64 exact, per the
-    // serde_json documentation). The trained model detects 1552 pixels on
-    // its training frames, the reloaded one 1608.
+    // Frames of base seed 7: the tuned threshold is a leaf score whose
+    // shortest decimal form, 0.9402343750000001, serde_json's default
+    // "best effort" float parser read back one ulp off; the crate is built
+    // with its `float_roundtrip` feature, which makes f64 -> JSON -> f64
+    // exact (serde_json documentation). A reloaded model must detect
+    // exactly the pixels the trained one detects.
     let frames = loom_frames(7, 6);
     let a = learn::train(&frames, &TrainParams::default(), &mut |_| {}).unwrap();
     let json = a.to_json();
