@@ -11,9 +11,9 @@
 //!
 //! Design decision: sizes are checked against [`DecodeLimits`] *before* any
 //! pixel buffer is allocated, so a hostile header cannot make the box
-//! allocate gigabytes. PNG goes through the `image` crate (any colour
-//! type), converted to 8-bit luma and thresholded: darker than the
-//! threshold is set, unless `invert` is on.
+//! allocate gigabytes. PNG (any colour type and bit depth) is decoded row
+//! by row, converted to 8-bit luma (alpha composited over white) and
+//! thresholded: darker than the threshold is set, unless `invert` is on.
 
 use crate::error::{Error, ErrorKind, Result};
 use crate::frame::BitFrame;
@@ -174,6 +174,15 @@ pub fn decode_pbm(bytes: &[u8], limits: &DecodeLimits) -> Result<BitFrame> {
     let height = h.number("height")?;
     check_size(width, height, limits)?;
     let (width, height) = (width as usize, height as usize);
+    // Comments may stand between the height and the one whitespace
+    // character that ends the header; a comment runs through its newline,
+    // so that newline does not count as the delimiter (Netpbm PBM spec).
+    while bytes.get(h.pos) == Some(&b'#') {
+        while h.pos < bytes.len() && bytes[h.pos] != b'\n' && bytes[h.pos] != b'\r' {
+            h.pos += 1;
+        }
+        h.pos += 1;
+    }
     // Exactly one whitespace character ends the header.
     match bytes.get(h.pos) {
         Some(&b) if is_pbm_space(b) => h.pos += 1,
@@ -273,7 +282,95 @@ fn decode_p4_raster(raster: &[u8], width: usize, height: usize) -> Result<BitFra
 }
 
 /// Decodes a PNG of any colour type and bit depth, thresholding its luma.
+///
+/// Non-interlaced PNGs (what cameras write) are decoded row by row, so
+/// memory stays one row plus the packed frame whatever the colour type or
+/// bit depth; interlaced ones need the whole picture and go through the
+/// `image` crate. Luma follows the `image` crate's conversion (Rec. 709
+/// weights 2126/7152/722 over 10000, 16-bit samples rounded to 8 bits), so
+/// both paths agree. Alpha is composited over white: a transparent pixel
+/// is background, never ink.
 pub fn decode_png(bytes: &[u8], limits: &DecodeLimits) -> Result<BitFrame> {
+    let png_err = |e: png::DecodingError| Error::new(ErrorKind::Png(e.to_string()));
+    let mut decoder = png::Decoder::new(std::io::Cursor::new(bytes));
+    decoder.set_transformations(png::Transformations::EXPAND);
+    let mut reader = decoder.read_info().map_err(png_err)?;
+    let (w, h, interlaced) = {
+        let info = reader.info();
+        (info.width, info.height, info.interlaced)
+    };
+    check_size(w as u64, h as u64, limits)?;
+    if interlaced {
+        return decode_png_whole(bytes, limits);
+    }
+    let (color, depth) = reader.output_color_type();
+    let channels = color.samples();
+    let wide = depth == png::BitDepth::Sixteen;
+    let (width, height) = (w as usize, h as usize);
+    let mut frame = BitFrame::new(width, height);
+    let mut y = 0;
+    while let Some(row) = reader.next_row().map_err(png_err)? {
+        if y >= height {
+            break;
+        }
+        let data = row.data();
+        let out = frame.row_mut(y);
+        for x in 0..width {
+            let sample = |c: usize| -> u32 {
+                let i = x * channels + c;
+                if wide {
+                    u16::from_be_bytes([data[2 * i], data[2 * i + 1]]) as u32
+                } else {
+                    data[i] as u32
+                }
+            };
+            let (luma, alpha) = match channels {
+                1 => (sample(0), None),
+                2 => (sample(0), Some(sample(1))),
+                3 => (rec709(sample(0), sample(1), sample(2)), None),
+                _ => (rec709(sample(0), sample(1), sample(2)), Some(sample(3))),
+            };
+            let (luma, alpha) = if wide {
+                (to_8_bits(luma), alpha.map(to_8_bits))
+            } else {
+                (luma, alpha)
+            };
+            let luma = match alpha {
+                // Over white: l * a + 255 * (1 - a), rounded.
+                Some(a) => (luma * a + 255 * (255 - a) + 127) / 255,
+                None => luma,
+            };
+            let dark = luma < limits.png_threshold as u32;
+            if dark != limits.png_invert {
+                out[x / 64] |= 1 << (x % 64);
+            }
+        }
+        y += 1;
+    }
+    if y < height {
+        return Err(ErrorKind::Truncated {
+            expected: height,
+            found: y,
+            unit: "rows",
+        }
+        .into());
+    }
+    Ok(frame)
+}
+
+/// Luma of an RGB sample as the `image` crate computes it.
+fn rec709(r: u32, g: u32, b: u32) -> u32 {
+    (2126 * r + 7152 * g + 722 * b) / 10000
+}
+
+/// A 16-bit sample rounded to 8 bits as the `image` crate does:
+/// `round(c * 255 / 65535)`.
+fn to_8_bits(c: u32) -> u32 {
+    (c + 128) / 257
+}
+
+/// Interlaced PNG: whole-picture decoding through the `image` crate.
+fn decode_png_whole(bytes: &[u8], limits: &DecodeLimits) -> Result<BitFrame> {
     use image::ImageDecoder;
     let png_err = |e: image::ImageError| Error::new(ErrorKind::Png(e.to_string()));
     let decoder =
@@ -281,14 +378,22 @@ pub fn decode_png(bytes: &[u8], limits: &DecodeLimits) -> Result<BitFrame> {
     let (w, h) = decoder.dimensions();
     check_size(w as u64, h as u64, limits)?;
     let img = image::DynamicImage::from_decoder(decoder).map_err(png_err)?;
-    let luma = img.to_luma8();
+    let has_alpha = img.color().has_alpha();
+    let la = img.to_luma_alpha8();
     let (width, height) = (w as usize, h as usize);
     let mut frame = BitFrame::new(width, height);
-    let raw = luma.as_raw();
+    let raw = la.as_raw();
     for y in 0..height {
         let row = frame.row_mut(y);
         for x in 0..width {
-            let dark = raw[y * width + x] < limits.png_threshold;
+            let i = 2 * (y * width + x);
+            let (l, a) = (raw[i] as u32, raw[i + 1] as u32);
+            let luma = if has_alpha {
+                (l * a + 255 * (255 - a) + 127) / 255
+            } else {
+                l
+            };
+            let dark = luma < limits.png_threshold as u32;
             if dark != limits.png_invert {
                 row[x / 64] |= 1 << (x % 64);
             }
@@ -364,6 +469,10 @@ mod tests {
     fn header_comments_and_whitespace() {
         let f = decode(b"P1\n# a comment\n3 # width\n\t2\n1 0 1\n010", &lim()).unwrap();
         assert_eq!(f.to_ascii(), "#.#\n.#.\n");
+        // A comment right after the height, then the delimiter (Netpbm PBM
+        // specification: the comment's own newline is not the delimiter).
+        let c = decode(b"P4\n8 2# comment\n\n\xff\x01", &lim()).unwrap();
+        assert_eq!(c.to_ascii(), "########\n.......#\n");
         // No whitespace between plain bits is allowed by the spec.
         let g = decode(b"P1 3 2 101010", &lim()).unwrap();
         assert_eq!(g, f);
@@ -397,6 +506,22 @@ mod tests {
                 .kind(),
             ErrorKind::TooLarge { .. }
         ));
+    }
+
+    #[test]
+    fn png_alpha_is_composited_over_white() {
+        // Black pixels at alpha 255, 200, 100 and 0 (common practice: a
+        // transparent pixel shows the background, here white paper).
+        let img = image::RgbaImage::from_fn(4, 1, |x, _| {
+            image::Rgba([0, 0, 0, [255u8, 200, 100, 0][x as usize]])
+        });
+        let mut png = Vec::new();
+        image::DynamicImage::ImageRgba8(img)
+            .write_to(&mut std::io::Cursor::new(&mut png), image::ImageFormat::Png)
+            .unwrap();
+        let f = decode(&png, &lim()).unwrap();
+        // Over white: luma 0, 55, 155, 255; below 128 is ink.
+        assert_eq!(f.to_ascii(), "##..\n");
     }
 
     #[test]

@@ -195,20 +195,32 @@ pub fn read_folder(
     ) in pairs.into_iter().enumerate()
     {
         progress(k, total);
-        let frame = match read_frame(&fpath, limits) {
-            Ok(f) => f,
-            Err(e) => {
+        let frame = read_frame(&fpath, limits);
+        let mask = read_frame(&mpath, limits);
+        let frame = match (frame, mask) {
+            (Err(e), Err(m)) => {
+                problems.push(e);
+                problems.push(m);
+                continue;
+            }
+            (Err(e), Ok(_)) | (Ok(_), Err(e)) => {
                 problems.push(e);
                 continue;
             }
+            (Ok(f), Ok(m)) => (f, m),
         };
-        let mask = match read_frame(&mpath, limits) {
-            Ok(m) => m,
-            Err(e) => {
-                problems.push(e);
-                continue;
-            }
-        };
+        let (frame, mask) = frame;
+        if frame.is_empty() {
+            problems.push(
+                Error::new(ErrorKind::Data(format!(
+                    "frame has no pixels ({}x{})",
+                    frame.width(),
+                    frame.height()
+                )))
+                .with_path(&fpath),
+            );
+            continue;
+        }
         if !frame.same_size(&mask) {
             problems.push(
                 Error::new(ErrorKind::MaskSizeMismatch {

@@ -122,14 +122,9 @@ impl fmt::Display for Error {
     }
 }
 
-impl std::error::Error for Error {
-    fn source(&self) -> Option<&(dyn std::error::Error + 'static)> {
-        match &self.kind {
-            ErrorKind::Io(e) => Some(e),
-            _ => None,
-        }
-    }
-}
+/// The message already includes the cause (an I/O error's text, say), so
+/// no `source` is reported: printing the chain would repeat it.
+impl std::error::Error for Error {}
 
 impl From<ErrorKind> for Error {
     fn from(kind: ErrorKind) -> Error {

@@ -203,6 +203,7 @@ impl Tree {
 
 /// How the model was trained (copied into the file for the record).
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
 pub struct TrainingInfo {
     /// `gini`, `entropy` or `gain-ratio`.
     pub criterion: String,
@@ -217,6 +218,11 @@ pub struct TrainingInfo {
     pub holdout: f64,
     /// Cost-complexity pruning strength chosen on the holdout.
     pub pruning_alpha: f64,
+    /// Whether pruning strength, threshold and grouping were chosen on
+    /// held-out frames; false means no frame was held out (or none gave a
+    /// usable threshold) and built-in settings were used.
+    #[serde(default)]
+    pub tuned: bool,
     /// Leaves before and after pruning.
     pub grown_leaves: u64,
     pub pruned_leaves: u64,
@@ -231,6 +237,7 @@ pub struct TrainingInfo {
 
 /// What the training data looked like.
 #[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
 pub struct DataSummary {
     /// Frames used to grow the final tree.
     pub frames: u64,
@@ -247,6 +254,7 @@ pub struct DataSummary {
 /// Scores on the held-out frames with the chosen settings, of the tree grown
 /// without them (with `refit`, the final tree has also seen them).
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
 pub struct HoldoutMetrics {
     pub pixel: Prf,
     pub object: Prf,
@@ -254,6 +262,7 @@ pub struct HoldoutMetrics {
 
 /// Statistics of the training frames for the drift monitors.
 #[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
 pub struct Reference {
     /// Share of set pixels in the training frames.
     pub set_density: f64,
@@ -261,6 +270,18 @@ pub struct Reference {
     pub detected_share: f64,
     /// Target objects per training frame.
     pub objects_per_frame: f64,
+}
+
+/// Score of a leaf with these counts: its weighted target fraction
+/// `w1 c1 / (w0 c0 + w1 c1)`, computed as `w1 / (w1 + w0 (c0 / c1))` so that
+/// leaves with the same class proportions get bit-identical scores (IEEE
+/// division is correctly rounded, so equal ratios give equal quotients).
+pub fn leaf_score(counts: [u64; 2], weights: [f64; 2]) -> f64 {
+    if counts[1] == 0 {
+        return 0.0;
+    }
+    let ratio = counts[0] as f64 / counts[1] as f64;
+    weights[1] / (weights[1] + weights[0] * ratio)
 }
 
 /// A complete model.
@@ -289,6 +310,11 @@ impl Model {
 
     /// Parses and validates a model file's text.
     pub fn from_json(text: &str) -> Result<Model> {
+        // The format label and version first, so a file of another version
+        // is named as such rather than as a field mismatch.
+        let head: file::Head = serde_json::from_str(text)
+            .map_err(|e| Error::bad_model(format!("not a valid model file: {e}")))?;
+        head.check()?;
         let f: file::ModelFile = serde_json::from_str(text)
             .map_err(|e| Error::bad_model(format!("not a valid model file: {e}")))?;
         f.into_model()
@@ -325,6 +351,44 @@ pub mod file {
 
     pub const FORMAT: &str = "treeline-model";
     pub const FORMAT_VERSION: u32 = 1;
+    /// The split criteria a model may name.
+    pub const CRITERIA: [&str; 3] = ["gini", "entropy", "gain-ratio"];
+    const MAX_RADIUS: u8 = crate::window::MAX_SIZE / 2;
+
+    /// Leaf scores must follow from their counts and the class weights, and
+    /// leaf shares from their counts: the drift monitors rely on both.
+    fn check_leaves(nodes: &[Node], weights: [f64; 2]) -> Result<()> {
+        let total: u128 = nodes
+            .iter()
+            .map(|n| match n {
+                Node::Leaf(l) => l.counts[0] as u128 + l.counts[1] as u128,
+                Node::Split { .. } => 0,
+            })
+            .sum();
+        for (i, n) in nodes.iter().enumerate() {
+            let Node::Leaf(l) = n else { continue };
+            let want = leaf_score(l.counts, weights);
+            if !(l.score - want).abs().le(&1e-9) {
+                return Err(Error::bad_model(format!(
+                    "node {i}: score {} does not follow from its counts {:?} and the class weights (expected {want})",
+                    l.score, l.counts
+                )));
+            }
+            let share = if total == 0 {
+                0.0
+            } else {
+                (l.counts[0] as u128 + l.counts[1] as u128) as f64 / total as f64
+            };
+            if !(l.share - share).abs().le(&1e-9) {
+                return Err(Error::bad_model(format!(
+                    "node {i}: share {} does not match its {} of {total} training pixels",
+                    l.share,
+                    l.counts[0] as u128 + l.counts[1] as u128
+                )));
+            }
+        }
+        Ok(())
+    }
 
     #[derive(Serialize, Deserialize)]
     #[serde(deny_unknown_fields)]
@@ -344,23 +408,136 @@ pub mod file {
         pub nodes: Vec<NodeFile>,
     }
 
+    /// Just the format label and version, read before anything else.
+    #[derive(Deserialize)]
+    pub struct Head {
+        pub format: Option<String>,
+        pub format_version: Option<u32>,
+    }
+
+    impl Head {
+        pub fn check(&self) -> Result<()> {
+            match self.format.as_deref() {
+                Some(FORMAT) => {}
+                Some(other) => {
+                    return Err(Error::bad_model(format!(
+                        "format is {other:?}, expected {FORMAT:?}"
+                    )))
+                }
+                None => {
+                    return Err(Error::bad_model(format!(
+                        "no \"format\" field: not a {FORMAT} file"
+                    )))
+                }
+            }
+            match self.format_version {
+                Some(FORMAT_VERSION) => Ok(()),
+                Some(v) => Err(Error::bad_model(format!(
+                    "format_version {v} is not known (this build reads {FORMAT_VERSION})"
+                ))),
+                None => Err(Error::bad_model("no \"format_version\" field")),
+            }
+        }
+    }
+
     /// A node: either a split (`test`, `if_clear`, `if_set`) or a leaf
-    /// (`clear`, `target`, `score`, `share`).
-    #[derive(Serialize, Deserialize)]
-    #[serde(untagged, deny_unknown_fields)]
-    pub enum NodeFile {
-        Split {
-            /// The tested pixel as `[dx, dy]` from the centre.
-            test: [i8; 2],
-            if_clear: u32,
-            if_set: u32,
-        },
-        Leaf {
-            clear: u64,
-            target: u64,
-            score: f64,
-            share: f64,
-        },
+    /// (`clear`, `target`, `score`, `share`), never a mix.
+    #[derive(Serialize, Deserialize, Default)]
+    #[serde(deny_unknown_fields)]
+    pub struct NodeFile {
+        /// The tested pixel as `[dx, dy]` from the centre.
+        #[serde(skip_serializing_if = "Option::is_none")]
+        pub test: Option<[i64; 2]>,
+        #[serde(skip_serializing_if = "Option::is_none")]
+        pub if_clear: Option<u64>,
+        #[serde(skip_serializing_if = "Option::is_none")]
+        pub if_set: Option<u64>,
+        #[serde(skip_serializing_if = "Option::is_none")]
+        pub clear: Option<u64>,
+        #[serde(skip_serializing_if = "Option::is_none")]
+        pub target: Option<u64>,
+        #[serde(skip_serializing_if = "Option::is_none")]
+        pub score: Option<f64>,
+        #[serde(skip_serializing_if = "Option::is_none")]
+        pub share: Option<f64>,
+    }
+
+    impl NodeFile {
+        fn split(o: Offset, if_clear: u32, if_set: u32) -> NodeFile {
+            NodeFile {
+                test: Some([o.dx as i64, o.dy as i64]),
+                if_clear: Some(if_clear as u64),
+                if_set: Some(if_set as u64),
+                ..NodeFile::default()
+            }
+        }
+
+        fn leaf(l: &Leaf) -> NodeFile {
+            NodeFile {
+                clear: Some(l.counts[0]),
+                target: Some(l.counts[1]),
+                score: Some(l.score),
+                share: Some(l.share),
+                ..NodeFile::default()
+            }
+        }
+
+        /// The node this record describes, with errors naming node `i`.
+        fn node(&self, i: usize, window: Window) -> Result<Node> {
+            let bad = |msg: String| Error::bad_model(format!("node {i}: {msg}"));
+            let is_split = self.test.is_some() || self.if_clear.is_some() || self.if_set.is_some();
+            let is_leaf = self.clear.is_some()
+                || self.target.is_some()
+                || self.score.is_some()
+                || self.share.is_some();
+            match (is_split, is_leaf) {
+                (true, true) => Err(bad("has both split and leaf fields".into())),
+                (false, false) => Err(bad("is neither a split nor a leaf".into())),
+                (true, false) => {
+                    let (Some(t), Some(c), Some(s)) = (self.test, self.if_clear, self.if_set)
+                    else {
+                        return Err(bad("a split needs test, if_clear and if_set".into()));
+                    };
+                    let in_range = |v: i64| (-(MAX_RADIUS as i64)..=MAX_RADIUS as i64).contains(&v);
+                    let off = if in_range(t[0]) && in_range(t[1]) {
+                        Some(Offset {
+                            dx: t[0] as i8,
+                            dy: t[1] as i8,
+                        })
+                    } else {
+                        None
+                    };
+                    let Some(feature) = off.and_then(|o| window.index(o)) else {
+                        return Err(bad(format!(
+                            "tests pixel [{}, {}], outside the {2}x{2} window",
+                            t[0],
+                            t[1],
+                            window.size()
+                        )));
+                    };
+                    let child = |v: u64, name: &str| {
+                        u32::try_from(v).map_err(|_| bad(format!("{name} {v} is out of range")))
+                    };
+                    Ok(Node::Split {
+                        feature: feature as u8,
+                        if_clear: child(c, "if_clear")?,
+                        if_set: child(s, "if_set")?,
+                    })
+                }
+                (false, true) => {
+                    let (Some(clear), Some(target), Some(score), Some(share)) =
+                        (self.clear, self.target, self.score, self.share)
+                    else {
+                        return Err(bad("a leaf needs clear, target, score and share".into()));
+                    };
+                    Ok(Node::Leaf(Leaf {
+                        counts: [clear, target],
+                        score,
+                        share,
+                    }))
+                }
+            }
+        }
     }
 
     impl ModelFile {
@@ -387,80 +564,50 @@ pub mod file {
                             feature,
                             if_clear,
                             if_set,
-                        } => {
-                            let o = w.offset(*feature as usize);
-                            NodeFile::Split {
-                                test: [o.dx, o.dy],
-                                if_clear: *if_clear,
-                                if_set: *if_set,
-                            }
-                        }
-                        Node::Leaf(l) => NodeFile::Leaf {
-                            clear: l.counts[0],
-                            target: l.counts[1],
-                            score: l.score,
-                            share: l.share,
-                        },
+                        } => NodeFile::split(w.offset(*feature as usize), *if_clear, *if_set),
+                        Node::Leaf(l) => NodeFile::leaf(l),
                     })
                     .collect(),
             }
         }
 
         pub fn into_model(self) -> Result<Model> {
-            if self.format != FORMAT {
-                return Err(Error::bad_model(format!(
-                    "format is {:?}, expected {FORMAT:?}",
-                    self.format
-                )));
+            Head {
+                format: Some(self.format.clone()),
+                format_version: Some(self.format_version),
             }
-            if self.format_version != FORMAT_VERSION {
-                return Err(Error::bad_model(format!(
-                    "format_version {} is not known (this build reads {FORMAT_VERSION})",
-                    self.format_version
-                )));
-            }
+            .check()?;
             let window = Window::new(self.window).ok_or_else(|| {
                 Error::bad_model(format!(
                     "window {} is not one of 3, 5, 7, 9, 11",
                     self.window
                 ))
             })?;
-            let mut nodes = Vec::with_capacity(self.nodes.len().min(MAX_NODES));
-            for (i, n) in self.nodes.into_iter().enumerate() {
-                nodes.push(match n {
-                    NodeFile::Split {
-                        test,
-                        if_clear,
-                        if_set,
-                    } => {
-                        let off = Offset {
-                            dx: test[0],
-                            dy: test[1],
-                        };
-                        let feature = window.index(off).ok_or_else(|| {
-                            Error::bad_model(format!(
-                                "node {i} tests pixel {off}, outside the {0}x{0} window",
-                                window.size()
-                            ))
-                        })?;
-                        Node::Split {
-                            feature: feature as u8,
-                            if_clear,
-                            if_set,
-                        }
-                    }
-                    NodeFile::Leaf {
-                        clear,
-                        target,
-                        score,
-                        share,
-                    } => Node::Leaf(Leaf {
-                        counts: [clear, target],
-                        score,
-                        share,
-                    }),
-                });
+            if self.nodes.len() > MAX_NODES {
+                return Err(Error::bad_model(format!(
+                    "the tree has {} nodes, over the limit of {MAX_NODES}",
+                    self.nodes.len()
+                )));
             }
+            if !CRITERIA.contains(&self.training.criterion.as_str()) {
+                return Err(Error::bad_model(format!(
+                    "training.criterion {:?} is not one of {CRITERIA:?}",
+                    self.training.criterion
+                )));
+            }
+            let weights = self.training.class_weights;
+            if !weights.iter().all(|w| w.is_finite() && *w > 0.0) {
+                return Err(Error::bad_model(format!(
+                    "training.class_weights {weights:?} must be two positive numbers"
+                )));
+            }
+            let nodes = self
+                .nodes
+                .iter()
+                .enumerate()
+                .map(|(i, n)| n.node(i, window))
+                .collect::<Result<Vec<Node>>>()?;
+            check_leaves(&nodes, weights)?;
             let tree = Tree::new(window, nodes)?;
             let grouping = GroupParams {
                 min_area: self.min_area,
@@ -491,6 +638,106 @@ mod tests {
             score,
             share: 0.5,
         })
+    }
+
+    /// The committed model with one edit applied to its JSON value.
+    fn edited(f: impl FnOnce(&mut serde_json::Value)) -> String {
+        let mut v: serde_json::Value =
+            serde_json::from_str(include_str!("../tests/data/model-v1.json")).unwrap();
+        f(&mut v);
+        v.to_string()
+    }
+
+    fn error_of(text: &str) -> String {
+        Model::from_json(text).unwrap_err().to_string()
+    }
+
+    #[test]
+    fn damaged_model_files_say_what_is_wrong() {
+        assert!(Model::from_json(&edited(|_| {})).is_ok());
+        let first_leaf = |v: &serde_json::Value| {
+            v["nodes"]
+                .as_array()
+                .unwrap()
+                .iter()
+                .position(|n| n.get("clear").is_some())
+                .unwrap()
+        };
+        let cases: Vec<(String, &str)> = vec![
+            (
+                edited(|v| v["training"]["colour"] = 1.into()),
+                "unknown field `colour`",
+            ),
+            (
+                edited(|v| v["reference"]["extra"] = 1.into()),
+                "unknown field `extra`",
+            ),
+            (
+                edited(|v| v["training"]["criterion"] = "bogus".into()),
+                "training.criterion",
+            ),
+            (
+                edited(|v| v["format_version"] = 2.into()),
+                "format_version 2 is not known",
+            ),
+            (
+                edited(|v| {
+                    v["format_version"] = 2.into();
+                    v["new_thing"] = 1.into();
+                    v.as_object_mut().unwrap().remove("reference");
+                }),
+                "format_version 2 is not known",
+            ),
+            (
+                edited(|v| v["format"] = "other".into()),
+                "expected \"treeline-model\"",
+            ),
+            (
+                edited(|v| v["nodes"][0]["if_clear"] = (-1).into()),
+                "invalid model",
+            ),
+            (
+                edited(|v| v["nodes"][0]["if_set"] = (1u64 << 40).into()),
+                "node 0: if_set",
+            ),
+            (
+                edited(|v| v["nodes"][0]["test"] = serde_json::json!([200, 0])),
+                "node 0: tests pixel [200, 0]",
+            ),
+            (
+                edited(|v| v["nodes"][0]["clear"] = 3.into()),
+                "node 0: has both split and leaf fields",
+            ),
+            (
+                edited(|v| v["nodes"][0]["colour"] = 3.into()),
+                "unknown field `colour`",
+            ),
+            (
+                edited(|v| {
+                    let i = first_leaf(v);
+                    v["nodes"][i]["score"] = 0.123.into();
+                }),
+                "does not follow from its counts",
+            ),
+            (
+                edited(|v| {
+                    let i = first_leaf(v);
+                    v["nodes"][i]["share"] = 1.0.into();
+                }),
+                "does not match its",
+            ),
+            (
+                edited(|v| v["nodes"][0]["if_clear"] = 0.into()),
+                "not a later node",
+            ),
+            (edited(|v| v["threshold"] = 1.5.into()), "threshold 1.5"),
+            (edited(|v| v["window"] = 4.into()), "window 4"),
+            ("{".to_string(), "not a valid model file"),
+        ];
+        for (text, want) in cases {
+            let e = error_of(&text);
+            assert!(e.contains(want), "expected {want:?} in {e:?}");
+        }
     }
 
     #[test]

@@ -3,9 +3,10 @@
 //! Pixel level: the confusion counts of the detection mask against the
 //! target mask. Object level: ground-truth objects are the 8-connected
 //! components of the target mask; detections are matched one-to-one,
-//! greedily in order of decreasing score, each to the unmatched ground-truth
-//! object of highest bounding-box IoU, and a match counts only at
-//! IoU >= 0.5 (the PASCAL VOC rule, Everingham et al., 2010).
+//! greedily in order of decreasing score, by the PASCAL VOC rule
+//! (Everingham et al., 2010): each detection goes to the ground-truth object
+//! of highest bounding-box IoU and counts only if that IoU is at least 0.5
+//! and the object is still unclaimed.
 //!
 //! Counts add across frames ([`Confusion::add`]), so a data set's score is
 //! computed from the summed counts, never by averaging per-frame ratios.
@@ -72,6 +73,7 @@ fn ratio(a: u64, b: u64) -> f64 {
 
 /// Precision, recall and F1.
 #[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
 pub struct Prf {
     pub precision: f64,
     pub recall: f64,
@@ -96,7 +98,12 @@ pub fn truth_objects(truth: &BitFrame) -> Vec<Object> {
     group::group(truth, GroupParams::default(), |_, _| 1.0)
 }
 
-/// Object-level confusion: greedy one-to-one matching at IoU >= 0.5.
+/// Object-level confusion by the PASCAL VOC rule (Everingham et al., 2010,
+/// section 4.2): detections are taken in order of decreasing score; each is
+/// compared with *every* ground-truth object and assigned to the one of
+/// highest IoU; it is a true positive if that IoU is at least 0.5 and the
+/// object was not already claimed by a higher-scored detection, otherwise a
+/// false positive. Unclaimed ground-truth objects are false negatives.
 pub fn object_confusion(detected: &[Object], truth: &[Object]) -> Confusion {
     let mut order: Vec<&Object> = detected.iter().collect();
     // Highest score first; ties by id so the result is deterministic.
@@ -106,20 +113,17 @@ pub fn object_confusion(detected: &[Object], truth: &[Object]) -> Confusion {
     for d in order {
         let mut best: Option<(usize, f64)> = None;
         for (i, t) in truth.iter().enumerate() {
-            if taken[i] {
-                continue;
-            }
             let iou = d.bbox.iou(&t.bbox);
-            if iou >= IOU_MATCH && best.is_none_or(|(_, b)| iou > b) {
+            if best.is_none_or(|(_, b)| iou > b) {
                 best = Some((i, iou));
             }
         }
         match best {
-            Some((i, _)) => {
+            Some((i, iou)) if iou >= IOU_MATCH && !taken[i] => {
                 taken[i] = true;
                 c.tp += 1;
             }
-            None => c.fp += 1,
+            _ => c.fp += 1,
         }
     }
     c.fn_ = taken.iter().filter(|t| !**t).count() as u64;
@@ -174,6 +178,17 @@ mod tests {
         // IoU just under 0.5 does not match: 10x10 against 10x4 = 0.4.
         let c = object_confusion(&[obj(1, 0, 0, 9, 3, 1.0)], &truth);
         assert_eq!((c.tp, c.fp, c.fn_), (0, 1, 1));
+        // The VOC rule compares each detection with every object, claimed
+        // or not (Everingham et al., 2010, section 4.2; boxes made up for
+        // this test). A = x 0..9, B = x 2..11, both 10 rows. D1 = B (IoU 1
+        // with B) takes B. D2 = x 2..10 has IoU 0.9 with B and 80/110 with
+        // A: its best object is B, already taken, so it is a false
+        // positive, although it overlaps A well enough.
+        let truth = vec![obj(1, 0, 0, 9, 9, 1.0), obj(2, 2, 0, 11, 9, 1.0)];
+        let det = vec![obj(1, 2, 0, 11, 9, 0.9), obj(2, 2, 0, 10, 9, 0.8)];
+        assert!((det[1].bbox.iou(&truth[0].bbox) - 80.0 / 110.0).abs() < 1e-12);
+        let c = object_confusion(&det, &truth);
+        assert_eq!((c.tp, c.fp, c.fn_), (1, 1, 1));
         // Nothing to find and nothing found is a perfect score.
         assert_eq!(object_confusion(&[], &[]).f1(), 1.0);
     }

@@ -91,17 +91,28 @@ impl LabelStore {
         self.map.get(&pattern).copied()
     }
 
-    /// Adds `clear` and `target` observations of one pattern.
-    pub fn add(&mut self, pattern: u128, counts: Counts) {
-        if counts[0] + counts[1] == 0 {
-            return;
+    /// Adds `clear` and `target` observations of one pattern. Fails, and
+    /// changes nothing, if a count would overflow.
+    pub fn add(&mut self, pattern: u128, counts: Counts) -> Result<()> {
+        if counts[0] == 0 && counts[1] == 0 {
+            return Ok(());
         }
-        debug_assert!(self.window.features() == 128 || pattern >> self.window.features() == 0);
-        let e = self.map.entry(pattern).or_insert([0, 0]);
-        e[0] += counts[0];
-        e[1] += counts[1];
-        self.totals[0] += counts[0];
-        self.totals[1] += counts[1];
+        if self.window.features() < 128 && pattern >> self.window.features() != 0 {
+            return Err(Error::bad_store("pattern uses bits outside the window"));
+        }
+        let overflow = || Error::bad_store("pixel counts overflow 64 bits");
+        let totals = [
+            self.totals[0].checked_add(counts[0]).ok_or_else(overflow)?,
+            self.totals[1].checked_add(counts[1]).ok_or_else(overflow)?,
+        ];
+        let e = self.map.get(&pattern).copied().unwrap_or([0, 0]);
+        let entry = [
+            e[0].checked_add(counts[0]).ok_or_else(overflow)?,
+            e[1].checked_add(counts[1]).ok_or_else(overflow)?,
+        ];
+        self.map.insert(pattern, entry);
+        self.totals = totals;
+        Ok(())
     }
 
     /// Adds every pixel of a frame, labelled by its mask (set = target).
@@ -140,10 +151,17 @@ impl LabelStore {
                 self.window.size()
             )));
         }
-        for (&p, &c) in &other.map {
-            self.add(p, c);
+        // No entry exceeds its store's totals, so if the totals add up
+        // without overflow every entry does too: check once, then add.
+        for k in 0..2 {
+            if self.totals[k].checked_add(other.totals[k]).is_none() {
+                return Err(Error::bad_store("pixel counts overflow 64 bits"));
+            }
         }
-        self.frames += other.frames;
+        for (&p, &c) in &other.map {
+            self.add(p, c)?;
+        }
+        self.frames = self.frames.saturating_add(other.frames);
         Ok(())
     }
 
@@ -223,11 +241,13 @@ impl LabelStore {
             if prev.is_some_and(|q| q >= p) {
                 return Err(Error::bad_store(format!("entry {i} is out of order")));
             }
-            if c[0] + c[1] == 0 {
+            if c[0] == 0 && c[1] == 0 {
                 return Err(Error::bad_store(format!("entry {i} has no pixels")));
             }
             prev = Some(p);
-            store.add(p, c);
+            store.add(p, c).map_err(|_| {
+                Error::bad_store(format!("entry {i}: pixel counts overflow 64 bits"))
+            })?;
         }
         if store.totals != totals {
             return Err(Error::bad_store(format!(
@@ -276,6 +296,38 @@ mod tests {
             .contains("checksum"));
         assert!(LabelStore::from_bytes(&b[..b.len() - 1]).is_err());
         assert!(LabelStore::from_bytes(b"garbage").is_err());
+    }
+
+    #[test]
+    fn overflowing_counts_are_errors_not_panics() {
+        let w = Window::new(3).unwrap();
+        let mut a = LabelStore::new(w);
+        a.add(1, [u64::MAX, 0]).unwrap();
+        assert!(a.add(1, [1, 0]).is_err());
+        assert_eq!(a.totals(), [u64::MAX, 0]);
+        let mut b = LabelStore::new(w);
+        b.add(2, [1, 0]).unwrap();
+        assert!(b.merge(&a).is_err());
+        assert_eq!(b.totals(), [1, 0]);
+        // A file whose entries overflow, with a valid checksum.
+        let mut c = LabelStore::new(w);
+        c.add(1, [u64::MAX, 0]).unwrap();
+        let mut bytes = c.to_bytes();
+        // Second entry with the same count: rebuild by hand.
+        let entry = bytes[HEADER_LEN..HEADER_LEN + ENTRY_LEN].to_vec();
+        let mut e2 = entry.clone();
+        e2[0] = 2;
+        bytes.truncate(bytes.len() - 4);
+        bytes.extend_from_slice(&e2);
+        bytes[24..32].copy_from_slice(&2u64.to_le_bytes());
+        let crc = crc32fast::hash(&bytes);
+        bytes.extend_from_slice(&crc.to_le_bytes());
+        let err = LabelStore::from_bytes(&bytes).unwrap_err().to_string();
+        assert!(err.contains("overflow"), "{err}");
+        assert!(
+            a.add(1 << 9, [1, 0]).is_err(),
+            "bit 9 is outside a 3x3 window"
+        );
     }
 
     #[test]

@@ -179,6 +179,9 @@ fn bad_files_are_named_and_can_be_skipped() {
     for (name, why) in [
         ("garbage.pbm", "not a PBM or PNG"),
         ("short.pbm", "truncated"),
+        // When both files of a pair are bad, both are named.
+        ("short.mask.pbm", "truncated"),
+        ("huge.mask.pbm", "over the limit"),
         ("huge.pbm", "over the limit"),
         ("lonely.pbm", "no mask"),
         ("orphan.mask.pbm", "mask without a frame"),
@@ -202,7 +205,7 @@ fn bad_files_are_named_and_can_be_skipped() {
         &["train", "--data", "data", "--out", "m.json", "--skip-bad"],
     );
     assert_eq!(r.code, 2, "{}", r.stderr);
-    assert!(r.stdout.contains("skipped 9 bad file(s)"), "{}", r.stdout);
+    assert!(r.stdout.contains("skipped 11 bad file(s)"), "{}", r.stdout);
     assert!(r.stderr.contains("warning: skipped"), "{}", r.stderr);
     assert!(dir.join("m.json").exists());
 
@@ -226,6 +229,33 @@ fn bad_files_are_named_and_can_be_skipped() {
         r.stderr
     );
     assert!(r.stderr.contains("missing.pbm"), "{}", r.stderr);
+}
+
+#[test]
+fn untuned_training_warns_and_folder_out_is_refused() {
+    let dir = Dir::new();
+    small_data(&dir, "train", "4", "3");
+    let r = treeline(
+        dir.path(),
+        &[
+            "train",
+            "--data",
+            "train",
+            "--out",
+            "m.json",
+            "--holdout",
+            "0",
+        ],
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert!(
+        r.stderr.contains("warning: no frame was held out"),
+        "{}",
+        r.stderr
+    );
+    let r = treeline(dir.path(), &["train", "--data", "train", "--out", "train"]);
+    assert_eq!(r.code, 1);
+    assert!(r.stderr.contains("is a folder"), "{}", r.stderr);
 }
 
 #[test]

@@ -147,7 +147,12 @@ impl SettingArgs {
                     .unwrap_or(m.grouping.merge_distance),
             },
         };
-        model::validate_settings(s.threshold, s.grouping).context("bad setting")?;
+        model::validate_settings(s.threshold, s.grouping).map_err(|e| {
+            anyhow::anyhow!(
+                "bad detection setting (--threshold, --min-area, --merge-distance or [detection]): {}",
+                e.kind().to_string().trim_start_matches("invalid model: ")
+            )
+        })?;
         Ok(s)
     }
 }
@@ -385,6 +390,12 @@ fn train(a: TrainArgs) -> Result<i32> {
         ..base.clone()
     };
     params.validate().context("bad training option")?;
+    if a.out.is_dir() {
+        bail!(
+            "--out {} is a folder; give the model file's path",
+            a.out.display()
+        );
+    }
     let data = a
         .data
         .clone()
@@ -409,6 +420,21 @@ fn train(a: TrainArgs) -> Result<i32> {
     .with_context(|| format!("training on {} failed", data_dir.display()))?;
     bar.finish();
     write_atomic(&a.out, m.to_json().as_bytes())?;
+    if !m.training.tuned {
+        let why = if m.data.holdout_frames == 0 {
+            "no frame was held out (--holdout 0, or too few frames)".to_string()
+        } else {
+            format!(
+                "no pixel of the {} held-out frame(s) scored above 0",
+                m.data.holdout_frames
+            )
+        };
+        eprintln!(
+            "treeline: warning: {why}; the tree is unpruned and uses threshold {}, min_area {}, \
+             merge_distance {} instead of settings chosen on held-out frames",
+            m.threshold, m.grouping.min_area, m.grouping.merge_distance
+        );
+    }
     let seconds = started.elapsed().as_secs_f64();
     if a.json {
         let s = TrainSummary {
@@ -481,7 +507,10 @@ fn write_atomic(path: &Path, bytes: &[u8]) -> Result<()> {
     }
     let tmp = path.with_file_name(format!(".{}.tmp", name.to_string_lossy()));
     std::fs::write(&tmp, bytes).with_context(|| format!("cannot write {}", tmp.display()))?;
-    std::fs::rename(&tmp, path).with_context(|| format!("cannot write {}", path.display()))?;
+    if let Err(e) = std::fs::rename(&tmp, path) {
+        let _ = std::fs::remove_file(&tmp);
+        return Err(e).with_context(|| format!("cannot write {}", path.display()));
+    }
     Ok(())
 }
 

@@ -223,23 +223,35 @@ struct Grown {
     unique: u64,
 }
 
-/// Splits frames into (growing, holdout) index lists by content hash.
+/// Splits frames into (growing, holdout) index lists by content hash,
+/// stratified: frames with targets and frames without are split separately
+/// (each sorted by hash, the first `share` of each held out), so both sets
+/// get defects, and the growing set keeps at least one frame with targets.
 pub fn split_holdout(frames: &[LabelledFrame], share: f64) -> (Vec<usize>, Vec<usize>) {
-    let mut keyed: Vec<([u8; 32], usize)> = frames
-        .iter()
-        .enumerate()
-        .map(|(i, f)| (f.content_hash(), i))
-        .collect();
-    keyed.sort();
-    let n = frames.len();
-    let mut k = (n as f64 * share).round() as usize;
-    if share > 0.0 && n >= 2 {
-        k = k.clamp(1, n - 1);
-    } else if n < 2 {
-        k = 0;
+    let mut grow = Vec::new();
+    let mut hold = Vec::new();
+    for with_targets in [true, false] {
+        let mut keyed: Vec<([u8; 32], usize)> = frames
+            .iter()
+            .enumerate()
+            .filter(|(_, f)| (f.mask.count_set() > 0) == with_targets)
+            .map(|(i, f)| (f.content_hash(), i))
+            .collect();
+        keyed.sort();
+        let n = keyed.len();
+        let mut k = (n as f64 * share).round() as usize;
+        if with_targets {
+            // At least one defect frame on each side when there are two.
+            k = if share > 0.0 && n >= 2 {
+                k.clamp(1, n - 1)
+            } else {
+                0
+            };
+        }
+        k = k.min(n);
+        hold.extend(keyed[..k].iter().map(|x| x.1));
+        grow.extend(keyed[k..].iter().map(|x| x.1));
     }
-    let mut hold: Vec<usize> = keyed[..k].iter().map(|x| x.1).collect();
-    let mut grow: Vec<usize> = keyed[k..].iter().map(|x| x.1).collect();
     hold.sort();
     grow.sort();
     (grow, hold)
@@ -447,6 +459,7 @@ pub fn train(
             class_weights: weights,
             holdout: params.holdout,
             pruning_alpha: alpha,
+            tuned: choice.is_some(),
             grown_leaves: grown.leaves() as u64,
             pruned_leaves: tree.leaves() as u64,
             refit,
@@ -471,4 +484,47 @@ pub fn train(
         },
         tree,
     })
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn lf(name: &str, targets: bool, seed: usize) -> LabelledFrame {
+        LabelledFrame {
+            name: name.into(),
+            frame: BitFrame::from_fn(16, 16, |x, y| (x * 7 + y * 3 + seed) % 5 == 0),
+            mask: BitFrame::from_fn(16, 16, |x, y| targets && x < 3 && y < 3),
+        }
+    }
+
+    #[test]
+    fn holdout_is_stratified_and_keeps_targets_for_growing() {
+        // Only one frame has targets: it must be grown on, whatever the hashes.
+        let frames = vec![lf("a", true, 1), lf("b", false, 2)];
+        let (grow, hold) = split_holdout(&frames, 0.5);
+        assert_eq!((grow, hold), (vec![0], vec![1]));
+        // Ten defect frames and ten clean ones, 20%: two of each held out.
+        let frames: Vec<_> = (0..20).map(|i| lf("f", i % 2 == 0, i)).collect();
+        let (grow, hold) = split_holdout(&frames, 0.2);
+        assert_eq!(hold.len(), 4);
+        assert_eq!(hold.iter().filter(|&&i| i % 2 == 0).count(), 2);
+        assert_eq!(grow.len() + hold.len(), 20);
+        // No holdout at all.
+        assert!(split_holdout(&frames, 0.0).1.is_empty());
+    }
+
+    #[test]
+    fn untuned_training_says_so() {
+        let frames: Vec<_> = (0..4).map(|i| lf("f", true, i)).collect();
+        let p = TrainParams {
+            holdout: 0.0,
+            ..TrainParams::default()
+        };
+        let m = train(&frames, &p, &mut |_| {}).unwrap();
+        assert!(!m.training.tuned);
+        assert_eq!(m.data.holdout_frames, 0);
+        let m = train(&frames, &TrainParams::default(), &mut |_| {}).unwrap();
+        assert!(m.training.tuned);
+    }
 }

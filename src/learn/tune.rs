@@ -129,23 +129,11 @@ fn plateau_centre(row: &[Choice]) -> Choice {
     row[run_start + (run_len - 1) / 2]
 }
 
-/// Score of a node with these counts: its weighted target fraction
-/// `w1 c1 / (w0 c0 + w1 c1)`, computed as `w1 / (w1 + w0 (c0 / c1))` so that
-/// nodes with the same class proportions get bit-identical scores (IEEE
-/// division is correctly rounded, so equal ratios give equal quotients).
-pub fn leaf_score(counts: [u64; 2], weights: [f64; 2]) -> f64 {
-    if counts[1] == 0 {
-        return 0.0;
-    }
-    let ratio = counts[0] as f64 / counts[1] as f64;
-    weights[1] / (weights[1] + weights[0] * ratio)
-}
-
 /// Score of each grown node under the class weights.
 pub fn node_scores(tree: &GrownTree, weights: [f64; 2]) -> Vec<f64> {
     tree.nodes
         .iter()
-        .map(|n| leaf_score(n.counts, weights))
+        .map(|n| crate::model::leaf_score(n.counts, weights))
         .collect()
 }
 
@@ -388,11 +376,11 @@ pub fn choose(
 
 #[cfg(test)]
 mod tests {
-    use super::*;
 
     #[test]
     fn equal_proportions_score_equally() {
         let w = [0.5317823016202742, 8.366013071895425];
+        use crate::model::leaf_score;
         let s = leaf_score([1, 1], w);
         for k in 2..200 {
             assert_eq!(leaf_score([k, k], w), s);
