@@ -214,8 +214,19 @@ pub fn decode_pbm(bytes: &[u8], limits: &DecodeLimits) -> Result<BitFrame> {
 }
 
 fn decode_p1_raster(raster: &[u8], base: usize, width: usize, height: usize) -> Result<BitFrame> {
-    let mut frame = BitFrame::new(width, height);
     let total = width * height;
+    // Every pixel takes at least one byte: a raster shorter than that is
+    // truncated, and is refused before the frame is allocated.
+    if raster.len() < total {
+        let found = raster.iter().filter(|b| matches!(b, b'0' | b'1')).count();
+        return Err(ErrorKind::Truncated {
+            expected: total,
+            found,
+            unit: "pixels",
+        }
+        .into());
+    }
+    let mut frame = BitFrame::new(width, height);
     let mut n = 0usize;
     let mut i = 0usize;
     while n < total {
@@ -432,8 +443,16 @@ pub fn encode_pbm_plain(frame: &BitFrame) -> Vec<u8> {
     s.into_bytes()
 }
 
-/// Encodes a frame as an 8-bit grey PNG (set = black).
-pub fn encode_png(frame: &BitFrame) -> Vec<u8> {
+/// Encodes a frame as an 8-bit grey PNG (set = black). PNG cannot hold an
+/// empty picture, so a frame of width or height 0 is an error.
+pub fn encode_png(frame: &BitFrame) -> Result<Vec<u8>> {
+    if frame.is_empty() {
+        return Err(Error::new(ErrorKind::Png(format!(
+            "a {}x{} frame cannot be written as PNG",
+            frame.width(),
+            frame.height()
+        ))));
+    }
     let mut buf = Vec::new();
     let pixels: Vec<u8> = (0..frame.height())
         .flat_map(|y| (0..frame.width()).map(move |x| (x, y)))
@@ -442,8 +461,8 @@ pub fn encode_png(frame: &BitFrame) -> Vec<u8> {
     let img = image::GrayImage::from_raw(frame.width() as u32, frame.height() as u32, pixels)
         .expect("buffer size matches");
     img.write_to(&mut std::io::Cursor::new(&mut buf), image::ImageFormat::Png)
-        .expect("encoding to memory cannot fail");
-    buf
+        .map_err(|e| Error::new(ErrorKind::Png(e.to_string())))?;
+    Ok(buf)
 }
 
 #[cfg(test)]
@@ -527,7 +546,8 @@ mod tests {
     #[test]
     fn png_threshold_and_invert() {
         let f = BitFrame::from_fn(5, 4, |x, y| x == y);
-        let png = encode_png(&f);
+        let png = encode_png(&f).unwrap();
+        assert!(encode_png(&BitFrame::new(0, 3)).is_err());
         assert_eq!(decode(&png, &lim()).unwrap(), f);
         let inv = DecodeLimits {
             png_invert: true,

@@ -25,13 +25,28 @@ pub const MASK_SUFFIX: &str = ".mask.pbm";
 /// Largest file read, in bytes, for the given limits: a plain PBM of the
 /// largest frame with one separator per pixel, plus room for comments.
 pub fn max_file_bytes(limits: &DecodeLimits) -> u64 {
-    (limits.max_width as u64 * limits.max_height as u64) * 2 + (1 << 20)
+    (limits.max_width as u64)
+        .saturating_mul(limits.max_height as u64)
+        .saturating_mul(2)
+        .saturating_add(1 << 20)
 }
 
 /// Reads and decodes one frame file.
 pub fn read_frame(path: &Path, limits: &DecodeLimits) -> Result<BitFrame> {
     let bytes = read_bounded(path, limits)?;
     codec::decode(&bytes, limits).map_err(|e| e.with_path(path))
+}
+
+/// Reads a mask file, which must be PBM whatever its name says.
+pub fn read_mask(path: &Path, limits: &DecodeLimits) -> Result<BitFrame> {
+    let bytes = read_bounded(path, limits)?;
+    match codec::sniff(&bytes) {
+        Ok(codec::Format::Png) => Err(Error::new(ErrorKind::Data(
+            "mask holds PNG data; masks must be PBM".into(),
+        ))
+        .with_path(path)),
+        _ => codec::decode_pbm(&bytes, limits).map_err(|e| e.with_path(path)),
+    }
 }
 
 /// Reads a whole file, refusing files over [`max_file_bytes`].
@@ -196,7 +211,7 @@ pub fn read_folder(
     {
         progress(k, total);
         let frame = read_frame(&fpath, limits);
-        let mask = read_frame(&mpath, limits);
+        let mask = read_mask(&mpath, limits);
         let frame = match (frame, mask) {
             (Err(e), Err(m)) => {
                 problems.push(e);

@@ -81,6 +81,10 @@ pub struct Prf {
 }
 
 /// Pixel-level confusion of a detection mask against the target mask.
+///
+/// # Panics
+/// If the masks differ in size: callers pair masks with their frames first
+/// (`data::read_folder` reports a mismatch as an error naming the file).
 pub fn pixel_confusion(detected: &BitFrame, truth: &BitFrame) -> Confusion {
     assert!(detected.same_size(truth), "masks of different sizes");
     let mut c = Confusion::default();

@@ -165,11 +165,16 @@ fn bad_files_are_named_and_can_be_skipped() {
     dir.write("data/sized.mask.pbm", b"P1\n3 3\n000000000\n");
     dir.write(
         "data/pngmask.png",
-        &treeline::codec::encode_png(&treeline::BitFrame::new(4, 4)),
+        &treeline::codec::encode_png(&treeline::BitFrame::new(4, 4)).unwrap(),
     );
     dir.write(
         "data/pngmask.mask.png",
-        &treeline::codec::encode_png(&treeline::BitFrame::new(4, 4)),
+        &treeline::codec::encode_png(&treeline::BitFrame::new(4, 4)).unwrap(),
+    );
+    dir.write("data/disguised.pbm", b"P1\n4 4\n0000000000000000\n");
+    dir.write(
+        "data/disguised.mask.pbm",
+        &treeline::codec::encode_png(&treeline::BitFrame::new(4, 4)).unwrap(),
     );
     dir.write("data/.hidden.pbm", b"ignored");
     dir.write("data/notes.txt", b"ignored");
@@ -189,6 +194,7 @@ fn bad_files_are_named_and_can_be_skipped() {
         ("sized.mask.pbm", "mask is 3x3 but its frame is 96x96"),
         ("pngmask.mask.png", "masks must be PBM"),
         ("pngmask.png", "no mask"),
+        ("disguised.mask.pbm", "masks must be PBM"),
     ] {
         let line = r
             .stderr
@@ -205,7 +211,7 @@ fn bad_files_are_named_and_can_be_skipped() {
         &["train", "--data", "data", "--out", "m.json", "--skip-bad"],
     );
     assert_eq!(r.code, 2, "{}", r.stderr);
-    assert!(r.stdout.contains("skipped 11 bad file(s)"), "{}", r.stdout);
+    assert!(r.stdout.contains("skipped 12 bad file(s)"), "{}", r.stdout);
     assert!(r.stderr.contains("warning: skipped"), "{}", r.stderr);
     assert!(dir.join("m.json").exists());
 

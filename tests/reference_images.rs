@@ -300,9 +300,10 @@ fn our_encoders_are_read_by_the_image_crate() {
             "P1 {w}"
         );
         // Our PNG writer: black = set, read back by the image crate.
-        let png = image::load_from_memory_with_format(&codec::encode_png(&f), ImageFormat::Png)
-            .unwrap()
-            .to_luma8();
+        let png =
+            image::load_from_memory_with_format(&codec::encode_png(&f).unwrap(), ImageFormat::Png)
+                .unwrap()
+                .to_luma8();
         let back = BitFrame::from_fn(w, 3, |x, y| png.get_pixel(x as u32, y as u32).0[0] == 0);
         assert_eq!(back, f, "PNG {w}");
     }
@@ -461,7 +462,7 @@ fn damaged_files_never_panic() {
     let f = random_frame(&mut rng, 37, 5, 0.5);
     let p4 = codec::encode_pbm(&f);
     let p1 = write_p1(&f, 3);
-    let png = codec::encode_png(&f);
+    let png = codec::encode_png(&f).unwrap();
     let mut decoded = 0;
     for file in [&p4, &p1, &png] {
         // Every prefix: never a panic, and never a wrong frame from a short

@@ -896,7 +896,7 @@ fn generate(a: GenerateArgs) -> Result<i32> {
         let name = format!("loom-{}-{:04}", a.preset, i);
         if a.png {
             let p = a.out.join(format!("{name}.png"));
-            std::fs::write(&p, treeline::codec::encode_png(&f.frame))
+            std::fs::write(&p, treeline::codec::encode_png(&f.frame)?)
                 .with_context(|| format!("cannot write {}", p.display()))?;
             let mp = a.out.join(format!("{name}{}", data::MASK_SUFFIX));
             std::fs::write(&mp, treeline::codec::encode_pbm(&f.mask))
