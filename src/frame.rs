@@ -130,6 +130,12 @@ impl BitFrame {
         &self.words
     }
 
+    /// All words, mutable. Callers must keep padding bits clear;
+    /// [`BitFrame::clear_padding`] restores the invariant.
+    pub fn words_mut(&mut self) -> &mut [u64] {
+        &mut self.words
+    }
+
     /// Mask of the valid bits in the last word of a row.
     pub fn last_word_mask(&self) -> u64 {
         match self.width % 64 {

@@ -18,6 +18,7 @@
 //! - [`learn`]: greedy induction, cost-complexity pruning, holdout tuning; builds a [`model::Model`].
 //! - [`model`]: the frozen tree and its validated JSON file; knows nothing of the learner.
 //! - [`evaluate`]: the per-pixel reference walker.
+//! - [`compile`]: the tree as a word-parallel bit program, bit-identical to the walker.
 //! - [`group`]: connected components with merge distance and minimum area.
 //! - [`score`]: pixel and object precision/recall/F1 (IoU >= 0.5 matching).
 //! - [`synth`]: the seeded loom-frame generator for demo and test data.
@@ -29,6 +30,7 @@
 //! watching or the filesystem.
 
 pub mod codec;
+pub mod compile;
 pub mod config;
 pub mod data;
 pub mod error;

@@ -5,11 +5,13 @@
 //! - `reference_images`: PBM decoding and grouping against the Netpbm
 //!   specification, the `image` crate's decoder and `imageproc`;
 //! - `properties`: property tests of the invariants;
+//! - `compiled`: the compiled evaluator against the walker, bit for bit;
 //! - `cli`: the `treeline` binary end to end on temporary folders.
 
 mod util;
 
 mod cli;
+mod compiled;
 mod properties;
 mod reference_images;
 mod reference_learning;

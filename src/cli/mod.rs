@@ -6,29 +6,6 @@
 //! Exit codes: 0 success; 1 the command failed; 2 it finished but some input
 //! files were bad (each named on stderr).
 
-mod progress;
-
-use std::path::{Path, PathBuf};
-use std::time::{Instant, SystemTime};
-
-use anyhow::{bail, Context, Result};
-use clap::{Parser, Subcommand};
-use serde::Serialize;
-
-use treeline::codec::DecodeLimits;
-use treeline::config::{self, Config};
-use treeline::evaluate::{self, Settings};
-use treeline::group::GroupParams;
-use treeline::learn::{self, ClassWeight, Criterion, Stage, TrainParams};
-use treeline::model::{Model, Node};
-use treeline::record::{self, FrameRecord, ObjectRecord};
-use treeline::score::{self, Confusion, Scores};
-use treeline::synth::{self, LoomParams};
-use treeline::window::Window;
-use treeline::{data, model};
-
-use progress::Progress;
-
 /// `println!` that ends the program quietly when stdout is closed early
 /// (`treeline rules ... | head`) and reports other write errors.
 macro_rules! out {
@@ -42,6 +19,31 @@ macro_rules! out {
         }
     }};
 }
+
+mod bench;
+mod progress;
+
+use std::path::{Path, PathBuf};
+use std::time::{Instant, SystemTime};
+
+use anyhow::{bail, Context, Result};
+use clap::{Parser, Subcommand};
+use serde::Serialize;
+
+use treeline::codec::DecodeLimits;
+use treeline::compile::{self, Program, Scratch};
+use treeline::config::{self, Config};
+use treeline::evaluate::Settings;
+use treeline::group::GroupParams;
+use treeline::learn::{self, ClassWeight, Criterion, Stage, TrainParams};
+use treeline::model::{Model, Node};
+use treeline::record::{self, FrameRecord, ObjectRecord};
+use treeline::score::{self, Confusion, Scores};
+use treeline::synth::{self, LoomParams};
+use treeline::window::Window;
+use treeline::{data, model};
+
+use progress::Progress;
 
 #[derive(Parser, Debug)]
 #[command(
@@ -66,6 +68,8 @@ enum Command {
     Rules(RulesArgs),
     /// Write seeded synthetic loom frames with their masks.
     Generate(GenerateArgs),
+    /// Measure how fast this box runs a model (one thread).
+    Bench(bench::BenchArgs),
 }
 
 /// Frame decoding options shared by the commands that read frames.
@@ -293,6 +297,7 @@ pub fn run(args: Args) -> Result<i32> {
         Command::Eval(a) => eval(a),
         Command::Rules(a) => rules(a),
         Command::Generate(a) => generate(a),
+        Command::Bench(a) => bench::bench(a),
     }
 }
 
@@ -519,6 +524,8 @@ fn scan(a: ScanArgs) -> Result<i32> {
     let m = load_model(&a.model)?;
     let settings = a.settings.apply(&m, &cfg)?;
     let limits = a.decode.limits(&cfg);
+    let program = Program::compile(&m.tree, settings.threshold);
+    let mut scratch = Scratch::default();
     let mut failed = 0;
     for path in &a.frames {
         let t0 = Instant::now();
@@ -538,7 +545,7 @@ fn scan(a: ScanArgs) -> Result<i32> {
                 continue;
             }
         };
-        let result = evaluate::run(&m.tree, &settings, &frame);
+        let result = compile::run(&program, &m.tree, &settings, &frame, &mut scratch);
         let millis = t0.elapsed().as_secs_f64() * 1000.0;
         let rec = FrameRecord {
             time: record::rfc3339(SystemTime::now()),
@@ -656,11 +663,13 @@ fn eval(a: EvalArgs) -> Result<i32> {
     }
     let mut total = Scores::default();
     let mut per_frame = Vec::new();
+    let program = Program::compile(&m.tree, settings.threshold);
+    let mut scratch = Scratch::default();
     let mut bar = Progress::new(folder.frames.len(), 20);
     bar.set_label("scoring frames");
     for (k, f) in folder.frames.iter().enumerate() {
         bar.update(k, folder.frames.len());
-        let r = evaluate::run(&m.tree, &settings, &f.frame);
+        let r = compile::run(&program, &m.tree, &settings, &f.frame, &mut scratch);
         let s = Scores {
             pixel: score::pixel_confusion(&r.mask, &f.mask),
             object: score::object_confusion(&r.objects, &score::truth_objects(&f.mask)),

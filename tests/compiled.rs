@@ -1,0 +1,215 @@
+//! The compiled evaluator against the reference walker: bit for bit on
+//! random trees and frames, on every backend, and on the committed golden
+//! case.
+
+use proptest::prelude::*;
+use proptest::test_runner::Config as ProptestConfig;
+
+use treeline::compile::{self, Backend, Program, Scratch};
+use treeline::evaluate::{self, Settings};
+use treeline::model::{Leaf, Model, Node, Tree};
+use treeline::window::Window;
+use treeline::BitFrame;
+
+/// A random tree of the given depth: every split tests a random feature of
+/// the window, leaves get random scores. Built breadth-first so children
+/// follow their parents, as `Tree::new` requires.
+fn random_tree(window: Window, depth: u32, seed: u64, full: bool) -> Tree {
+    let mut state = seed | 1;
+    let mut next = move || {
+        state ^= state << 13;
+        state ^= state >> 7;
+        state ^= state << 17;
+        state
+    };
+    let mut nodes: Vec<Node> = Vec::new();
+    let mut depths = vec![0u32];
+    let mut queue = std::collections::VecDeque::from([0usize]);
+    nodes.push(Node::Leaf(Leaf {
+        counts: [0, 0],
+        score: 0.0,
+        share: 0.0,
+    }));
+    while let Some(i) = queue.pop_front() {
+        let d = depths[i];
+        let split = d < depth && (full || next() % 4 != 0);
+        if split {
+            let feature = (next() % window.features() as u64) as u8;
+            let a = nodes.len();
+            for _ in 0..2 {
+                nodes.push(Node::Leaf(Leaf {
+                    counts: [0, 0],
+                    score: 0.0,
+                    share: 0.0,
+                }));
+                depths.push(d + 1);
+                queue.push_back(nodes.len() - 1);
+            }
+            nodes[i] = Node::Split {
+                feature,
+                if_clear: a as u32,
+                if_set: a as u32 + 1,
+            };
+        } else {
+            nodes[i] = Node::Leaf(Leaf {
+                counts: [0, 0],
+                score: (next() % 1001) as f64 / 1000.0,
+                share: 0.0,
+            });
+        }
+    }
+    Tree::new(window, nodes).expect("random tree is valid")
+}
+
+fn random_frame(w: usize, h: usize, density: f64, seed: u64) -> BitFrame {
+    let mut state = seed.wrapping_mul(0x9E37_79B9_7F4A_7C15) | 1;
+    BitFrame::from_fn(w, h, |_, _| {
+        state ^= state << 13;
+        state ^= state >> 7;
+        state ^= state << 17;
+        (state >> 11) as f64 / (1u64 << 53) as f64 <= density && density > 0.0
+    })
+}
+
+fn backends() -> Vec<Backend> {
+    let mut v = vec![Backend::Portable];
+    if Backend::Avx2.available() {
+        v.push(Backend::Avx2);
+    }
+    v
+}
+
+proptest! {
+    #![proptest_config(ProptestConfig { cases: 48, failure_persistence: None, ..ProptestConfig::default() })]
+
+    /// Compiled mask == walker mask, bit for bit (random trees of depth
+    /// 0-14, every window size, thresholds, densities 0 / 0.05 / 0.5 / 1,
+    /// sizes around the word width).
+    #[test]
+    fn compiled_equals_walker(
+        size_i in 0usize..5,
+        depth in 0u32..15,
+        seed in any::<u64>(),
+        full in any::<bool>(),
+        thr_i in 0usize..5,
+        wi in 0usize..7,
+        hi in 0usize..5,
+        di in 0usize..4,
+    ) {
+        let window = Window::new([3u8, 5, 7, 9, 11][size_i]).unwrap();
+        let tree = random_tree(window, depth, seed, full);
+        let threshold = [0.0, 0.25, 0.5, 0.9, 1.0][thr_i];
+        let w = [1usize, 2, 63, 64, 65, 130, 300][wi];
+        let h = [1usize, 2, 5, 63, 65][hi];
+        let density = [0.0, 0.05, 0.5, 1.0][di];
+        let frame = random_frame(w, h, density, seed ^ 0x5EED);
+        let want = evaluate::detect(&tree, threshold, &frame);
+        let program = Program::compile(&tree, threshold);
+        let mut scratch = Scratch::default();
+        for b in backends() {
+            let got = program.detect_with(b, &frame, &mut scratch);
+            prop_assert_eq!(&got, &want, "backend {:?}, {}x{}", b, w, h);
+        }
+        // Reusing the scratch for another size gives the same answers.
+        let other = random_frame(h, w, density, seed);
+        prop_assert_eq!(
+            program.detect(&other, &mut scratch),
+            evaluate::detect(&tree, threshold, &other)
+        );
+    }
+}
+
+#[test]
+fn wide_frames_and_deep_trees_agree() {
+    // One larger case: 1000x70 at densities 0.05 and 0.5, depth 14.
+    let window = Window::new(11).unwrap();
+    for (k, density) in [0.05, 0.5].into_iter().enumerate() {
+        let tree = random_tree(window, 14, 77 + k as u64, true);
+        let frame = random_frame(1000, 70, density, 5 + k as u64);
+        let program = Program::compile(&tree, 0.5);
+        let mut s = Scratch::default();
+        for b in backends() {
+            assert_eq!(
+                program.detect_with(b, &frame, &mut s),
+                evaluate::detect(&tree, 0.5, &frame),
+                "{b:?} density {density}"
+            );
+        }
+    }
+}
+
+#[test]
+fn golden_case_through_every_evaluator() {
+    // The committed model and frame (see cli::committed_model_...): the
+    // walker, the compiled program on each backend, all give the committed
+    // objects.
+    let data = crate::util::repo().join("tests").join("data");
+    let model =
+        Model::from_json(&std::fs::read_to_string(data.join("model-v1.json")).unwrap()).unwrap();
+    let frame = treeline::data::read_frame(
+        &data.join("golden-0000.pbm"),
+        &treeline::codec::DecodeLimits::default(),
+    )
+    .unwrap();
+    let want: Vec<treeline::record::ObjectRecord> = serde_json::from_str(
+        &std::fs::read_to_string(data.join("golden-0000.objects.json")).unwrap(),
+    )
+    .unwrap();
+    let settings = Settings::of(&model);
+    let records = |r: &evaluate::FrameResult| -> Vec<treeline::record::ObjectRecord> {
+        r.objects
+            .iter()
+            .map(treeline::record::ObjectRecord::from_object)
+            .collect()
+    };
+    assert_eq!(
+        records(&evaluate::run(&model.tree, &settings, &frame)),
+        want
+    );
+    let program = Program::compile(&model.tree, model.threshold);
+    let mut s = Scratch::default();
+    for b in backends() {
+        let mask = program.detect_with(b, &frame, &mut s);
+        assert_eq!(
+            mask,
+            evaluate::detect(&model.tree, model.threshold, &frame),
+            "{b:?}"
+        );
+    }
+    assert_eq!(
+        records(&compile::run(
+            &program,
+            &model.tree,
+            &settings,
+            &frame,
+            &mut s
+        )),
+        want
+    );
+}
+
+#[test]
+fn constant_programs() {
+    let window = Window::new(3).unwrap();
+    let leaf = |score| {
+        Tree::new(
+            window,
+            vec![Node::Leaf(Leaf {
+                counts: [0, 0],
+                score,
+                share: 0.0,
+            })],
+        )
+        .unwrap()
+    };
+    let frame = random_frame(70, 3, 0.5, 1);
+    let mut s = Scratch::default();
+    assert_eq!(
+        Program::compile(&leaf(0.9), 0.5).detect(&frame, &mut s),
+        BitFrame::from_fn(70, 3, |_, _| true)
+    );
+    assert_eq!(
+        Program::compile(&leaf(0.1), 0.5).detect(&frame, &mut s),
+        BitFrame::new(70, 3)
+    );
+}
