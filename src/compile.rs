@@ -39,13 +39,15 @@ use crate::group;
 use crate::model::{Node, Tree};
 use crate::window::Window;
 
-/// Words evaluated together (8 x 64 = 512 pixels): wide enough for the
+/// Words evaluated together (16 x 64 = 1024 pixels): wide enough for the
 /// compiler to use full vector registers, small enough to stay in L1.
-pub const BLOCK: usize = 8;
+pub const BLOCK: usize = 16;
 
 const DROP: u32 = 0;
 const DETECT: u32 = 1;
 const SLOT0: u32 = 2;
+/// Programs with at most this many ops are evaluated by the level sweep.
+pub const SWEEP_MAX_OPS: usize = 1024;
 
 /// One split of the compiled program.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -71,6 +73,11 @@ pub struct Program {
     ops: Vec<Op>,
     /// Levels of the program (longest chain of ops).
     levels: usize,
+    /// Index of the first op of each level, plus `ops.len()` at the end:
+    /// breadth-first order puts each level's ops together.
+    level_starts: Vec<usize>,
+    /// Most ops on one level.
+    widest: usize,
     /// When the whole tree is one decision: the root's outcome.
     constant: Option<bool>,
 }
@@ -136,8 +143,16 @@ impl Backend {
 pub struct Scratch {
     planes: Vec<u64>,
     valid: Vec<u64>,
-    /// Work list of (op, mask of the pixels that reach it).
+    /// Depth-first work list of (op, mask of the pixels that reach it).
     stack: Vec<(u32, [u64; BLOCK])>,
+    /// Level sweep: masks (and whether any bit is set) of the current and
+    /// the next level's ops.
+    cur: Vec<[u64; BLOCK]>,
+    next: Vec<[u64; BLOCK]>,
+    cur_live: Vec<bool>,
+    next_live: Vec<bool>,
+    /// Per op, where its tested plane row starts relative to a block.
+    offsets: Vec<usize>,
 }
 
 impl Program {
@@ -167,6 +182,8 @@ impl Program {
                 planes: Vec::new(),
                 ops: Vec::new(),
                 levels: 0,
+                level_starts: vec![0],
+                widest: 0,
                 constant: Some(c),
             };
         }
@@ -221,10 +238,23 @@ impl Program {
             });
             k += 1;
         }
+        let levels = depth.iter().copied().max().unwrap_or(0);
+        let mut level_starts = vec![0usize];
+        for l in 1..levels {
+            level_starts.push(depth.partition_point(|&d| d <= l));
+        }
+        level_starts.push(ops.len());
+        let widest = level_starts
+            .windows(2)
+            .map(|w| w[1] - w[0])
+            .max()
+            .unwrap_or(0);
         Program {
             window,
             planes,
-            levels: depth.into_iter().max().unwrap_or(0),
+            levels,
+            level_starts,
+            widest,
             ops,
             constant: None,
         }
@@ -296,7 +326,9 @@ impl Program {
         let stride = frame.stride();
         let r = self.window.radius() as usize;
         let padded_rows = frame.height() + 2 * r;
-        let plane_words = padded_rows * stride;
+        // A block's worth of zero words after each plane, so every load is a
+        // whole block, even the frame's last one.
+        let plane_words = padded_rows * stride + BLOCK;
         s.planes.clear();
         s.planes.resize(plane_words * self.planes.len(), 0);
         for (p, &dx) in self.planes.iter().enumerate() {
@@ -310,6 +342,7 @@ impl Program {
         // Valid bits of every word of the frame.
         s.valid.clear();
         s.valid.resize(stride * frame.height(), u64::MAX);
+        s.valid.resize(stride * frame.height() + BLOCK, 0);
         let last = frame.last_word_mask();
         for y in 0..frame.height() {
             s.valid[y * stride + stride - 1] = last;
@@ -317,6 +350,14 @@ impl Program {
         // A depth-first walk keeps at most one pending sibling per level.
         s.stack.clear();
         s.stack.reserve(self.levels + 2);
+        if self.sweeps() {
+            for v in [&mut s.cur, &mut s.next] {
+                v.resize(self.widest.max(1), [0; BLOCK]);
+            }
+            for v in [&mut s.cur_live, &mut s.next_live] {
+                v.resize(self.widest.max(1), false);
+            }
+        }
     }
 
     #[cfg(target_arch = "x86_64")]
@@ -329,26 +370,108 @@ impl Program {
         self.run_body(frame, s, out)
     }
 
+    /// Whether the level sweep evaluates this program (small programs,
+    /// whose ops are mostly live for every block) rather than the
+    /// depth-first walk that visits only live ops (large programs).
+    pub fn sweeps(&self) -> bool {
+        self.ops.len() <= SWEEP_MAX_OPS
+    }
+
     /// The evaluation loop, inlined into each backend so each is compiled
     /// with its own target features.
     #[inline(always)]
     fn run_body(&self, frame: &BitFrame, s: &mut Scratch, out: &mut BitFrame) {
+        if self.sweeps() {
+            self.sweep_body(frame, s, out)
+        } else {
+            self.walk_body(frame, s, out)
+        }
+    }
+
+    /// Level by level: every op of a level reads its mask from the current
+    /// buffer and writes its children's into the next; an op whose mask is
+    /// empty only marks its children empty.
+    #[inline(always)]
+    fn sweep_body(&self, frame: &BitFrame, s: &mut Scratch, out: &mut BitFrame) {
         let stride = frame.stride();
         let r = self.window.radius() as isize;
         let total = stride * frame.height();
-        let plane_words = (frame.height() + 2 * r as usize) * stride;
+        let plane_words = (frame.height() + 2 * r as usize) * stride + BLOCK;
+        let Scratch {
+            planes,
+            valid,
+            cur,
+            next,
+            cur_live,
+            next_live,
+            offsets,
+            ..
+        } = s;
+        offsets.clear();
+        offsets.extend(
+            self.ops
+                .iter()
+                .map(|op| op.plane as usize * plane_words + (r + op.dy as isize) as usize * stride),
+        );
+        let detected = out.words_mut();
+        let mut start = 0;
+        while start < total {
+            let len = BLOCK.min(total - start);
+            cur[0] = valid[start..start + BLOCK].try_into().expect("padded");
+            cur_live[0] = true;
+            let mut acc = [0u64; BLOCK];
+            for l in 0..self.levels {
+                let (lo, hi) = (self.level_starts[l], self.level_starts[l + 1]);
+                let next_lo = hi as u32 + SLOT0;
+                let (ops, offs) = (&self.ops[lo..hi], &offsets[lo..hi]);
+                let (masks, lives) = (&cur[..hi - lo], &cur_live[..hi - lo]);
+                for (((op, &offset), m), &live) in ops.iter().zip(offs).zip(masks).zip(lives) {
+                    if !live {
+                        for t in [op.on_set, op.on_clear] {
+                            if t >= SLOT0 {
+                                next_live[(t - next_lo) as usize] = false;
+                            }
+                        }
+                        continue;
+                    }
+                    let b: &[u64; BLOCK] = planes[offset + start..offset + start + BLOCK]
+                        .try_into()
+                        .expect("padded");
+                    emit(op.on_set, next_lo, next, next_live, &mut acc, |k| {
+                        m[k] & b[k]
+                    });
+                    emit(op.on_clear, next_lo, next, next_live, &mut acc, |k| {
+                        m[k] & !b[k]
+                    });
+                }
+                std::mem::swap(cur, next);
+                std::mem::swap(cur_live, next_live);
+            }
+            detected[start..start + len].copy_from_slice(&acc[..len]);
+            start += len;
+        }
+    }
+
+    /// Depth first over live ops only: an op is visited for a block only if
+    /// some pixel of the block reaches it.
+    #[inline(always)]
+    fn walk_body(&self, frame: &BitFrame, s: &mut Scratch, out: &mut BitFrame) {
+        let stride = frame.stride();
+        let r = self.window.radius() as isize;
+        let total = stride * frame.height();
+        let plane_words = (frame.height() + 2 * r as usize) * stride + BLOCK;
         let Scratch {
             planes,
             valid,
             stack,
+            ..
         } = s;
         let detected = out.words_mut();
         let mut start = 0;
         while start < total {
             let len = BLOCK.min(total - start);
             // Root: every valid pixel of the block.
-            let mut root = [0u64; BLOCK];
-            root[..len].copy_from_slice(&valid[start..start + len]);
+            let root: [u64; BLOCK] = valid[start..start + BLOCK].try_into().expect("padded");
             let mut acc = [0u64; BLOCK];
             stack.push((0, root));
             while let Some((i, m)) = stack.pop() {
@@ -356,8 +479,7 @@ impl Program {
                 let base = op.plane as usize * plane_words
                     + (r + op.dy as isize) as usize * stride
                     + start;
-                let mut b = [0u64; BLOCK];
-                b[..len].copy_from_slice(&planes[base..base + len]);
+                let b: &[u64; BLOCK] = planes[base..base + BLOCK].try_into().expect("padded");
                 let mut set = [0u64; BLOCK];
                 let mut clear = [0u64; BLOCK];
                 for k in 0..BLOCK {
@@ -385,6 +507,39 @@ impl Program {
             // The root mask excluded padding bits, so `acc` has none.
             detected[start..start + len].copy_from_slice(&acc[..len]);
             start += len;
+        }
+    }
+}
+
+/// Sends the pixels `value(k)` of a block to an op's outcome: nowhere, the
+/// detections, or the mask of an op of the next level (whose liveness is
+/// then whether any pixel arrived).
+#[inline(always)]
+fn emit(
+    target: u32,
+    next_lo: u32,
+    next: &mut [[u64; BLOCK]],
+    next_live: &mut [bool],
+    acc: &mut [u64; BLOCK],
+    value: impl Fn(usize) -> u64,
+) {
+    match target {
+        DROP => {}
+        DETECT => {
+            for (k, a) in acc.iter_mut().enumerate() {
+                *a |= value(k);
+            }
+        }
+        t => {
+            let j = (t - next_lo) as usize;
+            let slot = &mut next[j];
+            let mut any = 0;
+            for (k, w) in slot.iter_mut().enumerate() {
+                let v = value(k);
+                *w = v;
+                any |= v;
+            }
+            next_live[j] = any != 0;
         }
     }
 }

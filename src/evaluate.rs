@@ -62,7 +62,7 @@ pub fn detect(tree: &Tree, threshold: f64, frame: &BitFrame) -> BitFrame {
 
 /// Score of the pixel at `(x, y)`.
 pub fn score_at(tree: &Tree, frame: &BitFrame, x: usize, y: usize) -> f64 {
-    tree.score(tree.window().pattern_at(frame, x, y))
+    tree.score(tree.window().pattern_of(frame, x, y))
 }
 
 /// Detection and grouping of one frame.

@@ -104,6 +104,26 @@ impl Window {
     }
 }
 
+impl Window {
+    /// The pattern of the window centred on `(x, y)`, assembled from `size`
+    /// row pieces: the fast single-pixel form (used to score the few
+    /// detected pixels of a frame).
+    pub fn pattern_of(self, frame: &BitFrame, x: usize, y: usize) -> u128 {
+        let s = self.size() as usize;
+        let r = self.radius() as isize;
+        let mut p = 0u128;
+        for k in 0..s {
+            let yy = y as isize + k as isize - r;
+            if yy < 0 || yy >= frame.height() as isize {
+                continue;
+            }
+            let piece = row_bits(frame.row(yy as usize), x as isize - r, s as u32);
+            p |= (piece as u128) << (k * s);
+        }
+        p
+    }
+}
+
 /// Bits `start .. start + len` of a packed row (`len <= 32`), bit 0 of the
 /// result being pixel `start`; pixels outside `0..width` read clear (the
 /// frame's padding bits are clear, and missing words read as zero).
@@ -198,6 +218,7 @@ mod tests {
             for_each_row(&f, w, |y, pats| {
                 for (x, &p) in pats.iter().enumerate() {
                     assert_eq!(p, w.pattern_at(&f, x, y), "size {size} at ({x},{y})");
+                    assert_eq!(p, w.pattern_of(&f, x, y), "size {size} at ({x},{y})");
                 }
             });
         }
