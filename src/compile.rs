@@ -434,15 +434,18 @@ impl Program {
                         }
                         continue;
                     }
-                    let b: &[u64; BLOCK] = planes[offset + start..offset + start + BLOCK]
+                    let b: [u64; BLOCK] = planes[offset + start..offset + start + BLOCK]
                         .try_into()
                         .expect("padded");
-                    emit(op.on_set, next_lo, next, next_live, &mut acc, |k| {
-                        m[k] & b[k]
-                    });
-                    emit(op.on_clear, next_lo, next, next_live, &mut acc, |k| {
-                        m[k] & !b[k]
-                    });
+                    let m = *m;
+                    let mut set = [0u64; BLOCK];
+                    let mut clear = [0u64; BLOCK];
+                    for k in 0..BLOCK {
+                        set[k] = m[k] & b[k];
+                        clear[k] = m[k] & !b[k];
+                    }
+                    emit(op.on_set, next_lo, next, next_live, &mut acc, set);
+                    emit(op.on_clear, next_lo, next, next_live, &mut acc, clear);
                 }
                 std::mem::swap(cur, next);
                 std::mem::swap(cur_live, next_live);
@@ -511,9 +514,10 @@ impl Program {
     }
 }
 
-/// Sends the pixels `value(k)` of a block to an op's outcome: nowhere, the
+/// Sends the pixels `value` of a block to an op's outcome: nowhere, the
 /// detections, or the mask of an op of the next level (whose liveness is
-/// then whether any pixel arrived).
+/// then whether any pixel arrived). `value` is a local array, so the
+/// compiler knows it aliases nothing and keeps it in vector registers.
 #[inline(always)]
 fn emit(
     target: u32,
@@ -521,24 +525,24 @@ fn emit(
     next: &mut [[u64; BLOCK]],
     next_live: &mut [bool],
     acc: &mut [u64; BLOCK],
-    value: impl Fn(usize) -> u64,
+    value: [u64; BLOCK],
 ) {
     match target {
         DROP => {}
         DETECT => {
-            for (k, a) in acc.iter_mut().enumerate() {
-                *a |= value(k);
+            let mut a = *acc;
+            for k in 0..BLOCK {
+                a[k] |= value[k];
             }
+            *acc = a;
         }
         t => {
             let j = (t - next_lo) as usize;
-            let slot = &mut next[j];
             let mut any = 0;
-            for (k, w) in slot.iter_mut().enumerate() {
-                let v = value(k);
-                *w = v;
+            for v in value {
                 any |= v;
             }
+            next[j] = value;
             next_live[j] = any != 0;
         }
     }
