@@ -12,24 +12,30 @@
 //! the evaluator):
 //! - subtrees whose leaves all fall on one side of the threshold are single
 //!   decisions: an op's outcome is `Drop` (no detection), `Detect`, or a
-//!   slot of the next level, never a leaf that needs its score;
-//! - ops are grouped by level; an op of level `l` reads slot `parent` of
-//!   level `l` and writes only slots of level `l + 1`, each slot written by
-//!   exactly one op, so two buffers alternate and no op reads what its own
-//!   level writes;
+//!   later op, never a leaf that needs its score;
+//! - ops are in breadth-first order, so every op's children come after it
+//!   and each level's ops are contiguous (`level_starts`); each op is the
+//!   child of exactly one outcome of exactly one op (the root excepted);
 //! - `planes` lists the distinct horizontal offsets the program uses, and
 //!   every op's `plane` indexes it; every op's `dy` is within the window.
 //!
 //! Evaluation pads the frame with zero rows above and below and builds, once
 //! per frame, one horizontally shifted copy per distinct `dx`, all with the
-//! frame's row stride. Because every copy shares that stride, the test of
-//! offset `(dx, dy)` for word `i` of the frame is word `i + dy * stride` of
-//! copy `dx`: one aligned load, whatever the row. The program then runs over
-//! blocks of [`BLOCK`] consecutive words; a slot whose mask is empty for the
-//! block marks its whole subtree dead, so sparse traffic skips most of a
-//! large tree. Scores are not computed here: detections are rare, so the
-//! caller finds the leaf (and score) of detected pixels with the reference
-//! walker.
+//! frame's row stride (plus a block of zero words at the end). Because every
+//! copy shares that stride, the test of offset `(dx, dy)` for word `i` of the
+//! frame is word `i + dy * stride` of copy `dx`: one aligned whole-block
+//! load, whatever the row. The program then runs over blocks of [`BLOCK`]
+//! consecutive words in one of two ways:
+//! - **level sweep** (programs of at most [`SWEEP_MAX_OPS`] ops): level by
+//!   level, two buffers alternate, every op reads its mask from the current
+//!   buffer and writes its children's into the next; an op whose mask is
+//!   empty only marks its children empty. Best when most ops see pixels.
+//! - **live-op walk** (larger programs): depth first from the root, an op is
+//!   visited only when some pixel of the block reaches it, so the cost
+//!   follows the paths the block's pixels take, not the size of the tree.
+//!
+//! Scores are not computed here: detections are rare, so the caller finds
+//! the leaf (and score) of detected pixels with the reference walker.
 //!
 //! This module depends on the frozen [`Tree`] only, never on the learner.
 

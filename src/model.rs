@@ -9,7 +9,7 @@
 //! never as recursion.
 //!
 //! The model file is JSON (`format = "treeline-model"`, `format_version`
-//! 1). Its serde structs ([`file`]) are kept apart from the domain types
+//! 1). Its serde structs ([`json`]) are kept apart from the domain types
 //! so the file can stay stable while the code changes; loading validates
 //! every field and turns any inconsistency into an error naming it. A
 //! feature is written as its offset from the centre pixel, never as an
@@ -302,7 +302,7 @@ pub struct Model {
 impl Model {
     /// Pretty JSON; the same model always gives the same bytes.
     pub fn to_json(&self) -> String {
-        let mut s = serde_json::to_string_pretty(&file::ModelFile::from_model(self))
+        let mut s = serde_json::to_string_pretty(&json::ModelFile::from_model(self))
             .expect("model serialises");
         s.push('\n');
         s
@@ -312,10 +312,10 @@ impl Model {
     pub fn from_json(text: &str) -> Result<Model> {
         // The format label and version first, so a file of another version
         // is named as such rather than as a field mismatch.
-        let head: file::Head = serde_json::from_str(text)
+        let head: json::Head = serde_json::from_str(text)
             .map_err(|e| Error::bad_model(format!("not a valid model file: {e}")))?;
         head.check()?;
-        let f: file::ModelFile = serde_json::from_str(text)
+        let f: json::ModelFile = serde_json::from_str(text)
             .map_err(|e| Error::bad_model(format!("not a valid model file: {e}")))?;
         f.into_model()
     }
@@ -346,7 +346,7 @@ pub fn validate_settings(threshold: f64, grouping: GroupParams) -> Result<()> {
 }
 
 /// The model file's serde structs.
-pub mod file {
+pub mod json {
     use super::*;
 
     pub const FORMAT: &str = "treeline-model";
