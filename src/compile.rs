@@ -475,8 +475,15 @@ impl Program {
             planes,
             valid,
             stack,
+            offsets,
             ..
         } = s;
+        offsets.clear();
+        offsets.extend(
+            self.ops
+                .iter()
+                .map(|op| op.plane as usize * plane_words + (r + op.dy as isize) as usize * stride),
+        );
         let detected = out.words_mut();
         let mut start = 0;
         while start < total {
@@ -487,10 +494,8 @@ impl Program {
             stack.push((0, root));
             while let Some((i, m)) = stack.pop() {
                 let op = self.ops[i as usize];
-                let base = op.plane as usize * plane_words
-                    + (r + op.dy as isize) as usize * stride
-                    + start;
-                let b: &[u64; BLOCK] = planes[base..base + BLOCK].try_into().expect("padded");
+                let base = offsets[i as usize] + start;
+                let b: [u64; BLOCK] = planes[base..base + BLOCK].try_into().expect("padded");
                 let mut set = [0u64; BLOCK];
                 let mut clear = [0u64; BLOCK];
                 for k in 0..BLOCK {
