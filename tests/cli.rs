@@ -365,3 +365,51 @@ fn committed_model_keeps_loading_and_finding_the_same_objects() {
         .collect();
     assert_eq!(got, want);
 }
+
+#[test]
+fn bench_reports_the_capacity_of_this_box() {
+    let dir = Dir::new();
+    let model = repo().join("tests/data/model-v1.json");
+    let m = model.to_str().unwrap();
+    let r = treeline(
+        dir.path(),
+        &[
+            "bench", "--model", m, "--size", "96x64", "--runs", "1", "--json",
+        ],
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let v: serde_json::Value = serde_json::from_str(&r.stdout).expect("bench JSON");
+    assert_eq!(
+        (v["width"].as_u64(), v["height"].as_u64()),
+        (Some(96), Some(64))
+    );
+    for k in [
+        "compiled_mpx_per_s",
+        "portable_mpx_per_s",
+        "walker_mpx_per_s",
+        "frame_ms",
+        "frames_per_s",
+    ] {
+        assert!(v[k].as_f64().is_some_and(|x| x > 0.0), "{k}: {v}");
+    }
+    assert!(v["program_ops"].as_u64().unwrap() <= v["tree_nodes"].as_u64().unwrap());
+    assert!(!v["backend"].as_str().unwrap().is_empty());
+    let r = treeline(dir.path(), &["bench", "--model", m, "--size", "12x12"]);
+    assert_eq!(r.code, 1);
+    assert!(r.stderr.contains("between 32 and 8192"), "{}", r.stderr);
+    let golden = repo().join("tests/data/golden-0000.pbm");
+    let r = treeline(
+        dir.path(),
+        &[
+            "bench",
+            "--model",
+            m,
+            "--frame",
+            golden.to_str().unwrap(),
+            "--runs",
+            "1",
+        ],
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert!(r.stdout.contains("frame 128x128"), "{}", r.stdout);
+}

@@ -213,3 +213,32 @@ fn constant_programs() {
         BitFrame::new(70, 3)
     );
 }
+
+#[test]
+fn no_allocation_per_frame_after_warm_up() {
+    // The per-worker scratch is reused: after one frame of a size, further
+    // frames of that size allocate nothing, on both evaluation strategies
+    // (a small program sweeps levels, a large one walks live ops).
+    use crate::reference_images::counting::allocated_by;
+    let window = Window::new(11).unwrap();
+    for (depth, full) in [(6u32, true), (14, true)] {
+        let tree = random_tree(window, depth, 99, full);
+        let program = Program::compile(&tree, 0.5);
+        let mut s = Scratch::default();
+        let a = random_frame(300, 40, 0.5, 1);
+        let b = random_frame(300, 40, 0.3, 2);
+        let mut out = BitFrame::new(300, 40);
+        for backend in backends() {
+            program.detect_into(backend, &a, &mut s, &mut out);
+            let ((), bytes) = allocated_by(|| program.detect_into(backend, &b, &mut s, &mut out));
+            assert_eq!(
+                bytes,
+                0,
+                "{backend:?}, {} ops (sweeps: {})",
+                program.ops(),
+                program.sweeps()
+            );
+            assert_eq!(out, evaluate::detect(&tree, 0.5, &b));
+        }
+    }
+}

@@ -28,7 +28,7 @@ fn decode(bytes: &[u8]) -> treeline::Result<BitFrame> {
 // refused before any pixel buffer exists. The counter is per thread, so the
 // other tests of this binary running at the same time do not disturb it.
 
-mod counting {
+pub(crate) mod counting {
     use std::alloc::{GlobalAlloc, Layout, System};
     use std::cell::Cell;
 
