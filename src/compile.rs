@@ -373,11 +373,11 @@ impl Program {
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx2")]
     unsafe fn run_avx2(&self, frame: &BitFrame, s: &mut Scratch, out: &mut BitFrame) {
-        self.run_body(frame, s, out)
+        self.run_body(Avx2Kernel(()), frame, s, out)
     }
 
     fn run(&self, frame: &BitFrame, s: &mut Scratch, out: &mut BitFrame) {
-        self.run_body(frame, s, out)
+        self.run_body(PortableKernel, frame, s, out)
     }
 
     /// Whether the level sweep evaluates this program (small programs, whose
@@ -391,18 +391,24 @@ impl Program {
     /// The evaluation loop, inlined into each backend so each is compiled
     /// with its own target features.
     #[inline(always)]
-    fn run_body(&self, frame: &BitFrame, s: &mut Scratch, out: &mut BitFrame) {
+    fn run_body<K: Kernel>(&self, k: K, frame: &BitFrame, s: &mut Scratch, out: &mut BitFrame) {
         if self.sweeps() {
-            self.sweep_body(frame, s, out)
+            self.sweep_body(k, frame, s, out)
         } else {
-            self.walk_body(frame, s, out)
+            self.walk_body(k, frame, s, out)
         }
     }
 
     /// Level by level over the listed (reached) ops: each reads its mask
     /// from the current buffer and writes its children's into the next.
     #[inline(always)]
-    fn sweep_body(&self, frame: &BitFrame, s: &mut Scratch, out: &mut BitFrame) {
+    fn sweep_body<K: Kernel>(
+        &self,
+        kernel: K,
+        frame: &BitFrame,
+        s: &mut Scratch,
+        out: &mut BitFrame,
+    ) {
         let stride = frame.stride();
         let r = self.window.radius() as isize;
         let total = stride * frame.height();
@@ -442,18 +448,23 @@ impl Program {
                     let i = i as usize;
                     let op = self.ops[i];
                     let offset = offsets[i];
-                    let m = cur[i - lo];
-                    let b: [u64; BLOCK] = planes[offset + start..offset + start + BLOCK]
+                    let m = &cur[i - lo];
+                    let b: &[u64; BLOCK] = planes[offset + start..offset + start + BLOCK]
                         .try_into()
                         .expect("padded");
                     let mut set = [0u64; BLOCK];
                     let mut clear = [0u64; BLOCK];
-                    for k in 0..BLOCK {
-                        set[k] = m[k] & b[k];
-                        clear[k] = m[k] & !b[k];
-                    }
-                    emit(op.on_set, next_lo, next, next_ops, &mut acc, set);
-                    emit(op.on_clear, next_lo, next, next_ops, &mut acc, clear);
+                    let (any_set, any_clear) = kernel.split(m, b, &mut set, &mut clear);
+                    emit(op.on_set, any_set, next_lo, next, next_ops, &mut acc, &set);
+                    emit(
+                        op.on_clear,
+                        any_clear,
+                        next_lo,
+                        next,
+                        next_ops,
+                        &mut acc,
+                        &clear,
+                    );
                 }
                 std::mem::swap(cur, next);
                 std::mem::swap(cur_ops, next_ops);
@@ -466,7 +477,13 @@ impl Program {
     /// Depth first over live ops only: an op is visited for a block only if
     /// some pixel of the block reaches it.
     #[inline(always)]
-    fn walk_body(&self, frame: &BitFrame, s: &mut Scratch, out: &mut BitFrame) {
+    fn walk_body<K: Kernel>(
+        &self,
+        kernel: K,
+        frame: &BitFrame,
+        s: &mut Scratch,
+        out: &mut BitFrame,
+    ) {
         let stride = frame.stride();
         let r = self.window.radius() as isize;
         let total = stride * frame.height();
@@ -495,14 +512,13 @@ impl Program {
             while let Some((i, m)) = stack.pop() {
                 let op = self.ops[i as usize];
                 let base = offsets[i as usize] + start;
-                let b: [u64; BLOCK] = planes[base..base + BLOCK].try_into().expect("padded");
+                let b: &[u64; BLOCK] = planes[base..base + BLOCK].try_into().expect("padded");
                 let mut set = [0u64; BLOCK];
                 let mut clear = [0u64; BLOCK];
-                for k in 0..BLOCK {
-                    set[k] = m[k] & b[k];
-                    clear[k] = m[k] & !b[k];
-                }
-                for (target, mask) in [(op.on_clear, clear), (op.on_set, set)] {
+                let (any_set, any_clear) = kernel.split(&m, b, &mut set, &mut clear);
+                for (target, any, mask) in
+                    [(op.on_clear, any_clear, clear), (op.on_set, any_set, set)]
+                {
                     match target {
                         DROP => {}
                         DETECT => {
@@ -510,13 +526,10 @@ impl Program {
                                 acc[k] |= mask[k];
                             }
                         }
-                        t => {
-                            // Pixels reach the child only if the mask has
-                            // any: empty subtrees are never visited.
-                            if mask.iter().fold(0, |a, &w| a | w) != 0 {
-                                stack.push((t - SLOT0, mask));
-                            }
-                        }
+                        // Pixels reach the child only if the mask has any:
+                        // empty subtrees are never visited.
+                        t if any => stack.push((t - SLOT0, mask)),
+                        _ => {}
                     }
                 }
             }
@@ -529,39 +542,111 @@ impl Program {
 
 /// Sends the pixels `value` of a block to an op's outcome: nowhere, the
 /// detections, or the mask of an op of the next level, which joins that
-/// level's list of ops to visit only if some pixel arrived. `value` is a
-/// local array, so the compiler knows it aliases nothing and keeps it in
-/// vector registers.
+/// level's list of ops to visit only if some pixel arrived (`any`).
 #[inline(always)]
 fn emit(
     target: u32,
+    any: bool,
     next_lo: u32,
     next: &mut [[u64; BLOCK]],
     next_ops: &mut Vec<u32>,
     acc: &mut [u64; BLOCK],
-    value: [u64; BLOCK],
+    value: &[u64; BLOCK],
 ) {
     match target {
         DROP => {}
         DETECT => {
-            let mut a = *acc;
             for k in 0..BLOCK {
-                a[k] |= value[k];
+                acc[k] |= value[k];
             }
-            *acc = a;
         }
-        t => {
-            let mut any = 0;
-            for v in value {
-                any |= v;
+        t if any => {
+            next[(t - next_lo) as usize] = *value;
+            next_ops.push(t - SLOT0);
+        }
+        _ => {}
+    }
+}
+
+/// The block arithmetic of one op: `set = m & b`, `clear = m & !b`, and
+/// whether each has any pixel. Two implementations: plain arrays (which the
+/// compiler vectorises for the baseline vector unit) and AVX2 intrinsics,
+/// whose emptiness test is one `vptest` instead of a horizontal OR.
+trait Kernel: Copy {
+    fn split(
+        self,
+        m: &[u64; BLOCK],
+        b: &[u64; BLOCK],
+        set: &mut [u64; BLOCK],
+        clear: &mut [u64; BLOCK],
+    ) -> (bool, bool);
+}
+
+#[derive(Clone, Copy)]
+struct PortableKernel;
+
+impl Kernel for PortableKernel {
+    #[inline(always)]
+    fn split(
+        self,
+        m: &[u64; BLOCK],
+        b: &[u64; BLOCK],
+        set: &mut [u64; BLOCK],
+        clear: &mut [u64; BLOCK],
+    ) -> (bool, bool) {
+        let (mut any_set, mut any_clear) = (0, 0);
+        for k in 0..BLOCK {
+            set[k] = m[k] & b[k];
+            clear[k] = m[k] & !b[k];
+            any_set |= set[k];
+            any_clear |= clear[k];
+        }
+        (any_set != 0, any_clear != 0)
+    }
+}
+
+/// AVX2 arithmetic. Only [`Program::run_avx2`] makes one, after checking
+/// that the processor has AVX2.
+#[cfg(target_arch = "x86_64")]
+#[derive(Clone, Copy)]
+struct Avx2Kernel(());
+
+#[cfg(target_arch = "x86_64")]
+impl Kernel for Avx2Kernel {
+    #[inline(always)]
+    fn split(
+        self,
+        m: &[u64; BLOCK],
+        b: &[u64; BLOCK],
+        set: &mut [u64; BLOCK],
+        clear: &mut [u64; BLOCK],
+    ) -> (bool, bool) {
+        use std::arch::x86_64::*;
+        // SAFETY: an Avx2Kernel exists only where AVX2 was detected, and
+        // every pointer covers 4 of the block's words (BLOCK is a multiple
+        // of 4); unaligned loads and stores are used.
+        unsafe {
+            let mut s_any = _mm256_setzero_si256();
+            let mut c_any = _mm256_setzero_si256();
+            for q in 0..BLOCK / 4 {
+                let mv = _mm256_loadu_si256(m.as_ptr().add(4 * q) as *const __m256i);
+                let bv = _mm256_loadu_si256(b.as_ptr().add(4 * q) as *const __m256i);
+                let sv = _mm256_and_si256(mv, bv);
+                let cv = _mm256_andnot_si256(bv, mv);
+                _mm256_storeu_si256(set.as_mut_ptr().add(4 * q) as *mut __m256i, sv);
+                _mm256_storeu_si256(clear.as_mut_ptr().add(4 * q) as *mut __m256i, cv);
+                s_any = _mm256_or_si256(s_any, sv);
+                c_any = _mm256_or_si256(c_any, cv);
             }
-            if any != 0 {
-                next[(t - next_lo) as usize] = value;
-                next_ops.push(t - SLOT0);
-            }
+            (
+                _mm256_testz_si256(s_any, s_any) == 0,
+                _mm256_testz_si256(c_any, c_any) == 0,
+            )
         }
     }
 }
+
+const _: () = assert!(BLOCK % 4 == 0, "AVX2 kernel handles 4 words at a time");
 
 /// `dst[x] = src[x + dx]` for one packed row (bits outside the row read 0).
 fn shift_row(src: &[u64], dx: i8, dst: &mut [u64]) {
