@@ -24,7 +24,7 @@ use treeline::frame::BitFrame;
 use treeline::group::{self, GroupParams};
 use treeline::learn::{self, TrainParams};
 use treeline::model::{Leaf, Node, Tree};
-use treeline::record::{self, FrameRecord, ObjectRecord};
+use treeline::record::FrameRecord;
 use treeline::synth::{self, LoomParams};
 use treeline::window::Window;
 
@@ -190,16 +190,16 @@ fn main() {
         let t = Instant::now();
         let f = codec::decode(&bytes, &limits).expect("decodes");
         let r = compile::run(&program, &model.tree, &settings, &f, &mut scratch);
-        let rec = FrameRecord {
-            time: record::rfc3339(std::time::SystemTime::now()),
-            frame: "bench.pbm".into(),
-            sha256: record::sha256_hex(&bytes),
-            width: f.width() as u32,
-            height: f.height() as u32,
-            model_version: model.model_version,
-            millis: t.elapsed().as_secs_f64() * 1e3,
-            objects: r.objects.iter().map(ObjectRecord::from_object).collect(),
-        };
+        let rec = FrameRecord::new(
+            std::time::SystemTime::now(),
+            "bench.pbm",
+            &bytes,
+            f.width(),
+            f.height(),
+            model.model_version,
+            t.elapsed().as_secs_f64() * 1e3,
+            &r.objects,
+        );
         std::hint::black_box(serde_json::to_string(&rec).expect("serialises"));
     });
     println!(

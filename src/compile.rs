@@ -42,7 +42,6 @@
 
 use crate::evaluate::{FrameResult, Settings};
 use crate::frame::BitFrame;
-use crate::group;
 use crate::model::{Node, Tree};
 use crate::window::Window;
 
@@ -380,6 +379,17 @@ impl Program {
         self.run_body(PortableKernel, frame, s, out)
     }
 
+    /// Per op, where its tested plane row starts relative to a block.
+    fn fill_offsets(&self, offsets: &mut Vec<usize>, plane_words: usize, stride: usize) {
+        let r = self.window.radius() as isize;
+        offsets.clear();
+        offsets.extend(
+            self.ops
+                .iter()
+                .map(|op| op.plane as usize * plane_words + (r + op.dy as isize) as usize * stride),
+        );
+    }
+
     /// Whether the level sweep evaluates this program (small programs, whose
     /// level buffers stay in cache) rather than the depth-first walk, whose
     /// stack stays small whatever the tree (large programs; measured on the
@@ -423,12 +433,7 @@ impl Program {
             next_ops,
             ..
         } = s;
-        offsets.clear();
-        offsets.extend(
-            self.ops
-                .iter()
-                .map(|op| op.plane as usize * plane_words + (r + op.dy as isize) as usize * stride),
-        );
+        self.fill_offsets(offsets, plane_words, stride);
         let detected = out.words_mut();
         let mut start = 0;
         while start < total {
@@ -495,12 +500,7 @@ impl Program {
             offsets,
             ..
         } = s;
-        offsets.clear();
-        offsets.extend(
-            self.ops
-                .iter()
-                .map(|op| op.plane as usize * plane_words + (r + op.dy as isize) as usize * stride),
-        );
+        self.fill_offsets(offsets, plane_words, stride);
         let detected = out.words_mut();
         let mut start = 0;
         while start < total {
@@ -680,15 +680,7 @@ pub fn run(
     scratch: &mut Scratch,
 ) -> FrameResult {
     let raw = program.detect(frame, scratch);
-    let objects = group::group(&raw, settings.grouping, |x, y| {
-        crate::evaluate::score_at(tree, frame, x, y)
-    });
-    let mask = if settings.grouping.min_area > 1 {
-        group::kept_mask(&raw, settings.grouping)
-    } else {
-        raw
-    };
-    FrameResult { mask, objects }
+    crate::evaluate::finish(tree, settings, frame, raw)
 }
 
 #[cfg(test)]

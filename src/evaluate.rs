@@ -68,6 +68,13 @@ pub fn score_at(tree: &Tree, frame: &BitFrame, x: usize, y: usize) -> f64 {
 /// Detection and grouping of one frame.
 pub fn run(tree: &Tree, settings: &Settings, frame: &BitFrame) -> FrameResult {
     let raw = detect(tree, settings.threshold, frame);
+    finish(tree, settings, frame, raw)
+}
+
+/// Groups a raw detection mask (from any evaluator) into the frame's
+/// result: objects scored by the walker on the detected pixels only, and
+/// the mask of the pixels of the objects `min_area` kept.
+pub fn finish(tree: &Tree, settings: &Settings, frame: &BitFrame, raw: BitFrame) -> FrameResult {
     let objects = group::group(&raw, settings.grouping, |x, y| score_at(tree, frame, x, y));
     let mask = if settings.grouping.min_area > 1 {
         group::kept_mask(&raw, settings.grouping)

@@ -41,6 +41,33 @@ pub struct FrameRecord {
     pub objects: Vec<ObjectRecord>,
 }
 
+impl FrameRecord {
+    /// The record of one processed frame: `bytes` is the frame file's
+    /// content (hashed), `objects` what detection found.
+    #[allow(clippy::too_many_arguments)]
+    pub fn new(
+        time: std::time::SystemTime,
+        frame: &str,
+        bytes: &[u8],
+        width: usize,
+        height: usize,
+        model_version: u64,
+        millis: f64,
+        objects: &[Object],
+    ) -> FrameRecord {
+        FrameRecord {
+            time: rfc3339(time),
+            frame: frame.to_string(),
+            sha256: sha256_hex(bytes),
+            width: width as u32,
+            height: height as u32,
+            model_version,
+            millis: (millis * 1000.0).round() / 1000.0,
+            objects: objects.iter().map(ObjectRecord::from_object).collect(),
+        }
+    }
+}
+
 impl ObjectRecord {
     pub fn from_object(o: &Object) -> ObjectRecord {
         let r2 = |v: f64| (v * 100.0).round() / 100.0;

@@ -18,7 +18,7 @@ use treeline::compile::{self, Backend, Program, Scratch};
 use treeline::evaluate::{self, Settings};
 use treeline::frame::BitFrame;
 use treeline::group;
-use treeline::record::{self, FrameRecord, ObjectRecord};
+use treeline::record::FrameRecord;
 use treeline::synth::{self, LoomParams};
 
 #[derive(clap::Args, Debug)]
@@ -164,16 +164,16 @@ pub fn bench(a: BenchArgs) -> Result<i32> {
         let t = Instant::now();
         let f = codec::decode(&bytes, &limits).expect("own encoding decodes");
         let r = compile::run(&program, &m.tree, &settings, &f, &mut scratch);
-        let rec = FrameRecord {
-            time: record::rfc3339(std::time::SystemTime::now()),
-            frame: "bench.pbm".into(),
-            sha256: record::sha256_hex(&bytes),
-            width: f.width() as u32,
-            height: f.height() as u32,
-            model_version: m.model_version,
-            millis: t.elapsed().as_secs_f64() * 1000.0,
-            objects: r.objects.iter().map(ObjectRecord::from_object).collect(),
-        };
+        let rec = FrameRecord::new(
+            std::time::SystemTime::now(),
+            "bench.pbm",
+            &bytes,
+            f.width(),
+            f.height(),
+            m.model_version,
+            t.elapsed().as_secs_f64() * 1000.0,
+            &r.objects,
+        );
         std::hint::black_box(serde_json::to_string(&rec).expect("record serialises"));
     });
     let report = Report {

@@ -37,7 +37,7 @@ use treeline::evaluate::Settings;
 use treeline::group::GroupParams;
 use treeline::learn::{self, ClassWeight, Criterion, Stage, TrainParams};
 use treeline::model::{Model, Node};
-use treeline::record::{self, FrameRecord, ObjectRecord};
+use treeline::record::FrameRecord;
 use treeline::score::{self, Confusion, Scores};
 use treeline::synth::{self, LoomParams};
 use treeline::window::Window;
@@ -547,23 +547,20 @@ fn scan(a: ScanArgs) -> Result<i32> {
         };
         let result = compile::run(&program, &m.tree, &settings, &frame, &mut scratch);
         let millis = t0.elapsed().as_secs_f64() * 1000.0;
-        let rec = FrameRecord {
-            time: record::rfc3339(SystemTime::now()),
-            frame: path
-                .file_name()
-                .map(|n| n.to_string_lossy().into_owned())
-                .unwrap_or_default(),
-            sha256: record::sha256_hex(&bytes),
-            width: frame.width() as u32,
-            height: frame.height() as u32,
-            model_version: m.model_version,
-            millis: (millis * 1000.0).round() / 1000.0,
-            objects: result
-                .objects
-                .iter()
-                .map(ObjectRecord::from_object)
-                .collect(),
-        };
+        let name = path
+            .file_name()
+            .map(|n| n.to_string_lossy().into_owned())
+            .unwrap_or_default();
+        let rec = FrameRecord::new(
+            SystemTime::now(),
+            &name,
+            &bytes,
+            frame.width(),
+            frame.height(),
+            m.model_version,
+            millis,
+            &result.objects,
+        );
         if a.json {
             out!("{}", serde_json::to_string(&rec)?);
         } else {
