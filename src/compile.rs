@@ -399,20 +399,11 @@ impl Program {
     }
 
     /// The evaluation loop, inlined into each backend so each is compiled
-    /// with its own target features.
+    /// with its own target features: the per-op offsets once per frame,
+    /// then every block of the frame from its root mask (the block's valid
+    /// pixels) to its detections, by one of the two strategies.
     #[inline(always)]
-    fn run_body<K: Kernel>(&self, k: K, frame: &BitFrame, s: &mut Scratch, out: &mut BitFrame) {
-        if self.sweeps() {
-            self.sweep_body(k, frame, s, out)
-        } else {
-            self.walk_body(k, frame, s, out)
-        }
-    }
-
-    /// Level by level over the listed (reached) ops: each reads its mask
-    /// from the current buffer and writes its children's into the next.
-    #[inline(always)]
-    fn sweep_body<K: Kernel>(
+    fn run_body<K: Kernel>(
         &self,
         kernel: K,
         frame: &BitFrame,
@@ -420,123 +411,129 @@ impl Program {
         out: &mut BitFrame,
     ) {
         let stride = frame.stride();
-        let r = self.window.radius() as isize;
+        let plane_words = (frame.height() + 2 * self.window.radius() as usize) * stride + BLOCK;
         let total = stride * frame.height();
-        let plane_words = (frame.height() + 2 * r as usize) * stride + BLOCK;
         let Scratch {
             planes,
             valid,
+            stack,
             cur,
             next,
             offsets,
             cur_ops,
             next_ops,
-            ..
         } = s;
         self.fill_offsets(offsets, plane_words, stride);
+        let sweeps = self.sweeps();
         let detected = out.words_mut();
         let mut start = 0;
         while start < total {
             let len = BLOCK.min(total - start);
-            cur[0] = valid[start..start + BLOCK].try_into().expect("padded");
-            let mut acc = [0u64; BLOCK];
-            cur_ops.clear();
-            cur_ops.push(0);
-            for l in 0..self.levels {
-                if cur_ops.is_empty() {
-                    break;
-                }
-                let (lo, hi) = (self.level_starts[l], self.level_starts[l + 1]);
-                let next_lo = hi as u32 + SLOT0;
-                next_ops.clear();
-                for &i in cur_ops.iter() {
-                    let i = i as usize;
-                    let op = self.ops[i];
-                    let offset = offsets[i];
-                    let m = &cur[i - lo];
-                    let b: &[u64; BLOCK] = planes[offset + start..offset + start + BLOCK]
-                        .try_into()
-                        .expect("padded");
-                    let mut set = [0u64; BLOCK];
-                    let mut clear = [0u64; BLOCK];
-                    let (any_set, any_clear) = kernel.split(m, b, &mut set, &mut clear);
-                    emit(op.on_set, any_set, next_lo, next, next_ops, &mut acc, &set);
-                    emit(
-                        op.on_clear,
-                        any_clear,
-                        next_lo,
-                        next,
-                        next_ops,
-                        &mut acc,
-                        &clear,
-                    );
-                }
-                std::mem::swap(cur, next);
-                std::mem::swap(cur_ops, next_ops);
-            }
+            let root: [u64; BLOCK] = valid[start..start + BLOCK].try_into().expect("padded");
+            // Plane words of this block: `block(offset)` is the tested row.
+            let block = |offset: usize| -> &[u64; BLOCK] {
+                planes[offset + start..offset + start + BLOCK]
+                    .try_into()
+                    .expect("padded")
+            };
+            let acc = if sweeps {
+                self.sweep_block(kernel, root, &block, offsets, cur, next, cur_ops, next_ops)
+            } else {
+                self.walk_block(kernel, root, &block, offsets, stack)
+            };
+            // The root mask excluded padding bits, so `acc` has none.
             detected[start..start + len].copy_from_slice(&acc[..len]);
             start += len;
         }
     }
 
-    /// Depth first over live ops only: an op is visited for a block only if
-    /// some pixel of the block reaches it.
+    /// One block, level by level over the listed (reached) ops: each reads
+    /// its mask from the current buffer and writes its children's into the
+    /// next.
+    #[allow(clippy::too_many_arguments)]
     #[inline(always)]
-    fn walk_body<K: Kernel>(
+    fn sweep_block<'p, K: Kernel>(
         &self,
         kernel: K,
-        frame: &BitFrame,
-        s: &mut Scratch,
-        out: &mut BitFrame,
-    ) {
-        let stride = frame.stride();
-        let r = self.window.radius() as isize;
-        let total = stride * frame.height();
-        let plane_words = (frame.height() + 2 * r as usize) * stride + BLOCK;
-        let Scratch {
-            planes,
-            valid,
-            stack,
-            offsets,
-            ..
-        } = s;
-        self.fill_offsets(offsets, plane_words, stride);
-        let detected = out.words_mut();
-        let mut start = 0;
-        while start < total {
-            let len = BLOCK.min(total - start);
-            // Root: every valid pixel of the block.
-            let root: [u64; BLOCK] = valid[start..start + BLOCK].try_into().expect("padded");
-            let mut acc = [0u64; BLOCK];
-            stack.push((0, root));
-            while let Some((i, m)) = stack.pop() {
-                let op = self.ops[i as usize];
-                let base = offsets[i as usize] + start;
-                let b: &[u64; BLOCK] = planes[base..base + BLOCK].try_into().expect("padded");
+        root: [u64; BLOCK],
+        block: &impl Fn(usize) -> &'p [u64; BLOCK],
+        offsets: &[usize],
+        cur: &mut Vec<[u64; BLOCK]>,
+        next: &mut Vec<[u64; BLOCK]>,
+        cur_ops: &mut Vec<u32>,
+        next_ops: &mut Vec<u32>,
+    ) -> [u64; BLOCK] {
+        let mut acc = [0u64; BLOCK];
+        cur[0] = root;
+        cur_ops.clear();
+        cur_ops.push(0);
+        for l in 0..self.levels {
+            if cur_ops.is_empty() {
+                break;
+            }
+            let (lo, hi) = (self.level_starts[l], self.level_starts[l + 1]);
+            let next_lo = hi as u32 + SLOT0;
+            next_ops.clear();
+            for &i in cur_ops.iter() {
+                let i = i as usize;
+                let op = self.ops[i];
                 let mut set = [0u64; BLOCK];
                 let mut clear = [0u64; BLOCK];
-                let (any_set, any_clear) = kernel.split(&m, b, &mut set, &mut clear);
-                for (target, any, mask) in
-                    [(op.on_clear, any_clear, clear), (op.on_set, any_set, set)]
-                {
-                    match target {
-                        DROP => {}
-                        DETECT => {
-                            for k in 0..BLOCK {
-                                acc[k] |= mask[k];
-                            }
+                let (any_set, any_clear) =
+                    kernel.split(&cur[i - lo], block(offsets[i]), &mut set, &mut clear);
+                emit(op.on_set, any_set, next_lo, next, next_ops, &mut acc, &set);
+                emit(
+                    op.on_clear,
+                    any_clear,
+                    next_lo,
+                    next,
+                    next_ops,
+                    &mut acc,
+                    &clear,
+                );
+            }
+            std::mem::swap(cur, next);
+            std::mem::swap(cur_ops, next_ops);
+        }
+        acc
+    }
+
+    /// One block, depth first over live ops only: an op is visited only if
+    /// some pixel of the block reaches it.
+    #[inline(always)]
+    fn walk_block<'p, K: Kernel>(
+        &self,
+        kernel: K,
+        root: [u64; BLOCK],
+        block: &impl Fn(usize) -> &'p [u64; BLOCK],
+        offsets: &[usize],
+        stack: &mut Vec<(u32, [u64; BLOCK])>,
+    ) -> [u64; BLOCK] {
+        let mut acc = [0u64; BLOCK];
+        stack.push((0, root));
+        while let Some((i, m)) = stack.pop() {
+            let op = self.ops[i as usize];
+            let mut set = [0u64; BLOCK];
+            let mut clear = [0u64; BLOCK];
+            let (any_set, any_clear) =
+                kernel.split(&m, block(offsets[i as usize]), &mut set, &mut clear);
+            for (target, any, mask) in [(op.on_clear, any_clear, clear), (op.on_set, any_set, set)]
+            {
+                match target {
+                    DROP => {}
+                    DETECT => {
+                        for k in 0..BLOCK {
+                            acc[k] |= mask[k];
                         }
-                        // Pixels reach the child only if the mask has any:
-                        // empty subtrees are never visited.
-                        t if any => stack.push((t - SLOT0, mask)),
-                        _ => {}
                     }
+                    // Pixels reach the child only if the mask has any:
+                    // empty subtrees are never visited.
+                    t if any => stack.push((t - SLOT0, mask)),
+                    _ => {}
                 }
             }
-            // The root mask excluded padding bits, so `acc` has none.
-            detected[start..start + len].copy_from_slice(&acc[..len]);
-            start += len;
         }
+        acc
     }
 }
 
@@ -646,7 +643,7 @@ impl Kernel for Avx2Kernel {
     }
 }
 
-const _: () = assert!(BLOCK % 4 == 0, "AVX2 kernel handles 4 words at a time");
+const _: () = assert!(BLOCK.is_multiple_of(4), "AVX2 kernel handles 4 words at a time");
 
 /// `dst[x] = src[x + dx]` for one packed row (bits outside the row read 0).
 fn shift_row(src: &[u64], dx: i8, dst: &mut [u64]) {

@@ -216,7 +216,7 @@ fn write_p1(f: &BitFrame, style: usize) -> Vec<u8> {
             match style % 3 {
                 0 => s.push(' '),
                 1 => {}
-                _ => s.push_str(if n % 7 == 0 { "\r\n" } else { "\t" }),
+                _ => s.push_str(if n.is_multiple_of(7) { "\r\n" } else { "\t" }),
             }
         }
         if style % 3 != 1 {
