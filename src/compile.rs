@@ -643,7 +643,10 @@ impl Kernel for Avx2Kernel {
     }
 }
 
-const _: () = assert!(BLOCK.is_multiple_of(4), "AVX2 kernel handles 4 words at a time");
+const _: () = assert!(
+    BLOCK.is_multiple_of(4),
+    "AVX2 kernel handles 4 words at a time"
+);
 
 /// `dst[x] = src[x + dx]` for one packed row (bits outside the row read 0).
 fn shift_row(src: &[u64], dx: i8, dst: &mut [u64]) {
