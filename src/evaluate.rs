@@ -75,12 +75,8 @@ pub fn run(tree: &Tree, settings: &Settings, frame: &BitFrame) -> FrameResult {
 /// result: objects scored by the walker on the detected pixels only, and
 /// the mask of the pixels of the objects `min_area` kept.
 pub fn finish(tree: &Tree, settings: &Settings, frame: &BitFrame, raw: BitFrame) -> FrameResult {
-    let objects = group::group(&raw, settings.grouping, |x, y| score_at(tree, frame, x, y));
-    let mask = if settings.grouping.min_area > 1 {
-        group::kept_mask(&raw, settings.grouping)
-    } else {
-        raw
-    };
+    let (objects, mask) =
+        group::group_and_keep(&raw, settings.grouping, |x, y| score_at(tree, frame, x, y));
     FrameResult { mask, objects }
 }
 

@@ -232,9 +232,59 @@ pub fn label(mask: &BitFrame, merge_distance: u32) -> (Vec<Run>, Vec<u32>, usize
 pub fn group(
     mask: &BitFrame,
     params: GroupParams,
-    mut score: impl FnMut(usize, usize) -> f64,
+    score: impl FnMut(usize, usize) -> f64,
 ) -> Vec<Object> {
     let (runs, comp, n) = label(mask, params.merge_distance);
+    objects_of(&runs, &comp, n, params.min_area, score)
+}
+
+/// The objects of a mask and the mask of their pixels (what `min_area`
+/// kept), from one labelling.
+pub fn group_and_keep(
+    mask: &BitFrame,
+    params: GroupParams,
+    score: impl FnMut(usize, usize) -> f64,
+) -> (Vec<Object>, BitFrame) {
+    let (runs, comp, n) = label(mask, params.merge_distance);
+    let objects = objects_of(&runs, &comp, n, params.min_area, score);
+    let kept = if params.min_area > 1 {
+        kept_of(
+            &runs,
+            &comp,
+            n,
+            params.min_area,
+            mask.width(),
+            mask.height(),
+        )
+    } else {
+        mask.clone()
+    };
+    (objects, kept)
+}
+
+/// The pixels of the objects that survive `min_area`: what a frame's
+/// detections are once grouping has dropped the small ones.
+pub fn kept_mask(mask: &BitFrame, params: GroupParams) -> BitFrame {
+    let (runs, comp, n) = label(mask, params.merge_distance);
+    kept_of(
+        &runs,
+        &comp,
+        n,
+        params.min_area,
+        mask.width(),
+        mask.height(),
+    )
+}
+
+/// Objects of at least `min_area` pixels from a labelling (as [`label`]
+/// returns it), ids 1..n in raster order.
+pub fn objects_of(
+    runs: &[Run],
+    comp: &[u32],
+    n: usize,
+    min_area: u32,
+    mut score: impl FnMut(usize, usize) -> f64,
+) -> Vec<Object> {
     struct Acc {
         bbox: BBox,
         sx: u64,
@@ -243,7 +293,7 @@ pub fn group(
         score: f64,
     }
     let mut acc: Vec<Acc> = Vec::with_capacity(n);
-    for (r, &c) in runs.iter().zip(&comp) {
+    for (r, &c) in runs.iter().zip(comp) {
         if c as usize == acc.len() {
             acc.push(Acc {
                 bbox: BBox {
@@ -272,7 +322,7 @@ pub fn group(
         }
     }
     acc.into_iter()
-        .filter(|a| a.area >= params.min_area.max(1) as u64)
+        .filter(|a| a.area >= min_area.max(1) as u64)
         .enumerate()
         .map(|(i, a)| Object {
             id: i as u32 + 1,
@@ -284,17 +334,15 @@ pub fn group(
         .collect()
 }
 
-/// The pixels of the objects that survive `min_area`: what a frame's
-/// detections are once grouping has dropped the small ones.
-pub fn kept_mask(mask: &BitFrame, params: GroupParams) -> BitFrame {
-    let (runs, comp, n) = label(mask, params.merge_distance);
+/// The mask of the components of at least `min_area` pixels.
+fn kept_of(runs: &[Run], comp: &[u32], n: usize, min_area: u32, w: usize, h: usize) -> BitFrame {
     let mut area = vec![0u64; n];
-    for (r, &c) in runs.iter().zip(&comp) {
+    for (r, &c) in runs.iter().zip(comp) {
         area[c as usize] += (r.x1 - r.x0 + 1) as u64;
     }
-    let mut out = BitFrame::new(mask.width(), mask.height());
-    for (r, &c) in runs.iter().zip(&comp) {
-        if area[c as usize] >= params.min_area.max(1) as u64 {
+    let mut out = BitFrame::new(w, h);
+    for (r, &c) in runs.iter().zip(comp) {
+        if area[c as usize] >= min_area.max(1) as u64 {
             let row = out.row_mut(r.y as usize);
             for x in r.x0..=r.x1 {
                 row[x as usize / 64] |= 1 << (x % 64);

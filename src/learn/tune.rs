@@ -280,14 +280,10 @@ fn try_alpha(
                             hits[c as usize] += (trow[x as usize / 64] >> (x % 64)) & 1;
                         }
                     }
-                    let objs = group::group(
-                        m,
-                        GroupParams {
-                            min_area: 1,
-                            merge_distance: md,
-                        },
-                        |x, y| scores[eff[f.leaf[y * f.width + x] as usize] as usize],
-                    );
+                    // With min_area 1 object k is component k, as `hits`.
+                    let objs = group::objects_of(&runs, &comp, n, 1, |x, y| {
+                        scores[eff[f.leaf[y * f.width + x] as usize] as usize]
+                    });
                     (objs, hits)
                 })
                 .collect();
