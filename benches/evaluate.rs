@@ -103,12 +103,12 @@ fn evaluators(name: &str, tree: &Tree, threshold: f64, frame: &BitFrame, runs: u
     let walker = time(3, || walked = evaluate::detect(tree, threshold, frame));
     assert_eq!(walked, out, "compiled and walker disagree");
     println!(
-        "{name}: {} nodes -> {} ops ({} levels, {}); {:.0} Mpx/s compiled ({}), {:.0} Mpx/s portable, \
+        "{name}: {} nodes -> {} ops ({} levels; walked, selected: {:?}); {:.0} Mpx/s compiled ({}), {:.0} Mpx/s portable, \
          {:.1} Mpx/s walker; compiled / walker = {:.1}x",
         tree.nodes().len(),
         program.ops(),
         program.depth(),
-        if program.sweeps() { "level sweep" } else { "live-op walk" },
+        program.strategy(),
         mpx / compiled,
         best.name(),
         mpx / portable,

@@ -2,38 +2,58 @@
 //! word-parallel bit program.
 //!
 //! A tree whose tests are single pixels of a binary frame can be evaluated
-//! for 64 pixels at once per machine word. Every node has a *mask*: the
-//! pixels that reach it. The root's mask is every pixel; a split's children
-//! get `mask AND plane` and `mask AND NOT plane`, where the plane is the
-//! frame shifted by the tested offset; the detection mask is the OR of the
-//! masks that reach leaves scoring at or above the threshold.
+//! for 64 pixels at once per machine word. Two formulations are used, and
+//! the program mixes them subtree by subtree:
+//!
+//! - **Walk** (top down, with skipping). Every op has a *mask*: the pixels
+//!   that reach it. A split's children get `mask AND plane` and
+//!   `mask AND NOT plane`, where the plane is the frame shifted by the
+//!   tested offset; a child is visited only if its mask has a pixel. The
+//!   cost follows the paths the pixels take, not the size of the tree, but
+//!   every visit pays for the masks it stores and the emptiness tests.
+//! - **Select** (bottom up, no skipping). A subtree is a Boolean function of
+//!   the planes: `value = (plane AND value_if_set) OR (NOT plane AND
+//!   value_if_clear)`, with `Drop` = all zeros and `Detect` = all ones.
+//!   Evaluated in post-order over a small stack of values, it has no
+//!   data-dependent branches and stores one value per op: about half the
+//!   cost of a walk visit per op (a quarter when the whole program is one
+//!   select program), but it pays for every op of the subtree.
+//!
+//! [`Program::compile`] decides per op which one evaluates its subtree, from
+//! a cost model over the tree's own training counts (the share of training
+//! pixels reaching each node gives the chance that a block of pixels
+//! reaches it): a subtree becomes a *select root* when selecting it costs
+//! less than the expected walk below it. Small, dense trees thus become one
+//! straight select program; large trees with rare deep paths are walked at
+//! the top and selected near the leaves.
 //!
 //! [`Program`] invariants (established by [`Program::compile`], relied on by
 //! the evaluator):
 //! - subtrees whose leaves all fall on one side of the threshold are single
 //!   decisions: an op's outcome is `Drop` (no detection), `Detect`, or a
 //!   later op, never a leaf that needs its score;
-//! - ops are in breadth-first order, so every op's children come after it
-//!   and each level's ops are contiguous (`level_starts`); each op is the
-//!   child of exactly one outcome of exactly one op (the root excepted);
+//! - ops are in breadth-first order (op 0 is the root), so every op's
+//!   children come after it; each op is the child of exactly one outcome of
+//!   exactly one op (the root excepted);
+//! - `select` lists every op once in post-order, the larger child subtree
+//!   first: the subtree of op `i` is the contiguous range `select_range[i]`,
+//!   whose last instruction is `i` itself and writes the subtree's value;
+//!   instruction slots stay below `slots` (about log2 of the ops);
+//! - if op 0 is a select root, the whole program is one select program.
 //! - `planes` lists the distinct horizontal offsets the program uses, and
 //!   every op's `plane` indexes it; every op's `dy` is within the window.
 //!
 //! Evaluation pads the frame with zero rows above and below and builds, once
 //! per frame, one horizontally shifted copy per distinct `dx`, all with the
-//! frame's row stride (plus a block of zero words at the end). Because every
+//! frame's row stride (plus a chunk of zero words at the end). Because every
 //! copy shares that stride, the test of offset `(dx, dy)` for word `i` of the
 //! frame is word `i + dy * stride` of copy `dx`: one aligned whole-block
-//! load, whatever the row. The program then runs over blocks of [`BLOCK`]
-//! consecutive words in one of two ways:
-//! - **level sweep** (programs of at most [`SWEEP_MAX_OPS`] ops): level by
-//!   level, two mask buffers alternate; the ops of a level that some pixel
-//!   of the block reaches are listed, each reads its mask from the current
-//!   buffer and writes its children's into the next (listing those that
-//!   receive pixels). Best when the masks of a whole level fit in cache.
-//! - **live-op walk** (larger programs): depth first from the root, an op is
-//!   visited only when some pixel of the block reaches it, so the cost
-//!   follows the paths the block's pixels take, not the size of the tree.
+//! load, whatever the row. A walked program runs over blocks of [`BLOCK`]
+//! consecutive words, level by level: each level's pending (op, mask) pairs
+//! are visited in turn, and a visit writes both child masks to fixed slots
+//! and lists the ones that received pixels by advancing a counter, without
+//! branching, so consecutive visits do not wait on each other. A whole
+//! select program runs over chunks of [`WIDE`] words instead.
 //!
 //! Scores are not computed here: detections are rare, so the caller finds
 //! the leaf (and score) of detected pixels with the reference walker.
@@ -52,8 +72,23 @@ pub const BLOCK: usize = 16;
 const DROP: u32 = 0;
 const DETECT: u32 = 1;
 const SLOT0: u32 = 2;
-/// Programs with at most this many ops are evaluated by the level sweep.
-pub const SWEEP_MAX_OPS: usize = 1024;
+
+/// Cost model, in nanoseconds per block of [`BLOCK`] words as measured on
+/// this project's build machine (`cargo bench --bench evaluate`): a walk
+/// visit stores two child masks and tests both for emptiness; a select
+/// instruction within a walked block waits on the previous instruction's
+/// result; a whole-program select runs each instruction over [`WIDE`]
+/// words at once, which hides that wait.
+const VISIT_COST: f64 = 3.5;
+const SELECT_COST: f64 = 2.0;
+const WIDE_SELECT_COST: f64 = 1.0;
+/// Neighbouring pixels mostly take the same paths: a block of `BLOCK * 64`
+/// pixels reaches about as many ops as `BLOCK * 64 / CORRELATION`
+/// independent pixels would (measured on the demo texture with the demo
+/// model: 453 ops reached per block, 425 predicted with this factor).
+const CORRELATION: f64 = 4.0;
+/// Extra cost of entering a selected subtree (the final `acc |= m & v`).
+const SELECT_ROOT_COST: f64 = 1.0;
 
 /// One split of the compiled program.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
@@ -69,6 +104,53 @@ struct Op {
     on_clear: u32,
 }
 
+/// One select instruction:
+/// `slot[out] = (plane AND value_if_set) OR (NOT plane AND value_if_clear)`,
+/// where each value is a constant (`Drop` = zeros, `Detect` = ones) or an
+/// earlier result in a slot. The constants are folded into `form`, so an
+/// instruction loads only the slots it needs.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+struct Select {
+    /// The op whose plane is tested.
+    op: u32,
+    form: Form,
+    set: u16,
+    clear: u16,
+    out: u16,
+}
+
+/// The shape of a select instruction once its constants are folded in
+/// (`b` the plane, `s` and `c` the set and clear slots).
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+enum Form {
+    /// Set -> Detect, clear -> Drop: `b`.
+    Plane,
+    /// Set -> Drop, clear -> Detect: `!b`.
+    NotPlane,
+    /// Clear -> Drop: `b & s`.
+    SetOnly,
+    /// Clear -> Detect: `s | !b`.
+    SetOrClear,
+    /// Set -> Drop: `!b & c`.
+    ClearOnly,
+    /// Set -> Detect: `b | c`.
+    PlaneOrClear,
+    /// Both subtrees: `(b & s) | (!b & c)`.
+    Both,
+}
+
+/// How [`Program::compile_with`] splits the work between walking and
+/// selecting. The output is the same bit for bit; only the speed differs.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Plan {
+    /// Per op, whichever the cost model expects to be cheaper.
+    Auto,
+    /// Walk every op (no select roots).
+    Walk,
+    /// One select program for the whole tree.
+    Select,
+}
+
 /// An immutable, shareable bit program for one tree and threshold.
 #[derive(Clone, Debug, PartialEq)]
 pub struct Program {
@@ -79,11 +161,16 @@ pub struct Program {
     ops: Vec<Op>,
     /// Levels of the program (longest chain of ops).
     levels: usize,
-    /// Index of the first op of each level, plus `ops.len()` at the end:
-    /// breadth-first order puts each level's ops together.
-    level_starts: Vec<usize>,
     /// Most ops on one level.
     widest: usize,
+    /// Every op once, in post-order, as select instructions.
+    select: Vec<Select>,
+    /// Per op: the first and last index in `select` of its subtree.
+    select_range: Vec<(u32, u32)>,
+    /// Per op: whether the walk evaluates its subtree by select.
+    select_root: Vec<bool>,
+    /// Select value slots in use.
+    slots: usize,
     /// When the whole tree is one decision: the root's outcome.
     constant: Option<bool>,
 }
@@ -94,7 +181,7 @@ pub enum Backend {
     /// Plain code for any 64-bit machine (the compiler may still use the
     /// baseline vector unit: SSE2 on x86-64, NEON on 64-bit ARM).
     Portable,
-    /// The same code compiled for AVX2 (x86-64 only, chosen at run time).
+    /// The same loop with AVX2 arithmetic (x86-64 only, chosen at run time).
     Avx2,
 }
 
@@ -143,44 +230,100 @@ impl Backend {
     }
 }
 
+/// What the evaluation loop needs of one op, resolved for a frame's layout.
+#[derive(Clone, Copy, Debug, Default)]
+struct Step {
+    /// Where the op's tested plane row starts, relative to a block.
+    offset: u32,
+    /// The ops its set and clear pixels go to (meaningful when pushed).
+    next: [u32; 2],
+    /// [`PUSH_SET`] `<< k`: outcome `k` (0 set, 1 clear) is an op to push;
+    /// [`DETECT_SET`] `<< k`: it is `Detect`; [`SELECTS`]: this op's
+    /// subtree is evaluated by select.
+    flags: u8,
+}
+
+const PUSH_SET: u8 = 1;
+const DETECT_SET: u8 = 4;
+const SELECTS: u8 = 16;
+
+/// `W` words of pixel bits, aligned for whole-vector access.
+#[derive(Clone, Copy, Debug)]
+#[repr(C, align(64))]
+struct Lanes<const W: usize>([u64; W]);
+
+impl<const W: usize> Default for Lanes<W> {
+    fn default() -> Self {
+        Lanes([0; W])
+    }
+}
+
+/// One block's pixel bits.
+type Mask = Lanes<BLOCK>;
+
+/// Words per chunk when the whole program is one select program: several
+/// blocks per instruction, so the chain from one instruction's result to
+/// the next instruction's input overlaps with independent work.
+pub const WIDE: usize = 64;
+
+/// A level's pending ops and the masks of the pixels that reach them. The
+/// visit of entry `e` writes its two children's masks to slots `2e` and
+/// `2e + 1` of the next level, whatever their fate, and lists only those
+/// that are pending: the big stores never wait for the list's length.
+#[derive(Default, Debug)]
+struct Pending {
+    /// (op, index of its mask in `masks`).
+    list: Vec<(u32, u32)>,
+    masks: Vec<Mask>,
+}
+
 /// Per-worker buffers, reused from frame to frame: after the first frame
 /// of a size, evaluation allocates nothing.
 #[derive(Default, Debug)]
 pub struct Scratch {
     planes: Vec<u64>,
     valid: Vec<u64>,
-    /// Depth-first work list of (op, mask of the pixels that reach it).
-    stack: Vec<(u32, [u64; BLOCK])>,
-    /// Level sweep: masks (and whether any bit is set) of the current and
-    /// the next level's ops.
-    cur: Vec<[u64; BLOCK]>,
-    next: Vec<[u64; BLOCK]>,
-    /// Per op, where its tested plane row starts relative to a block.
-    offsets: Vec<usize>,
-    /// Level sweep: the ops of the current and the next level that some
-    /// pixel of the block reaches.
-    cur_ops: Vec<u32>,
-    next_ops: Vec<u32>,
+    steps: Vec<Step>,
+    cur: Pending,
+    next: Pending,
+    /// Select values of one block.
+    slots: Vec<Mask>,
+    /// Select values of one chunk (whole-program select).
+    wide: Vec<Lanes<WIDE>>,
 }
 
 impl Program {
     /// Compiles a validated tree for a threshold.
     pub fn compile(tree: &Tree, threshold: f64) -> Program {
+        Program::compile_with(tree, threshold, Plan::Auto)
+    }
+
+    /// Compiles with a chosen split between walking and selecting (for
+    /// tests and measurements; [`Program::compile`] chooses by cost).
+    pub fn compile_with(tree: &Tree, threshold: f64, plan: Plan) -> Program {
         let nodes = tree.nodes();
         let n = nodes.len();
         // Decide every subtree that cannot change the outcome: bottom-up
         // (children have larger indices), Some(outcome) if all its leaves
-        // agree.
+        // agree. Training pixels per node feed the cost model.
         let mut decided: Vec<Option<bool>> = vec![None; n];
+        let mut pixels: Vec<u64> = vec![0; n];
         for i in (0..n).rev() {
-            decided[i] = match &nodes[i] {
-                Node::Leaf(l) => Some(l.score >= threshold),
+            (decided[i], pixels[i]) = match &nodes[i] {
+                Node::Leaf(l) => (
+                    Some(l.score >= threshold),
+                    l.counts[0].saturating_add(l.counts[1]),
+                ),
                 Node::Split {
                     if_clear, if_set, ..
-                } => match (decided[*if_clear as usize], decided[*if_set as usize]) {
-                    (Some(a), Some(b)) if a == b => Some(a),
-                    _ => None,
-                },
+                } => {
+                    let (c, s) = (*if_clear as usize, *if_set as usize);
+                    let d = match (decided[c], decided[s]) {
+                        (Some(a), Some(b)) if a == b => Some(a),
+                        _ => None,
+                    };
+                    (d, pixels[c].saturating_add(pixels[s]))
+                }
             };
         }
         let window = tree.window();
@@ -190,8 +333,11 @@ impl Program {
                 planes: Vec::new(),
                 ops: Vec::new(),
                 levels: 0,
-                level_starts: vec![0],
                 widest: 0,
+                select: Vec::new(),
+                select_range: Vec::new(),
+                select_root: Vec::new(),
+                slots: 0,
                 constant: Some(c),
             };
         }
@@ -247,23 +393,48 @@ impl Program {
             k += 1;
         }
         let levels = depth.iter().copied().max().unwrap_or(0);
-        let mut level_starts = vec![0usize];
-        for l in 1..levels {
-            level_starts.push(depth.partition_point(|&d| d <= l));
+        let mut per_level = vec![0usize; levels + 1];
+        for &d in &depth {
+            per_level[d] += 1;
         }
-        level_starts.push(ops.len());
-        let widest = level_starts
-            .windows(2)
-            .map(|w| w[1] - w[0])
-            .max()
-            .unwrap_or(0);
+        let widest = per_level.iter().copied().max().unwrap_or(0);
+        let (select, select_range, slots) = post_order(&ops);
+        // Chance that a block's pixels reach each op, from the training
+        // pixels that reached its node; trees without counts (made by
+        // hand) assume every split halves the pixels.
+        let total = pixels[0];
+        let block_pixels = (BLOCK * 64) as f64 / CORRELATION;
+        let reach: Vec<f64> = order
+            .iter()
+            .zip(&depth)
+            .map(|(&node, &d)| {
+                let p = if total > 0 {
+                    pixels[node] as f64 / total as f64
+                } else {
+                    0.5f64.powi(d as i32 - 1)
+                };
+                1.0 - (1.0 - p).powf(block_pixels)
+            })
+            .collect();
+        let select_root = match plan {
+            Plan::Auto => choose_select_roots(&ops, &reach),
+            Plan::Walk => vec![false; ops.len()],
+            Plan::Select => {
+                let mut v = vec![false; ops.len()];
+                v[0] = true;
+                v
+            }
+        };
         Program {
             window,
             planes,
             levels,
-            level_starts,
             widest,
             ops,
+            select,
+            select_range,
+            select_root,
+            slots,
             constant: None,
         }
     }
@@ -281,6 +452,33 @@ impl Program {
     /// The distinct horizontal offsets the program shifts the frame by.
     pub fn planes(&self) -> &[i8] {
         &self.planes
+    }
+
+    /// How the program evaluates: `(walked ops, selected ops)`. A program
+    /// with no walked op is one straight select program.
+    pub fn strategy(&self) -> (usize, usize) {
+        let mut selected = 0;
+        let mut stack = if self.ops.is_empty() {
+            vec![]
+        } else {
+            vec![0u32]
+        };
+        let mut walked = 0;
+        while let Some(i) = stack.pop() {
+            let i = i as usize;
+            if self.select_root[i] {
+                let (a, b) = self.select_range[i];
+                selected += (b - a + 1) as usize;
+                continue;
+            }
+            walked += 1;
+            for t in [self.ops[i].on_set, self.ops[i].on_clear] {
+                if t >= SLOT0 {
+                    stack.push(t - SLOT0);
+                }
+            }
+        }
+        (walked, selected)
     }
 
     /// The detection mask of a frame, with the best backend available.
@@ -329,14 +527,19 @@ impl Program {
         }
     }
 
-    /// Builds the padded, shifted planes and sizes the buffers.
+    /// Builds the padded, shifted planes, resolves every op's plane offset
+    /// and sizes the buffers.
     fn prepare(&self, frame: &BitFrame, s: &mut Scratch) {
         let stride = frame.stride();
         let r = self.window.radius() as usize;
         let padded_rows = frame.height() + 2 * r;
-        // A block's worth of zero words after each plane, so every load is a
-        // whole block, even the frame's last one.
-        let plane_words = padded_rows * stride + BLOCK;
+        // A chunk's worth of zero words after each plane, so every load is a
+        // whole block or chunk, even the frame's last one.
+        let plane_words = padded_rows * stride + WIDE;
+        assert!(
+            plane_words * self.planes.len() <= u32::MAX as usize,
+            "frame too large for 32-bit plane offsets"
+        );
         s.planes.clear();
         s.planes.resize(plane_words * self.planes.len(), 0);
         for (p, &dx) in self.planes.iter().enumerate() {
@@ -350,22 +553,51 @@ impl Program {
         // Valid bits of every word of the frame.
         s.valid.clear();
         s.valid.resize(stride * frame.height(), u64::MAX);
-        s.valid.resize(stride * frame.height() + BLOCK, 0);
+        s.valid.resize(stride * frame.height() + WIDE, 0);
         let last = frame.last_word_mask();
         for y in 0..frame.height() {
             s.valid[y * stride + stride - 1] = last;
         }
-        // A depth-first walk keeps at most one pending sibling per level.
-        s.stack.clear();
-        s.stack.reserve(self.levels + 2);
-        if self.sweeps() {
-            for v in [&mut s.cur, &mut s.next] {
-                v.resize(self.widest.max(1), [0; BLOCK]);
+        s.steps.clear();
+        s.steps.extend(self.ops.iter().enumerate().map(|(i, op)| {
+            let offset =
+                op.plane as usize * plane_words + (r as isize + op.dy as isize) as usize * stride;
+            let mut flags = 0;
+            let mut next = [0u32; 2];
+            for (k, t) in [op.on_set, op.on_clear].into_iter().enumerate() {
+                match t {
+                    DROP => {}
+                    DETECT => flags |= DETECT_SET << k,
+                    t => {
+                        flags |= PUSH_SET << k;
+                        next[k] = t - SLOT0;
+                    }
+                }
             }
-            for v in [&mut s.cur_ops, &mut s.next_ops] {
-                v.clear();
-                v.reserve(self.widest.max(1));
+            if self.select_root[i] {
+                flags |= SELECTS;
             }
+            Step {
+                offset: offset as u32,
+                next,
+                flags,
+            }
+        }));
+        // A level's pending list holds at most its ops, and at most one per
+        // pixel of the block (the masks of a level are disjoint and not
+        // empty), plus the two entries a visit may write without counting.
+        let cap = self.widest.min(BLOCK * 64) + 2;
+        for v in [&mut s.cur, &mut s.next] {
+            v.list.clear();
+            v.list.resize(cap, (0, 0));
+            v.masks.clear();
+            v.masks.resize(2 * cap, Mask::default());
+        }
+        s.slots.clear();
+        s.slots.resize(self.slots.max(1), Mask::default());
+        s.wide.clear();
+        if self.select_root[0] {
+            s.wide.resize(self.slots.max(1), Lanes::default());
         }
     }
 
@@ -379,29 +611,9 @@ impl Program {
         self.run_body(PortableKernel, frame, s, out)
     }
 
-    /// Per op, where its tested plane row starts relative to a block.
-    fn fill_offsets(&self, offsets: &mut Vec<usize>, plane_words: usize, stride: usize) {
-        let r = self.window.radius() as isize;
-        offsets.clear();
-        offsets.extend(
-            self.ops
-                .iter()
-                .map(|op| op.plane as usize * plane_words + (r + op.dy as isize) as usize * stride),
-        );
-    }
-
-    /// Whether the level sweep evaluates this program (small programs, whose
-    /// level buffers stay in cache) rather than the depth-first walk, whose
-    /// stack stays small whatever the tree (large programs; measured on the
-    /// demo model, the walk is about 2.5x faster there).
-    pub fn sweeps(&self) -> bool {
-        self.ops.len() <= SWEEP_MAX_OPS
-    }
-
     /// The evaluation loop, inlined into each backend so each is compiled
-    /// with its own target features: the per-op offsets once per frame,
-    /// then every block of the frame from its root mask (the block's valid
-    /// pixels) to its detections, by one of the two strategies.
+    /// with its own target features: every block of the frame from its
+    /// root mask (the block's valid pixels) to its detections.
     #[inline(always)]
     fn run_body<K: Kernel>(
         &self,
@@ -410,173 +622,262 @@ impl Program {
         s: &mut Scratch,
         out: &mut BitFrame,
     ) {
-        let stride = frame.stride();
-        let plane_words = (frame.height() + 2 * self.window.radius() as usize) * stride + BLOCK;
-        let total = stride * frame.height();
+        let total = frame.stride() * frame.height();
         let Scratch {
             planes,
             valid,
-            stack,
+            steps,
             cur,
             next,
-            offsets,
-            cur_ops,
-            next_ops,
+            slots,
+            wide,
         } = s;
-        self.fill_offsets(offsets, plane_words, stride);
-        let sweeps = self.sweeps();
         let detected = out.words_mut();
+        if self.select_root[0] {
+            // One straight select program, a chunk of words at a time.
+            let last = self.select.last().expect("a program has ops").out as usize;
+            let mut start = 0;
+            while start < total {
+                let len = WIDE.min(total - start);
+                for ins in &self.select {
+                    let o = steps[ins.op as usize].offset as usize + start;
+                    let plane: &[u64; WIDE] = planes[o..o + WIDE].try_into().expect("padded");
+                    kernel.select(plane, wide, *ins);
+                }
+                for (k, d) in detected[start..start + len].iter_mut().enumerate() {
+                    *d = wide[last].0[k] & valid[start + k];
+                }
+                start += len;
+            }
+            return;
+        }
         let mut start = 0;
         while start < total {
             let len = BLOCK.min(total - start);
             let root: [u64; BLOCK] = valid[start..start + BLOCK].try_into().expect("padded");
-            // Plane words of this block: `block(offset)` is the tested row.
-            let block = |offset: usize| -> &[u64; BLOCK] {
-                planes[offset + start..offset + start + BLOCK]
-                    .try_into()
-                    .expect("padded")
+            // Plane words of this block at a step's offset.
+            let block = |offset: u32| -> &[u64; BLOCK] {
+                let o = offset as usize + start;
+                planes[o..o + BLOCK].try_into().expect("padded")
             };
-            let acc = if sweeps {
-                self.sweep_block(kernel, root, &block, offsets, cur, next, cur_ops, next_ops)
-            } else {
-                self.walk_block(kernel, root, &block, offsets, stack)
-            };
+            let acc = self.block(kernel, root, &block, steps, cur, next, slots);
             // The root mask excluded padding bits, so `acc` has none.
             detected[start..start + len].copy_from_slice(&acc[..len]);
             start += len;
         }
     }
 
-    /// One block, level by level over the listed (reached) ops: each reads
-    /// its mask from the current buffer and writes its children's into the
-    /// next.
+    /// One block: level by level over the pending (op, mask) pairs. A walked
+    /// op splits its mask and appends the children that received pixels to
+    /// the next level's list (branch-free: both are written, only those
+    /// wanted are counted); a select root adds its subtree's value, masked
+    /// by the pixels that reached it.
     #[allow(clippy::too_many_arguments)]
     #[inline(always)]
-    fn sweep_block<'p, K: Kernel>(
+    fn block<'p, K: Kernel>(
         &self,
         kernel: K,
         root: [u64; BLOCK],
-        block: &impl Fn(usize) -> &'p [u64; BLOCK],
-        offsets: &[usize],
-        cur: &mut Vec<[u64; BLOCK]>,
-        next: &mut Vec<[u64; BLOCK]>,
-        cur_ops: &mut Vec<u32>,
-        next_ops: &mut Vec<u32>,
+        block: &impl Fn(u32) -> &'p [u64; BLOCK],
+        steps: &[Step],
+        cur: &mut Pending,
+        next: &mut Pending,
+        slots: &mut [Mask],
     ) -> [u64; BLOCK] {
-        let mut acc = [0u64; BLOCK];
-        cur[0] = root;
-        cur_ops.clear();
-        cur_ops.push(0);
-        for l in 0..self.levels {
-            if cur_ops.is_empty() {
-                break;
-            }
-            let (lo, hi) = (self.level_starts[l], self.level_starts[l + 1]);
-            let next_lo = hi as u32 + SLOT0;
-            next_ops.clear();
-            for &i in cur_ops.iter() {
+        let mut acc = Mask::default();
+        cur.list[0] = (0, 0);
+        cur.masks[0] = Lanes(root);
+        let mut pending = 1;
+        while pending > 0 {
+            let mut n = 0;
+            for e in 0..pending {
+                let (i, slot) = cur.list[e];
                 let i = i as usize;
-                let op = self.ops[i];
-                let mut set = [0u64; BLOCK];
-                let mut clear = [0u64; BLOCK];
-                let (any_set, any_clear) =
-                    kernel.split(&cur[i - lo], block(offsets[i]), &mut set, &mut clear);
-                emit(op.on_set, any_set, next_lo, next, next_ops, &mut acc, &set);
-                emit(
-                    op.on_clear,
-                    any_clear,
-                    next_lo,
-                    next,
-                    next_ops,
-                    &mut acc,
-                    &clear,
-                );
+                let m = &cur.masks[slot as usize].0;
+                let step = steps[i];
+                if step.flags & SELECTS != 0 {
+                    let (a, b) = self.select_range[i];
+                    for ins in &self.select[a as usize..=b as usize] {
+                        let plane = block(steps[ins.op as usize].offset);
+                        kernel.select(plane, slots, *ins);
+                    }
+                    let v = &slots[self.select[b as usize].out as usize].0;
+                    kernel.keep(&mut acc.0, m, v);
+                    continue;
+                }
+                n = kernel.visit(m, block(step.offset), &mut acc.0, step, next, e, n);
             }
             std::mem::swap(cur, next);
-            std::mem::swap(cur_ops, next_ops);
+            pending = n;
         }
-        acc
-    }
-
-    /// One block, depth first over live ops only: an op is visited only if
-    /// some pixel of the block reaches it.
-    #[inline(always)]
-    fn walk_block<'p, K: Kernel>(
-        &self,
-        kernel: K,
-        root: [u64; BLOCK],
-        block: &impl Fn(usize) -> &'p [u64; BLOCK],
-        offsets: &[usize],
-        stack: &mut Vec<(u32, [u64; BLOCK])>,
-    ) -> [u64; BLOCK] {
-        let mut acc = [0u64; BLOCK];
-        stack.push((0, root));
-        while let Some((i, m)) = stack.pop() {
-            let op = self.ops[i as usize];
-            let mut set = [0u64; BLOCK];
-            let mut clear = [0u64; BLOCK];
-            let (any_set, any_clear) =
-                kernel.split(&m, block(offsets[i as usize]), &mut set, &mut clear);
-            for (target, any, mask) in [(op.on_clear, any_clear, clear), (op.on_set, any_set, set)]
-            {
-                match target {
-                    DROP => {}
-                    DETECT => {
-                        for k in 0..BLOCK {
-                            acc[k] |= mask[k];
-                        }
-                    }
-                    // Pixels reach the child only if the mask has any:
-                    // empty subtrees are never visited.
-                    t if any => stack.push((t - SLOT0, mask)),
-                    _ => {}
-                }
-            }
-        }
-        acc
+        acc.0
     }
 }
 
-/// Sends the pixels `value` of a block to an op's outcome: nowhere, the
-/// detections, or the mask of an op of the next level, which joins that
-/// level's list of ops to visit only if some pixel arrived (`any`).
-#[inline(always)]
-fn emit(
-    target: u32,
-    any: bool,
-    next_lo: u32,
-    next: &mut [[u64; BLOCK]],
-    next_ops: &mut Vec<u32>,
-    acc: &mut [u64; BLOCK],
-    value: &[u64; BLOCK],
-) {
-    match target {
-        DROP => {}
-        DETECT => {
-            for k in 0..BLOCK {
-                acc[k] |= value[k];
-            }
+/// Every op once in post-order, as select instructions over a stack of
+/// values, with the larger child subtree first so the stack stays at most
+/// about log2(ops) deep (Sethi and Ullman's order). Returns the
+/// instructions, each op's subtree range in them, and the slots in use.
+fn post_order(ops: &[Op]) -> (Vec<Select>, Vec<(u32, u32)>, usize) {
+    let child = |t: u32| (t >= SLOT0).then(|| (t - SLOT0) as usize);
+    // Subtree sizes: children come after their parents.
+    let mut size = vec![1usize; ops.len()];
+    for i in (0..ops.len()).rev() {
+        for c in [ops[i].on_set, ops[i].on_clear]
+            .into_iter()
+            .filter_map(child)
+        {
+            size[i] += size[c];
         }
-        t if any => {
-            next[(t - next_lo) as usize] = *value;
-            next_ops.push(t - SLOT0);
-        }
-        _ => {}
     }
+    let slot = |k: usize| k as u16;
+    let mut select = Vec::with_capacity(ops.len());
+    let mut range = vec![(0u32, 0u32); ops.len()];
+    let (mut depth, mut most) = (0usize, 0usize);
+    // (op, children done): no recursion, whatever the tree's depth.
+    let mut stack = vec![(0usize, false)];
+    while let Some((i, done)) = stack.pop() {
+        let op = ops[i];
+        let (s, c) = (child(op.on_set), child(op.on_clear));
+        // The set child is evaluated first when its subtree is larger.
+        let set_first = match (s, c) {
+            (Some(s), Some(c)) => size[s] >= size[c],
+            _ => true,
+        };
+        if !done {
+            range[i].0 = select.len() as u32;
+            stack.push((i, true));
+            let (first, second) = if set_first { (s, c) } else { (c, s) };
+            // The stack pops the first child's subtree first.
+            stack.extend(second.map(|k| (k, false)));
+            stack.extend(first.map(|k| (k, false)));
+            continue;
+        }
+        let detects = |t: u32| t == DETECT;
+        let (form, set, clear, out) = match (s, c) {
+            (Some(_), Some(_)) => {
+                let (lower, upper) = (slot(depth - 2), slot(depth - 1));
+                depth -= 1;
+                let (set, clear) = if set_first {
+                    (lower, upper)
+                } else {
+                    (upper, lower)
+                };
+                (Form::Both, set, clear, lower)
+            }
+            (Some(_), None) => {
+                let top = slot(depth - 1);
+                let form = if detects(op.on_clear) {
+                    Form::SetOrClear
+                } else {
+                    Form::SetOnly
+                };
+                (form, top, 0, top)
+            }
+            (None, Some(_)) => {
+                let top = slot(depth - 1);
+                let form = if detects(op.on_set) {
+                    Form::PlaneOrClear
+                } else {
+                    Form::ClearOnly
+                };
+                (form, 0, top, top)
+            }
+            (None, None) => {
+                depth += 1;
+                most = most.max(depth);
+                let form = if detects(op.on_set) {
+                    Form::Plane
+                } else {
+                    Form::NotPlane
+                };
+                (form, 0, 0, slot(depth - 1))
+            }
+        };
+        select.push(Select {
+            op: i as u32,
+            form,
+            set,
+            clear,
+            out,
+        });
+        range[i].1 = select.len() as u32 - 1;
+    }
+    (select, range, most)
 }
 
-/// The block arithmetic of one op: `set = m & b`, `clear = m & !b`, and
-/// whether each has any pixel. Two implementations: plain arrays (which the
+/// Chooses, per op, between walking and selecting its subtree by expected
+/// cost per block: a walk visit costs [`VISIT_COST`] plus the expected cost
+/// of each op child (weighted by the chance that the block reaches the
+/// child, given that it reaches the op); selecting costs [`SELECT_COST`]
+/// per op of the subtree ([`WIDE_SELECT_COST`] for the whole program).
+/// `reach[i]` is the chance that a block reaches op `i`.
+fn choose_select_roots(ops: &[Op], reach: &[f64]) -> Vec<bool> {
+    let mut best = vec![0.0f64; ops.len()];
+    let mut size = vec![1usize; ops.len()];
+    let mut root = vec![false; ops.len()];
+    for i in (0..ops.len()).rev() {
+        let mut walk = VISIT_COST;
+        for t in [ops[i].on_set, ops[i].on_clear] {
+            if t >= SLOT0 {
+                let c = (t - SLOT0) as usize;
+                size[i] += size[c];
+                let given = if reach[i] > 0.0 {
+                    (reach[c] / reach[i]).min(1.0)
+                } else {
+                    0.0
+                };
+                walk += given * best[c];
+            }
+        }
+        let select = SELECT_COST * size[i] as f64 + SELECT_ROOT_COST;
+        root[i] = select <= walk;
+        best[i] = walk.min(select);
+    }
+    // The root, when selected, runs as one wide select program.
+    if let Some(first) = root.first_mut() {
+        *first = WIDE_SELECT_COST * size[0] as f64 <= best[0];
+    }
+    root
+}
+
+/// The block arithmetic, in two implementations: plain arrays (which the
 /// compiler vectorises for the baseline vector unit) and AVX2 intrinsics,
 /// whose emptiness test is one `vptest` instead of a horizontal OR.
 trait Kernel: Copy {
-    fn split(
+    /// A walk visit: `set = m & b`, `clear = m & !b`; each outcome that is
+    /// `Detect` is added to `acc`, each that is an op and has pixels is
+    /// listed in `next` at `n` (the two masks go to slots `2e` and `2e + 1`
+    /// of `next`). Returns the new length of the list.
+    #[allow(clippy::too_many_arguments)]
+    fn visit(
         self,
         m: &[u64; BLOCK],
         b: &[u64; BLOCK],
-        set: &mut [u64; BLOCK],
-        clear: &mut [u64; BLOCK],
-    ) -> (bool, bool);
+        acc: &mut [u64; BLOCK],
+        step: Step,
+        next: &mut Pending,
+        e: usize,
+        n: usize,
+    ) -> usize;
+
+    /// One select instruction over `W` words, `b` its plane.
+    fn select<const W: usize>(self, b: &[u64; W], slots: &mut [Lanes<W>], ins: Select);
+
+    /// `acc |= m & v`.
+    fn keep(self, acc: &mut [u64; BLOCK], m: &[u64; BLOCK], v: &[u64; BLOCK]);
+}
+
+/// The all-ones word where a step's outcome `k` (0 set, 1 clear) is
+/// `Detect`, else zero.
+#[inline(always)]
+fn detect_word(step: Step, k: usize) -> u64 {
+    0u64.wrapping_sub((step.flags & (DETECT_SET << k) != 0) as u64)
+}
+
+#[inline(always)]
+fn pushes(step: Step, k: usize, any: bool) -> usize {
+    (any & (step.flags & (PUSH_SET << k) != 0)) as usize
 }
 
 #[derive(Clone, Copy)]
@@ -584,13 +885,19 @@ struct PortableKernel;
 
 impl Kernel for PortableKernel {
     #[inline(always)]
-    fn split(
+    fn visit(
         self,
         m: &[u64; BLOCK],
         b: &[u64; BLOCK],
-        set: &mut [u64; BLOCK],
-        clear: &mut [u64; BLOCK],
-    ) -> (bool, bool) {
+        acc: &mut [u64; BLOCK],
+        step: Step,
+        next: &mut Pending,
+        e: usize,
+        mut n: usize,
+    ) -> usize {
+        let (ds, dc) = (detect_word(step, 0), detect_word(step, 1));
+        let mut set = [0u64; BLOCK];
+        let mut clear = [0u64; BLOCK];
         let (mut any_set, mut any_clear) = (0, 0);
         for k in 0..BLOCK {
             set[k] = m[k] & b[k];
@@ -598,7 +905,56 @@ impl Kernel for PortableKernel {
             any_set |= set[k];
             any_clear |= clear[k];
         }
-        (any_set != 0, any_clear != 0)
+        // Most ops have no `Detect` outcome: skip the accumulator then.
+        if ds | dc != 0 {
+            for k in 0..BLOCK {
+                acc[k] |= (set[k] & ds) | (clear[k] & dc);
+            }
+        }
+        next.masks[2 * e] = Lanes(set);
+        next.masks[2 * e + 1] = Lanes(clear);
+        next.list[n] = (step.next[0], 2 * e as u32);
+        n += pushes(step, 0, any_set != 0);
+        next.list[n] = (step.next[1], 2 * e as u32 + 1);
+        n + pushes(step, 1, any_clear != 0)
+    }
+
+    #[inline(always)]
+    fn select<const W: usize>(self, b: &[u64; W], slots: &mut [Lanes<W>], ins: Select) {
+        let s = |slots: &[Lanes<W>]| slots[ins.set as usize].0;
+        let c = |slots: &[Lanes<W>]| slots[ins.clear as usize].0;
+        let v: [u64; W] = match ins.form {
+            Form::Plane => *b,
+            Form::NotPlane => b.map(|x| !x),
+            Form::SetOnly => {
+                let s = s(slots);
+                std::array::from_fn(|k| b[k] & s[k])
+            }
+            Form::SetOrClear => {
+                let s = s(slots);
+                std::array::from_fn(|k| s[k] | !b[k])
+            }
+            Form::ClearOnly => {
+                let c = c(slots);
+                std::array::from_fn(|k| !b[k] & c[k])
+            }
+            Form::PlaneOrClear => {
+                let c = c(slots);
+                std::array::from_fn(|k| b[k] | c[k])
+            }
+            Form::Both => {
+                let (s, c) = (s(slots), c(slots));
+                std::array::from_fn(|k| (b[k] & s[k]) | (!b[k] & c[k]))
+            }
+        };
+        slots[ins.out as usize] = Lanes(v);
+    }
+
+    #[inline(always)]
+    fn keep(self, acc: &mut [u64; BLOCK], m: &[u64; BLOCK], v: &[u64; BLOCK]) {
+        for k in 0..BLOCK {
+            acc[k] |= m[k] & v[k];
+        }
     }
 }
 
@@ -611,41 +967,128 @@ struct Avx2Kernel(());
 #[cfg(target_arch = "x86_64")]
 impl Kernel for Avx2Kernel {
     #[inline(always)]
-    fn split(
+    fn visit(
         self,
         m: &[u64; BLOCK],
         b: &[u64; BLOCK],
-        set: &mut [u64; BLOCK],
-        clear: &mut [u64; BLOCK],
-    ) -> (bool, bool) {
+        acc: &mut [u64; BLOCK],
+        step: Step,
+        next: &mut Pending,
+        e: usize,
+        mut n: usize,
+    ) -> usize {
         use std::arch::x86_64::*;
-        // SAFETY: an Avx2Kernel exists only where AVX2 was detected, and
-        // every pointer covers 4 of the block's words (BLOCK is a multiple
-        // of 4); unaligned loads and stores are used.
+        const V: usize = BLOCK / 4;
+        // SAFETY: an Avx2Kernel exists only where AVX2 was detected; every
+        // pointer covers 4 of a block's words (BLOCK is a multiple of 4),
+        // and `n + 1` is within the pending list (it holds two spare
+        // entries); loads and stores are unaligned.
         unsafe {
+            let mut set = [_mm256_setzero_si256(); V];
+            let mut clear = [_mm256_setzero_si256(); V];
             let mut s_any = _mm256_setzero_si256();
             let mut c_any = _mm256_setzero_si256();
-            for q in 0..BLOCK / 4 {
+            for q in 0..V {
                 let mv = _mm256_loadu_si256(m.as_ptr().add(4 * q) as *const __m256i);
                 let bv = _mm256_loadu_si256(b.as_ptr().add(4 * q) as *const __m256i);
-                let sv = _mm256_and_si256(mv, bv);
-                let cv = _mm256_andnot_si256(bv, mv);
-                _mm256_storeu_si256(set.as_mut_ptr().add(4 * q) as *mut __m256i, sv);
-                _mm256_storeu_si256(clear.as_mut_ptr().add(4 * q) as *mut __m256i, cv);
-                s_any = _mm256_or_si256(s_any, sv);
-                c_any = _mm256_or_si256(c_any, cv);
+                set[q] = _mm256_and_si256(mv, bv);
+                clear[q] = _mm256_andnot_si256(bv, mv);
+                s_any = _mm256_or_si256(s_any, set[q]);
+                c_any = _mm256_or_si256(c_any, clear[q]);
             }
-            (
-                _mm256_testz_si256(s_any, s_any) == 0,
-                _mm256_testz_si256(c_any, c_any) == 0,
-            )
+            // Most ops have no `Detect` outcome: skip the accumulator then.
+            if step.flags & (DETECT_SET | DETECT_SET << 1) != 0 {
+                let ds = _mm256_set1_epi64x(detect_word(step, 0) as i64);
+                let dc = _mm256_set1_epi64x(detect_word(step, 1) as i64);
+                for q in 0..V {
+                    let a = acc.as_mut_ptr().add(4 * q) as *mut __m256i;
+                    let hit = _mm256_or_si256(
+                        _mm256_and_si256(set[q], ds),
+                        _mm256_and_si256(clear[q], dc),
+                    );
+                    _mm256_storeu_si256(a, _mm256_or_si256(_mm256_loadu_si256(a), hit));
+                }
+            }
+            let any_set = _mm256_testz_si256(s_any, s_any) == 0;
+            let any_clear = _mm256_testz_si256(c_any, c_any) == 0;
+            assert!(2 * e + 1 < next.masks.len() && n + 1 < next.list.len());
+            let p = next.masks.as_mut_ptr().add(2 * e) as *mut __m256i;
+            for q in 0..V {
+                _mm256_store_si256(p.add(q), set[q]);
+                _mm256_store_si256(p.add(V + q), clear[q]);
+            }
+            *next.list.get_unchecked_mut(n) = (step.next[0], 2 * e as u32);
+            n += pushes(step, 0, any_set);
+            *next.list.get_unchecked_mut(n) = (step.next[1], 2 * e as u32 + 1);
+            n + pushes(step, 1, any_clear)
+        }
+    }
+
+    #[inline(always)]
+    fn select<const W: usize>(self, b: &[u64; W], slots: &mut [Lanes<W>], ins: Select) {
+        use std::arch::x86_64::*;
+        let v_per = W / 4;
+        let (set, clear, out) = (ins.set as usize, ins.clear as usize, ins.out as usize);
+        assert!(set < slots.len() && clear < slots.len() && out < slots.len());
+        // SAFETY: AVX2 was detected; the three slots are in bounds (checked
+        // above) and aligned (`Mask` is 64-byte aligned); every input of a
+        // vector is loaded before its output is stored, so the output may
+        // be an input slot.
+        unsafe {
+            let base = slots.as_mut_ptr() as *mut __m256i;
+            let ones = _mm256_set1_epi64x(-1);
+            let (sp, cp, op) = (
+                base.add(set * v_per),
+                base.add(clear * v_per),
+                base.add(out * v_per),
+            );
+            let bp = b.as_ptr() as *const __m256i;
+            // One loop per form, so the form is decided once per instruction.
+            macro_rules! each {
+                (|$bv:ident, $q:ident| $e:expr) => {
+                    for $q in 0..v_per {
+                        let $bv = _mm256_loadu_si256(bp.add($q));
+                        _mm256_store_si256(op.add($q), $e);
+                    }
+                };
+            }
+            match ins.form {
+                Form::Plane => each!(|bv, q| bv),
+                Form::NotPlane => each!(|bv, q| _mm256_andnot_si256(bv, ones)),
+                Form::SetOnly => each!(|bv, q| _mm256_and_si256(bv, _mm256_load_si256(sp.add(q)))),
+                Form::SetOrClear => each!(|bv, q| _mm256_or_si256(
+                    _mm256_load_si256(sp.add(q)),
+                    _mm256_andnot_si256(bv, ones)
+                )),
+                Form::ClearOnly => {
+                    each!(|bv, q| _mm256_andnot_si256(bv, _mm256_load_si256(cp.add(q))))
+                }
+                Form::PlaneOrClear => {
+                    each!(|bv, q| _mm256_or_si256(bv, _mm256_load_si256(cp.add(q))))
+                }
+                Form::Both => each!(|bv, q| _mm256_or_si256(
+                    _mm256_and_si256(bv, _mm256_load_si256(sp.add(q))),
+                    _mm256_andnot_si256(bv, _mm256_load_si256(cp.add(q)))
+                )),
+            }
+        }
+    }
+
+    #[inline(always)]
+    fn keep(self, acc: &mut [u64; BLOCK], m: &[u64; BLOCK], v: &[u64; BLOCK]) {
+        for k in 0..BLOCK {
+            acc[k] |= m[k] & v[k];
         }
     }
 }
 
 const _: () = assert!(
-    BLOCK.is_multiple_of(4),
-    "AVX2 kernel handles 4 words at a time"
+    BLOCK.is_multiple_of(4)
+        && WIDE.is_multiple_of(4)
+        && WIDE >= BLOCK
+        && std::mem::size_of::<Mask>() == BLOCK * 8
+        && std::mem::size_of::<Lanes<WIDE>>() == WIDE * 8,
+    "AVX2 kernel handles 4 words at a time over packed masks"
 );
 
 /// `dst[x] = src[x + dx]` for one packed row (bits outside the row read 0).
@@ -711,6 +1154,42 @@ mod tests {
     }
 
     #[test]
+    fn deep_chains_need_no_recursion_and_few_slots() {
+        // A caterpillar of 5,000 splits: each tests the centre's left or
+        // right neighbour in turn, its clear side a leaf, its set side the
+        // next split. Post-order and evaluation are iterative, and the
+        // select stack stays one value deep.
+        let w = Window::new(3).unwrap();
+        let f = |dx| w.index(Offset { dx, dy: 0 }).unwrap() as u8;
+        let n = 5000usize;
+        let mut nodes = Vec::new();
+        for k in 0..n {
+            let i = nodes.len();
+            nodes.push(Node::Split {
+                feature: f(if k % 2 == 0 { -1 } else { 1 }),
+                if_clear: (i + 1) as u32,
+                if_set: (i + 2) as u32,
+            });
+            nodes.push(leaf(if k % 3 == 0 { 0.9 } else { 0.1 }));
+        }
+        nodes.push(leaf(0.8));
+        let tree = Tree::new(w, nodes).unwrap();
+        let frame = BitFrame::from_fn(200, 3, |x, y| (x * 7 + y) % 4 != 0);
+        let mut s = Scratch::default();
+        for plan in [Plan::Auto, Plan::Walk, Plan::Select] {
+            let p = Program::compile_with(&tree, 0.5, plan);
+            assert!(p.slots <= 2, "{} slots", p.slots);
+            for b in [Backend::Portable, Backend::detect()] {
+                assert_eq!(
+                    p.detect_with(b, &frame, &mut s),
+                    evaluate::detect(&tree, 0.5, &frame),
+                    "{plan:?} {b:?}"
+                );
+            }
+        }
+    }
+
+    #[test]
     fn matches_the_walker_on_a_small_tree() {
         let w = Window::new(5).unwrap();
         let f = |dx, dy| w.index(Offset { dx, dy }).unwrap() as u8;
@@ -742,13 +1221,15 @@ mod tests {
         let frame = BitFrame::from_fn(130, 9, |x, y| (x * 13 + y * 7) % 5 < 2);
         let mut s = Scratch::default();
         for thr in [0.0, 0.15, 0.5, 0.8, 0.95] {
-            let p = Program::compile(&tree, thr);
-            for b in [Backend::Portable, Backend::detect()] {
-                assert_eq!(
-                    p.detect_with(b, &frame, &mut s),
-                    evaluate::detect(&tree, thr, &frame),
-                    "threshold {thr}, {b:?}"
-                );
+            for plan in [Plan::Auto, Plan::Walk, Plan::Select] {
+                let p = Program::compile_with(&tree, thr, plan);
+                for b in [Backend::Portable, Backend::detect()] {
+                    assert_eq!(
+                        p.detect_with(b, &frame, &mut s),
+                        evaluate::detect(&tree, thr, &frame),
+                        "threshold {thr}, {plan:?}, {b:?}"
+                    );
+                }
             }
         }
     }

@@ -5,7 +5,7 @@
 use proptest::prelude::*;
 use proptest::test_runner::Config as ProptestConfig;
 
-use treeline::compile::{self, Backend, Program, Scratch};
+use treeline::compile::{self, Backend, Plan, Program, Scratch};
 use treeline::evaluate::{self, Settings};
 use treeline::model::{Leaf, Model, Node, Tree};
 use treeline::window::Window;
@@ -104,12 +104,16 @@ proptest! {
         let density = [0.0, 0.05, 0.5, 1.0][di];
         let frame = random_frame(w, h, density, seed ^ 0x5EED);
         let want = evaluate::detect(&tree, threshold, &frame);
-        let program = Program::compile(&tree, threshold);
         let mut scratch = Scratch::default();
-        for b in backends() {
-            let got = program.detect_with(b, &frame, &mut scratch);
-            prop_assert_eq!(&got, &want, "backend {:?}, {}x{}", b, w, h);
+        // Every split between walking and selecting, on every backend.
+        for plan in [Plan::Auto, Plan::Walk, Plan::Select] {
+            let program = Program::compile_with(&tree, threshold, plan);
+            for b in backends() {
+                let got = program.detect_with(b, &frame, &mut scratch);
+                prop_assert_eq!(&got, &want, "{:?}, backend {:?}, {}x{}", plan, b, w, h);
+            }
         }
+        let program = Program::compile(&tree, threshold);
         // Reusing the scratch for another size gives the same answers.
         let other = random_frame(h, w, density, seed);
         prop_assert_eq!(
@@ -126,14 +130,16 @@ fn wide_frames_and_deep_trees_agree() {
     for (k, density) in [0.05, 0.5].into_iter().enumerate() {
         let tree = random_tree(window, 14, 77 + k as u64, true);
         let frame = random_frame(1000, 70, density, 5 + k as u64);
-        let program = Program::compile(&tree, 0.5);
         let mut s = Scratch::default();
-        for b in backends() {
-            assert_eq!(
-                program.detect_with(b, &frame, &mut s),
-                evaluate::detect(&tree, 0.5, &frame),
-                "{b:?} density {density}"
-            );
+        for plan in [Plan::Auto, Plan::Walk, Plan::Select] {
+            let program = Program::compile_with(&tree, 0.5, plan);
+            for b in backends() {
+                assert_eq!(
+                    program.detect_with(b, &frame, &mut s),
+                    evaluate::detect(&tree, 0.5, &frame),
+                    "{plan:?} {b:?} density {density}"
+                );
+            }
         }
     }
 }
@@ -166,16 +172,19 @@ fn golden_case_through_every_evaluator() {
         records(&evaluate::run(&model.tree, &settings, &frame)),
         want
     );
-    let program = Program::compile(&model.tree, model.threshold);
     let mut s = Scratch::default();
-    for b in backends() {
-        let mask = program.detect_with(b, &frame, &mut s);
-        assert_eq!(
-            mask,
-            evaluate::detect(&model.tree, model.threshold, &frame),
-            "{b:?}"
-        );
+    for plan in [Plan::Auto, Plan::Walk, Plan::Select] {
+        let program = Program::compile_with(&model.tree, model.threshold, plan);
+        for b in backends() {
+            let mask = program.detect_with(b, &frame, &mut s);
+            assert_eq!(
+                mask,
+                evaluate::detect(&model.tree, model.threshold, &frame),
+                "{plan:?} {b:?}"
+            );
+        }
     }
+    let program = Program::compile(&model.tree, model.threshold);
     assert_eq!(
         records(&compile::run(
             &program,
@@ -217,13 +226,13 @@ fn constant_programs() {
 #[test]
 fn no_allocation_per_frame_after_warm_up() {
     // The per-worker scratch is reused: after one frame of a size, further
-    // frames of that size allocate nothing, on both evaluation strategies
-    // (a small program sweeps levels, a large one walks live ops).
+    // frames of that size allocate nothing, whatever mix of walking and
+    // selecting the program uses.
     use crate::reference_images::counting::allocated_by;
     let window = Window::new(11).unwrap();
-    for (depth, full) in [(6u32, true), (14, true)] {
-        let tree = random_tree(window, depth, 99, full);
-        let program = Program::compile(&tree, 0.5);
+    for (depth, plan) in [(6u32, Plan::Auto), (14, Plan::Walk), (14, Plan::Select)] {
+        let tree = random_tree(window, depth, 99, true);
+        let program = Program::compile_with(&tree, 0.5, plan);
         let mut s = Scratch::default();
         let a = random_frame(300, 40, 0.5, 1);
         let b = random_frame(300, 40, 0.3, 2);
@@ -234,9 +243,9 @@ fn no_allocation_per_frame_after_warm_up() {
             assert_eq!(
                 bytes,
                 0,
-                "{backend:?}, {} ops (sweeps: {})",
+                "{backend:?}, {} ops (walked, selected: {:?})",
                 program.ops(),
-                program.sweeps()
+                program.strategy()
             );
             assert_eq!(out, evaluate::detect(&tree, 0.5, &b));
         }

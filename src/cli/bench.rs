@@ -49,6 +49,9 @@ struct Report {
     program_ops: usize,
     program_levels: usize,
     program_planes: usize,
+    /// Ops evaluated top down with skipping, and bottom up by select.
+    program_walked_ops: usize,
+    program_selected_ops: usize,
     backend: String,
     cpu_features: Vec<String>,
     compiled_mpx_per_s: f64,
@@ -184,6 +187,8 @@ pub fn bench(a: BenchArgs) -> Result<i32> {
         program_ops: program.ops(),
         program_levels: program.depth(),
         program_planes: program.planes().len(),
+        program_walked_ops: program.strategy().0,
+        program_selected_ops: program.strategy().1,
         backend: backend.name().to_string(),
         cpu_features: cpu_features(),
         compiled_mpx_per_s: mpx / compiled,
@@ -201,7 +206,8 @@ pub fn bench(a: BenchArgs) -> Result<i32> {
         return Ok(0);
     }
     out!(
-        "frame {}x{} ({:.2} Mpx), model version {}: {} nodes -> {} ops on {} levels, {} shifted planes",
+        "frame {}x{} ({:.2} Mpx), model version {}: {} nodes -> {} ops on {} levels, {} shifted planes \
+         ({} ops walked, {} selected)",
         w,
         h,
         mpx,
@@ -209,7 +215,9 @@ pub fn bench(a: BenchArgs) -> Result<i32> {
         report.tree_nodes,
         report.program_ops,
         report.program_levels,
-        report.program_planes
+        report.program_planes,
+        report.program_walked_ops,
+        report.program_selected_ops
     );
     out!(
         "cpu features: {}; backend used: {}",
