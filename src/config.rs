@@ -1,5 +1,5 @@
-//! The configuration file (TOML): what the offline commands and, later, the
-//! daemon read.
+//! The configuration file (TOML): what the offline commands and the daemon
+//! read.
 //!
 //! Two stages. [`RawConfig`] mirrors the file: every key optional, unknown
 //! keys rejected (the error names the key and its line), nothing resolved.
@@ -68,6 +68,78 @@ pub struct RawDetection {
     pub min_area: Option<u32>,
     /// Components this many clear pixels apart merge (default: the model's own).
     pub merge_distance: Option<u32>,
+    /// Detection threads (default 0: one per processor).
+    pub workers: Option<usize>,
+    /// When set, a model with another window is refused.
+    pub window: Option<u8>,
+}
+
+/// `[folders]`: where the daemon reads and writes.
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawFolders {
+    /// Frames arrive here (default "var/inbox").
+    pub inbox: Option<PathBuf>,
+    /// Logged frames move here (default "var/archive").
+    pub archive: Option<PathBuf>,
+    /// Frames that cannot be read move here (default "var/rejected").
+    pub rejected: Option<PathBuf>,
+    /// The operator's correction files (default "var/corrections").
+    pub corrections: Option<PathBuf>,
+    /// Models, the lock file (default "var/state").
+    pub state: Option<PathBuf>,
+    /// The detection log (default "var/logs").
+    pub logs: Option<PathBuf>,
+}
+
+/// `[watch]`: how the inbox is watched.
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawWatch {
+    /// File name endings taken as frames (default ["pbm", "png"]).
+    pub formats: Option<Vec<String>>,
+    /// A file seen without a close-after-write event is read only once its
+    /// size and time stamp have not changed for this long (default 500).
+    pub settle_millis: Option<u64>,
+    /// The inbox is listed again this often, whatever the events (default 5).
+    pub rescan_seconds: Option<f64>,
+    /// Frames read but not yet logged, at most (default 16).
+    pub queue: Option<usize>,
+    /// Use the operating system's file events (default true). Set false
+    /// for network filesystems that deliver none: the inbox is then found
+    /// by listing alone.
+    pub events: Option<bool>,
+}
+
+/// `[log]`: the detection log and the daemon's own messages.
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawLog {
+    /// Start a new log file past this size in bytes (default 64 MiB).
+    pub rotate_bytes: Option<u64>,
+    /// Log files kept, the current one included (default 10).
+    pub keep_files: Option<usize>,
+    /// "every-record" (default) or "batch".
+    pub sync: Option<String>,
+    /// With "batch": sync after this many records (default 64)...
+    pub sync_records: Option<usize>,
+    /// ...or this many milliseconds after the first unsynced one (default 200).
+    pub sync_millis: Option<u64>,
+    /// The daemon's own messages: "error", "warn", "info" (default),
+    /// "debug" or "trace". `RUST_LOG` wins when set.
+    pub level: Option<String>,
+}
+
+/// `[archive]`: how long archived frames are kept.
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawArchive {
+    /// Archived frames older than this many days are deleted (default 30;
+    /// 0 keeps them forever).
+    pub keep_days: Option<u64>,
+    /// The oldest archived frames are deleted while the archive is larger
+    /// than this many bytes (default 10 GiB; 0: no limit).
+    pub keep_bytes: Option<u64>,
 }
 
 /// The file as written.
@@ -80,6 +152,64 @@ pub struct RawConfig {
     pub training: RawTraining,
     #[serde(default)]
     pub detection: RawDetection,
+    #[serde(default)]
+    pub folders: RawFolders,
+    #[serde(default)]
+    pub watch: RawWatch,
+    #[serde(default)]
+    pub log: RawLog,
+    #[serde(default)]
+    pub archive: RawArchive,
+}
+
+/// The daemon's folders.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Folders {
+    pub inbox: PathBuf,
+    pub archive: PathBuf,
+    pub rejected: PathBuf,
+    pub corrections: PathBuf,
+    pub state: PathBuf,
+    pub logs: PathBuf,
+}
+
+/// How the detection log is made durable.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum SyncPolicy {
+    /// `fsync` after every record, before its frame leaves the inbox.
+    EveryRecord,
+    /// `fsync` after `records` records or `millis` ms, whichever comes
+    /// first; frames leave the inbox after the sync that covers them.
+    Batch { records: usize, millis: u64 },
+}
+
+/// Resolved `[watch]`.
+#[derive(Clone, Debug, PartialEq)]
+pub struct Watch {
+    /// Lower-case file name endings, without the dot.
+    pub formats: Vec<String>,
+    pub settle_millis: u64,
+    pub rescan_seconds: f64,
+    pub queue: usize,
+    pub events: bool,
+}
+
+/// Resolved `[log]`.
+#[derive(Clone, Debug, PartialEq)]
+pub struct LogSettings {
+    pub rotate_bytes: u64,
+    pub keep_files: usize,
+    pub sync: SyncPolicy,
+    pub level: String,
+}
+
+/// Resolved `[archive]`.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Retention {
+    /// 0: no age limit.
+    pub keep_days: u64,
+    /// 0: no size limit.
+    pub keep_bytes: u64,
 }
 
 /// The resolved configuration.
@@ -91,7 +221,18 @@ pub struct Config {
     pub threshold: Option<f64>,
     pub min_area: Option<u32>,
     pub merge_distance: Option<u32>,
+    /// Detection threads; 0 means one per processor.
+    pub workers: usize,
+    /// The window a model must have, when set.
+    pub window: Option<Window>,
+    pub folders: Folders,
+    pub watch: Watch,
+    pub log: LogSettings,
+    pub retention: Retention,
 }
+
+/// Levels accepted by `log.level`.
+pub const LEVELS: &[&str] = &["error", "warn", "info", "debug", "trace"];
 
 impl Default for Config {
     fn default() -> Self {
@@ -193,6 +334,136 @@ impl RawConfig {
                 ));
             }
         }
+        let workers = det.workers.unwrap_or(0);
+        if workers > 256 {
+            return Err(invalid(
+                "detection.workers",
+                format!("{workers} is over the limit of 256"),
+            ));
+        }
+        let window = match det.window {
+            None => None,
+            Some(s) => Some(Window::new(s).ok_or_else(|| {
+                invalid("detection.window", format!("{s} is not 3, 5, 7, 9 or 11"))
+            })?),
+        };
+        let fo = self.folders;
+        let var = PathBuf::from("var");
+        let folders = Folders {
+            inbox: fo.inbox.unwrap_or_else(|| var.join("inbox")),
+            archive: fo.archive.unwrap_or_else(|| var.join("archive")),
+            rejected: fo.rejected.unwrap_or_else(|| var.join("rejected")),
+            corrections: fo.corrections.unwrap_or_else(|| var.join("corrections")),
+            state: fo.state.unwrap_or_else(|| var.join("state")),
+            logs: fo.logs.unwrap_or_else(|| var.join("logs")),
+        };
+        let all = [
+            ("folders.inbox", &folders.inbox),
+            ("folders.archive", &folders.archive),
+            ("folders.rejected", &folders.rejected),
+            ("folders.corrections", &folders.corrections),
+            ("folders.state", &folders.state),
+            ("folders.logs", &folders.logs),
+        ];
+        for (i, (key, path)) in all.iter().enumerate() {
+            if path.as_os_str().is_empty() {
+                return Err(invalid(key, "must not be empty"));
+            }
+            if let Some((other, _)) = all[..i].iter().find(|(_, p)| p == path) {
+                return Err(invalid(
+                    key,
+                    format!(
+                        "{} is also {other}; every folder must be its own",
+                        path.display()
+                    ),
+                ));
+            }
+        }
+        let w = self.watch;
+        let formats: Vec<String> = match w.formats {
+            None => vec!["pbm".into(), "png".into()],
+            Some(v) => v
+                .iter()
+                .map(|f| f.trim_start_matches('.').to_ascii_lowercase())
+                .collect(),
+        };
+        if formats.is_empty() {
+            return Err(invalid(
+                "watch.formats",
+                "must list at least one of \"pbm\", \"png\"",
+            ));
+        }
+        if let Some(f) = formats
+            .iter()
+            .find(|f| !["pbm", "png"].contains(&f.as_str()))
+        {
+            return Err(invalid(
+                "watch.formats",
+                format!("{f:?} is not \"pbm\" or \"png\""),
+            ));
+        }
+        let settle_millis = w.settle_millis.unwrap_or(500);
+        if settle_millis > 600_000 {
+            return Err(invalid(
+                "watch.settle_millis",
+                "must be at most 600000 (10 minutes)",
+            ));
+        }
+        let rescan_seconds = w.rescan_seconds.unwrap_or(5.0);
+        if !(0.05..=3600.0).contains(&rescan_seconds) {
+            return Err(invalid(
+                "watch.rescan_seconds",
+                format!("{rescan_seconds} is outside 0.05..=3600"),
+            ));
+        }
+        let queue = w.queue.unwrap_or(16);
+        if !(1..=4096).contains(&queue) {
+            return Err(invalid(
+                "watch.queue",
+                format!("{queue} is outside 1..=4096"),
+            ));
+        }
+        let l = self.log;
+        let rotate_bytes = l.rotate_bytes.unwrap_or(64 << 20);
+        if rotate_bytes < 4096 {
+            return Err(invalid("log.rotate_bytes", "must be at least 4096"));
+        }
+        let keep_files = l.keep_files.unwrap_or(10);
+        if !(1..=100_000).contains(&keep_files) {
+            return Err(invalid(
+                "log.keep_files",
+                format!("{keep_files} is outside 1..=100000"),
+            ));
+        }
+        let sync_records = l.sync_records.unwrap_or(64);
+        let sync_millis = l.sync_millis.unwrap_or(200);
+        if sync_records == 0 || sync_records > 1_000_000 {
+            return Err(invalid("log.sync_records", "must be between 1 and 1000000"));
+        }
+        if sync_millis > 60_000 {
+            return Err(invalid("log.sync_millis", "must be at most 60000"));
+        }
+        let sync = match l.sync.as_deref() {
+            None | Some("every-record") => SyncPolicy::EveryRecord,
+            Some("batch") => SyncPolicy::Batch {
+                records: sync_records,
+                millis: sync_millis,
+            },
+            Some(o) => {
+                return Err(invalid(
+                    "log.sync",
+                    format!("{o:?} is not \"every-record\" or \"batch\""),
+                ))
+            }
+        };
+        let level = l.level.unwrap_or_else(|| "info".into());
+        if !LEVELS.contains(&level.as_str()) {
+            return Err(invalid(
+                "log.level",
+                format!("{level:?} is not one of {}", LEVELS.join(", ")),
+            ));
+        }
+        let a = self.archive;
         Ok(Config {
             limits,
             seed_data: t.seed_data,
@@ -200,6 +471,26 @@ impl RawConfig {
             threshold: det.threshold,
             min_area: det.min_area,
             merge_distance: det.merge_distance,
+            workers,
+            window,
+            folders,
+            watch: Watch {
+                formats,
+                settle_millis,
+                rescan_seconds,
+                queue,
+                events: w.events.unwrap_or(true),
+            },
+            log: LogSettings {
+                rotate_bytes,
+                keep_files,
+                sync,
+                level,
+            },
+            retention: Retention {
+                keep_days: a.keep_days.unwrap_or(30),
+                keep_bytes: a.keep_bytes.unwrap_or(10 << 30),
+            },
         })
     }
 }
@@ -241,6 +532,33 @@ mod tests {
         assert!(e.contains("detection.threshold"), "{e}");
         let e = from_str("[camera]\n").unwrap_err().to_string();
         assert!(e.contains("camera"), "{e}");
+        let e = from_str("[log]\nsync = \"sometimes\"\n")
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("log.sync") && e.contains("every-record"), "{e}");
+        let e = from_str("[folders]\ninbox = \"a\"\narchive = \"a\"\n")
+            .unwrap_err()
+            .to_string();
+        assert!(
+            e.contains("folders.archive") && e.contains("folders.inbox"),
+            "{e}"
+        );
+        let e = from_str("[watch]\nformats = [\"jpg\"]\n")
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("watch.formats"), "{e}");
+        let e = from_str("[watch]\nqueue = \"big\"\n")
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("queue"), "{e}");
+        let c = from_str("[log]\nsync = \"batch\"\nsync_records = 8\n").unwrap();
+        assert_eq!(
+            c.log.sync,
+            SyncPolicy::Batch {
+                records: 8,
+                millis: 200
+            }
+        );
         assert_eq!(from_str("").unwrap(), Config::default());
     }
 }

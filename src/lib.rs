@@ -24,15 +24,20 @@
 //! - [`synth`]: the seeded loom-frame generator for demo and test data.
 //! - [`data`]: the one module here that touches the filesystem: labelled data folders.
 //! - [`record`]: the JSON record of one scanned frame (the detection log's line).
+//! - [`detector`]: one frame from bytes to its record, with a swappable model.
+//! - [`daemon`]: the unattended detector: inbox watching, workers, the
+//!   detection log, archive and rejects, reload and stop.
 //!
-//! Everything except [`data`] and the binary is pure: bytes and bit rows in,
-//! values out; the core knows nothing of threads of the daemon, file
-//! watching or the filesystem.
+//! Everything except [`data`], [`daemon`] and the binary is pure: bytes and
+//! bit rows in, values out; the core knows nothing of threads, file watching
+//! or the filesystem.
 
 pub mod codec;
 pub mod compile;
 pub mod config;
+pub mod daemon;
 pub mod data;
+pub mod detector;
 pub mod error;
 pub mod evaluate;
 pub mod frame;

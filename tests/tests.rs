@@ -6,12 +6,15 @@
 //!   specification, the `image` crate's decoder and `imageproc`;
 //! - `properties`: property tests of the invariants;
 //! - `compiled`: the compiled evaluator against the walker, bit for bit;
-//! - `cli`: the `treeline` binary end to end on temporary folders.
+//! - `cli`: the `treeline` binary end to end on temporary folders;
+//! - `daemon`: `treeline run` end to end: bursts, slow writers, bad files,
+//!   kills, signals, lost events.
 
 mod util;
 
 mod cli;
 mod compiled;
+mod daemon;
 mod properties;
 mod reference_images;
 mod reference_learning;

@@ -21,6 +21,8 @@ macro_rules! out {
 }
 
 mod bench;
+mod daemon;
+mod notify;
 mod progress;
 
 use std::path::{Path, PathBuf};
@@ -70,6 +72,12 @@ enum Command {
     Generate(GenerateArgs),
     /// Measure how fast this box runs a model (one thread).
     Bench(bench::BenchArgs),
+    /// Run the detector unattended: watch the inbox, log every frame.
+    Run(daemon::RunArgs),
+    /// Check a configuration, its folders and its model; start nothing.
+    Check(daemon::CheckArgs),
+    /// Show the daemon at work on the demo frames, in a temporary folder.
+    Demo(daemon::DemoArgs),
 }
 
 /// Frame decoding options shared by the commands that read frames.
@@ -298,6 +306,9 @@ pub fn run(args: Args) -> Result<i32> {
         Command::Rules(a) => rules(a),
         Command::Generate(a) => generate(a),
         Command::Bench(a) => bench::bench(a),
+        Command::Run(a) => daemon::run(a),
+        Command::Check(a) => daemon::check(a),
+        Command::Demo(a) => daemon::demo(a),
     }
 }
 

@@ -1,0 +1,453 @@
+//! `treeline run`, `treeline check` and `treeline demo`: the daemon's
+//! command-line glue. Signals become [`Control`] messages, statuses become
+//! systemd notifications, and `tracing` writes the daemon's own messages to
+//! stderr (which journald keeps).
+
+use std::collections::HashMap;
+use std::io::{BufRead, BufReader, Seek, SeekFrom};
+use std::path::{Path, PathBuf};
+use std::sync::{Arc, Mutex};
+use std::thread;
+use std::time::{Duration, Instant};
+
+use anyhow::{Context, Result};
+use crossbeam_channel::unbounded;
+use serde::Serialize;
+
+use treeline::config::{self, Config};
+use treeline::daemon::{self, detlog, files, Control};
+use treeline::record::FrameRecord;
+
+use super::notify::Notifier;
+
+#[derive(clap::Args, Debug)]
+pub struct RunArgs {
+    /// Configuration file (TOML).
+    #[arg(long)]
+    config: PathBuf,
+}
+
+#[derive(clap::Args, Debug)]
+pub struct CheckArgs {
+    /// Configuration file (TOML).
+    #[arg(long)]
+    config: PathBuf,
+    /// Print the findings as JSON.
+    #[arg(long)]
+    json: bool,
+}
+
+#[derive(clap::Args, Debug)]
+pub struct DemoArgs {
+    /// Frames fed to the daemon (their masks are not used).
+    #[arg(long, default_value = "demo-frames/test")]
+    frames: PathBuf,
+    /// Labelled frames the demo model is trained from.
+    #[arg(long, default_value = "demo-frames/train")]
+    seed_data: PathBuf,
+    /// Frames per second dropped into the inbox.
+    #[arg(long, default_value_t = 10.0)]
+    rate: f64,
+    /// Keep the demo's folders here instead of a temporary folder.
+    #[arg(long)]
+    keep: Option<PathBuf>,
+}
+
+fn load(path: &Path) -> Result<Config> {
+    let text = std::fs::read_to_string(path)
+        .with_context(|| format!("cannot read configuration {}", path.display()))?;
+    config::from_str(&text).map_err(|e| anyhow::anyhow!("{}", e.with_path(path)))
+}
+
+fn init_tracing(level: &str) {
+    use std::io::IsTerminal;
+    use tracing_subscriber::EnvFilter;
+    let filter = EnvFilter::try_from_default_env().unwrap_or_else(|_| EnvFilter::new(level));
+    let _ = tracing_subscriber::fmt()
+        .with_env_filter(filter)
+        .with_writer(std::io::stderr)
+        .with_ansi(std::io::stderr().is_terminal())
+        .with_target(false)
+        .try_init();
+}
+
+/// `treeline run`: the daemon, until SIGTERM or SIGINT.
+pub fn run(a: RunArgs) -> Result<i32> {
+    let cfg = load(&a.config)?;
+    init_tracing(&cfg.log.level);
+    let (tx, rx) = unbounded();
+    let mut signals = signal_hook::iterator::Signals::new([
+        signal_hook::consts::SIGTERM,
+        signal_hook::consts::SIGINT,
+        signal_hook::consts::SIGHUP,
+    ])
+    .context("cannot install signal handlers")?;
+    let path = a.config.clone();
+    thread::Builder::new()
+        .name("treeline-signals".into())
+        .spawn(move || {
+            for sig in signals.forever() {
+                let msg = if sig == signal_hook::consts::SIGHUP {
+                    tracing::info!(config = %path.display(), "SIGHUP: reloading");
+                    Control::Reload(
+                        load(&path)
+                            .map_err(|e| tracing::error!("reload: {e:#}"))
+                            .ok()
+                            .map(Box::new),
+                    )
+                } else {
+                    Control::Stop
+                };
+                if tx.send(msg).is_err() {
+                    return;
+                }
+            }
+        })?;
+    let mut notifier = Notifier::from_env();
+    daemon::run(cfg, rx, &mut |s| notifier.status(s)).map_err(|e| anyhow::anyhow!("{e}"))?;
+    Ok(0)
+}
+
+#[derive(Serialize)]
+struct Finding {
+    what: String,
+    ok: bool,
+    detail: String,
+}
+
+/// `treeline check`: the configuration, its folders and its model, with
+/// nothing started. Exit 0 when everything is usable, 1 otherwise.
+pub fn check(a: CheckArgs) -> Result<i32> {
+    let mut found: Vec<Finding> = Vec::new();
+    let mut note = |what: &str, ok: bool, detail: String| {
+        found.push(Finding {
+            what: what.into(),
+            ok,
+            detail,
+        })
+    };
+    let cfg = match load(&a.config) {
+        Ok(c) => {
+            note("configuration", true, a.config.display().to_string());
+            Some(c)
+        }
+        Err(e) => {
+            note("configuration", false, format!("{e:#}"));
+            None
+        }
+    };
+    if let Some(cfg) = &cfg {
+        let f = &cfg.folders;
+        for (name, dir) in [
+            ("folders.inbox", &f.inbox),
+            ("folders.archive", &f.archive),
+            ("folders.rejected", &f.rejected),
+            ("folders.corrections", &f.corrections),
+            ("folders.state", &f.state),
+            ("folders.logs", &f.logs),
+        ] {
+            match std::fs::metadata(dir) {
+                Ok(m) if m.is_dir() => {
+                    let ro = m.permissions().readonly();
+                    note(
+                        name,
+                        !ro,
+                        format!("{}{}", dir.display(), if ro { " is read-only" } else { "" }),
+                    )
+                }
+                Ok(_) => note(name, false, format!("{} is not a folder", dir.display())),
+                Err(_) => {
+                    // Missing folders are created at start, if the parent allows.
+                    let parent = dir
+                        .ancestors()
+                        .skip(1)
+                        .find(|p| p.as_os_str().is_empty() || p.exists())
+                        .map(|p| {
+                            if p.as_os_str().is_empty() {
+                                Path::new(".")
+                            } else {
+                                p
+                            }
+                        });
+                    let ok = parent.is_some_and(|p| p.is_dir());
+                    note(
+                        name,
+                        ok,
+                        format!(
+                            "{} does not exist yet; it is created at start",
+                            dir.display()
+                        ),
+                    )
+                }
+            }
+        }
+        let model_path = f.state.join(files::MODEL);
+        if model_path.exists() {
+            match daemon::load_model(cfg)
+                .and_then(|m| daemon::settings_for(&m, cfg).map(|s| (m, s)))
+            {
+                Ok((m, s)) => note(
+                    "model",
+                    true,
+                    format!(
+                        "{}: version {}, {}x{} window, {} nodes, threshold {}, min_area {}",
+                        model_path.display(),
+                        m.model_version,
+                        m.tree.window().size(),
+                        m.tree.window().size(),
+                        m.tree.nodes().len(),
+                        s.threshold,
+                        s.grouping.min_area
+                    ),
+                ),
+                Err(e) => note("model", false, e.to_string()),
+            }
+        } else {
+            match &cfg.seed_data {
+                None => note(
+                    "model",
+                    false,
+                    format!(
+                        "no {} and no training.seed_data to train one from",
+                        model_path.display()
+                    ),
+                ),
+                Some(seed) => match treeline::data::list_pairs(seed) {
+                    Ok((pairs, problems)) if !pairs.is_empty() && problems.is_empty() => note(
+                        "model",
+                        true,
+                        format!(
+                            "no model yet: one is trained at start from {} labelled frames in {}",
+                            pairs.len(),
+                            seed.display()
+                        ),
+                    ),
+                    Ok((pairs, problems)) => note(
+                        "model",
+                        false,
+                        format!(
+                            "seed data {}: {} labelled frames, {} problems{}",
+                            seed.display(),
+                            pairs.len(),
+                            problems.len(),
+                            problems
+                                .first()
+                                .map(|p| format!(", first: {p}"))
+                                .unwrap_or_default()
+                        ),
+                    ),
+                    Err(e) => note("model", false, format!("seed data: {e}")),
+                },
+            }
+        }
+        if f.state.is_dir() {
+            match files::StateLock::acquire(&f.state) {
+                Ok(lock) => {
+                    drop(lock);
+                    note("lock", true, "no daemon is running on these folders".into());
+                }
+                Err(e) => note("lock", true, format!("{e}")),
+            }
+        }
+    }
+    let ok = found.iter().all(|f| f.ok);
+    if a.json {
+        out!(
+            "{}",
+            serde_json::to_string_pretty(&serde_json::json!({"ok": ok, "checks": found}))?
+        );
+    } else {
+        for f in &found {
+            out!(
+                "{:<4} {:<20} {}",
+                if f.ok { "ok" } else { "BAD" },
+                f.what,
+                f.detail
+            );
+        }
+        out!(
+            "{}",
+            if ok {
+                "ready to run"
+            } else {
+                "not ready: see BAD above"
+            }
+        );
+    }
+    Ok(if ok { 0 } else { 1 })
+}
+
+/// `treeline demo`: the real daemon on a temporary folder, fed the demo
+/// frames at a steady pace.
+pub fn demo(a: DemoArgs) -> Result<i32> {
+    init_tracing("warn");
+    let root = match &a.keep {
+        Some(p) => p.clone(),
+        None => std::env::temp_dir().join(format!("treeline-demo-{}", std::process::id())),
+    };
+    let mut names: Vec<PathBuf> = std::fs::read_dir(&a.frames)
+        .with_context(|| format!("cannot read {}", a.frames.display()))?
+        .filter_map(|e| e.ok().map(|e| e.path()))
+        .filter(|p| {
+            p.file_name().and_then(|n| n.to_str()).is_some_and(|n| {
+                !n.ends_with(treeline::data::MASK_SUFFIX)
+                    && (n.ends_with(".pbm") || n.ends_with(".png"))
+            })
+        })
+        .collect();
+    names.sort();
+    anyhow::ensure!(!names.is_empty(), "no frames in {}", a.frames.display());
+    anyhow::ensure!(
+        a.rate > 0.0 && a.rate <= 1000.0,
+        "--rate must be in (0, 1000]"
+    );
+    let text = format!(
+        "[folders]\ninbox = {:?}\narchive = {:?}\nrejected = {:?}\ncorrections = {:?}\nstate = {:?}\nlogs = {:?}\n\
+         [training]\nseed_data = {:?}\n[watch]\nsettle_millis = 100\nrescan_seconds = 1.0\n[log]\nsync = \"batch\"\nsync_millis = 20\nlevel = \"warn\"\n",
+        root.join("inbox"), root.join("archive"), root.join("rejected"), root.join("corrections"),
+        root.join("state"), root.join("logs"), a.seed_data
+    );
+    std::fs::create_dir_all(&root)?;
+    std::fs::write(root.join("treeline.toml"), &text)?;
+    let cfg = config::from_str(&text).map_err(|e| anyhow::anyhow!("{e}"))?;
+    out!("treeline demo in {}", root.display());
+    out!(
+        "training the demo model from {} (a few seconds)...",
+        a.seed_data.display()
+    );
+    let (tx, rx) = unbounded();
+    let (ready_tx, ready_rx) = unbounded();
+    let daemon_cfg = cfg.clone();
+    let daemon = thread::spawn(move || {
+        daemon::run(daemon_cfg, rx, &mut |s| {
+            if s == daemon::Status::Ready {
+                let _ = ready_tx.send(());
+            }
+        })
+    });
+    if ready_rx.recv().is_err() {
+        let e = daemon.join().expect("daemon thread");
+        anyhow::bail!(
+            "the daemon did not start: {}",
+            e.err().map(|e| e.to_string()).unwrap_or_default()
+        );
+    }
+    out!(
+        "daemon ready; dropping {} frames at {} per second, plus one damaged file",
+        names.len(),
+        a.rate
+    );
+    // Feeder: write to a temporary name, then rename into the inbox.
+    let sent: Arc<Mutex<HashMap<String, Instant>>> = Arc::default();
+    let feeder = {
+        let (sent, inbox, period) = (
+            sent.clone(),
+            cfg.folders.inbox.clone(),
+            Duration::from_secs_f64(1.0 / a.rate),
+        );
+        let names = names.clone();
+        thread::spawn(move || -> std::io::Result<()> {
+            let start = Instant::now();
+            for (k, p) in names.iter().enumerate() {
+                let name = p.file_name().expect("file").to_string_lossy().into_owned();
+                let tmp = inbox.join(format!(".{name}.tmp"));
+                std::fs::copy(p, &tmp)?;
+                sent.lock()
+                    .expect("lock")
+                    .insert(name.clone(), Instant::now());
+                std::fs::rename(&tmp, inbox.join(&name))?;
+                if k == names.len() / 2 {
+                    std::fs::write(inbox.join("damaged-frame.pbm"), b"P4\n64 64\n\x00\x01")?;
+                }
+                let due = start + period * (k as u32 + 1);
+                thread::sleep(due.saturating_duration_since(Instant::now()));
+            }
+            Ok(())
+        })
+    };
+    // Follow the log as records appear.
+    let log_path = cfg.folders.logs.join(detlog::CURRENT);
+    let mut pos = 0u64;
+    let mut latencies: Vec<f64> = Vec::new();
+    let (mut objects, mut seen) = (0usize, 0usize);
+    let deadline = Instant::now() + Duration::from_secs_f64(names.len() as f64 / a.rate + 20.0);
+    while seen < names.len() && Instant::now() < deadline {
+        thread::sleep(Duration::from_millis(5));
+        let Ok(mut f) = std::fs::File::open(&log_path) else {
+            continue;
+        };
+        f.seek(SeekFrom::Start(pos))?;
+        let mut reader = BufReader::new(f);
+        let mut line = String::new();
+        while reader.read_line(&mut line)? > 0 {
+            if !line.ends_with('\n') {
+                break;
+            }
+            pos += line.len() as u64;
+            let rec: FrameRecord = serde_json::from_str(&line)?;
+            if let Some(t) = sent.lock().expect("lock").get(&rec.frame) {
+                latencies.push(t.elapsed().as_secs_f64() * 1e3);
+            }
+            seen += 1;
+            objects += rec.objects.len();
+            let what: Vec<String> = rec
+                .objects
+                .iter()
+                .map(|o| {
+                    format!(
+                        "#{} at ({:.0},{:.0}) {} px",
+                        o.id, o.centroid[0], o.centroid[1], o.area
+                    )
+                })
+                .collect();
+            out!(
+                "{}  {}  {:.1} ms  {}",
+                &rec.time[11..23],
+                rec.frame,
+                rec.millis,
+                if what.is_empty() {
+                    "clear".to_string()
+                } else {
+                    what.join(", ")
+                }
+            );
+            line.clear();
+        }
+    }
+    feeder.join().expect("feeder thread")?;
+    // Give the damaged file its moment, then stop.
+    let reject_deadline = Instant::now() + Duration::from_secs(3);
+    while std::fs::read_dir(&cfg.folders.rejected)
+        .map(|d| d.count())
+        .unwrap_or(0)
+        == 0
+        && Instant::now() < reject_deadline
+    {
+        thread::sleep(Duration::from_millis(20));
+    }
+    let _ = tx.send(Control::Stop);
+    let summary = daemon
+        .join()
+        .expect("daemon thread")
+        .map_err(|e| anyhow::anyhow!("{e}"))?;
+    latencies.sort_by(f64::total_cmp);
+    let pct = |q: f64| {
+        latencies
+            .get(((latencies.len() as f64 - 1.0) * q).round() as usize)
+            .copied()
+            .unwrap_or(0.0)
+    };
+    out!(
+        "done: {} frames logged, {} objects, {} rejected (see {}), latency from drop to logged record p50 {:.1} ms, p99 {:.1} ms",
+        summary.logged,
+        objects,
+        summary.rejected,
+        cfg.folders.rejected.display(),
+        pct(0.5),
+        pct(0.99)
+    );
+    if a.keep.is_none() {
+        let _ = std::fs::remove_dir_all(&root);
+    }
+    Ok(if seen == names.len() { 0 } else { 1 })
+}

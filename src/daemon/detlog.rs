@@ -1,0 +1,291 @@
+//! The detection log: JSON Lines, one [`FrameRecord`] per line, in
+//! `logs/detections.jsonl`, rotated by size into
+//! `logs/detections-YYYYMMDDTHHMMSS.ffffffZ.jsonl` (UTC, so names sort by
+//! age); the newest `keep_files` files are kept, the current one included.
+//!
+//! Durability is the point of this module. A record is *durable* once the
+//! file has been synced after it; the daemon moves a frame out of the inbox
+//! only then. After a crash the file may end in a partial line (the write
+//! of a record that was never durable): [`DetectionLog::open`] cuts it off
+//! and reads back the names and hashes of the records already logged, so
+//! a frame still in the inbox whose record is in the log is archived, not
+//! logged twice. Records are written with one `write` call each, so a crash
+//! leaves at most the last line partial.
+
+use std::collections::HashSet;
+use std::fs::{self, File, OpenOptions};
+use std::io::{self, Read, Seek, SeekFrom, Write};
+use std::path::{Path, PathBuf};
+use std::time::SystemTime;
+
+use crate::record::FrameRecord;
+
+/// The current log file's name.
+pub const CURRENT: &str = "detections.jsonl";
+/// How much of the newest log files is read back at start.
+const TAIL_BYTES: u64 = 8 << 20;
+
+/// A logged frame: its name and the SHA-256 of its bytes.
+pub type Key = (String, String);
+
+/// The open detection log.
+#[derive(Debug)]
+pub struct DetectionLog {
+    dir: PathBuf,
+    file: File,
+    size: u64,
+    rotate_bytes: u64,
+    keep_files: usize,
+    /// Records written since the last sync.
+    unsynced: usize,
+}
+
+impl DetectionLog {
+    /// Opens (or creates) the log in `dir`, cutting off a partial last
+    /// line, and returns it with the keys of the records in the tail of the
+    /// newest files.
+    pub fn open(
+        dir: &Path,
+        rotate_bytes: u64,
+        keep_files: usize,
+    ) -> io::Result<(Self, HashSet<Key>)> {
+        fs::create_dir_all(dir)?;
+        let path = dir.join(CURRENT);
+        let created = !path.exists();
+        let mut file = OpenOptions::new()
+            .read(true)
+            .append(true)
+            .create(true)
+            .open(&path)?;
+        if created {
+            sync_dir(dir)?;
+        }
+        let size = cut_partial_line(&mut file)?;
+        let mut keys = HashSet::new();
+        read_keys(&mut file, size, &mut keys)?;
+        if size < TAIL_BYTES {
+            if let Some(prev) = rotated(dir)?.last() {
+                let mut f = File::open(prev)?;
+                let len = f.metadata()?.len();
+                read_keys(&mut f, len, &mut keys)?;
+            }
+        }
+        Ok((
+            DetectionLog {
+                dir: dir.to_path_buf(),
+                file,
+                size,
+                rotate_bytes,
+                keep_files,
+                unsynced: 0,
+            },
+            keys,
+        ))
+    }
+
+    /// Appends one record (not yet durable: see [`DetectionLog::sync`]).
+    /// Rotates first when the file is full.
+    pub fn append(&mut self, record: &FrameRecord) -> io::Result<()> {
+        let mut line = serde_json::to_vec(record).map_err(io::Error::other)?;
+        line.push(b'\n');
+        if self.size > 0 && self.size + line.len() as u64 > self.rotate_bytes {
+            self.rotate()?;
+        }
+        self.file.write_all(&line)?;
+        self.size += line.len() as u64;
+        self.unsynced += 1;
+        Ok(())
+    }
+
+    /// Makes every record appended so far durable.
+    pub fn sync(&mut self) -> io::Result<()> {
+        if self.unsynced > 0 {
+            self.file.sync_data()?;
+            self.unsynced = 0;
+        }
+        Ok(())
+    }
+
+    /// Records appended since the last sync.
+    pub fn unsynced(&self) -> usize {
+        self.unsynced
+    }
+
+    /// Closes the current file (synced) under a time-stamped name, starts a
+    /// new one, and deletes the oldest files past `keep_files`.
+    fn rotate(&mut self) -> io::Result<()> {
+        self.file.sync_data()?;
+        self.unsynced = 0;
+        let stamp = crate::record::rfc3339(SystemTime::now())
+            .replace(['-', ':'], "")
+            .replace('.', "_");
+        let mut target = self.dir.join(format!("detections-{stamp}.jsonl"));
+        let mut k = 1;
+        while target.exists() {
+            target = self.dir.join(format!("detections-{stamp}-{k}.jsonl"));
+            k += 1;
+        }
+        fs::rename(self.dir.join(CURRENT), &target)?;
+        self.file = OpenOptions::new()
+            .read(true)
+            .append(true)
+            .create(true)
+            .open(self.dir.join(CURRENT))?;
+        self.size = 0;
+        sync_dir(&self.dir)?;
+        let old = rotated(&self.dir)?;
+        let excess = (old.len() + 1).saturating_sub(self.keep_files);
+        for p in old.iter().take(excess) {
+            fs::remove_file(p)?;
+        }
+        Ok(())
+    }
+}
+
+/// The rotated log files in `dir`, oldest first.
+pub fn rotated(dir: &Path) -> io::Result<Vec<PathBuf>> {
+    let mut v: Vec<PathBuf> = fs::read_dir(dir)?
+        .filter_map(|e| e.ok())
+        .map(|e| e.path())
+        .filter(|p| {
+            p.file_name()
+                .and_then(|n| n.to_str())
+                .is_some_and(|n| n.starts_with("detections-") && n.ends_with(".jsonl"))
+        })
+        .collect();
+    v.sort();
+    Ok(v)
+}
+
+/// Truncates a file that does not end in a newline back to its last
+/// newline; returns the new length.
+fn cut_partial_line(file: &mut File) -> io::Result<u64> {
+    let len = file.metadata()?.len();
+    if len == 0 {
+        return Ok(0);
+    }
+    let mut end = len;
+    let mut buf = vec![0u8; 64 * 1024];
+    loop {
+        let start = end.saturating_sub(buf.len() as u64);
+        let n = (end - start) as usize;
+        file.seek(SeekFrom::Start(start))?;
+        file.read_exact(&mut buf[..n])?;
+        if end == len && buf[n - 1] == b'\n' {
+            return Ok(len);
+        }
+        if let Some(i) = buf[..n].iter().rposition(|&b| b == b'\n') {
+            let keep = start + i as u64 + 1;
+            file.set_len(keep)?;
+            file.sync_data()?;
+            return Ok(keep);
+        }
+        if start == 0 {
+            file.set_len(0)?;
+            file.sync_data()?;
+            return Ok(0);
+        }
+        end = start;
+    }
+}
+
+/// Adds the (frame, sha256) of the records in the last [`TAIL_BYTES`] of
+/// a log file of length `len`. Lines that do not parse are passed over.
+fn read_keys(file: &mut File, len: u64, keys: &mut HashSet<Key>) -> io::Result<()> {
+    #[derive(serde::Deserialize)]
+    struct KeyOnly {
+        frame: String,
+        sha256: String,
+    }
+    let start = len.saturating_sub(TAIL_BYTES);
+    file.seek(SeekFrom::Start(start))?;
+    let mut text = Vec::with_capacity((len - start) as usize);
+    file.take(len - start).read_to_end(&mut text)?;
+    let mut lines = text.split(|&b| b == b'\n');
+    if start > 0 {
+        lines.next(); // partial first line
+    }
+    for line in lines.filter(|l| !l.is_empty()) {
+        if let Ok(k) = serde_json::from_slice::<KeyOnly>(line) {
+            keys.insert((k.frame, k.sha256));
+        }
+    }
+    Ok(())
+}
+
+/// Syncs a folder, so a file created or renamed in it survives a crash.
+pub fn sync_dir(dir: &Path) -> io::Result<()> {
+    File::open(dir)?.sync_all()
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn rec(name: &str, hash: &str) -> FrameRecord {
+        FrameRecord {
+            time: "2026-12-02T10:00:00.000Z".into(),
+            frame: name.into(),
+            sha256: hash.into(),
+            width: 4,
+            height: 4,
+            model_version: 1,
+            millis: 0.5,
+            objects: vec![],
+        }
+    }
+
+    #[test]
+    fn partial_last_line_is_cut_and_keys_read_back() {
+        let dir = tempfile::tempdir().unwrap();
+        let (mut log, keys) = DetectionLog::open(dir.path(), 1 << 20, 3).unwrap();
+        assert!(keys.is_empty());
+        log.append(&rec("a.pbm", "aa")).unwrap();
+        log.append(&rec("b.pbm", "bb")).unwrap();
+        log.sync().unwrap();
+        drop(log);
+        // A crash in the middle of the third record.
+        let path = dir.path().join(CURRENT);
+        let mut f = OpenOptions::new().append(true).open(&path).unwrap();
+        f.write_all(b"{\"time\":\"2026-12-02T10:00:01.000Z\",\"frame\":\"c.p")
+            .unwrap();
+        drop(f);
+        let (log, keys) = DetectionLog::open(dir.path(), 1 << 20, 3).unwrap();
+        let want: HashSet<Key> = [("a.pbm", "aa"), ("b.pbm", "bb")]
+            .iter()
+            .map(|(a, b)| (a.to_string(), b.to_string()))
+            .collect();
+        assert_eq!(keys, want);
+        drop(log);
+        let text = fs::read_to_string(&path).unwrap();
+        assert_eq!(text.lines().count(), 2);
+        assert!(text.ends_with('\n'));
+    }
+
+    #[test]
+    fn rotation_keeps_the_newest_files() {
+        let dir = tempfile::tempdir().unwrap();
+        let (mut log, _) = DetectionLog::open(dir.path(), 4096, 3).unwrap();
+        for i in 0..200 {
+            log.append(&rec(&format!("frame-{i:04}.pbm"), "00"))
+                .unwrap();
+        }
+        log.sync().unwrap();
+        let old = rotated(dir.path()).unwrap();
+        assert_eq!(old.len(), 2, "{old:?}");
+        // Every kept file is whole JSON Lines, and the newest records are
+        // in the current file.
+        let mut total = 0;
+        for p in old.iter().chain([&dir.path().join(CURRENT)]) {
+            let text = fs::read_to_string(p).unwrap();
+            assert!(fs::metadata(p).unwrap().len() <= 4096);
+            for line in text.lines() {
+                serde_json::from_str::<FrameRecord>(line).unwrap();
+                total += 1;
+            }
+        }
+        assert!(total < 200);
+        let last = fs::read_to_string(dir.path().join(CURRENT)).unwrap();
+        assert!(last.lines().last().unwrap().contains("frame-0199.pbm"));
+    }
+}

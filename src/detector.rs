@@ -1,0 +1,83 @@
+//! One frame from bytes to its record: the step every frame takes, whoever
+//! calls it (the daemon's workers, `treeline scan`, `treeline bench`).
+//!
+//! A [`Detector`] is a model with its compiled program and the settings in
+//! force. It is immutable and shared behind an `Arc`: swapping the running
+//! model means building a new `Detector` and swapping the pointer, while
+//! frames in flight finish with the one they started with. Each caller
+//! brings its own [`Scratch`] and clock; nothing here reads files or time.
+
+use crate::codec::{self, DecodeLimits};
+use crate::compile::{self, Program, Scratch};
+use crate::error::Result;
+use crate::evaluate::{FrameResult, Settings};
+use crate::model::Model;
+use crate::record::FrameRecord;
+
+/// A model ready to detect: the tree, its compiled program and settings.
+#[derive(Debug)]
+pub struct Detector {
+    pub model: Model,
+    pub program: Program,
+    pub settings: Settings,
+}
+
+/// What detection made of one frame file.
+#[derive(Debug)]
+pub struct Detection {
+    pub record: FrameRecord,
+    pub result: FrameResult,
+}
+
+impl Detector {
+    /// Compiles `model` for `settings` (validated by the caller).
+    pub fn new(model: Model, settings: Settings) -> Detector {
+        let program = Program::compile(&model.tree, settings.threshold);
+        Detector {
+            model,
+            program,
+            settings,
+        }
+    }
+
+    /// The model's version, which every record carries.
+    pub fn version(&self) -> u64 {
+        self.model.model_version
+    }
+
+    /// Decodes, detects and groups one frame file's bytes, and builds its
+    /// record. `clock` gives the record's time and measures the
+    /// processing milliseconds: it is called once at the start and once at
+    /// the end, returning wall-clock time and seconds elapsed on a
+    /// monotonic clock.
+    pub fn process(
+        &self,
+        name: &str,
+        bytes: &[u8],
+        limits: &DecodeLimits,
+        scratch: &mut Scratch,
+        clock: &mut dyn FnMut() -> (std::time::SystemTime, f64),
+    ) -> Result<Detection> {
+        let (_, start) = clock();
+        let frame = codec::decode(bytes, limits)?;
+        let result = compile::run(
+            &self.program,
+            &self.model.tree,
+            &self.settings,
+            &frame,
+            scratch,
+        );
+        let (now, end) = clock();
+        let record = FrameRecord::new(
+            now,
+            name,
+            bytes,
+            frame.width(),
+            frame.height(),
+            self.version(),
+            (end - start) * 1e3,
+            &result.objects,
+        );
+        Ok(Detection { record, result })
+    }
+}

@@ -1,0 +1,569 @@
+//! The daemon end to end: the real binary on temporary folders, fed frames
+//! by rename or written in place, stopped by signals or killed.
+//!
+//! These tests wait by polling the folders with a generous deadline; they
+//! never assert on how long anything took.
+
+use std::collections::{HashMap, HashSet};
+use std::path::PathBuf;
+use std::process::{Child, Command, Stdio};
+use std::time::{Duration, Instant};
+
+use treeline::codec;
+use treeline::record::{sha256_hex, FrameRecord};
+use treeline::synth::{self, LoomParams};
+
+use crate::util::{repo, Dir};
+
+/// A daemon's folders, its configuration and the committed model as its
+/// running model.
+struct Setup {
+    dir: Dir,
+}
+
+impl Setup {
+    fn new(extra: &str) -> Setup {
+        let dir = Dir::new();
+        let s = Setup { dir };
+        s.write_config(extra);
+        let state = s.dir.join("state");
+        std::fs::create_dir_all(&state).unwrap();
+        std::fs::copy(
+            repo().join("tests/data/model-v1.json"),
+            state.join("model.json"),
+        )
+        .unwrap();
+        std::fs::create_dir_all(s.inbox()).unwrap();
+        s
+    }
+
+    fn config_text(&self, extra: &str) -> String {
+        let d = self.dir.path();
+        format!(
+            "[folders]\ninbox = {:?}\narchive = {:?}\nrejected = {:?}\ncorrections = {:?}\n\
+             state = {:?}\nlogs = {:?}\n{extra}",
+            d.join("inbox"),
+            d.join("archive"),
+            d.join("rejected"),
+            d.join("corrections"),
+            d.join("state"),
+            d.join("logs"),
+        )
+    }
+
+    fn write_config(&self, extra: &str) {
+        let text = self.config_text(extra);
+        std::fs::write(self.config(), text).unwrap();
+    }
+
+    fn config(&self) -> PathBuf {
+        self.dir.join("treeline.toml")
+    }
+
+    fn inbox(&self) -> PathBuf {
+        self.dir.join("inbox")
+    }
+
+    fn start(&self) -> Child {
+        let err = std::fs::OpenOptions::new()
+            .create(true)
+            .append(true)
+            .open(self.dir.join("daemon.stderr"))
+            .unwrap();
+        Command::new(env!("CARGO_BIN_EXE_treeline"))
+            .args(["run", "--config"])
+            .arg(self.config())
+            .env_remove("RUST_LOG")
+            .env_remove("NOTIFY_SOCKET")
+            .stdin(Stdio::null())
+            .stdout(Stdio::null())
+            .stderr(err)
+            .spawn()
+            .expect("start the daemon")
+    }
+
+    fn stderr(&self) -> String {
+        std::fs::read_to_string(self.dir.join("daemon.stderr")).unwrap_or_default()
+    }
+
+    /// Drops a frame into the inbox the preferred way: written under a
+    /// temporary name, then renamed.
+    fn drop_frame(&self, name: &str, bytes: &[u8]) {
+        let tmp = self.inbox().join(format!(".{name}.tmp"));
+        std::fs::write(&tmp, bytes).unwrap();
+        std::fs::rename(&tmp, self.inbox().join(name)).unwrap();
+    }
+
+    fn names_in(&self, folder: &str) -> HashSet<String> {
+        std::fs::read_dir(self.dir.join(folder))
+            .map(|d| {
+                d.filter_map(|e| e.ok())
+                    .map(|e| e.file_name().to_string_lossy().into_owned())
+                    .filter(|n| !n.starts_with('.'))
+                    .collect()
+            })
+            .unwrap_or_default()
+    }
+
+    /// Every record in the detection log files, oldest file first; also
+    /// checks that every file is whole JSON Lines.
+    fn records(&self) -> Vec<FrameRecord> {
+        let logs = self.dir.join("logs");
+        let mut files: Vec<PathBuf> = std::fs::read_dir(&logs)
+            .map(|d| d.filter_map(|e| e.ok()).map(|e| e.path()).collect())
+            .unwrap_or_default();
+        files.sort_by_key(|p| (p.ends_with("detections.jsonl"), p.clone()));
+        let mut out = Vec::new();
+        for f in files {
+            let text = std::fs::read_to_string(&f).unwrap();
+            assert!(
+                text.is_empty() || text.ends_with('\n'),
+                "{} ends mid-line",
+                f.display()
+            );
+            for line in text.lines() {
+                out.push(serde_json::from_str(line).expect("a whole record"));
+            }
+        }
+        out
+    }
+}
+
+/// Polls `cond` until it holds or the deadline passes.
+fn wait_for(what: &str, secs: u64, mut cond: impl FnMut() -> bool) {
+    let deadline = Instant::now() + Duration::from_secs(secs);
+    while !cond() {
+        assert!(Instant::now() < deadline, "timed out waiting for {what}");
+        std::thread::sleep(Duration::from_millis(20));
+    }
+}
+
+fn signal(child: &Child, sig: i32) {
+    // SAFETY: sends a signal to a child process we started.
+    let rc = unsafe { libc::kill(child.id() as i32, sig) };
+    assert_eq!(rc, 0, "kill");
+}
+
+fn exit_code(child: &mut Child, secs: u64) -> i32 {
+    let deadline = Instant::now() + Duration::from_secs(secs);
+    loop {
+        if let Some(s) = child.try_wait().unwrap() {
+            return s.code().unwrap_or(-1);
+        }
+        if Instant::now() > deadline {
+            let _ = child.kill();
+            panic!("the daemon did not exit within {secs} s");
+        }
+        std::thread::sleep(Duration::from_millis(20));
+    }
+}
+
+/// `count` small seeded loom frames as PBM bytes, named frame-NNNN.pbm.
+fn frames(count: usize, seed: u64) -> Vec<(String, Vec<u8>)> {
+    let p = LoomParams {
+        width: 64,
+        height: 40,
+        ..LoomParams::standard()
+    };
+    (0..count)
+        .map(|i| {
+            let f = synth::generate(&p, synth::frame_seed(seed, i)).frame;
+            (format!("frame-{i:04}.pbm"), codec::encode_pbm(&f))
+        })
+        .collect()
+}
+
+/// Checks that each frame has exactly one record, with its hash.
+fn logged_once(records: &[FrameRecord], frames: &[(String, Vec<u8>)]) {
+    let mut by_name: HashMap<&str, Vec<&FrameRecord>> = HashMap::new();
+    for r in records {
+        by_name.entry(r.frame.as_str()).or_default().push(r);
+    }
+    for (name, bytes) in frames {
+        let rs = by_name
+            .get(name.as_str())
+            .map(|v| v.as_slice())
+            .unwrap_or(&[]);
+        assert_eq!(rs.len(), 1, "{name} has {} records", rs.len());
+        // FIPS 180-4 SHA-256, the hash the record format names.
+        assert_eq!(rs[0].sha256, sha256_hex(bytes), "{name}");
+        assert_eq!((rs[0].width, rs[0].height), (64, 40));
+        assert_eq!(rs[0].model_version, 1);
+    }
+    assert_eq!(records.len(), frames.len(), "records for frames never sent");
+}
+
+fn peak_rss_kib(child: &Child) -> Option<u64> {
+    let status = std::fs::read_to_string(format!("/proc/{}/status", child.id())).ok()?;
+    let line = status.lines().find(|l| l.starts_with("VmHWM:"))?;
+    line.split_whitespace().nth(1)?.parse().ok()
+}
+
+#[test]
+fn a_burst_of_2000_frames_is_logged_once_and_archived() {
+    let s = Setup::new("[log]\nsync = \"batch\"\n[watch]\nsettle_millis = 100\n");
+    let all = frames(2000, 7);
+    let mut d = s.start();
+    wait_for("the daemon to start", 30, || {
+        s.stderr().contains("watching")
+    });
+    // Written aside first, then renamed in all at once.
+    let stage = s.dir.join("stage");
+    std::fs::create_dir_all(&stage).unwrap();
+    for (n, b) in &all {
+        std::fs::write(stage.join(n), b).unwrap();
+    }
+    for (n, _) in &all {
+        std::fs::rename(stage.join(n), s.inbox().join(n)).unwrap();
+    }
+    wait_for("2000 archived frames", 300, || {
+        s.names_in("archive").len() == 2000
+    });
+    assert!(s.names_in("inbox").is_empty());
+    let peak = peak_rss_kib(&d);
+    signal(&d, libc::SIGTERM);
+    assert_eq!(exit_code(&mut d, 20), 0, "{}", s.stderr());
+    logged_once(&s.records(), &all);
+    // Bounded memory: frames wait in the inbox, not in the daemon.
+    if let Some(kib) = peak {
+        assert!(kib < 128 * 1024, "peak resident memory {kib} KiB");
+    }
+}
+
+#[test]
+fn a_frame_written_slowly_in_place_is_read_when_complete() {
+    let s = Setup::new("[watch]\nsettle_millis = 100\nrescan_seconds = 0.1\n");
+    let mut d = s.start();
+    wait_for("the daemon to start", 30, || {
+        s.stderr().contains("watching")
+    });
+    let (_, bytes) = frames(1, 3).remove(0);
+    {
+        use std::io::Write;
+        let mut f = std::fs::File::create(s.inbox().join("slow.pbm")).unwrap();
+        for chunk in bytes.chunks(bytes.len() / 4 + 1) {
+            f.write_all(chunk).unwrap();
+            f.flush().unwrap();
+            // Longer than the settle time: only the close event may start
+            // the read.
+            std::thread::sleep(Duration::from_millis(300));
+        }
+    }
+    wait_for("the slow frame to be archived", 30, || {
+        s.names_in("archive").contains("slow.pbm")
+    });
+    signal(&d, libc::SIGTERM);
+    assert_eq!(exit_code(&mut d, 20), 0);
+    assert!(
+        s.names_in("rejected").is_empty(),
+        "{:?}",
+        s.names_in("rejected")
+    );
+    let r = s.records();
+    assert_eq!(r.len(), 1);
+    assert_eq!(r[0].sha256, sha256_hex(&bytes));
+}
+
+#[test]
+fn bad_files_are_rejected_with_a_reason_and_the_rest_logged() {
+    let s =
+        Setup::new("[watch]\nsettle_millis = 50\n[frames]\nmax_width = 4096\nmax_height = 4096\n");
+    let mut d = s.start();
+    wait_for("the daemon to start", 30, || {
+        s.stderr().contains("watching")
+    });
+    let good = frames(20, 11);
+    let bad: Vec<(&str, &[u8], &str)> = vec![
+        ("empty.pbm", b"", "empty"),
+        ("truncated.pbm", b"P4\n64 40\n\x00\x01\x02", "truncated"),
+        (
+            "huge-header.pbm",
+            b"P4\n100000 100000\n\x00",
+            "over the limit",
+        ),
+        (
+            "not-an-image.png",
+            b"this is a shift report, not a frame",
+            "not a PBM or PNG",
+        ),
+        ("bad-plain.pbm", b"P1\n2 2\n0 1\n1 x\n", "only '0' and '1'"),
+    ];
+    for (k, (n, b)) in good.iter().enumerate() {
+        s.drop_frame(n, b);
+        if let Some((bn, bb, _)) = bad.get(k) {
+            s.drop_frame(bn, bb);
+        }
+    }
+    wait_for("every frame to leave the inbox", 60, || {
+        s.names_in("inbox").is_empty()
+    });
+    wait_for("20 archived frames", 30, || {
+        s.names_in("archive").len() == 20
+    });
+    // Still alive after all that.
+    assert!(
+        d.try_wait().unwrap().is_none(),
+        "the daemon stopped: {}",
+        s.stderr()
+    );
+    signal(&d, libc::SIGTERM);
+    assert_eq!(exit_code(&mut d, 20), 0);
+    logged_once(&s.records(), &good);
+    let rejected = s.names_in("rejected");
+    for (n, _, why) in &bad {
+        assert!(rejected.contains(*n), "{n} not rejected: {rejected:?}");
+        let reason =
+            std::fs::read_to_string(s.dir.join("rejected").join(format!("{n}.reason.txt")))
+                .unwrap();
+        assert!(reason.contains(why), "{n}: {reason}");
+        assert!(reason.contains(n), "the reason names the file: {reason}");
+    }
+}
+
+#[test]
+fn killed_five_times_every_frame_is_logged_exactly_once() {
+    let s = Setup::new("[log]\nsync = \"batch\"\nsync_millis = 50\n[watch]\nsettle_millis = 50\nrescan_seconds = 0.2\n");
+    let all = frames(500, 21);
+    let feeder = {
+        let inbox = s.inbox();
+        let all = all.clone();
+        std::thread::spawn(move || {
+            for (n, b) in &all {
+                let tmp = inbox.join(format!(".{n}.tmp"));
+                std::fs::write(&tmp, b).unwrap();
+                std::fs::rename(&tmp, inbox.join(n)).unwrap();
+                std::thread::sleep(Duration::from_millis(4));
+            }
+        })
+    };
+    // Seeded "random" moments, so a failure can be replayed.
+    let mut rng = synth::Rng::new(2026);
+    for _ in 0..5 {
+        let mut d = s.start();
+        std::thread::sleep(Duration::from_millis(150 + rng.range(0, 400) as u64));
+        d.kill().unwrap(); // SIGKILL
+        d.wait().unwrap();
+    }
+    feeder.join().unwrap();
+    let mut d = s.start();
+    wait_for("500 archived frames", 120, || {
+        s.names_in("archive").len() == 500
+    });
+    signal(&d, libc::SIGTERM);
+    assert_eq!(exit_code(&mut d, 20), 0, "{}", s.stderr());
+    assert!(s.names_in("inbox").is_empty());
+    assert!(
+        s.names_in("rejected").is_empty(),
+        "{:?}",
+        s.names_in("rejected")
+    );
+    logged_once(&s.records(), &all);
+}
+
+#[test]
+fn sigterm_with_frames_in_flight_loses_nothing() {
+    let s = Setup::new("[log]\nsync = \"batch\"\n[watch]\nsettle_millis = 50\n");
+    let all = frames(300, 5);
+    let mut d = s.start();
+    wait_for("the daemon to start", 30, || {
+        s.stderr().contains("watching")
+    });
+    for (n, b) in &all {
+        s.drop_frame(n, b);
+    }
+    wait_for("a first record", 30, || !s.names_in("archive").is_empty());
+    signal(&d, libc::SIGTERM);
+    assert_eq!(exit_code(&mut d, 20), 0, "{}", s.stderr());
+    let records = s.records();
+    let archived = s.names_in("archive");
+    let waiting = s.names_in("inbox");
+    // Every frame is either archived with its one record, or still waiting.
+    let logged: HashSet<String> = records.iter().map(|r| r.frame.clone()).collect();
+    assert_eq!(logged.len(), records.len(), "a frame was logged twice");
+    assert_eq!(logged, archived);
+    for (n, _) in &all {
+        assert!(
+            archived.contains(n) ^ waiting.contains(n),
+            "{n} lost or doubled"
+        );
+    }
+}
+
+#[test]
+fn sighup_with_a_broken_config_keeps_the_running_one() {
+    let extra = "[watch]\nsettle_millis = 50\n";
+    let s = Setup::new(extra);
+    let all = frames(20, 9);
+    let mut d = s.start();
+    wait_for("the daemon to start", 30, || {
+        s.stderr().contains("watching")
+    });
+    for (n, b) in &all[..10] {
+        s.drop_frame(n, b);
+    }
+    wait_for("10 archived frames", 30, || {
+        s.names_in("archive").len() == 10
+    });
+    std::fs::write(s.config(), "[folders\ninbox = ").unwrap();
+    signal(&d, libc::SIGHUP);
+    wait_for("the reload error", 30, || {
+        s.stderr().contains("keeping the running configuration")
+    });
+    for (n, b) in &all[10..] {
+        s.drop_frame(n, b);
+    }
+    wait_for("20 archived frames", 30, || {
+        s.names_in("archive").len() == 20
+    });
+    // A good configuration with a threshold override is taken.
+    s.write_config(&format!("{extra}[detection]\nthreshold = 1.0\n"));
+    signal(&d, libc::SIGHUP);
+    wait_for("the reload", 30, || s.stderr().contains("reloaded"));
+    signal(&d, libc::SIGTERM);
+    assert_eq!(exit_code(&mut d, 20), 0);
+    logged_once(&s.records(), &all);
+}
+
+#[test]
+fn frames_are_found_by_listing_when_events_are_missing() {
+    // No file events at all (as on a network filesystem): every frame must
+    // still be found, by the periodic listing.
+    let s = Setup::new("[watch]\nevents = false\nsettle_millis = 50\nrescan_seconds = 0.1\n");
+    let all = frames(60, 13);
+    let mut d = s.start();
+    wait_for("the daemon to start", 30, || {
+        s.stderr().contains("watching")
+    });
+    for (n, b) in &all {
+        s.drop_frame(n, b);
+    }
+    wait_for("60 archived frames", 60, || {
+        s.names_in("archive").len() == 60
+    });
+    signal(&d, libc::SIGTERM);
+    assert_eq!(exit_code(&mut d, 20), 0);
+    logged_once(&s.records(), &all);
+}
+
+#[test]
+fn frames_waiting_at_start_are_processed_oldest_first() {
+    let s = Setup::new("[watch]\nsettle_millis = 50\nqueue = 1\n[detection]\nworkers = 1\n");
+    let all = frames(5, 17);
+    // Names in the reverse of their age.
+    let now = std::time::SystemTime::now();
+    for (k, (n, b)) in all.iter().enumerate() {
+        let p = s.inbox().join(n);
+        std::fs::write(&p, b).unwrap();
+        let f = std::fs::File::options().write(true).open(&p).unwrap();
+        f.set_modified(now - Duration::from_secs(100 * (k as u64 + 1)))
+            .unwrap();
+    }
+    let mut d = s.start();
+    wait_for("5 archived frames", 30, || s.names_in("archive").len() == 5);
+    signal(&d, libc::SIGTERM);
+    assert_eq!(exit_code(&mut d, 20), 0);
+    let order: Vec<String> = s.records().into_iter().map(|r| r.frame).collect();
+    let want: Vec<String> = all.iter().rev().map(|(n, _)| n.clone()).collect();
+    assert_eq!(order, want);
+}
+
+#[test]
+fn a_second_daemon_on_the_same_folders_stops_with_a_clear_message() {
+    let s = Setup::new("");
+    let mut first = s.start();
+    wait_for("the daemon to start", 30, || {
+        s.stderr().contains("watching")
+    });
+    let second = crate::util::treeline(
+        s.dir.path(),
+        &["run", "--config", s.config().to_str().unwrap()],
+    );
+    assert_eq!(second.code, 1);
+    assert!(
+        second.stderr.contains("another treeline daemon"),
+        "{}",
+        second.stderr
+    );
+    assert!(second.stderr.contains("treeline.lock"), "{}", second.stderr);
+    signal(&first, libc::SIGINT);
+    assert_eq!(exit_code(&mut first, 20), 0);
+}
+
+#[test]
+fn a_fresh_box_trains_its_first_model_from_the_seed_data() {
+    let s = Setup::new("");
+    std::fs::remove_file(s.dir.join("state/model.json")).unwrap();
+    let seed = s.dir.join("seed");
+    let g = crate::util::treeline(
+        s.dir.path(),
+        &[
+            "generate",
+            "--out",
+            seed.to_str().unwrap(),
+            "--count",
+            "6",
+            "--seed",
+            "4",
+            "--width",
+            "96",
+            "--height",
+            "96",
+        ],
+    );
+    assert_eq!(g.code, 0, "{}", g.stderr);
+    s.write_config(&format!(
+        "[training]\nseed_data = {seed:?}\n[watch]\nsettle_millis = 50\n"
+    ));
+    let mut d = s.start();
+    wait_for("the first model", 120, || {
+        s.dir.join("state/model.json").exists()
+    });
+    wait_for("the daemon to start", 60, || {
+        s.stderr().contains("watching")
+    });
+    let all = frames(3, 2);
+    for (n, b) in &all {
+        s.drop_frame(n, b);
+    }
+    wait_for("3 archived frames", 30, || s.names_in("archive").len() == 3);
+    signal(&d, libc::SIGTERM);
+    assert_eq!(exit_code(&mut d, 20), 0);
+    logged_once(&s.records(), &all);
+    let m = treeline::model::Model::from_json(
+        &std::fs::read_to_string(s.dir.join("state/model.json")).unwrap(),
+    )
+    .unwrap();
+    assert_eq!(m.model_version, 1);
+}
+
+#[test]
+fn check_reports_what_is_wrong() {
+    let s = Setup::new("");
+    let cfg = s.config();
+    let ok = crate::util::treeline(s.dir.path(), &["check", "--config", cfg.to_str().unwrap()]);
+    assert_eq!(ok.code, 0, "{}{}", ok.stdout, ok.stderr);
+    assert!(ok.stdout.contains("ready to run"), "{}", ok.stdout);
+    // A damaged model is named.
+    std::fs::write(
+        s.dir.join("state/model.json"),
+        "{\"format\": \"treeline-model\"",
+    )
+    .unwrap();
+    let bad = crate::util::treeline(s.dir.path(), &["check", "--config", cfg.to_str().unwrap()]);
+    assert_eq!(bad.code, 1);
+    assert!(
+        bad.stdout.contains("BAD") && bad.stdout.contains("model.json"),
+        "{}",
+        bad.stdout
+    );
+    // An unknown key is named with its line.
+    std::fs::write(&cfg, s.config_text("[log]\nrotate = 5\n")).unwrap();
+    let bad = crate::util::treeline(
+        s.dir.path(),
+        &["check", "--config", cfg.to_str().unwrap(), "--json"],
+    );
+    assert_eq!(bad.code, 1);
+    assert!(bad.stdout.contains("rotate"), "{}", bad.stdout);
+    let v: serde_json::Value = serde_json::from_str(&bad.stdout).unwrap();
+    assert_eq!(v["ok"], false);
+}
