@@ -173,6 +173,20 @@ pub struct Folders {
     pub logs: PathBuf,
 }
 
+impl Folders {
+    /// Every folder with its configuration key.
+    pub fn named(&self) -> [(&'static str, &PathBuf); 6] {
+        [
+            ("folders.inbox", &self.inbox),
+            ("folders.archive", &self.archive),
+            ("folders.rejected", &self.rejected),
+            ("folders.corrections", &self.corrections),
+            ("folders.state", &self.state),
+            ("folders.logs", &self.logs),
+        ]
+    }
+}
+
 /// How the detection log is made durable.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub enum SyncPolicy {
@@ -357,14 +371,7 @@ impl RawConfig {
             state: fo.state.unwrap_or_else(|| var.join("state")),
             logs: fo.logs.unwrap_or_else(|| var.join("logs")),
         };
-        let all = [
-            ("folders.inbox", &folders.inbox),
-            ("folders.archive", &folders.archive),
-            ("folders.rejected", &folders.rejected),
-            ("folders.corrections", &folders.corrections),
-            ("folders.state", &folders.state),
-            ("folders.logs", &folders.logs),
-        ];
+        let all = folders.named();
         for (i, (key, path)) in all.iter().enumerate() {
             if path.as_os_str().is_empty() {
                 return Err(invalid(key, "must not be empty"));
@@ -512,6 +519,14 @@ mod tests {
             c.seed_data.as_deref(),
             Some(std::path::Path::new("demo-frames/train"))
         );
+    }
+
+    #[test]
+    fn system_file_is_valid() {
+        let c = from_str(include_str!("../config/system.toml")).expect("config/system.toml");
+        assert_eq!(c.folders.logs, std::path::Path::new("/var/log/treeline"));
+        assert_eq!(c.log.sync, SyncPolicy::EveryRecord);
+        assert!(c.seed_data.is_none());
     }
 
     #[test]

@@ -138,14 +138,7 @@ pub fn check(a: CheckArgs) -> Result<i32> {
     };
     if let Some(cfg) = &cfg {
         let f = &cfg.folders;
-        for (name, dir) in [
-            ("folders.inbox", &f.inbox),
-            ("folders.archive", &f.archive),
-            ("folders.rejected", &f.rejected),
-            ("folders.corrections", &f.corrections),
-            ("folders.state", &f.state),
-            ("folders.logs", &f.logs),
-        ] {
+        for (name, dir) in f.named() {
             match std::fs::metadata(dir) {
                 Ok(m) if m.is_dir() => {
                     let ro = m.permissions().readonly();

@@ -28,6 +28,49 @@ const TAIL_BYTES: u64 = 8 << 20;
 /// A logged frame: its name and the SHA-256 of its bytes.
 pub type Key = (String, String);
 
+/// The keys of logged frames the writer remembers: those read back at
+/// start, plus the most recent ones, so memory stays bounded however long
+/// the daemon runs. A frame logged but not moved (say, the archive was not
+/// writable) is recognised when a listing finds it again, for as long as
+/// fewer than [`Recent::CAPACITY`] newer frames were logged since.
+#[derive(Debug, Default)]
+pub struct Recent {
+    set: HashSet<Key>,
+    order: std::collections::VecDeque<Key>,
+}
+
+impl Recent {
+    pub const CAPACITY: usize = 4096;
+
+    pub fn new(keys: HashSet<Key>) -> Recent {
+        let order = keys.iter().cloned().collect();
+        Recent { set: keys, order }
+    }
+
+    pub fn contains(&self, k: &Key) -> bool {
+        self.set.contains(k)
+    }
+
+    pub fn insert(&mut self, k: Key) {
+        if self.set.insert(k.clone()) {
+            self.order.push_back(k);
+        }
+        while self.order.len() > Self::CAPACITY {
+            if let Some(old) = self.order.pop_front() {
+                self.set.remove(&old);
+            }
+        }
+    }
+
+    pub fn len(&self) -> usize {
+        self.set.len()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.set.is_empty()
+    }
+}
+
 /// The open detection log.
 #[derive(Debug)]
 pub struct DetectionLog {
@@ -260,6 +303,17 @@ mod tests {
         let text = fs::read_to_string(&path).unwrap();
         assert_eq!(text.lines().count(), 2);
         assert!(text.ends_with('\n'));
+    }
+
+    #[test]
+    fn recent_keys_stay_bounded() {
+        let mut r = Recent::new(HashSet::from([("a".to_string(), "1".to_string())]));
+        for i in 0..Recent::CAPACITY + 10 {
+            r.insert((format!("f{i}"), "x".into()));
+        }
+        assert_eq!(r.len(), Recent::CAPACITY);
+        assert!(!r.contains(&("a".into(), "1".into())));
+        assert!(r.contains(&(format!("f{}", Recent::CAPACITY + 9), "x".into())));
     }
 
     #[test]

@@ -183,6 +183,14 @@ enum Outcome {
     Gone,
 }
 
+/// What the writer tells the main loop.
+enum FromWriter {
+    /// A job left the pipeline (its bytes are dropped): room for another.
+    Taken,
+    /// A frame is finished: moved, or left in the inbox for the next listing.
+    Done(Done),
+}
+
 struct Done {
     path: PathBuf,
     outcome: DoneKind,
@@ -256,7 +264,7 @@ pub fn run(
     let queue = cfg.watch.queue;
     let (work_tx, work_rx) = bounded::<Job>(queue);
     let (res_tx, res_rx) = bounded::<(Job, Outcome)>(queue + workers);
-    let (done_tx, done_rx) = unbounded::<Done>();
+    let (done_tx, done_rx) = unbounded::<FromWriter>();
     let mut handles = Vec::new();
     for k in 0..workers {
         let (rx, tx, det, limits) = (
@@ -286,7 +294,10 @@ pub fn run(
     let mut ready: VecDeque<PathBuf> = VecDeque::new();
     // Paths queued or in flight: never handed out twice at once.
     let mut known: HashSet<PathBuf> = HashSet::new();
+    // Jobs handed out and not yet taken by the writer (bounded by `queue`),
+    // and those not yet finished (taken ones wait only for their sync).
     let mut in_flight = 0usize;
+    let mut unfinished = 0usize;
     let mut seq = 0u64;
     let mut summary = Summary::default();
     let mut stopping = false;
@@ -308,8 +319,9 @@ pub fn run(
                 .expect("workers outlive the main loop");
             seq += 1;
             in_flight += 1;
+            unfinished += 1;
         }
-        if stopping && in_flight == 0 {
+        if stopping && unfinished == 0 {
             break;
         }
         let now = Instant::now();
@@ -327,21 +339,24 @@ pub fn run(
                 }
                 Err(_) => {}
             },
-            recv(done_rx) -> d => {
-                let Ok(d) = d else { break };
-                in_flight -= 1;
-                known.remove(&d.path);
-                last_progress = Instant::now();
-                match d.outcome {
-                    DoneKind::Logged => {
-                        summary.logged += 1;
-                        summary.objects += d.objects;
+            recv(done_rx) -> d => match d {
+                Ok(FromWriter::Taken) => in_flight -= 1,
+                Ok(FromWriter::Done(d)) => {
+                    unfinished -= 1;
+                    known.remove(&d.path);
+                    last_progress = Instant::now();
+                    match d.outcome {
+                        DoneKind::Logged => {
+                            summary.logged += 1;
+                            summary.objects += d.objects;
+                        }
+                        DoneKind::AlreadyLogged => summary.already_logged += 1,
+                        DoneKind::Rejected => summary.rejected += 1,
+                        DoneKind::Left => {}
                     }
-                    DoneKind::AlreadyLogged => summary.already_logged += 1,
-                    DoneKind::Rejected => summary.rejected += 1,
-                    DoneKind::Left => {}
                 }
-            }
+                Err(_) => break,
+            },
             recv(control) -> c => match c {
                 Ok(Control::Reload(new)) => {
                     status(Status::Reloading);
@@ -350,7 +365,7 @@ pub fn run(
                 }
                 Ok(Control::Stop) | Err(_) => {
                     if !stopping {
-                        info!(in_flight, "stopping: finishing the frames in flight");
+                        info!(in_flight = unfinished, "stopping: finishing the frames in flight");
                         status(Status::Stopping);
                     }
                     stopping = true;
@@ -359,7 +374,7 @@ pub fn run(
             recv(ticker) -> _ => {
                 let now = Instant::now();
                 check_settling(&mut settle, &mut ready, &mut known, now);
-                if in_flight == 0 || now.duration_since(last_progress) < Duration::from_secs(10) {
+                if unfinished == 0 || now.duration_since(last_progress) < Duration::from_secs(10) {
                     status(Status::Alive);
                 }
                 if now >= next_prune {
@@ -602,23 +617,24 @@ fn worker(
 /// after the sync that covers them.
 fn write_loop(
     results: Receiver<(Job, Outcome)>,
-    done: Sender<Done>,
+    done: Sender<FromWriter>,
     mut log: DetectionLog,
-    mut logged: HashSet<Key>,
+    logged: HashSet<Key>,
     policy: SyncPolicy,
     folders: crate::config::Folders,
 ) {
+    let mut logged = detlog::Recent::new(logged);
     let mut waiting: BTreeMap<u64, (Job, Outcome)> = BTreeMap::new();
     let mut next = 0u64;
     // Logged but not yet synced: (path, objects).
     let mut unsynced: Vec<(PathBuf, u64)> = Vec::new();
     let mut first_unsynced: Option<Instant> = None;
     let send = |path: PathBuf, outcome: DoneKind, objects: u64| {
-        let _ = done.send(Done {
+        let _ = done.send(FromWriter::Done(Done {
             path,
             outcome,
             objects,
-        });
+        }));
     };
     let archive = |path: PathBuf, kind: DoneKind, objects: u64| match files::move_into(
         &path,
@@ -663,6 +679,7 @@ fn write_loop(
         }
         while let Some((job, outcome)) = waiting.remove(&next) {
             next += 1;
+            let _ = done.send(FromWriter::Taken);
             match outcome {
                 Outcome::Gone => send(job.path, DoneKind::Left, 0),
                 Outcome::Reject(reason) => {

@@ -1,0 +1,271 @@
+//! Daemon benchmark: `cargo bench --bench daemon`.
+//!
+//! Runs the release `treeline run` on temporary folders with the default
+//! demo model (trained here on `demo-frames/train`) and the 256x256 demo
+//! frames of `demo-frames/test` (cycled under new names), all on this
+//! machine, and reports:
+//! 1. sustained throughput: frames renamed into the inbox as fast as
+//!    possible, log sync batched; frames per second from the first rename
+//!    to the last frame moved to the archive (medians of 3 runs);
+//! 2. latency from the rename into the inbox to the durable record (the
+//!    frame is moved to the archive only after the sync that covers its
+//!    record, so its arrival in the archive marks durability) at a steady
+//!    50 frames per second, with the default (sync every record) and the
+//!    batched log: p50 and p99;
+//! 3. resident memory of the daemon after 10,000 and 20,000 frames.
+//!
+//! The feeder and the timing watcher run on the same 2 cores as the
+//! daemon, so the figures are for the whole box.
+//!
+//! Environment: `TREELINE_BENCH_FRAMES` (default 5000) for the
+//! throughput runs.
+
+use std::path::{Path, PathBuf};
+use std::process::{Child, Command, Stdio};
+use std::sync::atomic::{AtomicUsize, Ordering};
+use std::sync::{Arc, Mutex};
+use std::time::{Duration, Instant};
+
+use notify::{RecursiveMode, Watcher};
+
+use treeline::codec::DecodeLimits;
+use treeline::learn::{self, TrainParams};
+
+struct Box_ {
+    root: PathBuf,
+    child: Child,
+}
+
+impl Drop for Box_ {
+    fn drop(&mut self) {
+        // SAFETY: signals our own child.
+        unsafe { libc::kill(self.child.id() as i32, libc::SIGTERM) };
+        let _ = self.child.wait();
+        let _ = std::fs::remove_dir_all(&self.root);
+    }
+}
+
+fn start(model: &str, extra: &str, tag: &str) -> Box_ {
+    let root = std::env::temp_dir().join(format!("treeline-bench-{}-{tag}", std::process::id()));
+    let _ = std::fs::remove_dir_all(&root);
+    std::fs::create_dir_all(root.join("state")).unwrap();
+    std::fs::create_dir_all(root.join("inbox")).unwrap();
+    std::fs::create_dir_all(root.join("archive")).unwrap();
+    std::fs::write(root.join("state/model.json"), model).unwrap();
+    let cfg = format!(
+        "[folders]\ninbox = {:?}\narchive = {:?}\nrejected = {:?}\ncorrections = {:?}\nstate = {:?}\nlogs = {:?}\n{extra}",
+        root.join("inbox"),
+        root.join("archive"),
+        root.join("rejected"),
+        root.join("corrections"),
+        root.join("state"),
+        root.join("logs")
+    );
+    std::fs::write(root.join("treeline.toml"), cfg).unwrap();
+    let err = std::fs::File::create(root.join("stderr")).unwrap();
+    let child = Command::new(env!("CARGO_BIN_EXE_treeline"))
+        .args(["run", "--config"])
+        .arg(root.join("treeline.toml"))
+        .env_remove("RUST_LOG")
+        .stdout(Stdio::null())
+        .stderr(err)
+        .spawn()
+        .unwrap();
+    let deadline = Instant::now() + Duration::from_secs(60);
+    while !std::fs::read_to_string(root.join("stderr"))
+        .unwrap_or_default()
+        .contains("watching")
+    {
+        assert!(Instant::now() < deadline, "daemon did not start");
+        std::thread::sleep(Duration::from_millis(10));
+    }
+    Box_ { root, child }
+}
+
+/// Counts frames arriving in the archive and notes when each arrived.
+struct Arrivals {
+    count: Arc<AtomicUsize>,
+    times: Arc<Mutex<Vec<(String, Instant)>>>,
+    _watcher: notify::RecommendedWatcher,
+}
+
+fn watch_archive(dir: &Path) -> Arrivals {
+    let count = Arc::new(AtomicUsize::new(0));
+    let times = Arc::new(Mutex::new(Vec::new()));
+    let (c, t) = (count.clone(), times.clone());
+    let mut w = notify::recommended_watcher(move |ev: notify::Result<notify::Event>| {
+        let now = Instant::now();
+        if let Ok(ev) = ev {
+            use notify::event::{CreateKind, ModifyKind, RenameMode};
+            if matches!(
+                ev.kind,
+                notify::EventKind::Create(CreateKind::File | CreateKind::Any)
+                    | notify::EventKind::Modify(ModifyKind::Name(RenameMode::To))
+            ) {
+                for p in ev.paths {
+                    let n = p.file_name().unwrap().to_string_lossy().into_owned();
+                    t.lock().unwrap().push((n, now));
+                    c.fetch_add(1, Ordering::Relaxed);
+                }
+            }
+        }
+    })
+    .unwrap();
+    w.watch(dir, RecursiveMode::NonRecursive).unwrap();
+    Arrivals {
+        count,
+        times,
+        _watcher: w,
+    }
+}
+
+fn wait_count(c: &AtomicUsize, n: usize, secs: u64) {
+    let deadline = Instant::now() + Duration::from_secs(secs);
+    while c.load(Ordering::Relaxed) < n {
+        assert!(
+            Instant::now() < deadline,
+            "only {} of {n} frames archived",
+            c.load(Ordering::Relaxed)
+        );
+        std::thread::sleep(Duration::from_millis(2));
+    }
+}
+
+fn rss_kib(child: &Child) -> u64 {
+    let s = std::fs::read_to_string(format!("/proc/{}/status", child.id())).unwrap();
+    let l = s.lines().find(|l| l.starts_with("VmRSS:")).unwrap();
+    l.split_whitespace().nth(1).unwrap().parse().unwrap()
+}
+
+fn percentile(v: &mut [f64], q: f64) -> f64 {
+    v.sort_by(f64::total_cmp);
+    v[((v.len() - 1) as f64 * q).round() as usize]
+}
+
+fn main() {
+    let repo = Path::new(env!("CARGO_MANIFEST_DIR"));
+    let folder = treeline::data::read_folder(
+        &repo.join("demo-frames/train"),
+        &DecodeLimits::default(),
+        &mut |_, _| {},
+    )
+    .expect("demo frames");
+    let model = learn::train(&folder.frames, &TrainParams::default(), &mut |_| {})
+        .expect("train")
+        .to_json();
+    let mut frames: Vec<Vec<u8>> = std::fs::read_dir(repo.join("demo-frames/test"))
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .filter(|p| {
+            p.to_string_lossy().ends_with(".pbm") && !p.to_string_lossy().ends_with(".mask.pbm")
+        })
+        .map(|p| std::fs::read(p).unwrap())
+        .collect();
+    frames.sort();
+    let n: usize = std::env::var("TREELINE_BENCH_FRAMES")
+        .ok()
+        .and_then(|s| s.parse().ok())
+        .unwrap_or(5000);
+
+    // 1. Throughput, sync batched.
+    let mut rates = Vec::new();
+    for run in 0..3 {
+        let b = start(&model, "[log]\nsync = \"batch\"\n", &format!("tp{run}"));
+        let stage = b.root.join("stage");
+        std::fs::create_dir_all(&stage).unwrap();
+        for i in 0..n {
+            std::fs::write(
+                stage.join(format!("f{i:06}.pbm")),
+                &frames[i % frames.len()],
+            )
+            .unwrap();
+        }
+        let arrivals = watch_archive(&b.root.join("archive"));
+        let t0 = Instant::now();
+        for i in 0..n {
+            let name = format!("f{i:06}.pbm");
+            std::fs::rename(stage.join(&name), b.root.join("inbox").join(&name)).unwrap();
+        }
+        wait_count(&arrivals.count, n, 600);
+        let last = arrivals
+            .times
+            .lock()
+            .unwrap()
+            .iter()
+            .map(|t| t.1)
+            .max()
+            .unwrap();
+        rates.push(n as f64 / last.duration_since(t0).as_secs_f64());
+    }
+    let tp = percentile(&mut rates.clone(), 0.5);
+    println!(
+        "throughput, 256x256 demo frames by rename, log sync batched: {tp:.0} frames/s (median of 3: {})",
+        rates.iter().map(|r| format!("{r:.0}")).collect::<Vec<_>>().join(", ")
+    );
+
+    // 2. Latency at a steady 50 frames/s.
+    for (label, extra) in [
+        ("sync every record (default)", ""),
+        ("sync batched", "[log]\nsync = \"batch\"\n"),
+    ] {
+        let b = start(&model, extra, "lat");
+        let arrivals = watch_archive(&b.root.join("archive"));
+        let stage = b.root.join("stage");
+        std::fs::create_dir_all(&stage).unwrap();
+        let count = 1000;
+        let mut sent = Vec::with_capacity(count);
+        let t0 = Instant::now();
+        for i in 0..count {
+            let name = format!("l{i:06}.pbm");
+            std::fs::write(stage.join(&name), &frames[i % frames.len()]).unwrap();
+            let due = t0 + Duration::from_millis(20 * i as u64);
+            std::thread::sleep(due.saturating_duration_since(Instant::now()));
+            let at = Instant::now();
+            std::fs::rename(stage.join(&name), b.root.join("inbox").join(&name)).unwrap();
+            sent.push((name, at));
+        }
+        wait_count(&arrivals.count, count, 60);
+        let times: std::collections::HashMap<String, Instant> =
+            arrivals.times.lock().unwrap().iter().cloned().collect();
+        let mut lat: Vec<f64> = sent
+            .iter()
+            .map(|(n, at)| times[n].duration_since(*at).as_secs_f64() * 1e3)
+            .collect();
+        println!(
+            "latency rename -> durable record at 50 frames/s, {label}: p50 {:.2} ms, p99 {:.2} ms ({count} frames)",
+            percentile(&mut lat, 0.5),
+            percentile(&mut lat, 0.99)
+        );
+    }
+
+    // 3. Resident memory over 20,000 frames.
+    let b = start(&model, "[log]\nsync = \"batch\"\n", "mem");
+    let arrivals = watch_archive(&b.root.join("archive"));
+    let start_rss = rss_kib(&b.child);
+    let mut at = Vec::new();
+    let stage = b.root.join("stage");
+    std::fs::create_dir_all(&stage).unwrap();
+    for i in 0..20_000 {
+        // Keep a backlog of at most a few hundred frames in the inbox.
+        while i > arrivals.count.load(Ordering::Relaxed) + 300 {
+            std::thread::sleep(Duration::from_millis(1));
+        }
+        let name = format!("m{i:06}.pbm");
+        std::fs::write(stage.join(&name), &frames[i % frames.len()]).unwrap();
+        std::fs::rename(stage.join(&name), b.root.join("inbox").join(&name)).unwrap();
+        if (i + 1) % 5_000 == 0 {
+            wait_count(&arrivals.count, i + 1, 120);
+            at.push(rss_kib(&b.child));
+        }
+    }
+    println!(
+        "resident memory: {:.1} MB at start; after 5,000 / 10,000 / 15,000 / 20,000 frames: {}; \
+         growth from 10,000 to 20,000: {:+.2} MB",
+        start_rss as f64 / 1024.0,
+        at.iter()
+            .map(|k| format!("{:.1} MB", *k as f64 / 1024.0))
+            .collect::<Vec<_>>()
+            .join(" / "),
+        (at[3] as f64 - at[1] as f64) / 1024.0
+    );
+}
