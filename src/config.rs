@@ -32,13 +32,16 @@ pub struct RawFrames {
     pub png_threshold: Option<u8>,
     /// PNG: set the light pixels instead (default false).
     pub png_invert: Option<bool>,
+    /// File name endings the daemon takes as frames (default ["pbm", "png"]).
+    pub formats: Option<Vec<String>>,
 }
 
 /// `[training]`: how models are learned.
 #[derive(Debug, Default, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct RawTraining {
-    /// Folder of labelled frames a fresh model is trained from.
+    /// Folder of labelled frames a fresh model is trained from (default
+    /// "demo-frames/train"; "" for none).
     pub seed_data: Option<PathBuf>,
     /// Window side: 3, 5, 7, 9 or 11 (default 11).
     pub window: Option<u8>,
@@ -96,8 +99,6 @@ pub struct RawFolders {
 #[derive(Debug, Default, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct RawWatch {
-    /// File name endings taken as frames (default ["pbm", "png"]).
-    pub formats: Option<Vec<String>>,
     /// A file seen without a close-after-write event is read only once its
     /// size and time stamp have not changed for this long (default 500).
     pub settle_millis: Option<u64>,
@@ -262,8 +263,21 @@ impl RawConfig {
     /// Parses TOML text (no path: the caller attaches it to errors).
     pub fn parse(text: &str) -> Result<RawConfig> {
         toml::from_str(text).map_err(|e| {
+            // Name the key by its whole path (`training.depth`), found from
+            // the table header above the place the parser stopped.
+            let path = e
+                .message()
+                .strip_prefix("unknown field `")
+                .and_then(|m| m.split('`').next())
+                .map(
+                    |key| match e.span().and_then(|sp| section_at(text, sp.start)) {
+                        Some(section) => format!("unknown key {section}.{key}: "),
+                        None => format!("unknown key {key}: "),
+                    },
+                )
+                .unwrap_or_default();
             Error::new(ErrorKind::Data(format!(
-                "invalid configuration: {}",
+                "invalid configuration: {path}{}",
                 e.to_string().trim_end()
             )))
         })
@@ -387,7 +401,7 @@ impl RawConfig {
             }
         }
         let w = self.watch;
-        let formats: Vec<String> = match w.formats {
+        let formats: Vec<String> = match f.formats {
             None => vec!["pbm".into(), "png".into()],
             Some(v) => v
                 .iter()
@@ -396,7 +410,7 @@ impl RawConfig {
         };
         if formats.is_empty() {
             return Err(invalid(
-                "watch.formats",
+                "frames.formats",
                 "must list at least one of \"pbm\", \"png\"",
             ));
         }
@@ -405,7 +419,7 @@ impl RawConfig {
             .find(|f| !["pbm", "png"].contains(&f.as_str()))
         {
             return Err(invalid(
-                "watch.formats",
+                "frames.formats",
                 format!("{f:?} is not \"pbm\" or \"png\""),
             ));
         }
@@ -473,7 +487,11 @@ impl RawConfig {
         let a = self.archive;
         Ok(Config {
             limits,
-            seed_data: t.seed_data,
+            seed_data: match t.seed_data {
+                None => Some(PathBuf::from("demo-frames/train")),
+                Some(p) if p.as_os_str().is_empty() => None,
+                Some(p) => Some(p),
+            },
             training,
             threshold: det.threshold,
             min_area: det.min_area,
@@ -502,6 +520,16 @@ impl RawConfig {
     }
 }
 
+/// The `[table]` header in force at byte `offset` of `text`, if any.
+fn section_at(text: &str, offset: usize) -> Option<String> {
+    text.get(..offset)?
+        .lines()
+        .rev()
+        .map(str::trim)
+        .find(|l| l.starts_with('[') && !l.starts_with("[["))
+        .map(|l| l.trim_matches(|c| c == '[' || c == ']').trim().to_string())
+}
+
 /// Parses and resolves configuration text.
 pub fn from_str(text: &str) -> Result<Config> {
     RawConfig::parse(text)?.resolve()
@@ -526,13 +554,24 @@ mod tests {
         let c = from_str(include_str!("../config/system.toml")).expect("config/system.toml");
         assert_eq!(c.folders.logs, std::path::Path::new("/var/log/treeline"));
         assert_eq!(c.log.sync, SyncPolicy::EveryRecord);
-        assert!(c.seed_data.is_none());
+        assert_eq!(
+            c.seed_data.as_deref(),
+            Some(std::path::Path::new("/usr/local/share/treeline/seed"))
+        );
+        assert!(from_str("[training]\nseed_data = \"\"\n")
+            .unwrap()
+            .seed_data
+            .is_none());
     }
 
     #[test]
     fn unknown_keys_and_bad_values_are_named() {
         let e = from_str("[training]\ndepth = 3\n").unwrap_err().to_string();
-        assert!(e.contains("depth") && e.contains("line 2"), "{e}");
+        assert!(e.contains("training.depth") && e.contains("line 2"), "{e}");
+        let e = from_str("[log]\nsync = \"batch\"\n\n[archive]\nkeep = 3\n")
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("unknown key archive.keep"), "{e}");
         let e = from_str("[frames]\nmax_width = \"wide\"\n")
             .unwrap_err()
             .to_string();
@@ -558,10 +597,10 @@ mod tests {
             e.contains("folders.archive") && e.contains("folders.inbox"),
             "{e}"
         );
-        let e = from_str("[watch]\nformats = [\"jpg\"]\n")
+        let e = from_str("[frames]\nformats = [\"jpg\"]\n")
             .unwrap_err()
             .to_string();
-        assert!(e.contains("watch.formats"), "{e}");
+        assert!(e.contains("frames.formats"), "{e}");
         let e = from_str("[watch]\nqueue = \"big\"\n")
             .unwrap_err()
             .to_string();

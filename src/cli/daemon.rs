@@ -233,14 +233,13 @@ pub fn check(a: CheckArgs) -> Result<i32> {
                 },
             }
         }
-        if f.state.is_dir() {
-            match files::StateLock::acquire(&f.state) {
-                Ok(lock) => {
-                    drop(lock);
-                    note("lock", true, "no daemon is running on these folders".into());
-                }
-                Err(e) => note("lock", true, format!("{e}")),
-            }
+        match files::daemon_running(&f.state) {
+            None => note("lock", true, "no daemon is running on these folders".into()),
+            Some(pid) => note(
+                "lock",
+                true,
+                format!("a daemon (process {pid}) is running on these folders"),
+            ),
         }
     }
     let ok = found.iter().all(|f| f.ok);

@@ -1,7 +1,8 @@
 //! The detection log: JSON Lines, one [`FrameRecord`] per line, in
 //! `logs/detections.jsonl`, rotated by size into
-//! `logs/detections-YYYYMMDDTHHMMSS.ffffffZ.jsonl` (UTC, so names sort by
-//! age); the newest `keep_files` files are kept, the current one included.
+//! `logs/detections-YYYYMMDDTHHMMSS_nnnnnnnnnZ.jsonl` (UTC to the
+//! nanosecond, so names sort by age); the newest `keep_files` files are
+//! kept, the current one included, and older ones deleted.
 //!
 //! Durability is the point of this module. A record is *durable* once the
 //! file has been synced after it; the daemon moves a frame out of the inbox
@@ -51,6 +52,13 @@ impl Recent {
         self.set.contains(k)
     }
 
+    /// Forgets a key (its record was not made durable).
+    pub fn remove(&mut self, k: &Key) {
+        if self.set.remove(k) {
+            self.order.retain(|o| o != k);
+        }
+    }
+
     pub fn insert(&mut self, k: Key) {
         if self.set.insert(k.clone()) {
             self.order.push_back(k);
@@ -81,6 +89,8 @@ pub struct DetectionLog {
     keep_files: usize,
     /// Records written since the last sync.
     unsynced: usize,
+    /// The file's length at the last successful sync.
+    synced_size: u64,
 }
 
 impl DetectionLog {
@@ -104,6 +114,9 @@ impl DetectionLog {
             sync_dir(dir)?;
         }
         let size = cut_partial_line(&mut file)?;
+        // Records a killed daemon wrote may still be only in memory: make
+        // them durable before their frames are archived as already logged.
+        file.sync_data()?;
         let mut keys = HashSet::new();
         read_keys(&mut file, size, &mut keys)?;
         if size < TAIL_BYTES {
@@ -121,6 +134,7 @@ impl DetectionLog {
                 rotate_bytes,
                 keep_files,
                 unsynced: 0,
+                synced_size: size,
             },
             keys,
         ))
@@ -134,17 +148,30 @@ impl DetectionLog {
         if self.size > 0 && self.size + line.len() as u64 > self.rotate_bytes {
             self.rotate()?;
         }
-        self.file.write_all(&line)?;
+        if let Err(e) = self.file.write_all(&line) {
+            // A record written in part (disk full) is cut off again, so the
+            // next one starts on a line of its own.
+            let _ = self.file.set_len(self.size);
+            return Err(e);
+        }
         self.size += line.len() as u64;
         self.unsynced += 1;
         Ok(())
     }
 
     /// Makes every record appended so far durable.
+    /// On failure the records written since the last sync are cut off
+    /// again: the caller must treat them as never logged.
     pub fn sync(&mut self) -> io::Result<()> {
         if self.unsynced > 0 {
-            self.file.sync_data()?;
+            if let Err(e) = self.file.sync_data() {
+                let _ = self.file.set_len(self.synced_size);
+                self.size = self.synced_size;
+                self.unsynced = 0;
+                return Err(e);
+            }
             self.unsynced = 0;
+            self.synced_size = self.size;
         }
         Ok(())
     }
@@ -159,7 +186,9 @@ impl DetectionLog {
     fn rotate(&mut self) -> io::Result<()> {
         self.file.sync_data()?;
         self.unsynced = 0;
-        let stamp = crate::record::rfc3339(SystemTime::now())
+        // UTC to the nanosecond: names of one length, so they sort by age.
+        let stamp = humantime::format_rfc3339_nanos(SystemTime::now())
+            .to_string()
             .replace(['-', ':'], "")
             .replace('.', "_");
         let mut target = self.dir.join(format!("detections-{stamp}.jsonl"));
@@ -175,6 +204,7 @@ impl DetectionLog {
             .create(true)
             .open(self.dir.join(CURRENT))?;
         self.size = 0;
+        self.synced_size = 0;
         sync_dir(&self.dir)?;
         let old = rotated(&self.dir)?;
         let excess = (old.len() + 1).saturating_sub(self.keep_files);

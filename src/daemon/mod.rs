@@ -37,7 +37,7 @@ use std::thread;
 use std::time::{Duration, Instant, SystemTime};
 
 use arc_swap::ArcSwap;
-use crossbeam_channel::{bounded, select, tick, unbounded, Receiver, RecvTimeoutError, Sender};
+use crossbeam_channel::{bounded, select, tick, unbounded, Receiver, Sender};
 use notify::{EventKind, RecursiveMode, Watcher};
 use tracing::{debug, error, info, warn};
 
@@ -53,6 +53,7 @@ use crate::model::{self, Model};
 use crate::record::FrameRecord;
 
 use detlog::{DetectionLog, Key};
+use files::Stamp;
 use inbox::Settle;
 
 /// What the daemon can be asked to do while it runs.
@@ -175,12 +176,19 @@ struct Job {
     path: PathBuf,
 }
 
-/// What a worker made of a frame.
+/// What a worker made of a frame, with the stamp of the file it read.
 enum Outcome {
-    Record(Box<FrameRecord>),
-    Reject(String),
-    /// The file went away before it was read.
+    Record(Box<FrameRecord>, Stamp),
+    Reject(String, Option<Stamp>),
+    /// The file went away before it was read, or could not be read for a
+    /// passing reason: the next listing decides.
     Gone,
+}
+
+/// What the workers need, swapped whole on reload.
+struct Running {
+    detector: Detector,
+    limits: DecodeLimits,
 }
 
 /// What the writer tells the main loop.
@@ -209,7 +217,7 @@ enum DoneKind {
 /// Runs the daemon until [`Control::Stop`] (or until `control` closes).
 pub fn run(
     cfg: Config,
-    control: Receiver<Control>,
+    mut control: Receiver<Control>,
     status: &mut dyn FnMut(Status),
 ) -> Result<Summary> {
     make_folders(&cfg)?;
@@ -222,7 +230,10 @@ pub fn run(
         min_area = settings.grouping.min_area,
         "model loaded"
     );
-    let detector = Arc::new(ArcSwap::from_pointee(Detector::new(model, settings)));
+    let detector = Arc::new(ArcSwap::from_pointee(Running {
+        detector: Detector::new(model, settings),
+        limits: cfg.limits.clone(),
+    }));
     let (log, logged) =
         DetectionLog::open(&cfg.folders.logs, cfg.log.rotate_bytes, cfg.log.keep_files)
             .map_err(|e| Error::from(e).with_path(&cfg.folders.logs))?;
@@ -265,18 +276,22 @@ pub fn run(
     let (work_tx, work_rx) = bounded::<Job>(queue);
     let (res_tx, res_rx) = bounded::<(Job, Outcome)>(queue + workers);
     let (done_tx, done_rx) = unbounded::<FromWriter>();
+    // Stopping asks the writer to sync now rather than at its batch deadline.
+    let (flush_tx, flush_rx) = bounded::<()>(1);
+    // The watchdog is fed while frames keep finishing; a batch may hold
+    // finished frames back for up to its sync time.
+    let stall = Duration::from_secs(10)
+        + match cfg.log.sync {
+            SyncPolicy::Batch { millis, .. } => Duration::from_millis(2 * millis),
+            SyncPolicy::EveryRecord => Duration::ZERO,
+        };
     let mut handles = Vec::new();
     for k in 0..workers {
-        let (rx, tx, det, limits) = (
-            work_rx.clone(),
-            res_tx.clone(),
-            detector.clone(),
-            cfg.limits.clone(),
-        );
+        let (rx, tx, det) = (work_rx.clone(), res_tx.clone(), detector.clone());
         handles.push(
             thread::Builder::new()
                 .name(format!("treeline-worker-{k}"))
-                .spawn(move || worker(rx, tx, det, limits))
+                .spawn(move || worker(rx, tx, det))
                 .map_err(Error::from)?,
         );
     }
@@ -285,7 +300,7 @@ pub fn run(
         let (folders, policy) = (cfg.folders.clone(), cfg.log.sync);
         thread::Builder::new()
             .name("treeline-writer".into())
-            .spawn(move || write_loop(res_rx, done_tx, log, logged, policy, folders))
+            .spawn(move || write_loop(res_rx, flush_rx, done_tx, log, logged, policy, folders))
             .map_err(Error::from)?
     };
 
@@ -303,7 +318,7 @@ pub fn run(
     let mut stopping = false;
     let period = Duration::from_millis(cfg.watch.settle_millis.clamp(20, 100));
     let ticker = tick(period);
-    let rescan_every = Duration::from_secs_f64(cfg.watch.rescan_seconds);
+    let mut rescan_every = Duration::from_secs_f64(cfg.watch.rescan_seconds);
     let mut next_rescan = Instant::now();
     let mut next_prune = Instant::now() + Duration::from_secs(3600);
     let mut last_progress = Instant::now();
@@ -325,7 +340,12 @@ pub fn run(
             break;
         }
         let now = Instant::now();
-        if !stopping && (now >= next_rescan || overflow.swap(false, Ordering::Relaxed)) {
+        let lost = overflow.swap(false, Ordering::Relaxed);
+        if lost {
+            // Close events may be among those lost.
+            settle.forget_announcements();
+        }
+        if !stopping && (now >= next_rescan || lost) {
             rescan(&cfg, &mut settle, &mut ready, &mut known, now);
             next_rescan = now + rescan_every;
         }
@@ -361,10 +381,17 @@ pub fn run(
                 Ok(Control::Reload(new)) => {
                     status(Status::Reloading);
                     reload(&mut cfg, new, &detector);
+                    rescan_every = Duration::from_secs_f64(cfg.watch.rescan_seconds);
                     status(Status::Reloaded);
                 }
                 Ok(Control::Stop) | Err(_) => {
+                    if c.is_err() {
+                        // No one can send any more: stop, and wait on the
+                        // other channels only.
+                        control = crossbeam_channel::never();
+                    }
                     if !stopping {
+                        let _ = flush_tx.send(());
                         info!(in_flight = unfinished, "stopping: finishing the frames in flight");
                         status(Status::Stopping);
                     }
@@ -374,7 +401,7 @@ pub fn run(
             recv(ticker) -> _ => {
                 let now = Instant::now();
                 check_settling(&mut settle, &mut ready, &mut known, now);
-                if unfinished == 0 || now.duration_since(last_progress) < Duration::from_secs(10) {
+                if unfinished == 0 || now.duration_since(last_progress) < stall {
                     status(Status::Alive);
                 }
                 if now >= next_prune {
@@ -392,8 +419,14 @@ pub fn run(
     for h in handles {
         let _ = h.join();
     }
-    let _ = writer.join();
+    let writer_ok = writer.join().is_ok();
     drop(watcher);
+    if !writer_ok {
+        return Err(Error::new(ErrorKind::Data(
+            "the detection log writer stopped unexpectedly; frames not yet logged are still in the inbox"
+                .into(),
+        )));
+    }
     info!(
         logged = summary.logged,
         already_logged = summary.already_logged,
@@ -537,75 +570,113 @@ fn check_settling(
 
 /// Applies a new configuration's reloadable parts (detection settings and
 /// the model in the state folder); anything invalid keeps the running ones.
-fn reload(cfg: &mut Config, new: Option<Box<Config>>, detector: &ArcSwap<Detector>) {
+fn reload(cfg: &mut Config, new: Option<Box<Config>>, running: &ArcSwap<Running>) {
+    let keep = "keeping the running configuration and model";
     let Some(new) = new else {
-        error!("reload: the configuration is invalid; keeping the running configuration and model");
+        error!("reload: the configuration is invalid; {keep}");
         return;
     };
     let model = match load_model(&new) {
         Ok(m) => m,
         Err(e) => {
-            error!("reload: {e}; keeping the running configuration and model");
+            error!("reload: {e}; {keep}");
             return;
         }
     };
     let settings = match settings_for(&model, &new) {
         Ok(s) => s,
         Err(e) => {
-            error!(
-                "reload: bad detection settings: {e}; keeping the running configuration and model"
-            );
+            error!("reload: bad detection settings: {e}; {keep}");
             return;
         }
     };
     if new.folders != cfg.folders
         || new.workers != cfg.workers
         || new.watch.queue != cfg.watch.queue
+        || new.watch.settle_millis != cfg.watch.settle_millis
+        || new.watch.events != cfg.watch.events
         || new.log != cfg.log
     {
-        warn!("reload: changes to [folders], [log], detection.workers and watch.queue take effect after a restart");
+        warn!(
+            "reload: changes to [folders], [log], detection.workers, watch.queue, \
+             watch.settle_millis and watch.events take effect after a restart"
+        );
     }
     info!(
         version = model.model_version,
         threshold = settings.threshold,
         "reloaded"
     );
-    detector.store(Arc::new(Detector::new(model, settings)));
+    running.store(Arc::new(Running {
+        detector: Detector::new(model, settings),
+        limits: new.limits.clone(),
+    }));
     cfg.threshold = new.threshold;
     cfg.min_area = new.min_area;
     cfg.merge_distance = new.merge_distance;
     cfg.window = new.window;
     cfg.limits = new.limits;
     cfg.retention = new.retention;
+    cfg.seed_data = new.seed_data;
+    cfg.training = new.training;
     cfg.watch.formats = new.watch.formats;
     cfg.watch.rescan_seconds = new.watch.rescan_seconds;
 }
 
-fn worker(
-    jobs: Receiver<Job>,
-    results: Sender<(Job, Outcome)>,
-    detector: Arc<ArcSwap<Detector>>,
-    limits: DecodeLimits,
-) {
+fn worker(jobs: Receiver<Job>, results: Sender<(Job, Outcome)>, running: Arc<ArcSwap<Running>>) {
     let mut scratch = Scratch::default();
     let started = Instant::now();
     let mut clock = || (SystemTime::now(), started.elapsed().as_secs_f64());
     for job in jobs {
-        let det = detector.load_full();
+        let run = running.load_full();
         let name = job
             .path
             .file_name()
             .map(|n| n.to_string_lossy().into_owned())
             .unwrap_or_default();
-        let outcome = match crate::data::read_bounded(&job.path, &limits) {
-            Err(e) if matches!(e.kind(), ErrorKind::Io(io) if io.kind() == std::io::ErrorKind::NotFound) => {
-                Outcome::Gone
-            }
-            Err(e) => Outcome::Reject(e.to_string()),
-            Ok(bytes) => match det.process(&name, &bytes, &limits, &mut scratch, &mut clock) {
-                Ok(d) => Outcome::Record(Box::new(d.record)),
-                Err(e) => Outcome::Reject(e.with_path(&job.path).to_string()),
+        let outcome = match files::read_frame(&job.path, &run.limits) {
+            Err(e) => match e.kind() {
+                ErrorKind::Io(io) if io.kind() == std::io::ErrorKind::NotFound => Outcome::Gone,
+                // The file cannot be read by us: reject it, with the reason.
+                ErrorKind::Io(io) if io.kind() == std::io::ErrorKind::PermissionDenied => {
+                    Outcome::Reject(e.to_string(), None)
+                }
+                // Out of file handles, an I/O error...: try again later.
+                ErrorKind::Io(_) => {
+                    warn!("{e}; it will be read again");
+                    Outcome::Gone
+                }
+                _ => Outcome::Reject(e.to_string(), None),
             },
+            Ok((bytes, stamp)) => {
+                let det = &run.detector;
+                let limits = &run.limits;
+                // A bug in detection must cost one frame, not the daemon:
+                // the frame is rejected with the panic's message.
+                let result = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
+                    det.process(&name, &bytes, limits, &mut scratch, &mut clock)
+                }));
+                match result {
+                    Ok(Ok(d)) => Outcome::Record(Box::new(d.record), stamp),
+                    Ok(Err(e)) => Outcome::Reject(e.with_path(&job.path).to_string(), Some(stamp)),
+                    Err(panic) => {
+                        scratch = Scratch::default();
+                        let what = panic
+                            .downcast_ref::<&str>()
+                            .map(|s| s.to_string())
+                            .or_else(|| panic.downcast_ref::<String>().cloned())
+                            .unwrap_or_default();
+                        error!(frame = %job.path.display(), "internal error while detecting: {what}");
+                        Outcome::Reject(
+                            format!(
+                                "{}: internal error while detecting: {what}",
+                                job.path.display()
+                            ),
+                            Some(stamp),
+                        )
+                    }
+                }
+            }
         };
         if results.send((job, outcome)).is_err() {
             return;
@@ -617,6 +688,7 @@ fn worker(
 /// after the sync that covers them.
 fn write_loop(
     results: Receiver<(Job, Outcome)>,
+    mut flush_now: Receiver<()>,
     done: Sender<FromWriter>,
     mut log: DetectionLog,
     logged: HashSet<Key>,
@@ -626,9 +698,11 @@ fn write_loop(
     let mut logged = detlog::Recent::new(logged);
     let mut waiting: BTreeMap<u64, (Job, Outcome)> = BTreeMap::new();
     let mut next = 0u64;
-    // Logged but not yet synced: (path, objects).
-    let mut unsynced: Vec<(PathBuf, u64)> = Vec::new();
+    // Logged but not yet synced: (path, objects, stamp of what was read, key).
+    let mut unsynced: Vec<Unsynced> = Vec::new();
     let mut first_unsynced: Option<Instant> = None;
+    // Stopping: sync as soon as records are written.
+    let mut draining = false;
     let send = |path: PathBuf, outcome: DoneKind, objects: u64| {
         let _ = done.send(FromWriter::Done(Done {
             path,
@@ -636,44 +710,73 @@ fn write_loop(
             objects,
         }));
     };
-    let archive = |path: PathBuf, kind: DoneKind, objects: u64| match files::move_into(
-        &path,
-        &folders.archive,
-    ) {
-        Ok(_) => send(path, kind, objects),
-        Err(e) => {
-            error!(frame = %path.display(), "cannot move the frame to the archive: {e}");
-            send(path, DoneKind::Left, 0);
+    // A file replaced or rewritten since it was read stays in the inbox,
+    // to be read again: the version it is now has no record yet.
+    let changed = |path: &Path, stamp: Option<Stamp>| {
+        let changed = stamp.is_some_and(|s| Stamp::now(path).ok() != Some(s));
+        if changed {
+            warn!(frame = %path.display(), "the file changed after it was read; it will be read again");
         }
+        changed
     };
-    let flush = |log: &mut DetectionLog, unsynced: &mut Vec<(PathBuf, u64)>| match log.sync() {
-        Ok(()) => {
-            for (p, objects) in unsynced.drain(..) {
-                archive(p, DoneKind::Logged, objects);
-            }
+    let archive = |path: PathBuf, kind: DoneKind, objects: u64, stamp: Stamp| {
+        if changed(&path, Some(stamp)) {
+            return send(path, DoneKind::Left, 0);
         }
-        Err(e) => {
-            error!("cannot sync the detection log: {e}; its frames stay in the inbox");
-            for (p, _) in unsynced.drain(..) {
-                send(p, DoneKind::Left, 0);
+        match files::move_into(&path, &folders.archive) {
+            Ok(_) => send(path, kind, objects),
+            Err(e) => {
+                error!(frame = %path.display(), "cannot move the frame to the archive: {e}");
+                send(path, DoneKind::Left, 0);
             }
         }
     };
-    loop {
-        let received = match (policy, first_unsynced) {
-            (SyncPolicy::Batch { millis, .. }, Some(t)) => {
-                let deadline = t + Duration::from_millis(millis);
-                match results.recv_deadline(deadline) {
-                    Ok(r) => Some(r),
-                    Err(RecvTimeoutError::Timeout) => None,
-                    Err(RecvTimeoutError::Disconnected) => break,
+    // After a failed sync the log drops the records it could not make
+    // durable, and they are forgotten here, so their frames are logged
+    // again when the next listing finds them.
+    let flush =
+        |log: &mut DetectionLog, logged: &mut detlog::Recent, unsynced: &mut Vec<Unsynced>| {
+            match log.sync() {
+                Ok(()) => {
+                    for u in unsynced.drain(..) {
+                        archive(u.path, DoneKind::Logged, u.objects, u.stamp);
+                    }
+                }
+                Err(e) => {
+                    error!("cannot sync the detection log: {e}; its frames stay in the inbox");
+                    for u in unsynced.drain(..) {
+                        logged.remove(&u.key);
+                        send(u.path, DoneKind::Left, 0);
+                    }
                 }
             }
-            _ => match results.recv() {
-                Ok(r) => Some(r),
+        };
+    loop {
+        let deadline = match (policy, first_unsynced) {
+            (SyncPolicy::Batch { millis, .. }, Some(t)) if !draining => {
+                Some(t + Duration::from_millis(millis))
+            }
+            (_, Some(_)) => Some(Instant::now()),
+            _ => None,
+        };
+        let timeout = match deadline {
+            Some(d) => crossbeam_channel::at(d),
+            None => crossbeam_channel::never(),
+        };
+        let mut received = None;
+        select! {
+            recv(results) -> r => match r {
+                Ok(r) => received = Some(r),
                 Err(_) => break,
             },
-        };
+            recv(flush_now) -> r => {
+                draining = true;
+                if r.is_err() {
+                    flush_now = crossbeam_channel::never();
+                }
+            }
+            recv(timeout) -> _ => {}
+        }
         if let Some((job, outcome)) = received {
             waiting.insert(job.seq, (job, outcome));
         }
@@ -682,7 +785,11 @@ fn write_loop(
             let _ = done.send(FromWriter::Taken);
             match outcome {
                 Outcome::Gone => send(job.path, DoneKind::Left, 0),
-                Outcome::Reject(reason) => {
+                Outcome::Reject(reason, stamp) => {
+                    if changed(&job.path, stamp) {
+                        send(job.path, DoneKind::Left, 0);
+                        continue;
+                    }
                     warn!(frame = %job.path.display(), "rejected: {reason}");
                     match files::reject(&job.path, &folders.rejected, &reason) {
                         Ok(_) => send(job.path, DoneKind::Rejected, 0),
@@ -692,17 +799,22 @@ fn write_loop(
                         }
                     }
                 }
-                Outcome::Record(rec) => {
+                Outcome::Record(rec, stamp) => {
                     let key = (rec.frame.clone(), rec.sha256.clone());
                     if logged.contains(&key) {
                         debug!(frame = %job.path.display(), "already in the log: archiving only");
-                        archive(job.path, DoneKind::AlreadyLogged, 0);
+                        archive(job.path, DoneKind::AlreadyLogged, 0, stamp);
                         continue;
                     }
                     match log.append(&rec) {
                         Ok(()) => {
-                            logged.insert(key);
-                            unsynced.push((job.path, rec.objects.len() as u64));
+                            logged.insert(key.clone());
+                            unsynced.push(Unsynced {
+                                path: job.path,
+                                objects: rec.objects.len() as u64,
+                                stamp,
+                                key,
+                            });
                             first_unsynced.get_or_insert_with(Instant::now);
                         }
                         Err(e) => {
@@ -714,6 +826,7 @@ fn write_loop(
             }
         }
         let due = match policy {
+            _ if draining => !unsynced.is_empty(),
             SyncPolicy::EveryRecord => !unsynced.is_empty(),
             SyncPolicy::Batch { records, millis } => {
                 unsynced.len() >= records
@@ -721,9 +834,82 @@ fn write_loop(
             }
         };
         if due {
-            flush(&mut log, &mut unsynced);
+            flush(&mut log, &mut logged, &mut unsynced);
             first_unsynced = None;
         }
     }
-    flush(&mut log, &mut unsynced);
+    flush(&mut log, &mut logged, &mut unsynced);
+}
+
+/// A record written to the log and not yet synced.
+struct Unsynced {
+    path: PathBuf,
+    objects: u64,
+    /// The version of the file that was read.
+    stamp: Stamp,
+    key: Key,
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn setup() -> (Config, Settle, VecDeque<PathBuf>, HashSet<PathBuf>) {
+        let mut cfg = Config::default();
+        cfg.folders.inbox = PathBuf::from("/nonexistent-inbox");
+        (
+            cfg,
+            Settle::new(Duration::from_millis(100)),
+            VecDeque::new(),
+            HashSet::new(),
+        )
+    }
+
+    #[test]
+    fn lost_events_ask_for_a_listing_and_end_waits_for_close_events() {
+        let (cfg, mut settle, mut ready, mut known) = setup();
+        let path = cfg.folders.inbox.join("a.pbm");
+        let t0 = Instant::now();
+        settle.announce(&path, t0);
+        let mut next_rescan = t0 + Duration::from_secs(3600);
+        let ev = notify::Event::new(EventKind::Other).set_flag(notify::event::Flag::Rescan);
+        on_event(
+            ev,
+            &cfg,
+            &mut settle,
+            &mut ready,
+            &mut known,
+            &mut next_rescan,
+        );
+        assert!(next_rescan <= Instant::now());
+        // The announced file now settles like any other.
+        let l = inbox::Listed {
+            path,
+            size: 1,
+            modified: SystemTime::UNIX_EPOCH,
+        };
+        assert!(!settle.observe(&l, t0));
+        assert!(settle.observe(&l, t0 + Duration::from_millis(150)));
+    }
+
+    #[test]
+    fn events_outside_the_inbox_or_for_other_files_are_ignored() {
+        use notify::event::{AccessKind, AccessMode};
+        let (cfg, mut settle, mut ready, mut known) = setup();
+        let mut next = Instant::now();
+        for p in [
+            "/elsewhere/a.pbm",
+            "/nonexistent-inbox/.a.pbm",
+            "/nonexistent-inbox/a.txt",
+        ] {
+            let ev = notify::Event::new(EventKind::Access(AccessKind::Close(AccessMode::Write)))
+                .add_path(PathBuf::from(p));
+            on_event(ev, &cfg, &mut settle, &mut ready, &mut known, &mut next);
+        }
+        // A close event for a frame name whose file is gone is ignored too.
+        let ev = notify::Event::new(EventKind::Access(AccessKind::Close(AccessMode::Write)))
+            .add_path(cfg.folders.inbox.join("b.pbm"));
+        on_event(ev, &cfg, &mut settle, &mut ready, &mut known, &mut next);
+        assert!(ready.is_empty() && known.is_empty() && settle.is_empty());
+    }
 }
