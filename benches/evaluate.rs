@@ -18,13 +18,13 @@ use std::path::Path;
 use std::time::Instant;
 
 use treeline::codec::{self, DecodeLimits};
-use treeline::compile::{self, Backend, Program, Scratch};
+use treeline::compile::{Backend, Program, Scratch};
+use treeline::detector::Detector;
 use treeline::evaluate::{self, Settings};
 use treeline::frame::BitFrame;
 use treeline::group::{self, GroupParams};
 use treeline::learn::{self, TrainParams};
 use treeline::model::{Leaf, Node, Tree};
-use treeline::record::FrameRecord;
 use treeline::synth::{self, LoomParams};
 use treeline::window::Window;
 
@@ -184,23 +184,21 @@ fn main() {
     )
     .frame;
     let bytes = codec::encode_pbm(&small);
-    let settings = Settings::of(&model);
     let limits = DecodeLimits::default();
-    let whole = time(runs * 5, || {
-        let t = Instant::now();
-        let f = codec::decode(&bytes, &limits).expect("decodes");
-        let r = compile::run(&program, &model.tree, &settings, &f, &mut scratch);
-        let rec = FrameRecord::new(
+    let settings = Settings::of(&model);
+    let detector = Detector::new(model, settings);
+    let started = Instant::now();
+    let mut clock = || {
+        (
             std::time::SystemTime::now(),
-            "bench.pbm",
-            &bytes,
-            f.width(),
-            f.height(),
-            model.model_version,
-            t.elapsed().as_secs_f64() * 1e3,
-            &r.objects,
-        );
-        std::hint::black_box(serde_json::to_string(&rec).expect("serialises"));
+            started.elapsed().as_secs_f64(),
+        )
+    };
+    let whole = time(runs * 5, || {
+        let d = detector
+            .process("bench.pbm", &bytes, &limits, &mut scratch, &mut clock)
+            .expect("decodes");
+        std::hint::black_box(serde_json::to_string(&d.record).expect("serialises"));
     });
     println!(
         "whole scan of a 512x512 frame with the demo model (decode + detect + group + JSON): {:.3} ms",

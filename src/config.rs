@@ -450,10 +450,11 @@ impl RawConfig {
             return Err(invalid("log.rotate_bytes", "must be at least 4096"));
         }
         let keep_files = l.keep_files.unwrap_or(10);
-        if !(1..=100_000).contains(&keep_files) {
+        // Two at least: a restart reads back the newest rotated file too.
+        if !(2..=100_000).contains(&keep_files) {
             return Err(invalid(
                 "log.keep_files",
-                format!("{keep_files} is outside 1..=100000"),
+                format!("{keep_files} is outside 2..=100000"),
             ));
         }
         let sync_records = l.sync_records.unwrap_or(64);

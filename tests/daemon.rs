@@ -73,6 +73,7 @@ impl Setup {
         Command::new(env!("CARGO_BIN_EXE_treeline"))
             .args(["run", "--config"])
             .arg(self.config())
+            .current_dir(self.dir.path())
             .env_remove("RUST_LOG")
             .env_remove("NOTIFY_SOCKET")
             .stdin(Stdio::null())
@@ -80,6 +81,15 @@ impl Setup {
             .stderr(err)
             .spawn()
             .expect("start the daemon")
+    }
+
+    /// Starts the daemon and waits until it watches the inbox.
+    fn start_watching(&self) -> Child {
+        let d = self.start();
+        wait_for("the daemon to start", 60, || {
+            self.stderr().contains("watching")
+        });
+        d
     }
 
     fn stderr(&self) -> String {
@@ -173,6 +183,20 @@ fn frames(count: usize, seed: u64) -> Vec<(String, Vec<u8>)> {
         .collect()
 }
 
+/// Drops `all` into the inbox, waits until every one is archived, stops the
+/// daemon with SIGTERM (exit 0), and checks one record per frame.
+fn feed_and_stop(s: &Setup, d: &mut Child, all: &[(String, Vec<u8>)], secs: u64) {
+    for (n, b) in all {
+        s.drop_frame(n, b);
+    }
+    wait_for("every frame to be archived", secs, || {
+        s.names_in("archive").len() == all.len()
+    });
+    signal(d, libc::SIGTERM);
+    assert_eq!(exit_code(d, 20), 0, "{}", s.stderr());
+    logged_once(&s.records(), all);
+}
+
 /// Checks that each frame has exactly one record, with its hash.
 fn logged_once(records: &[FrameRecord], frames: &[(String, Vec<u8>)]) {
     let mut by_name: HashMap<&str, Vec<&FrameRecord>> = HashMap::new();
@@ -220,10 +244,7 @@ fn a_burst_of_2000_frames_is_logged_once_and_archived_in_bounded_memory() {
     let s = Setup::new("[log]\nsync = \"batch\"\n[watch]\nsettle_millis = 100\n");
     // 2,000 frames of 32 KiB: 64 MiB if the daemon held them all.
     let all = big_frames(2000);
-    let mut d = s.start();
-    wait_for("the daemon to start", 30, || {
-        s.stderr().contains("watching")
-    });
+    let mut d = s.start_watching();
     // Written aside first, then renamed in all at once.
     let stage = s.dir.join("stage");
     std::fs::create_dir_all(&stage).unwrap();
@@ -258,10 +279,7 @@ fn a_burst_of_2000_frames_is_logged_once_and_archived_in_bounded_memory() {
 #[test]
 fn a_frame_written_slowly_in_place_is_read_when_complete() {
     let s = Setup::new("[watch]\nsettle_millis = 100\nrescan_seconds = 0.1\n");
-    let mut d = s.start();
-    wait_for("the daemon to start", 30, || {
-        s.stderr().contains("watching")
-    });
+    let mut d = s.start_watching();
     let (_, bytes) = frames(1, 3).remove(0);
     {
         use std::io::Write;
@@ -293,10 +311,7 @@ fn a_frame_written_slowly_in_place_is_read_when_complete() {
 fn bad_files_are_rejected_with_a_reason_and_the_rest_logged() {
     let s =
         Setup::new("[watch]\nsettle_millis = 50\n[frames]\nmax_width = 4096\nmax_height = 4096\n");
-    let mut d = s.start();
-    wait_for("the daemon to start", 30, || {
-        s.stderr().contains("watching")
-    });
+    let mut d = s.start_watching();
     let good = frames(20, 11);
     let bad: Vec<(&str, &[u8], &str)> = vec![
         ("empty.pbm", b"", "empty"),
@@ -392,10 +407,7 @@ fn sigterm_with_frames_in_flight_loses_nothing() {
         "[log]\nsync = \"batch\"\nsync_records = 32\nsync_millis = 30000\n[watch]\nsettle_millis = 50\nqueue = 64\n",
     );
     let all = frames(300, 5);
-    let mut d = s.start();
-    wait_for("the daemon to start", 30, || {
-        s.stderr().contains("watching")
-    });
+    let mut d = s.start_watching();
     for (n, b) in &all {
         s.drop_frame(n, b);
     }
@@ -434,10 +446,7 @@ fn sighup_reloads_and_keeps_the_running_config_when_the_new_one_is_broken() {
     )
     .unwrap();
     assert!(!want.is_empty());
-    let mut d = s.start();
-    wait_for("the daemon to start", 30, || {
-        s.stderr().contains("watching")
-    });
+    let mut d = s.start_watching();
     let mut sent = 0;
     let mut send = |s: &Setup| {
         sent += 1;
@@ -520,15 +529,29 @@ fn a_restart_archives_frames_already_logged_without_a_second_record() {
 }
 
 #[test]
+fn file_events_work_with_folders_relative_to_the_working_folder() {
+    // As in config/treeline.toml: folders relative to where the daemon
+    // runs. Listing only every hour, so only file events can find a frame.
+    let s = Setup::new("");
+    std::fs::write(
+        s.config(),
+        "[folders]\ninbox = \"inbox\"\narchive = \"archive\"\nrejected = \"rejected\"\n\
+         corrections = \"corrections\"\nstate = \"state\"\nlogs = \"logs\"\n\
+         [watch]\nrescan_seconds = 3600\n",
+    )
+    .unwrap();
+    let all = frames(3, 43);
+    let mut d = s.start_watching();
+    feed_and_stop(&s, &mut d, &all, 30);
+}
+
+#[test]
 fn frames_are_found_by_listing_when_events_are_missing() {
     // No file events at all (as on a network filesystem): every frame must
     // still be found, by the periodic listing.
     let s = Setup::new("[watch]\nevents = false\nsettle_millis = 50\nrescan_seconds = 0.1\n");
     let all = frames(60, 13);
-    let mut d = s.start();
-    wait_for("the daemon to start", 30, || {
-        s.stderr().contains("watching")
-    });
+    let mut d = s.start_watching();
     for (n, b) in &all {
         s.drop_frame(n, b);
     }
@@ -565,10 +588,7 @@ fn frames_waiting_at_start_are_processed_oldest_first() {
 #[test]
 fn a_second_daemon_on_the_same_folders_stops_with_a_clear_message() {
     let s = Setup::new("");
-    let mut first = s.start();
-    wait_for("the daemon to start", 30, || {
-        s.stderr().contains("watching")
-    });
+    let mut first = s.start_watching();
     let second = crate::util::treeline(
         s.dir.path(),
         &["run", "--config", s.config().to_str().unwrap()],
@@ -617,13 +637,7 @@ fn a_fresh_box_trains_its_first_model_from_the_seed_data() {
         s.stderr().contains("watching")
     });
     let all = frames(3, 2);
-    for (n, b) in &all {
-        s.drop_frame(n, b);
-    }
-    wait_for("3 archived frames", 30, || s.names_in("archive").len() == 3);
-    signal(&d, libc::SIGTERM);
-    assert_eq!(exit_code(&mut d, 20), 0);
-    logged_once(&s.records(), &all);
+    feed_and_stop(&s, &mut d, &all, 30);
     let m = treeline::model::Model::from_json(
         &std::fs::read_to_string(s.dir.join("state/model.json")).unwrap(),
     )

@@ -14,11 +14,11 @@ use anyhow::{bail, Context, Result};
 use serde::Serialize;
 
 use treeline::codec::{self, DecodeLimits};
-use treeline::compile::{self, Backend, Program, Scratch};
+use treeline::compile::{Backend, Program, Scratch};
+use treeline::detector::Detector;
 use treeline::evaluate::{self, Settings};
 use treeline::frame::BitFrame;
 use treeline::group;
-use treeline::record::FrameRecord;
 use treeline::synth::{self, LoomParams};
 
 #[derive(clap::Args, Debug)]
@@ -163,21 +163,20 @@ pub fn bench(a: BenchArgs) -> Result<i32> {
     });
     let bytes = codec::encode_pbm(&frame);
     let limits = DecodeLimits::default();
-    let whole = time(a.runs, || {
-        let t = Instant::now();
-        let f = codec::decode(&bytes, &limits).expect("own encoding decodes");
-        let r = compile::run(&program, &m.tree, &settings, &f, &mut scratch);
-        let rec = FrameRecord::new(
+    // The whole frame exactly as the daemon's workers handle it.
+    let detector = Detector::new(m.clone(), settings);
+    let started = Instant::now();
+    let mut clock = || {
+        (
             std::time::SystemTime::now(),
-            "bench.pbm",
-            &bytes,
-            f.width(),
-            f.height(),
-            m.model_version,
-            t.elapsed().as_secs_f64() * 1000.0,
-            &r.objects,
-        );
-        std::hint::black_box(serde_json::to_string(&rec).expect("record serialises"));
+            started.elapsed().as_secs_f64(),
+        )
+    };
+    let whole = time(a.runs, || {
+        let d = detector
+            .process("bench.pbm", &bytes, &limits, &mut scratch, &mut clock)
+            .expect("own encoding decodes");
+        std::hint::black_box(serde_json::to_string(&d.record).expect("record serialises"));
     });
     let report = Report {
         width: w,

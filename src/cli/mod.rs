@@ -35,11 +35,11 @@ use serde::Serialize;
 use treeline::codec::DecodeLimits;
 use treeline::compile::{self, Program, Scratch};
 use treeline::config::{self, Config};
+use treeline::detector::Detector;
 use treeline::evaluate::Settings;
 use treeline::group::GroupParams;
 use treeline::learn::{self, ClassWeight, Criterion, Stage, TrainParams};
 use treeline::model::{Model, Node};
-use treeline::record::FrameRecord;
 use treeline::score::{self, Confusion, Scores};
 use treeline::synth::{self, LoomParams};
 use treeline::window::Window;
@@ -535,11 +535,12 @@ fn scan(a: ScanArgs) -> Result<i32> {
     let m = load_model(&a.model)?;
     let settings = a.settings.apply(&m, &cfg)?;
     let limits = a.decode.limits(&cfg);
-    let program = Program::compile(&m.tree, settings.threshold);
+    let detector = Detector::new(m, settings);
     let mut scratch = Scratch::default();
+    let started = Instant::now();
+    let mut clock = || (SystemTime::now(), started.elapsed().as_secs_f64());
     let mut failed = 0;
     for path in &a.frames {
-        let t0 = Instant::now();
         let bytes = match data::read_bounded(path, &limits) {
             Ok(b) => b,
             Err(e) => {
@@ -548,30 +549,18 @@ fn scan(a: ScanArgs) -> Result<i32> {
                 continue;
             }
         };
-        let frame = match treeline::codec::decode(&bytes, &limits) {
-            Ok(f) => f,
+        let name = path
+            .file_name()
+            .map(|n| n.to_string_lossy().into_owned())
+            .unwrap_or_default();
+        let rec = match detector.process(&name, &bytes, &limits, &mut scratch, &mut clock) {
+            Ok(d) => d.record,
             Err(e) => {
                 eprintln!("treeline: error: {}", e.with_path(path));
                 failed += 1;
                 continue;
             }
         };
-        let result = compile::run(&program, &m.tree, &settings, &frame, &mut scratch);
-        let millis = t0.elapsed().as_secs_f64() * 1000.0;
-        let name = path
-            .file_name()
-            .map(|n| n.to_string_lossy().into_owned())
-            .unwrap_or_default();
-        let rec = FrameRecord::new(
-            SystemTime::now(),
-            &name,
-            &bytes,
-            frame.width(),
-            frame.height(),
-            m.model_version,
-            millis,
-            &result.objects,
-        );
         if a.json {
             out!("{}", serde_json::to_string(&rec)?);
         } else {

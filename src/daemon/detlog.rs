@@ -8,10 +8,10 @@
 //! file has been synced after it; the daemon moves a frame out of the inbox
 //! only then. After a crash the file may end in a partial line (the write
 //! of a record that was never durable): [`DetectionLog::open`] cuts it off
-//! and reads back the names and hashes of the records already logged, so
-//! a frame still in the inbox whose record is in the log is archived, not
-//! logged twice. Records are written with one `write` call each, so a crash
-//! leaves at most the last line partial.
+//! and reads back, from the current file and the newest rotated one, the
+//! hashes of the records of the frames still in the inbox, so such a frame
+//! is archived, not logged twice. Records are written with one `write` call
+//! each, so a crash leaves at most the last line partial.
 
 use std::collections::HashSet;
 use std::fs::{self, File, OpenOptions};
@@ -23,61 +23,9 @@ use crate::record::FrameRecord;
 
 /// The current log file's name.
 pub const CURRENT: &str = "detections.jsonl";
-/// How much of the newest log files is read back at start.
-const TAIL_BYTES: u64 = 8 << 20;
 
 /// A logged frame: its name and the SHA-256 of its bytes.
 pub type Key = (String, String);
-
-/// The keys of logged frames the writer remembers: those read back at
-/// start, plus the most recent ones, so memory stays bounded however long
-/// the daemon runs. A frame logged but not moved (say, the archive was not
-/// writable) is recognised when a listing finds it again, for as long as
-/// fewer than [`Recent::CAPACITY`] newer frames were logged since.
-#[derive(Debug, Default)]
-pub struct Recent {
-    set: HashSet<Key>,
-    order: std::collections::VecDeque<Key>,
-}
-
-impl Recent {
-    pub const CAPACITY: usize = 4096;
-
-    pub fn new(keys: HashSet<Key>) -> Recent {
-        let order = keys.iter().cloned().collect();
-        Recent { set: keys, order }
-    }
-
-    pub fn contains(&self, k: &Key) -> bool {
-        self.set.contains(k)
-    }
-
-    /// Forgets a key (its record was not made durable).
-    pub fn remove(&mut self, k: &Key) {
-        if self.set.remove(k) {
-            self.order.retain(|o| o != k);
-        }
-    }
-
-    pub fn insert(&mut self, k: Key) {
-        if self.set.insert(k.clone()) {
-            self.order.push_back(k);
-        }
-        while self.order.len() > Self::CAPACITY {
-            if let Some(old) = self.order.pop_front() {
-                self.set.remove(&old);
-            }
-        }
-    }
-
-    pub fn len(&self) -> usize {
-        self.set.len()
-    }
-
-    pub fn is_empty(&self) -> bool {
-        self.set.is_empty()
-    }
-}
 
 /// The open detection log.
 #[derive(Debug)]
@@ -95,12 +43,14 @@ pub struct DetectionLog {
 
 impl DetectionLog {
     /// Opens (or creates) the log in `dir`, cutting off a partial last
-    /// line, and returns it with the keys of the records in the tail of the
-    /// newest files.
+    /// line, and returns it with the keys of the records, in the current
+    /// file and the newest rotated one, of the frames named in `wanted`
+    /// (those waiting in the inbox).
     pub fn open(
         dir: &Path,
         rotate_bytes: u64,
         keep_files: usize,
+        wanted: &HashSet<String>,
     ) -> io::Result<(Self, HashSet<Key>)> {
         fs::create_dir_all(dir)?;
         let path = dir.join(CURRENT);
@@ -118,12 +68,10 @@ impl DetectionLog {
         // them durable before their frames are archived as already logged.
         file.sync_data()?;
         let mut keys = HashSet::new();
-        read_keys(&mut file, size, &mut keys)?;
-        if size < TAIL_BYTES {
+        if !wanted.is_empty() {
+            read_keys(&path, wanted, &mut keys)?;
             if let Some(prev) = rotated(dir)?.last() {
-                let mut f = File::open(prev)?;
-                let len = f.metadata()?.len();
-                read_keys(&mut f, len, &mut keys)?;
+                read_keys(prev, wanted, &mut keys)?;
             }
         }
         Ok((
@@ -262,28 +210,29 @@ fn cut_partial_line(file: &mut File) -> io::Result<u64> {
     }
 }
 
-/// Adds the (frame, sha256) of the records in the last [`TAIL_BYTES`] of
-/// a log file of length `len`. Lines that do not parse are passed over.
-fn read_keys(file: &mut File, len: u64, keys: &mut HashSet<Key>) -> io::Result<()> {
+/// Adds the (frame, sha256) of the records in the log file at `path` whose
+/// frame is in `wanted`, reading line by line. Lines that do not parse
+/// (written by another version, or damaged) are passed over.
+fn read_keys(path: &Path, wanted: &HashSet<String>, keys: &mut HashSet<Key>) -> io::Result<()> {
+    use std::io::BufRead;
     #[derive(serde::Deserialize)]
     struct KeyOnly {
         frame: String,
         sha256: String,
     }
-    let start = len.saturating_sub(TAIL_BYTES);
-    file.seek(SeekFrom::Start(start))?;
-    let mut text = Vec::with_capacity((len - start) as usize);
-    file.take(len - start).read_to_end(&mut text)?;
-    let mut lines = text.split(|&b| b == b'\n');
-    if start > 0 {
-        lines.next(); // partial first line
-    }
-    for line in lines.filter(|l| !l.is_empty()) {
-        if let Ok(k) = serde_json::from_slice::<KeyOnly>(line) {
-            keys.insert((k.frame, k.sha256));
+    let mut reader = io::BufReader::new(File::open(path)?);
+    let mut line = Vec::new();
+    loop {
+        line.clear();
+        if reader.read_until(b'\n', &mut line)? == 0 {
+            return Ok(());
+        }
+        if let Ok(k) = serde_json::from_slice::<KeyOnly>(&line) {
+            if wanted.contains(&k.frame) {
+                keys.insert((k.frame, k.sha256));
+            }
         }
     }
-    Ok(())
 }
 
 /// Syncs a folder, so a file created or renamed in it survives a crash.
@@ -311,7 +260,8 @@ mod tests {
     #[test]
     fn partial_last_line_is_cut_and_keys_read_back() {
         let dir = tempfile::tempdir().unwrap();
-        let (mut log, keys) = DetectionLog::open(dir.path(), 1 << 20, 3).unwrap();
+        let wanted: HashSet<String> = ["a.pbm", "b.pbm", "c.pbm"].map(String::from).into();
+        let (mut log, keys) = DetectionLog::open(dir.path(), 1 << 20, 3, &wanted).unwrap();
         assert!(keys.is_empty());
         log.append(&rec("a.pbm", "aa")).unwrap();
         log.append(&rec("b.pbm", "bb")).unwrap();
@@ -323,7 +273,7 @@ mod tests {
         f.write_all(b"{\"time\":\"2026-12-02T10:00:01.000Z\",\"frame\":\"c.p")
             .unwrap();
         drop(f);
-        let (log, keys) = DetectionLog::open(dir.path(), 1 << 20, 3).unwrap();
+        let (log, keys) = DetectionLog::open(dir.path(), 1 << 20, 3, &wanted).unwrap();
         let want: HashSet<Key> = [("a.pbm", "aa"), ("b.pbm", "bb")]
             .iter()
             .map(|(a, b)| (a.to_string(), b.to_string()))
@@ -336,20 +286,9 @@ mod tests {
     }
 
     #[test]
-    fn recent_keys_stay_bounded() {
-        let mut r = Recent::new(HashSet::from([("a".to_string(), "1".to_string())]));
-        for i in 0..Recent::CAPACITY + 10 {
-            r.insert((format!("f{i}"), "x".into()));
-        }
-        assert_eq!(r.len(), Recent::CAPACITY);
-        assert!(!r.contains(&("a".into(), "1".into())));
-        assert!(r.contains(&(format!("f{}", Recent::CAPACITY + 9), "x".into())));
-    }
-
-    #[test]
     fn rotation_keeps_the_newest_files() {
         let dir = tempfile::tempdir().unwrap();
-        let (mut log, _) = DetectionLog::open(dir.path(), 4096, 3).unwrap();
+        let (mut log, _) = DetectionLog::open(dir.path(), 4096, 3, &HashSet::new()).unwrap();
         for i in 0..200 {
             log.append(&rec(&format!("frame-{i:04}.pbm"), "00"))
                 .unwrap();
@@ -371,5 +310,14 @@ mod tests {
         assert!(total < 200);
         let last = fs::read_to_string(dir.path().join(CURRENT)).unwrap();
         assert!(last.lines().last().unwrap().contains("frame-0199.pbm"));
+        // Keys are read back for the frames asked about only, from the
+        // current file and the newest rotated one.
+        drop(log);
+        let wanted: HashSet<String> = ["frame-0199.pbm", "frame-0000.pbm"]
+            .map(String::from)
+            .into();
+        let (_, keys) = DetectionLog::open(dir.path(), 4096, 3, &wanted).unwrap();
+        assert_eq!(keys.len(), 1);
+        assert!(keys.contains(&("frame-0199.pbm".to_string(), "00".to_string())));
     }
 }

@@ -82,11 +82,20 @@ impl Stamp {
 
 /// Reads a frame file through one open handle, so its bytes and its stamp
 /// belong to the same file, refusing files larger than a frame of the
-/// largest accepted size can need ([`crate::data::max_file_bytes`]).
-pub fn read_frame(path: &Path, limits: &DecodeLimits) -> Result<(Vec<u8>, Stamp)> {
+/// largest accepted size can need ([`crate::data::max_file_bytes`]) and
+/// empty ones. The stamp comes back whenever the file could be opened, with
+/// the error too: an empty file that is filled later is then not rejected.
+pub fn read_frame(path: &Path, limits: &DecodeLimits) -> (Option<Stamp>, Result<Vec<u8>>) {
     let err = |e: io::Error| Error::from(e).with_path(path);
-    let file = File::open(path).map_err(err)?;
-    let meta = file.metadata().map_err(err)?;
+    let file = match File::open(path) {
+        Ok(f) => f,
+        Err(e) => return (None, Err(err(e))),
+    };
+    let meta = match file.metadata() {
+        Ok(m) => m,
+        Err(e) => return (None, Err(err(e))),
+    };
+    let stamp = Some(Stamp::of(&meta));
     let max = crate::data::max_file_bytes(limits);
     let too_big = |len: u64| {
         Error::new(ErrorKind::Data(format!(
@@ -96,17 +105,20 @@ pub fn read_frame(path: &Path, limits: &DecodeLimits) -> Result<(Vec<u8>, Stamp)
         .with_path(path)
     };
     if meta.len() > max {
-        return Err(too_big(meta.len()));
+        return (stamp, Err(too_big(meta.len())));
     }
     let mut bytes = Vec::with_capacity(meta.len() as usize);
-    file.take(max + 1).read_to_end(&mut bytes).map_err(err)?;
+    if let Err(e) = file.take(max + 1).read_to_end(&mut bytes) {
+        return (stamp, Err(err(e)));
+    }
     if bytes.len() as u64 > max {
-        return Err(too_big(bytes.len() as u64));
+        return (stamp, Err(too_big(bytes.len() as u64)));
     }
     if bytes.is_empty() {
-        return Err(Error::new(ErrorKind::Data("file is empty".into())).with_path(path));
+        let e = Error::new(ErrorKind::Data("file is empty".into())).with_path(path);
+        return (stamp, Err(e));
     }
-    Ok((bytes, Stamp::of(&meta)))
+    (stamp, Ok(bytes))
 }
 
 /// Whether a daemon holds the lock on `state`, without touching the lock
@@ -281,19 +293,27 @@ mod tests {
         let d = tempfile::tempdir().unwrap();
         let p = d.path().join("f.pbm");
         fs::write(&p, "P1 1 1 0").unwrap();
-        let (bytes, stamp) = read_frame(&p, &DecodeLimits::default()).unwrap();
-        assert_eq!(bytes, b"P1 1 1 0");
+        let (stamp, bytes) = read_frame(&p, &DecodeLimits::default());
+        assert_eq!(bytes.unwrap(), b"P1 1 1 0");
+        let stamp = stamp.unwrap();
         assert_eq!(Stamp::now(&p).unwrap(), stamp);
         // Replaced by rename under the same name: another inode.
         fs::write(d.path().join("g"), "P1 1 1 1").unwrap();
         fs::rename(d.path().join("g"), &p).unwrap();
         assert_ne!(Stamp::now(&p).unwrap(), stamp);
-        fs::write(d.path().join("e.pbm"), "").unwrap();
-        let e = read_frame(&d.path().join("e.pbm"), &DecodeLimits::default()).unwrap_err();
+        // An empty file: an error, but with its stamp, so filling it later
+        // shows as a change.
+        let e_path = d.path().join("e.pbm");
+        fs::write(&e_path, "").unwrap();
+        let (stamp, e) = read_frame(&e_path, &DecodeLimits::default());
+        let e = e.unwrap_err();
         assert!(
             e.to_string().contains("empty") && e.to_string().contains("e.pbm"),
             "{e}"
         );
+        fs::write(&e_path, "P1 1 1 0").unwrap();
+        assert!(stamp.is_some());
+        assert_ne!(Stamp::now(&e_path).ok(), stamp);
     }
 
     #[test]

@@ -216,11 +216,24 @@ enum DoneKind {
 
 /// Runs the daemon until [`Control::Stop`] (or until `control` closes).
 pub fn run(
-    cfg: Config,
+    mut cfg: Config,
     mut control: Receiver<Control>,
     status: &mut dyn FnMut(Status),
 ) -> Result<Summary> {
     make_folders(&cfg)?;
+    // Absolute folders: file events name absolute paths, and a path must
+    // have one spelling to be recognised in flight.
+    for (_, dir) in cfg.folders.clone().named() {
+        let abs = std::fs::canonicalize(dir).map_err(|e| Error::from(e).with_path(dir))?;
+        match dir {
+            d if d == &cfg.folders.inbox => cfg.folders.inbox = abs,
+            d if d == &cfg.folders.archive => cfg.folders.archive = abs,
+            d if d == &cfg.folders.rejected => cfg.folders.rejected = abs,
+            d if d == &cfg.folders.corrections => cfg.folders.corrections = abs,
+            d if d == &cfg.folders.state => cfg.folders.state = abs,
+            _ => cfg.folders.logs = abs,
+        }
+    }
     let _lock = files::StateLock::acquire(&cfg.folders.state)?;
     let model = load_or_train(&cfg)?;
     let settings = settings_for(&model, &cfg)?;
@@ -234,9 +247,19 @@ pub fn run(
         detector: Detector::new(model, settings),
         limits: cfg.limits.clone(),
     }));
-    let (log, logged) =
-        DetectionLog::open(&cfg.folders.logs, cfg.log.rotate_bytes, cfg.log.keep_files)
-            .map_err(|e| Error::from(e).with_path(&cfg.folders.logs))?;
+    // The frames waiting now: the log is asked which of them it holds.
+    let waiting: HashSet<String> = inbox::list(&cfg.folders.inbox, &cfg.watch.formats)
+        .map_err(|e| Error::from(e).with_path(&cfg.folders.inbox))?
+        .iter()
+        .filter_map(|l| l.path.file_name()?.to_str().map(String::from))
+        .collect();
+    let (log, logged) = DetectionLog::open(
+        &cfg.folders.logs,
+        cfg.log.rotate_bytes,
+        cfg.log.keep_files,
+        &waiting,
+    )
+    .map_err(|e| Error::from(e).with_path(&cfg.folders.logs))?;
     if let Ok(n) = files::prune_archive(&cfg.folders.archive, cfg.retention, SystemTime::now()) {
         if n > 0 {
             info!(deleted = n, "archive retention");
@@ -244,7 +267,7 @@ pub fn run(
     }
 
     // Watcher: its callback only forwards; a full channel means lost events.
-    let (ev_tx, ev_rx) = bounded::<notify::Result<notify::Event>>(4096);
+    let (ev_tx, mut ev_rx) = bounded::<notify::Result<notify::Event>>(4096);
     let overflow = Arc::new(AtomicBool::new(false));
     let flag = overflow.clone();
     let watcher = if cfg.watch.events {
@@ -316,6 +339,7 @@ pub fn run(
     let mut seq = 0u64;
     let mut summary = Summary::default();
     let mut stopping = false;
+    let mut workers_lost = false;
     let period = Duration::from_millis(cfg.watch.settle_millis.clamp(20, 100));
     let ticker = tick(period);
     let mut rescan_every = Duration::from_secs_f64(cfg.watch.rescan_seconds);
@@ -329,14 +353,16 @@ pub fn run(
         // Hand out ready frames while there is room.
         while !stopping && in_flight < queue {
             let Some(path) = ready.pop_front() else { break };
-            work_tx
-                .send(Job { seq, path })
-                .expect("workers outlive the main loop");
+            if work_tx.send(Job { seq, path }).is_err() {
+                error!("every detection worker has stopped");
+                workers_lost = true;
+                break;
+            }
             seq += 1;
             in_flight += 1;
             unfinished += 1;
         }
-        if stopping && unfinished == 0 {
+        if (stopping && unfinished == 0) || workers_lost {
             break;
         }
         let now = Instant::now();
@@ -357,7 +383,11 @@ pub fn run(
                     settle.forget_announcements();
                     next_rescan = Instant::now();
                 }
-                Err(_) => {}
+                // The watcher's thread is gone: listing alone from now on.
+                Err(_) => {
+                    warn!("the file watcher stopped; the inbox is found by listing alone");
+                    ev_rx = crossbeam_channel::never();
+                }
             },
             recv(done_rx) -> d => match d {
                 Ok(FromWriter::Taken) => in_flight -= 1,
@@ -421,6 +451,11 @@ pub fn run(
     }
     let writer_ok = writer.join().is_ok();
     drop(watcher);
+    if workers_lost {
+        return Err(Error::new(ErrorKind::Data(
+            "every detection worker stopped; frames not yet logged are still in the inbox".into(),
+        )));
+    }
     if !writer_ok {
         return Err(Error::new(ErrorKind::Data(
             "the detection log writer stopped unexpectedly; frames not yet logged are still in the inbox"
@@ -634,21 +669,23 @@ fn worker(jobs: Receiver<Job>, results: Sender<(Job, Outcome)>, running: Arc<Arc
             .file_name()
             .map(|n| n.to_string_lossy().into_owned())
             .unwrap_or_default();
-        let outcome = match files::read_frame(&job.path, &run.limits) {
-            Err(e) => match e.kind() {
+        let (stamp, read) = files::read_frame(&job.path, &run.limits);
+        let outcome = match (read, stamp) {
+            (Err(e), stamp) => match e.kind() {
                 ErrorKind::Io(io) if io.kind() == std::io::ErrorKind::NotFound => Outcome::Gone,
                 // The file cannot be read by us: reject it, with the reason.
                 ErrorKind::Io(io) if io.kind() == std::io::ErrorKind::PermissionDenied => {
-                    Outcome::Reject(e.to_string(), None)
+                    Outcome::Reject(e.to_string(), stamp)
                 }
                 // Out of file handles, an I/O error...: try again later.
                 ErrorKind::Io(_) => {
                     warn!("{e}; it will be read again");
                     Outcome::Gone
                 }
-                _ => Outcome::Reject(e.to_string(), None),
+                _ => Outcome::Reject(e.to_string(), stamp),
             },
-            Ok((bytes, stamp)) => {
+            (Ok(_), None) => unreachable!("a file read has a stamp"),
+            (Ok(bytes), Some(stamp)) => {
                 let det = &run.detector;
                 let limits = &run.limits;
                 // A bug in detection must cost one frame, not the daemon:
@@ -691,11 +728,14 @@ fn write_loop(
     mut flush_now: Receiver<()>,
     done: Sender<FromWriter>,
     mut log: DetectionLog,
-    logged: HashSet<Key>,
+    recovered: HashSet<Key>,
     policy: SyncPolicy,
     folders: crate::config::Folders,
 ) {
-    let mut logged = detlog::Recent::new(logged);
+    // Keys of records written whose frames are not archived yet: those of
+    // frames still in the inbox at start, then every record until its frame
+    // is moved. Bounded by the frames in the inbox.
+    let mut unmoved: HashSet<Key> = recovered;
     let mut waiting: BTreeMap<u64, (Job, Outcome)> = BTreeMap::new();
     let mut next = 0u64;
     // Logged but not yet synced: (path, objects, stamp of what was read, key).
@@ -719,38 +759,47 @@ fn write_loop(
         }
         changed
     };
-    let archive = |path: PathBuf, kind: DoneKind, objects: u64, stamp: Stamp| {
+    // Moves a logged frame to the archive; true if it went.
+    let archive = |path: PathBuf, kind: DoneKind, objects: u64, stamp: Stamp| -> bool {
         if changed(&path, Some(stamp)) {
-            return send(path, DoneKind::Left, 0);
+            send(path, DoneKind::Left, 0);
+            return false;
         }
         match files::move_into(&path, &folders.archive) {
-            Ok(_) => send(path, kind, objects),
+            Ok(_) => {
+                send(path, kind, objects);
+                true
+            }
             Err(e) => {
                 error!(frame = %path.display(), "cannot move the frame to the archive: {e}");
                 send(path, DoneKind::Left, 0);
+                false
             }
         }
     };
     // After a failed sync the log drops the records it could not make
     // durable, and they are forgotten here, so their frames are logged
     // again when the next listing finds them.
-    let flush =
-        |log: &mut DetectionLog, logged: &mut detlog::Recent, unsynced: &mut Vec<Unsynced>| {
-            match log.sync() {
-                Ok(()) => {
-                    for u in unsynced.drain(..) {
-                        archive(u.path, DoneKind::Logged, u.objects, u.stamp);
-                    }
-                }
-                Err(e) => {
-                    error!("cannot sync the detection log: {e}; its frames stay in the inbox");
-                    for u in unsynced.drain(..) {
-                        logged.remove(&u.key);
-                        send(u.path, DoneKind::Left, 0);
+    let flush = |log: &mut DetectionLog,
+                 unmoved: &mut HashSet<Key>,
+                 unsynced: &mut Vec<Unsynced>| {
+        match log.sync() {
+            Ok(()) => {
+                for u in unsynced.drain(..) {
+                    if archive(u.path, DoneKind::Logged, u.objects, u.stamp) {
+                        unmoved.remove(&u.key);
                     }
                 }
             }
-        };
+            Err(e) => {
+                error!("cannot sync the detection log: {e}; its frames stay in the inbox");
+                for u in unsynced.drain(..) {
+                    unmoved.remove(&u.key);
+                    send(u.path, DoneKind::Left, 0);
+                }
+            }
+        }
+    };
     loop {
         let deadline = match (policy, first_unsynced) {
             (SyncPolicy::Batch { millis, .. }, Some(t)) if !draining => {
@@ -801,14 +850,16 @@ fn write_loop(
                 }
                 Outcome::Record(rec, stamp) => {
                     let key = (rec.frame.clone(), rec.sha256.clone());
-                    if logged.contains(&key) {
+                    if unmoved.contains(&key) {
                         debug!(frame = %job.path.display(), "already in the log: archiving only");
-                        archive(job.path, DoneKind::AlreadyLogged, 0, stamp);
+                        if archive(job.path, DoneKind::AlreadyLogged, 0, stamp) {
+                            unmoved.remove(&key);
+                        }
                         continue;
                     }
                     match log.append(&rec) {
                         Ok(()) => {
-                            logged.insert(key.clone());
+                            unmoved.insert(key.clone());
                             unsynced.push(Unsynced {
                                 path: job.path,
                                 objects: rec.objects.len() as u64,
@@ -834,11 +885,11 @@ fn write_loop(
             }
         };
         if due {
-            flush(&mut log, &mut logged, &mut unsynced);
+            flush(&mut log, &mut unmoved, &mut unsynced);
             first_unsynced = None;
         }
     }
-    flush(&mut log, &mut logged, &mut unsynced);
+    flush(&mut log, &mut unmoved, &mut unsynced);
 }
 
 /// A record written to the log and not yet synced.
