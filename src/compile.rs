@@ -65,27 +65,30 @@ use crate::frame::BitFrame;
 use crate::model::{Node, Tree};
 use crate::window::Window;
 
-/// Words evaluated together (16 x 64 = 1024 pixels): wide enough for the
-/// compiler to use full vector registers, small enough to stay in L1.
-pub const BLOCK: usize = 16;
+/// Words walked together (32 x 64 = 2,048 pixels): wide enough to spread
+/// each visit's fixed cost over many pixels, small enough that a block's
+/// pixels skip most of the tree. Measured on the demo model and texture,
+/// 32 words beat 16 by 4-9% and 64 lose.
+pub const BLOCK: usize = 32;
 
 const DROP: u32 = 0;
 const DETECT: u32 = 1;
 const SLOT0: u32 = 2;
 
-/// Cost model, in nanoseconds per block of [`BLOCK`] words as measured on
-/// this project's build machine (`cargo bench --bench evaluate`): a walk
-/// visit stores two child masks and tests both for emptiness; a select
-/// instruction within a walked block waits on the previous instruction's
-/// result; a whole-program select runs each instruction over [`WIDE`]
-/// words at once, which hides that wait.
+/// Cost model, relative costs per block of [`BLOCK`] words, measured on
+/// this project's build machine (`cargo bench --bench evaluate`; about
+/// 3.5 : 2 : 1 ns per 1,024 pixels): a walk visit stores two child masks and
+/// tests both for emptiness; a select instruction within a walked block
+/// waits on the previous instruction's result; a whole-program select runs
+/// each instruction over [`WIDE`] words at once, which hides that wait.
 const VISIT_COST: f64 = 3.5;
 const SELECT_COST: f64 = 2.0;
 const WIDE_SELECT_COST: f64 = 1.0;
 /// Neighbouring pixels mostly take the same paths: a block of `BLOCK * 64`
 /// pixels reaches about as many ops as `BLOCK * 64 / CORRELATION`
 /// independent pixels would (measured on the demo texture with the demo
-/// model: 453 ops reached per block, 425 predicted with this factor).
+/// model: 453 ops reached per 1,024-pixel block, 425 predicted with this
+/// factor; 586 per 2,048-pixel block, 595 predicted).
 const CORRELATION: f64 = 4.0;
 /// Extra cost of entering a selected subtree (the final `acc |= m & v`).
 const SELECT_ROOT_COST: f64 = 1.0;
@@ -586,17 +589,21 @@ impl Program {
         // A level's pending list holds at most its ops, and at most one per
         // pixel of the block (the masks of a level are disjoint and not
         // empty), plus the two entries a visit may write without counting.
+        // Every entry and slot is written before it is read, so buffers
+        // only grow: no clearing per frame (they hold megabytes).
         let cap = self.widest.min(BLOCK * 64) + 2;
         for v in [&mut s.cur, &mut s.next] {
-            v.list.clear();
-            v.list.resize(cap, (0, 0));
-            v.masks.clear();
-            v.masks.resize(2 * cap, Mask::default());
+            if v.list.len() < cap {
+                v.list.resize(cap, (0, 0));
+            }
+            if v.masks.len() < 2 * cap {
+                v.masks.resize(2 * cap, Mask::default());
+            }
         }
-        s.slots.clear();
-        s.slots.resize(self.slots.max(1), Mask::default());
-        s.wide.clear();
-        if self.select_root[0] {
+        if s.slots.len() < self.slots.max(1) {
+            s.slots.resize(self.slots.max(1), Mask::default());
+        }
+        if self.select_root[0] && s.wide.len() < self.slots.max(1) {
             s.wide.resize(self.slots.max(1), Lanes::default());
         }
     }
