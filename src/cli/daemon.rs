@@ -430,14 +430,31 @@ pub fn demo(a: DemoArgs) -> Result<i32> {
             .unwrap_or(0.0)
     };
     out!(
-        "done: {} frames logged, {} objects, {} rejected (see {}), latency from drop to logged record p50 {:.1} ms, p99 {:.1} ms",
+        "done: {} frames logged, {} objects, {} rejected, latency from drop to logged record \
+         p50 {:.1} ms, p99 {:.1} ms",
         summary.logged,
         objects,
         summary.rejected,
-        cfg.folders.rejected.display(),
         pct(0.5),
         pct(0.99)
     );
+    // Why each reject was refused, from its reason file.
+    let mut reasons: Vec<PathBuf> = std::fs::read_dir(&cfg.folders.rejected)
+        .map(|d| d.filter_map(|e| e.ok().map(|e| e.path())).collect())
+        .unwrap_or_default();
+    reasons.retain(|p| p.to_string_lossy().ends_with(".reason.txt"));
+    reasons.sort();
+    for r in reasons {
+        let text = std::fs::read_to_string(&r).unwrap_or_default();
+        out!(
+            "rejected: {}",
+            text.lines().nth(1).unwrap_or("(no reason recorded)")
+        );
+    }
+    match &a.keep {
+        Some(dir) => out!("the demo's folders are kept in {}", dir.display()),
+        None => out!("(run with --keep DIR to keep the log, archive and rejects)"),
+    }
     if a.keep.is_none() {
         let _ = std::fs::remove_dir_all(&root);
     }
