@@ -10,14 +10,19 @@
 //! - The watcher callback only forwards events into a channel; when that
 //!   channel is full, or the watcher reports lost events, the main loop
 //!   lists the inbox again. It also lists it every `rescan_seconds`.
-//! - At most `queue` frames are between the main loop and the writer at
-//!   any moment: a burst waits in the inbox as names, not in memory.
+//! - At most `queue` frames' bytes are between the main loop and the
+//!   writer at any moment: a burst waits in the inbox, only its names in
+//!   memory.
 //! - The writer appends records in the order frames were handed out, and
 //!   moves a frame out of the inbox only after the sync that covers its
-//!   record. After a crash, a frame still in the inbox whose name and hash
-//!   are in the log is archived without a second record.
-//! - The running [`Detector`] sits behind an [`ArcSwap`]: a reload swaps it
-//!   whole, and frames in flight finish with the one they started with.
+//!   record, and only if the file is still the version that was read.
+//!   After a crash, a frame still in the inbox whose name and hash are in
+//!   the log is archived without a second record.
+//! - The running [`Detector`] (with the decode limits) sits behind an
+//!   [`ArcSwap`]: a reload swaps it whole, and frames in flight finish with
+//!   the one they started with.
+//! - A panic inside detection rejects that frame; the writer waits for
+//!   every job in turn, so no job may vanish.
 //! - Stopping is asked for through the control channel (the binary maps
 //!   signals onto it): no new frame is handed out, frames in flight are
 //!   finished, logged, synced and moved, then `run` returns.
