@@ -178,6 +178,7 @@ pub fn bench(a: BenchArgs) -> Result<i32> {
             .expect("own encoding decodes");
         std::hint::black_box(serde_json::to_string(&d.record).expect("record serialises"));
     });
+    let (walked, selected) = program.strategy();
     let report = Report {
         width: w,
         height: h,
@@ -186,8 +187,8 @@ pub fn bench(a: BenchArgs) -> Result<i32> {
         program_ops: program.ops(),
         program_levels: program.depth(),
         program_planes: program.planes().len(),
-        program_walked_ops: program.strategy().0,
-        program_selected_ops: program.strategy().1,
+        program_walked_ops: walked,
+        program_selected_ops: selected,
         backend: backend.name().to_string(),
         cpu_features: cpu_features(),
         compiled_mpx_per_s: mpx / compiled,

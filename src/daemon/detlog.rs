@@ -124,11 +124,6 @@ impl DetectionLog {
         Ok(())
     }
 
-    /// Records appended since the last sync.
-    pub fn unsynced(&self) -> usize {
-        self.unsynced
-    }
-
     /// Closes the current file (synced) under a time-stamped name, starts a
     /// new one, and deletes the oldest files past `keep_files`.
     fn rotate(&mut self) -> io::Result<()> {

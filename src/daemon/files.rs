@@ -83,42 +83,38 @@ impl Stamp {
 /// Reads a frame file through one open handle, so its bytes and its stamp
 /// belong to the same file, refusing files larger than a frame of the
 /// largest accepted size can need ([`crate::data::max_file_bytes`]) and
-/// empty ones. The stamp comes back whenever the file could be opened, with
-/// the error too: an empty file that is filled later is then not rejected.
-pub fn read_frame(path: &Path, limits: &DecodeLimits) -> (Option<Stamp>, Result<Vec<u8>>) {
+/// empty ones. An error carries the stamp whenever the file could be
+/// opened: an empty file that is filled later is then not rejected.
+pub fn read_frame(
+    path: &Path,
+    limits: &DecodeLimits,
+) -> std::result::Result<(Vec<u8>, Stamp), (Error, Option<Stamp>)> {
     let err = |e: io::Error| Error::from(e).with_path(path);
-    let file = match File::open(path) {
-        Ok(f) => f,
-        Err(e) => return (None, Err(err(e))),
-    };
-    let meta = match file.metadata() {
-        Ok(m) => m,
-        Err(e) => return (None, Err(err(e))),
-    };
-    let stamp = Some(Stamp::of(&meta));
+    let file = File::open(path).map_err(|e| (err(e), None))?;
+    let meta = file.metadata().map_err(|e| (err(e), None))?;
+    let stamp = Stamp::of(&meta);
     let max = crate::data::max_file_bytes(limits);
+    let fail = |e: Error| (e.with_path(path), Some(stamp));
     let too_big = |len: u64| {
-        Error::new(ErrorKind::Data(format!(
+        fail(Error::new(ErrorKind::Data(format!(
             "file is {len} bytes, over the {max} bytes a frame of at most {}x{} can need",
             limits.max_width, limits.max_height
-        )))
-        .with_path(path)
+        ))))
     };
     if meta.len() > max {
-        return (stamp, Err(too_big(meta.len())));
+        return Err(too_big(meta.len()));
     }
     let mut bytes = Vec::with_capacity(meta.len() as usize);
-    if let Err(e) = file.take(max + 1).read_to_end(&mut bytes) {
-        return (stamp, Err(err(e)));
-    }
+    file.take(max + 1)
+        .read_to_end(&mut bytes)
+        .map_err(|e| fail(Error::from(e)))?;
     if bytes.len() as u64 > max {
-        return (stamp, Err(too_big(bytes.len() as u64)));
+        return Err(too_big(bytes.len() as u64));
     }
     if bytes.is_empty() {
-        let e = Error::new(ErrorKind::Data("file is empty".into())).with_path(path);
-        return (stamp, Err(e));
+        return Err(fail(Error::new(ErrorKind::Data("file is empty".into()))));
     }
-    (stamp, Ok(bytes))
+    Ok((bytes, stamp))
 }
 
 /// Whether a daemon holds the lock on `state`, without touching the lock
@@ -293,9 +289,8 @@ mod tests {
         let d = tempfile::tempdir().unwrap();
         let p = d.path().join("f.pbm");
         fs::write(&p, "P1 1 1 0").unwrap();
-        let (stamp, bytes) = read_frame(&p, &DecodeLimits::default());
-        assert_eq!(bytes.unwrap(), b"P1 1 1 0");
-        let stamp = stamp.unwrap();
+        let (bytes, stamp) = read_frame(&p, &DecodeLimits::default()).unwrap();
+        assert_eq!(bytes, b"P1 1 1 0");
         assert_eq!(Stamp::now(&p).unwrap(), stamp);
         // Replaced by rename under the same name: another inode.
         fs::write(d.path().join("g"), "P1 1 1 1").unwrap();
@@ -305,8 +300,7 @@ mod tests {
         // shows as a change.
         let e_path = d.path().join("e.pbm");
         fs::write(&e_path, "").unwrap();
-        let (stamp, e) = read_frame(&e_path, &DecodeLimits::default());
-        let e = e.unwrap_err();
+        let (e, stamp) = read_frame(&e_path, &DecodeLimits::default()).unwrap_err();
         assert!(
             e.to_string().contains("empty") && e.to_string().contains("e.pbm"),
             "{e}"

@@ -228,17 +228,16 @@ pub fn run(
     make_folders(&cfg)?;
     // Absolute folders: file events name absolute paths, and a path must
     // have one spelling to be recognised in flight.
-    for (_, dir) in cfg.folders.clone().named() {
-        let abs = std::fs::canonicalize(dir).map_err(|e| Error::from(e).with_path(dir))?;
-        match dir {
-            d if d == &cfg.folders.inbox => cfg.folders.inbox = abs,
-            d if d == &cfg.folders.archive => cfg.folders.archive = abs,
-            d if d == &cfg.folders.rejected => cfg.folders.rejected = abs,
-            d if d == &cfg.folders.corrections => cfg.folders.corrections = abs,
-            d if d == &cfg.folders.state => cfg.folders.state = abs,
-            _ => cfg.folders.logs = abs,
-        }
-    }
+    let abs = |d: &PathBuf| std::fs::canonicalize(d).map_err(|e| Error::from(e).with_path(d));
+    let f = &cfg.folders;
+    cfg.folders = crate::config::Folders {
+        inbox: abs(&f.inbox)?,
+        archive: abs(&f.archive)?,
+        rejected: abs(&f.rejected)?,
+        corrections: abs(&f.corrections)?,
+        state: abs(&f.state)?,
+        logs: abs(&f.logs)?,
+    };
     let _lock = files::StateLock::acquire(&cfg.folders.state)?;
     let model = load_or_train(&cfg)?;
     let settings = settings_for(&model, &cfg)?;
@@ -674,9 +673,8 @@ fn worker(jobs: Receiver<Job>, results: Sender<(Job, Outcome)>, running: Arc<Arc
             .file_name()
             .map(|n| n.to_string_lossy().into_owned())
             .unwrap_or_default();
-        let (stamp, read) = files::read_frame(&job.path, &run.limits);
-        let outcome = match (read, stamp) {
-            (Err(e), stamp) => match e.kind() {
+        let outcome = match files::read_frame(&job.path, &run.limits) {
+            Err((e, stamp)) => match e.kind() {
                 ErrorKind::Io(io) if io.kind() == std::io::ErrorKind::NotFound => Outcome::Gone,
                 // The file cannot be read by us: reject it, with the reason.
                 ErrorKind::Io(io) if io.kind() == std::io::ErrorKind::PermissionDenied => {
@@ -689,8 +687,7 @@ fn worker(jobs: Receiver<Job>, results: Sender<(Job, Outcome)>, running: Arc<Arc
                 }
                 _ => Outcome::Reject(e.to_string(), stamp),
             },
-            (Ok(_), None) => unreachable!("a file read has a stamp"),
-            (Ok(bytes), Some(stamp)) => {
+            Ok((bytes, stamp)) => {
                 let det = &run.detector;
                 let limits = &run.limits;
                 // A bug in detection must cost one frame, not the daemon:
