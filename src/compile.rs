@@ -293,6 +293,39 @@ pub struct Scratch {
     slots: Vec<Mask>,
     /// Select values of one chunk (whole-program select).
     wide: Vec<Lanes<WIDE>>,
+    /// What the last frame cost the walk (see [`Scratch::reach`]).
+    reach: Reach,
+}
+
+/// How much of a walked program the blocks of one frame reached: the
+/// figure that sets the speed of a large tree, because every visit pays
+/// for a whole block whatever number of its pixels reach the op.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq)]
+pub struct Reach {
+    /// Blocks of [`BLOCK`] words walked (0 for a whole select program or
+    /// a constant one).
+    pub blocks: u64,
+    /// (block, op) pairs visited: split ops and select roots that
+    /// received pixels, summed over the blocks.
+    pub visits: u64,
+}
+
+impl Reach {
+    /// Average visits per block (0 when nothing was walked).
+    pub fn per_block(&self) -> f64 {
+        if self.blocks == 0 {
+            0.0
+        } else {
+            self.visits as f64 / self.blocks as f64
+        }
+    }
+}
+
+impl Scratch {
+    /// What the walk of the last frame evaluated with this scratch cost.
+    pub fn reach(&self) -> Reach {
+        self.reach
+    }
 }
 
 impl Program {
@@ -511,6 +544,7 @@ impl Program {
         out: &mut BitFrame,
     ) {
         assert!(out.same_size(frame), "output mask size");
+        scratch.reach = Reach::default();
         if frame.is_empty() {
             return;
         }
@@ -588,13 +622,14 @@ impl Program {
         }));
         // A level's pending list holds at most its ops, and at most one per
         // pixel of the block (the masks of a level are disjoint and not
-        // empty), plus the two entries a visit may write without counting.
-        // Every entry and slot is written before it is read, so buffers
-        // only grow: no clearing per frame (they hold megabytes).
+        // empty), so at most `cap`; a level of `pending` visits writes list
+        // entries and mask slots below `2 * pending`. Every entry and slot
+        // is written before it is read, so buffers only grow: no clearing
+        // per frame (they hold megabytes).
         let cap = self.widest.min(BLOCK * 64) + 2;
         for v in [&mut s.cur, &mut s.next] {
-            if v.list.len() < cap {
-                v.list.resize(cap, (0, 0));
+            if v.list.len() < 2 * cap {
+                v.list.resize(2 * cap, (0, 0));
             }
             if v.masks.len() < 2 * cap {
                 v.masks.resize(2 * cap, Mask::default());
@@ -638,6 +673,7 @@ impl Program {
             next,
             slots,
             wide,
+            reach,
         } = s;
         let detected = out.words_mut();
         if self.select_root[0] {
@@ -658,16 +694,21 @@ impl Program {
             }
             return;
         }
+        // The walk reads the block of words at `start + offset` for block
+        // starts below `total` and the steps' offsets: one check covers
+        // every such read (`prepare` pads each plane by a chunk, so it
+        // holds).
+        let furthest = steps.iter().map(|st| st.offset as usize).max().unwrap_or(0);
+        assert!(furthest + total + BLOCK <= planes.len(), "planes padded");
         let mut start = 0;
         while start < total {
             let len = BLOCK.min(total - start);
             let root: [u64; BLOCK] = valid[start..start + BLOCK].try_into().expect("padded");
-            // Plane words of this block at a step's offset.
-            let block = |offset: u32| -> &[u64; BLOCK] {
-                let o = offset as usize + start;
-                planes[o..o + BLOCK].try_into().expect("padded")
-            };
-            let acc = self.block(kernel, root, &block, steps, cur, next, slots);
+            // The planes from this block's first word on: every step's
+            // offset plus a block stays inside (checked for the frame
+            // above).
+            let planes = &planes[start..];
+            let acc = self.block(kernel, root, planes, steps, cur, next, slots, reach);
             // The root mask excluded padding bits, so `acc` has none.
             detected[start..start + len].copy_from_slice(&acc[..len]);
             start += len;
@@ -679,40 +720,79 @@ impl Program {
     /// the next level's list (branch-free: both are written, only those
     /// wanted are counted); a select root adds its subtree's value, masked
     /// by the pixels that reached it.
+    ///
+    /// This is the evaluator's hot loop, so its bookkeeping is kept to a few
+    /// instructions per visit: the bounds of a level are checked once, and
+    /// the visits index without checks (see the SAFETY notes).
     #[allow(clippy::too_many_arguments)]
     #[inline(always)]
-    fn block<'p, K: Kernel>(
+    fn block<K: Kernel>(
         &self,
         kernel: K,
         root: [u64; BLOCK],
-        block: &impl Fn(u32) -> &'p [u64; BLOCK],
+        planes: &[u64],
         steps: &[Step],
         cur: &mut Pending,
         next: &mut Pending,
         slots: &mut [Mask],
+        reach: &mut Reach,
     ) -> [u64; BLOCK] {
+        // Plane words of this block at a step's offset (checked).
+        let block = |offset: u32| -> &[u64; BLOCK] {
+            let o = offset as usize;
+            planes[o..o + BLOCK].try_into().expect("padded")
+        };
         let mut acc = Mask::default();
+        reach.blocks += 1;
         cur.list[0] = (0, 0);
         cur.masks[0] = Lanes(root);
         let mut pending = 1;
         while pending > 0 {
+            reach.visits += pending as u64;
+            // The level reads entries below `pending` and the mask slots
+            // they name (below twice the previous level's length, which was
+            // checked the same way), and writes entries and slots below
+            // `2 * pending`.
+            assert!(
+                pending <= cur.list.len()
+                    && 2 * pending <= next.list.len()
+                    && 2 * pending <= next.masks.len()
+            );
+            let list = next.list.as_mut_ptr();
+            let masks = next.masks.as_mut_ptr();
             let mut n = 0;
             for e in 0..pending {
-                let (i, slot) = cur.list[e];
-                let i = i as usize;
-                let m = &cur.masks[slot as usize].0;
-                let step = steps[i];
+                // SAFETY: `e < pending`, checked above; every op index in a
+                // list is a step's (`prepare` made one per op).
+                let (i, slot) = unsafe { *cur.list.get_unchecked(e) };
+                let step = unsafe { *steps.get_unchecked(i as usize) };
+                let m = &cur.masks[slot as usize];
                 if step.flags & SELECTS != 0 {
-                    let (a, b) = self.select_range[i];
+                    let (a, b) = self.select_range[i as usize];
                     for ins in &self.select[a as usize..=b as usize] {
-                        let plane = block(steps[ins.op as usize].offset);
-                        kernel.select(plane, slots, *ins);
+                        kernel.select(block(steps[ins.op as usize].offset), slots, *ins);
                     }
-                    let v = &slots[self.select[b as usize].out as usize].0;
-                    kernel.keep(&mut acc.0, m, v);
+                    let v = &slots[self.select[b as usize].out as usize];
+                    kernel.keep(&mut acc, m, v);
                     continue;
                 }
-                n = kernel.visit(m, block(step.offset), &mut acc.0, step, next, e, n);
+                // SAFETY: slots `2e` and `2e + 1` and entries `n <= 2e` and
+                // `n + 1` are below `2 * pending` (checked above); the
+                // plane block at a step's offset is inside `planes`
+                // (checked once per frame in `run_body`). The children do
+                // not overlap `m`: they are in the other level's buffer.
+                unsafe {
+                    let kids = &mut *(masks.add(2 * e) as *mut [Mask; 2]);
+                    let b = &*(planes.as_ptr().add(step.offset as usize) as *const [u64; BLOCK]);
+                    let [any_set, any_clear] = kernel.split(m, b, kids);
+                    if step.flags & (DETECT_SET | DETECT_SET << 1) != 0 {
+                        kernel.detect(&mut acc, kids, step);
+                    }
+                    *list.add(n) = (step.next[0], 2 * e as u32);
+                    n += pushes(step, 0, any_set);
+                    *list.add(n) = (step.next[1], 2 * e as u32 + 1);
+                    n += pushes(step, 1, any_clear);
+                }
             }
             std::mem::swap(cur, next);
             pending = n;
@@ -852,27 +932,29 @@ fn choose_select_roots(ops: &[Op], reach: &[f64]) -> Vec<bool> {
 /// compiler vectorises for the baseline vector unit) and AVX2 intrinsics,
 /// whose emptiness test is one `vptest` instead of a horizontal OR.
 trait Kernel: Copy {
-    /// A walk visit: `set = m & b`, `clear = m & !b`; each outcome that is
-    /// `Detect` is added to `acc`, each that is an op and has pixels is
-    /// listed in `next` at `n` (the two masks go to slots `2e` and `2e + 1`
-    /// of `next`). Returns the new length of the list.
-    #[allow(clippy::too_many_arguments)]
-    fn visit(
-        self,
-        m: &[u64; BLOCK],
-        b: &[u64; BLOCK],
-        acc: &mut [u64; BLOCK],
-        step: Step,
-        next: &mut Pending,
-        e: usize,
-        n: usize,
-    ) -> usize;
+    /// A walk visit: writes `set = m & b` and `clear = m & !b` to `kids`
+    /// and tells which of them has a pixel.
+    fn split(self, m: &Mask, b: &[u64; BLOCK], kids: &mut [Mask; 2]) -> [bool; 2];
+
+    /// Adds to `acc` the children of a visit whose outcome is `Detect`.
+    #[inline(always)]
+    fn detect(self, acc: &mut Mask, kids: &[Mask; 2], step: Step) {
+        let (ds, dc) = (detect_word(step, 0), detect_word(step, 1));
+        for k in 0..BLOCK {
+            acc.0[k] |= (kids[0].0[k] & ds) | (kids[1].0[k] & dc);
+        }
+    }
 
     /// One select instruction over `W` words, `b` its plane.
     fn select<const W: usize>(self, b: &[u64; W], slots: &mut [Lanes<W>], ins: Select);
 
     /// `acc |= m & v`.
-    fn keep(self, acc: &mut [u64; BLOCK], m: &[u64; BLOCK], v: &[u64; BLOCK]);
+    #[inline(always)]
+    fn keep(self, acc: &mut Mask, m: &Mask, v: &Mask) {
+        for k in 0..BLOCK {
+            acc.0[k] |= m.0[k] & v.0[k];
+        }
+    }
 }
 
 /// The all-ones word where a step's outcome `k` (0 set, 1 clear) is
@@ -892,38 +974,18 @@ struct PortableKernel;
 
 impl Kernel for PortableKernel {
     #[inline(always)]
-    fn visit(
-        self,
-        m: &[u64; BLOCK],
-        b: &[u64; BLOCK],
-        acc: &mut [u64; BLOCK],
-        step: Step,
-        next: &mut Pending,
-        e: usize,
-        mut n: usize,
-    ) -> usize {
-        let (ds, dc) = (detect_word(step, 0), detect_word(step, 1));
-        let mut set = [0u64; BLOCK];
-        let mut clear = [0u64; BLOCK];
+    fn split(self, m: &Mask, b: &[u64; BLOCK], kids: &mut [Mask; 2]) -> [bool; 2] {
+        // Written straight into the two slots, word by word: a block of
+        // set and clear words held apart would not fit in the registers.
+        let [Lanes(set), Lanes(clear)] = kids;
         let (mut any_set, mut any_clear) = (0, 0);
         for k in 0..BLOCK {
-            set[k] = m[k] & b[k];
-            clear[k] = m[k] & !b[k];
+            set[k] = m.0[k] & b[k];
+            clear[k] = m.0[k] & !b[k];
             any_set |= set[k];
             any_clear |= clear[k];
         }
-        // Most ops have no `Detect` outcome: skip the accumulator then.
-        if ds | dc != 0 {
-            for k in 0..BLOCK {
-                acc[k] |= (set[k] & ds) | (clear[k] & dc);
-            }
-        }
-        next.masks[2 * e] = Lanes(set);
-        next.masks[2 * e + 1] = Lanes(clear);
-        next.list[n] = (step.next[0], 2 * e as u32);
-        n += pushes(step, 0, any_set != 0);
-        next.list[n] = (step.next[1], 2 * e as u32 + 1);
-        n + pushes(step, 1, any_clear != 0)
+        [any_set != 0, any_clear != 0]
     }
 
     #[inline(always)]
@@ -956,13 +1018,6 @@ impl Kernel for PortableKernel {
         };
         slots[ins.out as usize] = Lanes(v);
     }
-
-    #[inline(always)]
-    fn keep(self, acc: &mut [u64; BLOCK], m: &[u64; BLOCK], v: &[u64; BLOCK]) {
-        for k in 0..BLOCK {
-            acc[k] |= m[k] & v[k];
-        }
-    }
 }
 
 /// AVX2 arithmetic. Only [`Program::run_avx2`] makes one, after checking
@@ -974,60 +1029,39 @@ struct Avx2Kernel(());
 #[cfg(target_arch = "x86_64")]
 impl Kernel for Avx2Kernel {
     #[inline(always)]
-    fn visit(
-        self,
-        m: &[u64; BLOCK],
-        b: &[u64; BLOCK],
-        acc: &mut [u64; BLOCK],
-        step: Step,
-        next: &mut Pending,
-        e: usize,
-        mut n: usize,
-    ) -> usize {
+    fn split(self, m: &Mask, b: &[u64; BLOCK], kids: &mut [Mask; 2]) -> [bool; 2] {
         use std::arch::x86_64::*;
         const V: usize = BLOCK / 4;
-        // SAFETY: an Avx2Kernel exists only where AVX2 was detected; every
-        // pointer covers 4 of a block's words (BLOCK is a multiple of 4),
-        // and `n + 1` is within the pending list (it holds two spare
-        // entries); loads and stores are unaligned.
+        // SAFETY: an Avx2Kernel exists only where AVX2 was detected; each
+        // pointer covers a whole block of words, 4 at a time (BLOCK is a
+        // multiple of 4); masks are 64-byte aligned, the plane need not be.
         unsafe {
-            let mut set = [_mm256_setzero_si256(); V];
-            let mut clear = [_mm256_setzero_si256(); V];
+            // Each vector is stored as soon as it is computed, so nothing
+            // but the two emptiness accumulators lives across the loop: a
+            // block's worth of set and clear vectors does not fit in the 16
+            // registers, and spilling them to the stack and reloading them
+            // cost a quarter of the walk's time.
+            let [set, clear] = kids;
+            let set_p = set.0.as_mut_ptr() as *mut __m256i;
+            let clear_p = clear.0.as_mut_ptr() as *mut __m256i;
+            let mp = m.0.as_ptr() as *const __m256i;
+            let bp = b.as_ptr() as *const __m256i;
             let mut s_any = _mm256_setzero_si256();
             let mut c_any = _mm256_setzero_si256();
             for q in 0..V {
-                let mv = _mm256_loadu_si256(m.as_ptr().add(4 * q) as *const __m256i);
-                let bv = _mm256_loadu_si256(b.as_ptr().add(4 * q) as *const __m256i);
-                set[q] = _mm256_and_si256(mv, bv);
-                clear[q] = _mm256_andnot_si256(bv, mv);
-                s_any = _mm256_or_si256(s_any, set[q]);
-                c_any = _mm256_or_si256(c_any, clear[q]);
+                let mv = _mm256_load_si256(mp.add(q));
+                let bv = _mm256_loadu_si256(bp.add(q));
+                let s = _mm256_and_si256(mv, bv);
+                let c = _mm256_andnot_si256(bv, mv);
+                _mm256_store_si256(set_p.add(q), s);
+                _mm256_store_si256(clear_p.add(q), c);
+                s_any = _mm256_or_si256(s_any, s);
+                c_any = _mm256_or_si256(c_any, c);
             }
-            // Most ops have no `Detect` outcome: skip the accumulator then.
-            if step.flags & (DETECT_SET | DETECT_SET << 1) != 0 {
-                let ds = _mm256_set1_epi64x(detect_word(step, 0) as i64);
-                let dc = _mm256_set1_epi64x(detect_word(step, 1) as i64);
-                for q in 0..V {
-                    let a = acc.as_mut_ptr().add(4 * q) as *mut __m256i;
-                    let hit = _mm256_or_si256(
-                        _mm256_and_si256(set[q], ds),
-                        _mm256_and_si256(clear[q], dc),
-                    );
-                    _mm256_storeu_si256(a, _mm256_or_si256(_mm256_loadu_si256(a), hit));
-                }
-            }
-            let any_set = _mm256_testz_si256(s_any, s_any) == 0;
-            let any_clear = _mm256_testz_si256(c_any, c_any) == 0;
-            assert!(2 * e + 1 < next.masks.len() && n + 1 < next.list.len());
-            let p = next.masks.as_mut_ptr().add(2 * e) as *mut __m256i;
-            for q in 0..V {
-                _mm256_store_si256(p.add(q), set[q]);
-                _mm256_store_si256(p.add(V + q), clear[q]);
-            }
-            *next.list.get_unchecked_mut(n) = (step.next[0], 2 * e as u32);
-            n += pushes(step, 0, any_set);
-            *next.list.get_unchecked_mut(n) = (step.next[1], 2 * e as u32 + 1);
-            n + pushes(step, 1, any_clear)
+            [
+                _mm256_testz_si256(s_any, s_any) == 0,
+                _mm256_testz_si256(c_any, c_any) == 0,
+            ]
         }
     }
 
@@ -1078,13 +1112,6 @@ impl Kernel for Avx2Kernel {
                     _mm256_andnot_si256(bv, _mm256_load_si256(cp.add(q)))
                 )),
             }
-        }
-    }
-
-    #[inline(always)]
-    fn keep(self, acc: &mut [u64; BLOCK], m: &[u64; BLOCK], v: &[u64; BLOCK]) {
-        for k in 0..BLOCK {
-            acc[k] |= m[k] & v[k];
         }
     }
 }
@@ -1194,6 +1221,55 @@ mod tests {
                 );
             }
         }
+    }
+
+    #[test]
+    fn reach_counts_the_ops_each_block_visits() {
+        // Root tests the centre: clear -> Drop, set -> a second split on the
+        // right neighbour (set -> Detect, clear -> Drop). A block visits the
+        // root, and the second split only if one of its pixels is set.
+        let w = Window::new(3).unwrap();
+        let f = |dx| w.index(Offset { dx, dy: 0 }).unwrap() as u8;
+        let tree = Tree::new(
+            w,
+            vec![
+                Node::Split {
+                    feature: f(0),
+                    if_clear: 1,
+                    if_set: 2,
+                },
+                leaf(0.1),
+                Node::Split {
+                    feature: f(1),
+                    if_clear: 3,
+                    if_set: 4,
+                },
+                leaf(0.1),
+                leaf(0.9),
+            ],
+        )
+        .unwrap();
+        // 2,048 pixels wide: a row is exactly one block of 32 words.
+        let mut frame = BitFrame::new(2048, 3);
+        frame.set(100, 1, true);
+        let mut s = Scratch::default();
+        let walk = Program::compile_with(&tree, 0.5, Plan::Walk);
+        for b in [Backend::Portable, Backend::detect()] {
+            walk.detect_with(b, &frame, &mut s);
+            assert_eq!(
+                s.reach(),
+                Reach {
+                    blocks: 3,
+                    visits: 4
+                },
+                "{b:?}"
+            );
+        }
+        assert_eq!(s.reach().per_block(), 4.0 / 3.0);
+        // A whole select program walks nothing.
+        Program::compile_with(&tree, 0.5, Plan::Select).detect(&frame, &mut s);
+        assert_eq!(s.reach(), Reach::default());
+        assert_eq!(s.reach().per_block(), 0.0);
     }
 
     #[test]

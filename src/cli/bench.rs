@@ -14,7 +14,7 @@ use anyhow::{bail, Context, Result};
 use serde::Serialize;
 
 use treeline::codec::{self, DecodeLimits};
-use treeline::compile::{Backend, Program, Scratch};
+use treeline::compile::{self, Backend, Program, Scratch};
 use treeline::detector::Detector;
 use treeline::evaluate::{self, Settings};
 use treeline::frame::BitFrame;
@@ -52,6 +52,10 @@ struct Report {
     /// Ops evaluated top down with skipping, and bottom up by select.
     program_walked_ops: usize,
     program_selected_ops: usize,
+    /// Ops a walked block of 2,048 pixels reached on this frame, on
+    /// average: what sets the speed of a large tree (0 for a program
+    /// evaluated as one select program).
+    walk_visits_per_block: f64,
     backend: String,
     cpu_features: Vec<String>,
     compiled_mpx_per_s: f64,
@@ -146,6 +150,7 @@ pub fn bench(a: BenchArgs) -> Result<i32> {
     let compiled = time(a.runs, || {
         program.detect_into(backend, &frame, &mut scratch, &mut out)
     });
+    let reach = scratch.reach();
     let portable = time(a.runs, || {
         program.detect_into(Backend::Portable, &frame, &mut scratch, &mut out)
     });
@@ -189,6 +194,7 @@ pub fn bench(a: BenchArgs) -> Result<i32> {
         program_planes: program.planes().len(),
         program_walked_ops: walked,
         program_selected_ops: selected,
+        walk_visits_per_block: reach.per_block(),
         backend: backend.name().to_string(),
         cpu_features: cpu_features(),
         compiled_mpx_per_s: mpx / compiled,
@@ -219,6 +225,16 @@ pub fn bench(a: BenchArgs) -> Result<i32> {
         report.program_walked_ops,
         report.program_selected_ops
     );
+    if reach.blocks > 0 {
+        out!(
+            "walk: each block of {} pixels reached {:.1} ops on average ({:.3} per pixel)",
+            compile::BLOCK * 64,
+            report.walk_visits_per_block,
+            report.walk_visits_per_block / (compile::BLOCK * 64) as f64
+        );
+    } else {
+        out!("walk: none, every op runs on every pixel (one select program)");
+    }
     out!(
         "cpu features: {}; backend used: {}",
         report.cpu_features.join(" "),
