@@ -96,6 +96,7 @@ fn evaluators(name: &str, tree: &Tree, threshold: f64, frame: &BitFrame, runs: u
     let compiled = time(runs, || {
         program.detect_into(best, frame, &mut scratch, &mut out)
     });
+    let reach = scratch.reach();
     let portable = time(runs, || {
         program.detect_into(Backend::Portable, frame, &mut scratch, &mut out)
     });
@@ -103,12 +104,13 @@ fn evaluators(name: &str, tree: &Tree, threshold: f64, frame: &BitFrame, runs: u
     let walker = time(3, || walked = evaluate::detect(tree, threshold, frame));
     assert_eq!(walked, out, "compiled and walker disagree");
     println!(
-        "{name}: {} nodes -> {} ops ({} levels; walked, selected: {:?}); {:.0} Mpx/s compiled ({}), {:.0} Mpx/s portable, \
-         {:.1} Mpx/s walker; compiled / walker = {:.1}x",
+        "{name}: {} nodes -> {} ops ({} levels; walked, selected: {:?}; {:.1} ops reached per walked block); \
+         {:.0} Mpx/s compiled ({}), {:.0} Mpx/s portable, {:.1} Mpx/s walker; compiled / walker = {:.1}x",
         tree.nodes().len(),
         program.ops(),
         program.depth(),
         program.strategy(),
+        reach.per_block(),
         mpx / compiled,
         best.name(),
         mpx / portable,

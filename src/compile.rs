@@ -15,9 +15,9 @@
 //!   the planes: `value = (plane AND value_if_set) OR (NOT plane AND
 //!   value_if_clear)`, with `Drop` = all zeros and `Detect` = all ones.
 //!   Evaluated in post-order over a small stack of values, it has no
-//!   data-dependent branches and stores one value per op: about half the
-//!   cost of a walk visit per op (a quarter when the whole program is one
-//!   select program), but it pays for every op of the subtree.
+//!   data-dependent branches and stores one value per op: less than a walk
+//!   visit per op (about half when the whole program is one select
+//!   program), but it pays for every op of the subtree.
 //!
 //! [`Program::compile`] decides per op which one evaluates its subtree, from
 //! a cost model over the tree's own training counts (the share of training
@@ -76,11 +76,15 @@ const DETECT: u32 = 1;
 const SLOT0: u32 = 2;
 
 /// Cost model, relative costs per block of [`BLOCK`] words, measured on
-/// this project's build machine (`cargo bench --bench evaluate`; about
-/// 3.5 : 2 : 1 ns per 1,024 pixels): a walk visit stores two child masks and
+/// this project's build machine: a walk visit stores two child masks and
 /// tests both for emptiness; a select instruction within a walked block
 /// waits on the previous instruction's result; a whole-program select runs
 /// each instruction over [`WIDE`] words at once, which hides that wait.
+/// Now a visit takes about 17 ns and a whole-program select instruction
+/// about 8 ns per 2,048 pixels; visit costs from 2.5 to 3.5 give the same
+/// speed (within 3%) on the demo model and on depth-14 and depth-16 models
+/// of the demo data, while 4.5 turns the latter two into whole select
+/// programs that run 40% slower.
 const VISIT_COST: f64 = 3.5;
 const SELECT_COST: f64 = 2.0;
 const WIDE_SELECT_COST: f64 = 1.0;
