@@ -104,13 +104,17 @@ fn evaluators(name: &str, tree: &Tree, threshold: f64, frame: &BitFrame, runs: u
     let walker = time(3, || walked = evaluate::detect(tree, threshold, frame));
     assert_eq!(walked, out, "compiled and walker disagree");
     println!(
-        "{name}: {} nodes -> {} ops ({} levels; walked, selected: {:?}; {:.1} ops reached per walked block); \
+        "{name}: {} nodes -> {} ops ({} levels; walked, selected: {:?}; {}); \
          {:.0} Mpx/s compiled ({}), {:.0} Mpx/s portable, {:.1} Mpx/s walker; compiled / walker = {:.1}x",
         tree.nodes().len(),
         program.ops(),
         program.depth(),
         program.strategy(),
-        reach.per_block(),
+        if reach.blocks > 0 {
+            format!("{:.1} ops reached per walked block", reach.per_block())
+        } else {
+            "no walk".to_string()
+        },
         mpx / compiled,
         best.name(),
         mpx / portable,

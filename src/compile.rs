@@ -80,11 +80,12 @@ const SLOT0: u32 = 2;
 /// tests both for emptiness; a select instruction within a walked block
 /// waits on the previous instruction's result; a whole-program select runs
 /// each instruction over [`WIDE`] words at once, which hides that wait.
-/// Now a visit takes about 17 ns and a whole-program select instruction
-/// about 8 ns per 2,048 pixels; visit costs from 2.5 to 3.5 give the same
-/// speed (within 3%) on the demo model and on depth-14 and depth-16 models
-/// of the demo data, while 4.5 turns the latter two into whole select
-/// programs that run 40% slower.
+/// The values are tuned rather than measured ratios (a visit takes about
+/// 17 ns and a whole-program select instruction about 8 ns per 2,048
+/// pixels): visit costs from 2.5 to 3.5 give the same speed (within 3%) on
+/// the demo model and on depth-14 and depth-16 models of the demo data,
+/// while 4.5 turns the latter two into whole select programs that run 40%
+/// slower.
 const VISIT_COST: f64 = 3.5;
 const SELECT_COST: f64 = 2.0;
 const WIDE_SELECT_COST: f64 = 1.0;
@@ -92,7 +93,8 @@ const WIDE_SELECT_COST: f64 = 1.0;
 /// pixels reaches about as many ops as `BLOCK * 64 / CORRELATION`
 /// independent pixels would (measured on the demo texture with the demo
 /// model: 453 ops reached per 1,024-pixel block, 425 predicted with this
-/// factor; 586 per 2,048-pixel block, 595 predicted).
+/// factor; 582 per 2,048-pixel block, as [`Reach`] counts them, 595
+/// predicted).
 const CORRELATION: f64 = 4.0;
 /// Extra cost of entering a selected subtree (the final `acc |= m & v`).
 const SELECT_ROOT_COST: f64 = 1.0;
@@ -630,7 +632,7 @@ impl Program {
         // entries and mask slots below `2 * pending`. Every entry and slot
         // is written before it is read, so buffers only grow: no clearing
         // per frame (they hold megabytes).
-        let cap = self.widest.min(BLOCK * 64) + 2;
+        let cap = self.widest.clamp(1, BLOCK * 64);
         for v in [&mut s.cur, &mut s.next] {
             if v.list.len() < 2 * cap {
                 v.list.resize(2 * cap, (0, 0));
@@ -703,7 +705,10 @@ impl Program {
         // every such read (`prepare` pads each plane by a chunk, so it
         // holds).
         let furthest = steps.iter().map(|st| st.offset as usize).max().unwrap_or(0);
-        assert!(furthest + total + BLOCK <= planes.len(), "planes padded");
+        assert!(
+            furthest + total + BLOCK <= planes.len(),
+            "every plane is padded by at least a block"
+        );
         let mut start = 0;
         while start < total {
             let len = BLOCK.min(total - start);
@@ -712,7 +717,9 @@ impl Program {
             // offset plus a block stays inside (checked for the frame
             // above).
             let planes = &planes[start..];
-            let acc = self.block(kernel, root, planes, steps, cur, next, slots, reach);
+            // SAFETY: `prepare` made `steps` for this program, and `planes`
+            // holds a block at every step's offset (checked above).
+            let acc = unsafe { self.block(kernel, root, planes, steps, cur, next, slots, reach) };
             // The root mask excluded padding bits, so `acc` has none.
             detected[start..start + len].copy_from_slice(&acc[..len]);
             start += len;
@@ -725,12 +732,18 @@ impl Program {
     /// wanted are counted); a select root adds its subtree's value, masked
     /// by the pixels that reached it.
     ///
-    /// This is the evaluator's hot loop, so its bookkeeping is kept to a few
-    /// instructions per visit: the bounds of a level are checked once, and
-    /// the visits index without checks (see the SAFETY notes).
+    /// This is the evaluator's hot loop, so its bookkeeping is kept short:
+    /// the bounds of a level are checked once, and the visits index the
+    /// lists, the steps and the plane without checks.
+    ///
+    /// # Safety
+    ///
+    /// `steps` must be this program's steps as [`Program::prepare`] made
+    /// them (one per op, each op outcome naming an op), and `planes` must
+    /// hold [`BLOCK`] words from every step's offset on.
     #[allow(clippy::too_many_arguments)]
     #[inline(always)]
-    fn block<K: Kernel>(
+    unsafe fn block<K: Kernel>(
         &self,
         kernel: K,
         root: [u64; BLOCK],
@@ -753,23 +766,27 @@ impl Program {
         let mut pending = 1;
         while pending > 0 {
             reach.visits += pending as u64;
-            // The level reads entries below `pending` and the mask slots
-            // they name (below twice the previous level's length, which was
-            // checked the same way), and writes entries and slots below
-            // `2 * pending`.
+            // The level reads entries below `pending` and writes entries
+            // and mask slots below `2 * pending` (a visit adds at most two
+            // entries, so `n <= 2e` at visit `e`).
             assert!(
                 pending <= cur.list.len()
                     && 2 * pending <= next.list.len()
-                    && 2 * pending <= next.masks.len()
+                    && 2 * pending <= next.masks.len(),
+                "a level's lists fit its buffers"
             );
             let list = next.list.as_mut_ptr();
             let masks = next.masks.as_mut_ptr();
             let mut n = 0;
             for e in 0..pending {
-                // SAFETY: `e < pending`, checked above; every op index in a
-                // list is a step's (`prepare` made one per op).
-                let (i, slot) = unsafe { *cur.list.get_unchecked(e) };
-                let step = unsafe { *steps.get_unchecked(i as usize) };
+                // SAFETY: `e < pending`, checked above. The entries below
+                // `pending` are the root or were counted by the previous
+                // level, so each names an op (a pushed outcome of a step),
+                // and there is one step per op (the caller's contract).
+                let (i, slot, step) = unsafe {
+                    let (i, slot) = *cur.list.get_unchecked(e);
+                    (i, slot, *steps.get_unchecked(i as usize))
+                };
                 let m = &cur.masks[slot as usize];
                 if step.flags & SELECTS != 0 {
                     let (a, b) = self.select_range[i as usize];
@@ -780,23 +797,29 @@ impl Program {
                     kernel.keep(&mut acc, m, v);
                     continue;
                 }
-                // SAFETY: slots `2e` and `2e + 1` and entries `n <= 2e` and
-                // `n + 1` are below `2 * pending` (checked above); the
-                // plane block at a step's offset is inside `planes`
-                // (checked once per frame in `run_body`). The children do
-                // not overlap `m`: they are in the other level's buffer.
+                // SAFETY: slots `2e` and `2e + 1` are below `2 * pending`
+                // (checked above) and in the other level's buffer, so they
+                // overlap neither `m` nor anything else borrowed here; the
+                // plane holds a block at every step's offset (the caller's
+                // contract).
+                let (kids, b) = unsafe {
+                    (
+                        &mut *(masks.add(2 * e) as *mut [Mask; 2]),
+                        &*(planes.as_ptr().add(step.offset as usize) as *const [u64; BLOCK]),
+                    )
+                };
+                let [any_set, any_clear] = kernel.split(m, b, kids);
+                if step.flags & (DETECT_SET | DETECT_SET << 1) != 0 {
+                    kernel.detect(&mut acc, kids, step);
+                }
+                // SAFETY: `n <= 2e`, so entries `n` and `n + 1` are below
+                // `2 * pending` (checked above).
                 unsafe {
-                    let kids = &mut *(masks.add(2 * e) as *mut [Mask; 2]);
-                    let b = &*(planes.as_ptr().add(step.offset as usize) as *const [u64; BLOCK]);
-                    let [any_set, any_clear] = kernel.split(m, b, kids);
-                    if step.flags & (DETECT_SET | DETECT_SET << 1) != 0 {
-                        kernel.detect(&mut acc, kids, step);
-                    }
                     *list.add(n) = (step.next[0], 2 * e as u32);
                     n += pushes(step, 0, any_set);
                     *list.add(n) = (step.next[1], 2 * e as u32 + 1);
-                    n += pushes(step, 1, any_clear);
                 }
+                n += pushes(step, 1, any_clear);
             }
             std::mem::swap(cur, next);
             pending = n;
@@ -1274,6 +1297,75 @@ mod tests {
         Program::compile_with(&tree, 0.5, Plan::Select).detect(&frame, &mut s);
         assert_eq!(s.reach(), Reach::default());
         assert_eq!(s.reach().per_block(), 0.0);
+    }
+
+    #[test]
+    fn reach_counts_a_select_root_as_one_visit() {
+        // Root tests the centre: clear -> Drop (a million training pixels),
+        // set -> a chain of three rare splits (each: clear -> Detect, set ->
+        // the next split, the last one's set -> Drop). The cost model walks
+        // the root and selects the whole chain: a block visits the root,
+        // and the chain's first op, once, only if one of its pixels is set.
+        let w = Window::new(3).unwrap();
+        let f = |dx| w.index(Offset { dx, dy: 0 }).unwrap() as u8;
+        let counted = |counts: [u64; 2], score: f64| {
+            Node::Leaf(Leaf {
+                counts,
+                score,
+                share: 0.0,
+            })
+        };
+        let tree = Tree::new(
+            w,
+            vec![
+                Node::Split {
+                    feature: f(0),
+                    if_clear: 1,
+                    if_set: 2,
+                },
+                counted([1_000_000, 0], 0.0),
+                Node::Split {
+                    feature: f(1),
+                    if_clear: 3,
+                    if_set: 4,
+                },
+                counted([0, 10], 0.9),
+                Node::Split {
+                    feature: f(-1),
+                    if_clear: 5,
+                    if_set: 6,
+                },
+                counted([0, 10], 0.9),
+                Node::Split {
+                    feature: f(1),
+                    if_clear: 7,
+                    if_set: 8,
+                },
+                counted([0, 10], 0.9),
+                counted([10, 0], 0.1),
+            ],
+        )
+        .unwrap();
+        let p = Program::compile(&tree, 0.5);
+        assert_eq!(p.strategy(), (1, 3));
+        let mut frame = BitFrame::new(2048, 3);
+        frame.set(100, 1, true);
+        let mut s = Scratch::default();
+        for b in [Backend::Portable, Backend::detect()] {
+            assert_eq!(
+                p.detect_with(b, &frame, &mut s),
+                evaluate::detect(&tree, 0.5, &frame),
+                "{b:?}"
+            );
+            assert_eq!(
+                s.reach(),
+                Reach {
+                    blocks: 3,
+                    visits: 4
+                },
+                "{b:?}"
+            );
+        }
     }
 
     #[test]

@@ -227,13 +227,15 @@ pub fn bench(a: BenchArgs) -> Result<i32> {
     );
     if reach.blocks > 0 {
         out!(
-            "walk: each block of {} pixels reached {:.1} ops on average ({:.3} per pixel)",
+            "walk: each block of {} pixels reached {:.1} ops on average ({:.3} per pixel of the frame)",
             compile::BLOCK * 64,
             report.walk_visits_per_block,
-            report.walk_visits_per_block / (compile::BLOCK * 64) as f64
+            reach.visits as f64 / (w * h) as f64
         );
-    } else {
+    } else if program.ops() > 0 {
         out!("walk: none, every op runs on every pixel (one select program)");
+    } else {
+        out!("walk: none, the model decides every pixel alike (no ops)");
     }
     out!(
         "cpu features: {}; backend used: {}",
