@@ -1202,6 +1202,14 @@ mod tests {
         })
     }
 
+    fn split(feature: u8, if_clear: u32, if_set: u32) -> Node {
+        Node::Split {
+            feature,
+            if_clear,
+            if_set,
+        }
+    }
+
     #[test]
     fn shift_row_moves_bits() {
         let src = [0b1011u64, 1u64 << 63];
@@ -1260,41 +1268,28 @@ mod tests {
         let tree = Tree::new(
             w,
             vec![
-                Node::Split {
-                    feature: f(0),
-                    if_clear: 1,
-                    if_set: 2,
-                },
+                split(f(0), 1, 2),
                 leaf(0.1),
-                Node::Split {
-                    feature: f(1),
-                    if_clear: 3,
-                    if_set: 4,
-                },
+                split(f(1), 3, 4),
                 leaf(0.1),
                 leaf(0.9),
             ],
         )
         .unwrap();
         // 2,048 pixels wide: a row is exactly one block of 32 words.
-        let mut frame = BitFrame::new(2048, 3);
-        frame.set(100, 1, true);
-        let mut s = Scratch::default();
         let walk = Program::compile_with(&tree, 0.5, Plan::Walk);
-        for b in [Backend::Portable, Backend::detect()] {
-            walk.detect_with(b, &frame, &mut s);
-            assert_eq!(
-                s.reach(),
-                Reach {
-                    blocks: 3,
-                    visits: 4
-                },
-                "{b:?}"
-            );
-        }
+        let mut s = reach_on_one_set_pixel(&walk, &tree);
+        assert_eq!(
+            s.reach(),
+            Reach {
+                blocks: 3,
+                visits: 4
+            }
+        );
         assert_eq!(s.reach().per_block(), 4.0 / 3.0);
-        // A whole select program walks nothing.
-        Program::compile_with(&tree, 0.5, Plan::Select).detect(&frame, &mut s);
+        // A whole select program walks nothing (and the scratch forgets
+        // the walked frame before).
+        Program::compile_with(&tree, 0.5, Plan::Select).detect(&BitFrame::new(2048, 3), &mut s);
         assert_eq!(s.reach(), Reach::default());
         assert_eq!(s.reach().per_block(), 0.0);
     }
@@ -1318,29 +1313,13 @@ mod tests {
         let tree = Tree::new(
             w,
             vec![
-                Node::Split {
-                    feature: f(0),
-                    if_clear: 1,
-                    if_set: 2,
-                },
+                split(f(0), 1, 2),
                 counted([1_000_000, 0], 0.0),
-                Node::Split {
-                    feature: f(1),
-                    if_clear: 3,
-                    if_set: 4,
-                },
+                split(f(1), 3, 4),
                 counted([0, 10], 0.9),
-                Node::Split {
-                    feature: f(-1),
-                    if_clear: 5,
-                    if_set: 6,
-                },
+                split(f(-1), 5, 6),
                 counted([0, 10], 0.9),
-                Node::Split {
-                    feature: f(1),
-                    if_clear: 7,
-                    if_set: 8,
-                },
+                split(f(1), 7, 8),
                 counted([0, 10], 0.9),
                 counted([10, 0], 0.1),
             ],
@@ -1348,24 +1327,33 @@ mod tests {
         .unwrap();
         let p = Program::compile(&tree, 0.5);
         assert_eq!(p.strategy(), (1, 3));
+        assert_eq!(
+            reach_on_one_set_pixel(&p, &tree).reach(),
+            Reach {
+                blocks: 3,
+                visits: 4
+            }
+        );
+    }
+
+    /// Runs `p` on a 2048x3 frame (each row one block) whose only set
+    /// pixel is (100, 1), on every backend, checks it against the walker
+    /// and that every backend reached the same ops, and returns the scratch.
+    fn reach_on_one_set_pixel(p: &Program, tree: &Tree) -> Scratch {
         let mut frame = BitFrame::new(2048, 3);
         frame.set(100, 1, true);
         let mut s = Scratch::default();
+        let mut reached = Vec::new();
         for b in [Backend::Portable, Backend::detect()] {
             assert_eq!(
                 p.detect_with(b, &frame, &mut s),
-                evaluate::detect(&tree, 0.5, &frame),
+                evaluate::detect(tree, 0.5, &frame),
                 "{b:?}"
             );
-            assert_eq!(
-                s.reach(),
-                Reach {
-                    blocks: 3,
-                    visits: 4
-                },
-                "{b:?}"
-            );
+            reached.push(s.reach());
         }
+        assert!(reached.windows(2).all(|r| r[0] == r[1]), "{reached:?}");
+        s
     }
 
     #[test]
