@@ -84,10 +84,14 @@ impl Setup {
     }
 
     /// Starts the daemon and waits until it watches the inbox.
+    /// Starts a daemon and waits until it watches the inbox. The stderr
+    /// file is shared by every daemon of the setup, so the new one counts
+    /// only once its own "watching" line is there.
     fn start_watching(&self) -> Child {
+        let before = self.stderr().matches("watching").count();
         let d = self.start();
         wait_for("the daemon to start", 60, || {
-            self.stderr().contains("watching")
+            self.stderr().matches("watching").count() > before
         });
         d
     }
