@@ -1,6 +1,6 @@
 //! Daemon benchmark: `cargo bench --bench daemon`.
 //!
-//! Runs the release `treeline run` on temporary folders with the default
+//! Runs the release `burlwatch run` on temporary folders with the default
 //! demo model (trained here on `demo-frames/train`) and the 256x256 demo
 //! frames of `demo-frames/test` (cycled under new names), all on this
 //! machine, and reports:
@@ -17,7 +17,7 @@
 //! The feeder and the timing watcher run on the same 2 cores as the
 //! daemon, so the figures are for the whole box.
 //!
-//! Environment: `TREELINE_BENCH_FRAMES` (default 5000) for the
+//! Environment: `BURLWATCH_BENCH_FRAMES` (default 5000) for the
 //! throughput runs.
 
 use std::path::{Path, PathBuf};
@@ -28,8 +28,8 @@ use std::time::{Duration, Instant};
 
 use notify::{RecursiveMode, Watcher};
 
-use treeline::codec::DecodeLimits;
-use treeline::learn::{self, TrainParams};
+use burlwatch::codec::DecodeLimits;
+use burlwatch::learn::{self, TrainParams};
 
 struct Box_ {
     root: PathBuf,
@@ -46,7 +46,7 @@ impl Drop for Box_ {
 }
 
 fn start(model: &str, extra: &str, tag: &str) -> Box_ {
-    let root = std::env::temp_dir().join(format!("treeline-bench-{}-{tag}", std::process::id()));
+    let root = std::env::temp_dir().join(format!("burlwatch-bench-{}-{tag}", std::process::id()));
     let _ = std::fs::remove_dir_all(&root);
     std::fs::create_dir_all(root.join("state")).unwrap();
     std::fs::create_dir_all(root.join("inbox")).unwrap();
@@ -61,11 +61,11 @@ fn start(model: &str, extra: &str, tag: &str) -> Box_ {
         root.join("state"),
         root.join("logs")
     );
-    std::fs::write(root.join("treeline.toml"), cfg).unwrap();
+    std::fs::write(root.join("burlwatch.toml"), cfg).unwrap();
     let err = std::fs::File::create(root.join("stderr")).unwrap();
-    let child = Command::new(env!("CARGO_BIN_EXE_treeline"))
+    let child = Command::new(env!("CARGO_BIN_EXE_burlwatch"))
         .args(["run", "--config"])
-        .arg(root.join("treeline.toml"))
+        .arg(root.join("burlwatch.toml"))
         .env_remove("RUST_LOG")
         .stdout(Stdio::null())
         .stderr(err)
@@ -144,7 +144,7 @@ fn percentile(v: &mut [f64], q: f64) -> f64 {
 
 fn main() {
     let repo = Path::new(env!("CARGO_MANIFEST_DIR"));
-    let folder = treeline::data::read_folder(
+    let folder = burlwatch::fileio::data::read_folder(
         &repo.join("demo-frames/train"),
         &DecodeLimits::default(),
         &mut |_, _| {},
@@ -162,7 +162,7 @@ fn main() {
         .map(|p| std::fs::read(p).unwrap())
         .collect();
     frames.sort();
-    let n: usize = std::env::var("TREELINE_BENCH_FRAMES")
+    let n: usize = std::env::var("BURLWATCH_BENCH_FRAMES")
         .ok()
         .and_then(|s| s.parse().ok())
         .unwrap_or(5000);

@@ -9,24 +9,25 @@
 //!    `demo-frames/train`);
 //! 3. grouping a 2048x2048 mask of realistic sparse detections (the demo
 //!    model's own detections on that frame);
-//! 4. a whole 512x512 scan as `treeline scan` does it: decode, detect,
+//! 4. a whole 512x512 scan as `burlwatch scan` does it: decode, detect,
 //!    group with scores, JSON record.
 //!
-//! Environment: `TREELINE_BENCH_RUNS` (default 9).
+//! Environment: `BURLWATCH_BENCH_RUNS` (default 9).
 
 use std::path::Path;
 use std::time::Instant;
 
-use treeline::codec::{self, DecodeLimits};
-use treeline::compile::{Backend, Program, Scratch};
-use treeline::detector::Detector;
-use treeline::evaluate::{self, Settings};
-use treeline::frame::BitFrame;
-use treeline::group::{self, GroupParams};
-use treeline::learn::{self, TrainParams};
-use treeline::model::{Leaf, Node, Tree};
-use treeline::synth::{self, LoomParams};
-use treeline::window::Window;
+use burlwatch::codec::{self, DecodeLimits};
+use burlwatch::detect::compile::{Backend, Program, Scratch};
+use burlwatch::detect::group::{self, GroupParams};
+use burlwatch::detect::walker;
+use burlwatch::detect::Detector;
+use burlwatch::detect::Settings;
+use burlwatch::frame::BitFrame;
+use burlwatch::learn::{self, TrainParams};
+use burlwatch::model::{Leaf, Node, Tree};
+use burlwatch::synth::{self, LoomParams};
+use burlwatch::window::Window;
 
 fn median(mut v: Vec<f64>) -> f64 {
     v.sort_by(f64::total_cmp);
@@ -101,7 +102,7 @@ fn evaluators(name: &str, tree: &Tree, threshold: f64, frame: &BitFrame, runs: u
         program.detect_into(Backend::Portable, frame, &mut scratch, &mut out)
     });
     let mut walked = BitFrame::new(0, 0);
-    let walker = time(3, || walked = evaluate::detect(tree, threshold, frame));
+    let walker = time(3, || walked = walker::detect(tree, threshold, frame));
     assert_eq!(walked, out, "compiled and walker disagree");
     println!(
         "{name}: {} nodes -> {} ops ({} levels; walked, selected: {:?}; {}); \
@@ -124,7 +125,7 @@ fn evaluators(name: &str, tree: &Tree, threshold: f64, frame: &BitFrame, runs: u
 }
 
 fn main() {
-    let runs: usize = std::env::var("TREELINE_BENCH_RUNS")
+    let runs: usize = std::env::var("BURLWATCH_BENCH_RUNS")
         .ok()
         .and_then(|s| s.parse().ok())
         .unwrap_or(9);
@@ -144,8 +145,9 @@ fn main() {
 
     // 2. The demo model.
     let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-frames/train");
-    let folder = treeline::data::read_folder(&dir, &DecodeLimits::default(), &mut |_, _| {})
-        .expect("demo frames");
+    let folder =
+        burlwatch::fileio::data::read_folder(&dir, &DecodeLimits::default(), &mut |_, _| {})
+            .expect("demo frames");
     let model = learn::train(&folder.frames, &TrainParams::default(), &mut |_| {}).expect("train");
     evaluators(
         "demo model, 2048x2048",

@@ -11,30 +11,32 @@
 //!    second loom setting (`alternate`: another thread period, width and
 //!    noise level) generated in memory with the same frame counts.
 //!
-//! Environment: `TREELINE_BENCH_RUNS` (default 5) runs for the medians.
+//! Environment: `BURLWATCH_BENCH_RUNS` (default 5) runs for the medians.
 
 use std::path::Path;
 use std::time::Instant;
 
-use treeline::codec::DecodeLimits;
-use treeline::evaluate::{self, Settings};
-use treeline::learn::{self, LabelledFrame, Stage, TrainParams};
-use treeline::model::Model;
-use treeline::score::{self, Scores};
-use treeline::store::LabelStore;
-use treeline::synth::{self, LoomParams};
+use burlwatch::codec::DecodeLimits;
+use burlwatch::detect::walker;
+use burlwatch::detect::Settings;
+use burlwatch::learn::store::LabelStore;
+use burlwatch::learn::{self, LabelledFrame, Stage, TrainParams};
+use burlwatch::model::Model;
+use burlwatch::score::{self, Scores};
+use burlwatch::synth::{self, LoomParams};
 
 fn demo(set: &str) -> Vec<LabelledFrame> {
     let dir = Path::new(env!("CARGO_MANIFEST_DIR"))
         .join("demo-frames")
         .join(set);
-    let folder = treeline::data::read_folder(&dir, &DecodeLimits::default(), &mut |_, _| {})
-        .expect("demo frames");
+    let folder =
+        burlwatch::fileio::data::read_folder(&dir, &DecodeLimits::default(), &mut |_, _| {})
+            .expect("demo frames");
     assert!(folder.problems.is_empty(), "{:?}", folder.problems);
     folder.frames
 }
 
-/// Frames as `treeline generate` writes them (same seeds, same bits).
+/// Frames as `burlwatch generate` writes them (same seeds, same bits).
 fn generated(p: &LoomParams, seed: u64, n: usize) -> Vec<LabelledFrame> {
     (0..n)
         .map(|i| {
@@ -57,7 +59,7 @@ fn score(m: &Model, test: &[LabelledFrame]) -> Scores {
     let settings = Settings::of(m);
     let mut s = Scores::default();
     for f in test {
-        let r = evaluate::run(&m.tree, &settings, &f.frame);
+        let r = walker::run(&m.tree, &settings, &f.frame);
         s.pixel.add(&score::pixel_confusion(&r.mask, &f.mask));
         s.object.add(&score::object_confusion(
             &r.objects,
@@ -93,7 +95,7 @@ fn quality(name: &str, train: &[LabelledFrame], test: &[LabelledFrame]) {
 }
 
 fn main() {
-    let runs: usize = std::env::var("TREELINE_BENCH_RUNS")
+    let runs: usize = std::env::var("BURLWATCH_BENCH_RUNS")
         .ok()
         .and_then(|s| s.parse().ok())
         .unwrap_or(5);

@@ -7,7 +7,7 @@
 //! one whitespace character after the height; then the raster. In P1 the
 //! raster is `0`/`1` characters, whitespace between them optional; in P4 it
 //! is 8 pixels a byte, most significant bit first, each row padded to a
-//! whole byte. A 1 is black, which treeline reads as set ("ink").
+//! whole byte. A 1 is black, which burlwatch reads as set ("ink").
 //!
 //! Design decision: sizes are checked against [`DecodeLimits`] *before* any
 //! pixel buffer is allocated, so a hostile header cannot make the box
@@ -42,7 +42,7 @@ impl Default for DecodeLimits {
     }
 }
 
-/// The on-disk formats treeline reads.
+/// The on-disk formats burlwatch reads.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub enum Format {
     PbmPlain,

@@ -352,12 +352,12 @@ impl RawConfig {
             return Err(invalid("detection.min_area", "must be at least 1"));
         }
         if let Some(m) = det.merge_distance {
-            if m > crate::group::MAX_MERGE_DISTANCE {
+            if m > crate::detect::group::MAX_MERGE_DISTANCE {
                 return Err(invalid(
                     "detection.merge_distance",
                     format!(
                         "{m} is over the limit of {}",
-                        crate::group::MAX_MERGE_DISTANCE
+                        crate::detect::group::MAX_MERGE_DISTANCE
                     ),
                 ));
             }
@@ -542,8 +542,8 @@ mod tests {
 
     #[test]
     fn example_file_is_valid() {
-        let text = include_str!("../config/treeline.toml");
-        let c = from_str(text).expect("config/treeline.toml");
+        let text = include_str!("../config/burlwatch.toml");
+        let c = from_str(text).expect("config/burlwatch.toml");
         assert_eq!(
             c.seed_data.as_deref(),
             Some(std::path::Path::new("demo-frames/train"))
@@ -553,11 +553,11 @@ mod tests {
     #[test]
     fn system_file_is_valid() {
         let c = from_str(include_str!("../config/system.toml")).expect("config/system.toml");
-        assert_eq!(c.folders.logs, std::path::Path::new("/var/log/treeline"));
+        assert_eq!(c.folders.logs, std::path::Path::new("/var/log/burlwatch"));
         assert_eq!(c.log.sync, SyncPolicy::EveryRecord);
         assert_eq!(
             c.seed_data.as_deref(),
-            Some(std::path::Path::new("/usr/local/share/treeline/seed"))
+            Some(std::path::Path::new("/usr/local/share/burlwatch/seed"))
         );
         assert!(from_str("[training]\nseed_data = \"\"\n")
             .unwrap()

@@ -1,4 +1,4 @@
-//! Bit-packed binary frames: the one in-memory picture type of treeline.
+//! Bit-packed binary frames: the one in-memory picture type of burlwatch.
 //!
 //! A [`BitFrame`] is a 1-bit image stored as rows of `u64` words. Pixel value
 //! 1 ("set", "ink") is what PBM stores as black; 0 is "clear". Frames, masks
@@ -121,7 +121,7 @@ impl BitFrame {
     /// Mutable packed words of row `y`. Callers must keep padding bits clear;
     /// [`BitFrame::clear_padding`] restores the invariant.
     #[inline]
-    pub fn row_mut(&mut self, y: usize) -> &mut [u64] {
+    pub(crate) fn row_mut(&mut self, y: usize) -> &mut [u64] {
         &mut self.words[y * self.stride..(y + 1) * self.stride]
     }
 
@@ -132,7 +132,7 @@ impl BitFrame {
 
     /// All words, mutable. Callers must keep padding bits clear;
     /// [`BitFrame::clear_padding`] restores the invariant.
-    pub fn words_mut(&mut self) -> &mut [u64] {
+    pub(crate) fn words_mut(&mut self) -> &mut [u64] {
         &mut self.words
     }
 
@@ -242,6 +242,31 @@ impl BitFrame {
         BitFrame::from_fn(width, lines.len(), |x, y| {
             matches!(lines[y].chars().nth(x), Some('#') | Some('1'))
         })
+    }
+}
+
+/// A frame with its target mask.
+#[derive(Clone, Debug)]
+pub struct LabelledFrame {
+    pub name: String,
+    pub frame: BitFrame,
+    pub mask: BitFrame,
+}
+
+impl LabelledFrame {
+    /// SHA-256 of the frame's and mask's pixels (with their sizes): the key
+    /// of the holdout split.
+    pub fn content_hash(&self) -> [u8; 32] {
+        use sha2::Digest;
+        let mut h = sha2::Sha256::new();
+        for f in [&self.frame, &self.mask] {
+            h.update((f.width() as u64).to_le_bytes());
+            h.update((f.height() as u64).to_le_bytes());
+            for w in f.words() {
+                h.update(w.to_le_bytes());
+            }
+        }
+        h.finalize().into()
     }
 }
 

@@ -1,52 +1,53 @@
-//! treeline: finds defects in binarized camera frames with a decision tree
+//! burlwatch: finds defects in binarized camera frames with a decision tree
 //! over each pixel's square neighbourhood.
 //!
 //! The pipeline, from labelled pixels to objects:
 //!
 //! ```text
 //! frames + masks ──decode──▶ BitFrame ──windows──▶ label store ──grow/prune/tune──▶ Model
-//!   (codec)                  (frame)    (window)     (store)        (learn)          (model)
+//!   (fileio, codec)          (frame)    (window)    (learn::store)    (learn)          (model)
 //!
-//! new frame ──decode──▶ BitFrame ──evaluate──▶ detection mask ──group──▶ objects ──score──▶ metrics
-//!                                  (evaluate)                  (group)              (score)
+//! new frame ──decode──▶ BitFrame ──compiled program──▶ detection mask ──group──▶ objects ──▶ record
+//!                                  (detect::compile;                 (detect::group)       (record)
+//!                                   detect::walker is the reference)
 //! ```
 //!
-//! - [`config`]: the TOML configuration file, parsed then resolved.
-//! - [`codec`]: PBM/PNG bytes to [`frame::BitFrame`] and back; sizes checked before allocation.
-//! - [`window`]: each pixel's `s x s` neighbourhood as a `u128` pattern; features named by offset.
-//! - [`store`]: pattern -> class counts, the sufficient statistic for learning; mergeable.
-//! - [`learn`]: greedy induction, cost-complexity pruning, holdout tuning; builds a [`model::Model`].
-//! - [`model`]: the frozen tree and its validated JSON file; knows nothing of the learner.
-//! - [`evaluate`]: the per-pixel reference walker.
-//! - [`compile`]: the tree as a word-parallel bit program, bit-identical to the walker.
-//! - [`group`]: connected components with merge distance and minimum area.
+//! The layers, lowest first; a module uses only those above it in this
+//! list:
+//!
+//! - [`error`]: typed errors that name the file and the problem.
+//! - [`frame`], [`window`], [`codec`]: the bit-packed frame, each pixel's
+//!   neighbourhood as a `u128` pattern, PBM/PNG bytes to frames and back.
+//! - [`model`]: the frozen tree and its validated JSON file; knows nothing
+//!   of the learner or of evaluation strategies.
+//! - [`detect`]: the [`detect::Detector`] (one frame from bytes to its
+//!   record), the reference walker, the compiled evaluator, grouping.
 //! - [`score`]: pixel and object precision/recall/F1 (IoU >= 0.5 matching).
+//! - [`learn`]: the label store, greedy induction, cost-complexity pruning,
+//!   holdout tuning; builds a [`model::Model`].
+//! - [`record`]: the JSON record of one scanned frame (the detection log's
+//!   line).
 //! - [`synth`]: the seeded loom-frame generator for demo and test data.
-//! - [`data`]: the one module here that touches the filesystem: labelled data folders.
-//! - [`record`]: the JSON record of one scanned frame (the detection log's line).
-//! - [`detector`]: one frame from bytes to its record, with a swappable model.
+//! - [`config`]: the TOML configuration file, parsed then resolved.
+//! - [`fileio`]: labelled data folders and durable file operations.
 //! - [`daemon`]: the unattended detector: inbox watching, workers, the
 //!   detection log, archive and rejects, reload and stop.
 //!
-//! Everything except [`data`], [`daemon`] and the binary is pure: bytes and
-//! bit rows in, values out; the core knows nothing of threads, file watching
-//! or the filesystem.
+//! Everything except [`fileio`], [`daemon`] and the binary is pure: bytes
+//! and bit rows in, values out; the core knows nothing of threads, file
+//! watching or the filesystem.
 
 pub mod codec;
-pub mod compile;
 pub mod config;
 pub mod daemon;
-pub mod data;
-pub mod detector;
+pub mod detect;
 pub mod error;
-pub mod evaluate;
+pub mod fileio;
 pub mod frame;
-pub mod group;
 pub mod learn;
 pub mod model;
 pub mod record;
 pub mod score;
-pub mod store;
 pub mod synth;
 pub mod window;
 

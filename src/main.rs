@@ -1,4 +1,4 @@
-//! The `treeline` binary: parses the command line and hands over to the
+//! The `burlwatch` binary: parses the command line and hands over to the
 //! command implementations in `cli`. Everything that computes lives in the
 //! library.
 
@@ -11,7 +11,7 @@ fn main() {
     match cli::run(args) {
         Ok(code) => std::process::exit(code),
         Err(e) => {
-            eprintln!("treeline: error: {e:#}");
+            eprintln!("burlwatch: error: {e:#}");
             std::process::exit(1);
         }
     }

@@ -3,7 +3,7 @@
 //! frame).
 //!
 //! These serde structs are the log format, kept apart from the domain
-//! types ([`crate::group::Object`]) so the format changes only on purpose.
+//! types ([`crate::detect::group::Object`]) so the format changes only on purpose.
 //! Fields:
 //! - `time`: when the frame was processed, RFC 3339 in UTC (`...Z`);
 //! - `frame`: the frame's file name; `sha256`: hex SHA-256 of its bytes;
@@ -16,7 +16,7 @@
 use serde::{Deserialize, Serialize};
 use sha2::{Digest, Sha256};
 
-use crate::group::Object;
+use crate::detect::group::Object;
 
 /// One object of a record.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]

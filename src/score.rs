@@ -13,8 +13,8 @@
 
 use serde::{Deserialize, Serialize};
 
+use crate::detect::group::{self, GroupParams, Object};
 use crate::frame::BitFrame;
-use crate::group::{self, GroupParams, Object};
 
 /// The IoU a detection must reach to match a ground-truth object.
 pub const IOU_MATCH: f64 = 0.5;
@@ -151,7 +151,7 @@ impl Scores {
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::group::BBox;
+    use crate::detect::group::BBox;
 
     fn obj(id: u32, x0: u32, y0: u32, x1: u32, y1: u32, score: f64) -> Object {
         Object {

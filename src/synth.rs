@@ -15,7 +15,7 @@
 //! streams may change between versions, and all geometry is integer
 //! arithmetic (no trigonometry, whose last bits differ between math
 //! libraries). So `(params, seed)` gives the same bits on every platform and
-//! in every future version of treeline, and stored test sets and benchmark
+//! in every future version of burlwatch, and stored test sets and benchmark
 //! numbers never shift silently.
 
 use crate::frame::BitFrame;

@@ -1,14 +1,14 @@
-//! The `treeline` binary end to end: generate, train, scan, eval and rules on
+//! The `burlwatch` binary end to end: generate, train, scan, eval and rules on
 //! temporary folders, bad input, and the committed demo data and model.
 
-use crate::util::{repo, treeline, Dir};
+use crate::util::{burlwatch, repo, Dir};
 
-use treeline::record::FrameRecord;
+use burlwatch::record::FrameRecord;
 
 /// Small loom frames (64x64) so training in the test profile stays quick.
 fn small_data(dir: &Dir, name: &str, count: &str, seed: &str) {
     let out = dir.join(name);
-    let r = treeline(
+    let r = burlwatch(
         dir.path(),
         &[
             "generate",
@@ -30,7 +30,7 @@ fn small_data(dir: &Dir, name: &str, count: &str, seed: &str) {
 fn trained(dir: &Dir) -> std::path::PathBuf {
     small_data(dir, "train", "12", "5");
     let model = dir.join("model.json");
-    let r = treeline(
+    let r = burlwatch(
         dir.path(),
         &["train", "--data", "train", "--out", model.to_str().unwrap()],
     );
@@ -47,10 +47,10 @@ fn train_scan_eval_rules_round_trip() {
     small_data(&dir, "test", "4", "6");
 
     // eval: human table and JSON with confusion counts.
-    let r = treeline(dir.path(), &["eval", "--data", "test", "--model", m]);
+    let r = burlwatch(dir.path(), &["eval", "--data", "test", "--model", m]);
     assert_eq!(r.code, 0, "{}", r.stderr);
     assert!(r.stdout.contains("pixels") && r.stdout.contains("objects"));
-    let r = treeline(
+    let r = burlwatch(
         dir.path(),
         &[
             "eval",
@@ -78,14 +78,14 @@ fn train_scan_eval_rules_round_trip() {
         .collect();
     let mut args = vec!["scan", "--model", m, "--json"];
     args.extend(frames.iter().map(String::as_str));
-    let r = treeline(dir.path(), &args);
+    let r = burlwatch(dir.path(), &args);
     assert_eq!(r.code, 0, "{}", r.stderr);
     let lines: Vec<&str> = r.stdout.lines().collect();
     assert_eq!(lines.len(), 4);
     for (line, f) in lines.iter().zip(&frames) {
         let rec: FrameRecord = serde_json::from_str(line).expect("record");
         let bytes = std::fs::read(dir.join(f)).unwrap();
-        assert_eq!(rec.sha256, treeline::record::sha256_hex(&bytes));
+        assert_eq!(rec.sha256, burlwatch::record::sha256_hex(&bytes));
         assert_eq!((rec.width, rec.height), (96, 96));
         assert_eq!(rec.model_version, 1);
         assert!(rec.time.ends_with('Z'), "UTC RFC 3339: {}", rec.time);
@@ -97,11 +97,11 @@ fn train_scan_eval_rules_round_trip() {
     }
 
     // rules: offsets, never bare indices.
-    let r = treeline(dir.path(), &["rules", "--model", m]);
+    let r = burlwatch(dir.path(), &["rules", "--model", m]);
     assert_eq!(r.code, 0, "{}", r.stderr);
     assert!(r.stdout.contains("rule    1:"), "{}", r.stdout);
     assert!(r.stdout.contains(" is set") || r.stdout.contains(" is clear"));
-    let r = treeline(dir.path(), &["rules", "--model", m, "--json"]);
+    let r = burlwatch(dir.path(), &["rules", "--model", m, "--json"]);
     let rules: serde_json::Value = serde_json::from_str(&r.stdout).expect("rules JSON");
     let rules = rules.as_array().unwrap();
     assert!(!rules.is_empty());
@@ -119,7 +119,7 @@ fn settings_can_be_overridden() {
     let model = trained(&dir);
     let m = model.to_str().unwrap();
     let frame = "train/loom-standard-0000.pbm";
-    let r = treeline(
+    let r = burlwatch(
         dir.path(),
         &[
             "scan",
@@ -138,7 +138,7 @@ fn settings_can_be_overridden() {
     // Threshold 0 detects every pixel: one object covering the frame.
     assert_eq!(rec.objects.len(), 1);
     assert_eq!(rec.objects[0].area, 96 * 96);
-    let r = treeline(
+    let r = burlwatch(
         dir.path(),
         &["scan", "--model", m, "--threshold", "1.5", frame],
     );
@@ -165,21 +165,21 @@ fn bad_files_are_named_and_can_be_skipped() {
     dir.write("data/sized.mask.pbm", b"P1\n3 3\n000000000\n");
     dir.write(
         "data/pngmask.png",
-        &treeline::codec::encode_png(&treeline::BitFrame::new(4, 4)).unwrap(),
+        &burlwatch::codec::encode_png(&burlwatch::BitFrame::new(4, 4)).unwrap(),
     );
     dir.write(
         "data/pngmask.mask.png",
-        &treeline::codec::encode_png(&treeline::BitFrame::new(4, 4)).unwrap(),
+        &burlwatch::codec::encode_png(&burlwatch::BitFrame::new(4, 4)).unwrap(),
     );
     dir.write("data/disguised.pbm", b"P1\n4 4\n0000000000000000\n");
     dir.write(
         "data/disguised.mask.pbm",
-        &treeline::codec::encode_png(&treeline::BitFrame::new(4, 4)).unwrap(),
+        &burlwatch::codec::encode_png(&burlwatch::BitFrame::new(4, 4)).unwrap(),
     );
     dir.write("data/.hidden.pbm", b"ignored");
     dir.write("data/notes.txt", b"ignored");
 
-    let r = treeline(dir.path(), &["train", "--data", "data", "--out", "m.json"]);
+    let r = burlwatch(dir.path(), &["train", "--data", "data", "--out", "m.json"]);
     assert_eq!(r.code, 1, "{}", r.stdout);
     for (name, why) in [
         ("garbage.pbm", "not a PBM or PNG"),
@@ -206,7 +206,7 @@ fn bad_files_are_named_and_can_be_skipped() {
     assert!(!r.stderr.contains("panicked"), "{}", r.stderr);
     assert!(!dir.join("m.json").exists());
 
-    let r = treeline(
+    let r = burlwatch(
         dir.path(),
         &["train", "--data", "data", "--out", "m.json", "--skip-bad"],
     );
@@ -216,7 +216,7 @@ fn bad_files_are_named_and_can_be_skipped() {
     assert!(dir.join("m.json").exists());
 
     // scan keeps going past a bad frame and names it.
-    let r = treeline(
+    let r = burlwatch(
         dir.path(),
         &[
             "scan",
@@ -241,7 +241,7 @@ fn bad_files_are_named_and_can_be_skipped() {
 fn untuned_training_warns_and_folder_out_is_refused() {
     let dir = Dir::new();
     small_data(&dir, "train", "4", "3");
-    let r = treeline(
+    let r = burlwatch(
         dir.path(),
         &[
             "train",
@@ -259,7 +259,7 @@ fn untuned_training_warns_and_folder_out_is_refused() {
         "{}",
         r.stderr
     );
-    let r = treeline(dir.path(), &["train", "--data", "train", "--out", "train"]);
+    let r = burlwatch(dir.path(), &["train", "--data", "train", "--out", "train"]);
     assert_eq!(r.code, 1);
     assert!(r.stderr.contains("is a folder"), "{}", r.stderr);
 }
@@ -267,18 +267,18 @@ fn untuned_training_warns_and_folder_out_is_refused() {
 #[test]
 fn bad_models_and_options_are_clear_errors() {
     let dir = Dir::new();
-    dir.write("broken.json", b"{ \"format\": \"treeline-model\" ");
-    let r = treeline(dir.path(), &["rules", "--model", "broken.json"]);
+    dir.write("broken.json", b"{ \"format\": \"burlwatch-model\" ");
+    let r = burlwatch(dir.path(), &["rules", "--model", "broken.json"]);
     assert_eq!(r.code, 1);
     assert!(
         r.stderr.contains("broken.json") && r.stderr.contains("invalid model"),
         "{}",
         r.stderr
     );
-    let r = treeline(dir.path(), &["rules", "--model", "absent.json"]);
+    let r = burlwatch(dir.path(), &["rules", "--model", "absent.json"]);
     assert_eq!(r.code, 1);
     assert!(r.stderr.contains("absent.json"), "{}", r.stderr);
-    let r = treeline(
+    let r = burlwatch(
         dir.path(),
         &[
             "train",
@@ -296,13 +296,13 @@ fn bad_models_and_options_are_clear_errors() {
         "{}",
         r.stderr
     );
-    let r = treeline(
+    let r = burlwatch(
         dir.path(),
         &["train", "--data", ".", "--out", "m.json", "--window", "4"],
     );
     assert_eq!(r.code, 1);
     assert!(r.stderr.contains("3, 5, 7, 9, 11"), "{}", r.stderr);
-    let r = treeline(
+    let r = burlwatch(
         dir.path(),
         &["train", "--data", "nowhere", "--out", "m.json"],
     );
@@ -331,7 +331,7 @@ fn generate_is_deterministic() {
 fn committed_demo_frames_are_clean_pairs() {
     for set in ["train", "test", "drifted"] {
         let dir = repo().join("demo-frames").join(set);
-        let (pairs, problems) = treeline::data::list_pairs(&dir).expect("demo folder");
+        let (pairs, problems) = burlwatch::fileio::data::list_pairs(&dir).expect("demo folder");
         assert!(problems.is_empty(), "{set}: {:?}", problems);
         assert!(pairs.len() >= 10, "{set} has {} pairs", pairs.len());
     }
@@ -342,26 +342,26 @@ fn committed_model_keeps_loading_and_finding_the_same_objects() {
     // A model file written by this format version, kept to guard
     // compatibility, with a frame and the objects it found when committed.
     let data = repo().join("tests").join("data");
-    let text = std::fs::read_to_string(data.join("model-v1.json")).unwrap();
-    let model = treeline::model::Model::from_json(&text).expect("committed model loads");
-    let frame = treeline::data::read_frame(
+    let text = std::fs::read_to_string(data.join("model-v2.json")).unwrap();
+    let model = burlwatch::model::Model::from_json(&text).expect("committed model loads");
+    let frame = burlwatch::fileio::data::read_frame(
         &data.join("golden-0000.pbm"),
-        &treeline::codec::DecodeLimits::default(),
+        &burlwatch::codec::DecodeLimits::default(),
     )
     .unwrap();
-    let got = treeline::evaluate::run(
+    let got = burlwatch::detect::walker::run(
         &model.tree,
-        &treeline::evaluate::Settings::of(&model),
+        &burlwatch::detect::Settings::of(&model),
         &frame,
     );
-    let want: Vec<treeline::record::ObjectRecord> = serde_json::from_str(
+    let want: Vec<burlwatch::record::ObjectRecord> = serde_json::from_str(
         &std::fs::read_to_string(data.join("golden-0000.objects.json")).unwrap(),
     )
     .unwrap();
     let got: Vec<_> = got
         .objects
         .iter()
-        .map(treeline::record::ObjectRecord::from_object)
+        .map(burlwatch::record::ObjectRecord::from_object)
         .collect();
     assert_eq!(got, want);
 }
@@ -369,9 +369,9 @@ fn committed_model_keeps_loading_and_finding_the_same_objects() {
 #[test]
 fn bench_reports_the_capacity_of_this_box() {
     let dir = Dir::new();
-    let model = repo().join("tests/data/model-v1.json");
+    let model = repo().join("tests/data/model-v2.json");
     let m = model.to_str().unwrap();
-    let r = treeline(
+    let r = burlwatch(
         dir.path(),
         &[
             "bench", "--model", m, "--size", "96x64", "--runs", "1", "--json",
@@ -394,11 +394,11 @@ fn bench_reports_the_capacity_of_this_box() {
     }
     assert!(v["program_ops"].as_u64().unwrap() <= v["tree_nodes"].as_u64().unwrap());
     assert!(!v["backend"].as_str().unwrap().is_empty());
-    let r = treeline(dir.path(), &["bench", "--model", m, "--size", "12x12"]);
+    let r = burlwatch(dir.path(), &["bench", "--model", m, "--size", "12x12"]);
     assert_eq!(r.code, 1);
     assert!(r.stderr.contains("between 32 and 8192"), "{}", r.stderr);
     let golden = repo().join("tests/data/golden-0000.pbm");
-    let r = treeline(
+    let r = burlwatch(
         dir.path(),
         &[
             "bench",

@@ -5,11 +5,12 @@
 use proptest::prelude::*;
 use proptest::test_runner::Config as ProptestConfig;
 
-use treeline::compile::{self, Backend, Plan, Program, Scratch};
-use treeline::evaluate::{self, Settings};
-use treeline::model::{Leaf, Model, Node, Tree};
-use treeline::window::Window;
-use treeline::BitFrame;
+use burlwatch::detect::compile::{self, Backend, Plan, Program, Scratch};
+use burlwatch::detect::walker;
+use burlwatch::detect::Settings;
+use burlwatch::model::{Leaf, Model, Node, Tree};
+use burlwatch::window::Window;
+use burlwatch::BitFrame;
 
 /// A random tree of the given depth: every split tests a random feature of
 /// the window, leaves get random scores. Built breadth-first so children
@@ -103,7 +104,7 @@ proptest! {
         let h = [1usize, 2, 5, 63, 65][hi];
         let density = [0.0, 0.05, 0.5, 1.0][di];
         let frame = random_frame(w, h, density, seed ^ 0x5EED);
-        let want = evaluate::detect(&tree, threshold, &frame);
+        let want = walker::detect(&tree, threshold, &frame);
         let mut scratch = Scratch::default();
         // Every split between walking and selecting, on every backend.
         for plan in [Plan::Auto, Plan::Walk, Plan::Select] {
@@ -118,7 +119,7 @@ proptest! {
         let other = random_frame(h, w, density, seed);
         prop_assert_eq!(
             program.detect(&other, &mut scratch),
-            evaluate::detect(&tree, threshold, &other)
+            walker::detect(&tree, threshold, &other)
         );
     }
 }
@@ -136,7 +137,7 @@ fn wide_frames_and_deep_trees_agree() {
             for b in backends() {
                 assert_eq!(
                     program.detect_with(b, &frame, &mut s),
-                    evaluate::detect(&tree, 0.5, &frame),
+                    walker::detect(&tree, 0.5, &frame),
                     "{plan:?} {b:?} density {density}"
                 );
             }
@@ -151,27 +152,24 @@ fn golden_case_through_every_evaluator() {
     // objects.
     let data = crate::util::repo().join("tests").join("data");
     let model =
-        Model::from_json(&std::fs::read_to_string(data.join("model-v1.json")).unwrap()).unwrap();
-    let frame = treeline::data::read_frame(
+        Model::from_json(&std::fs::read_to_string(data.join("model-v2.json")).unwrap()).unwrap();
+    let frame = burlwatch::fileio::data::read_frame(
         &data.join("golden-0000.pbm"),
-        &treeline::codec::DecodeLimits::default(),
+        &burlwatch::codec::DecodeLimits::default(),
     )
     .unwrap();
-    let want: Vec<treeline::record::ObjectRecord> = serde_json::from_str(
+    let want: Vec<burlwatch::record::ObjectRecord> = serde_json::from_str(
         &std::fs::read_to_string(data.join("golden-0000.objects.json")).unwrap(),
     )
     .unwrap();
     let settings = Settings::of(&model);
-    let records = |r: &evaluate::FrameResult| -> Vec<treeline::record::ObjectRecord> {
+    let records = |r: &burlwatch::detect::FrameResult| -> Vec<burlwatch::record::ObjectRecord> {
         r.objects
             .iter()
-            .map(treeline::record::ObjectRecord::from_object)
+            .map(burlwatch::record::ObjectRecord::from_object)
             .collect()
     };
-    assert_eq!(
-        records(&evaluate::run(&model.tree, &settings, &frame)),
-        want
-    );
+    assert_eq!(records(&walker::run(&model.tree, &settings, &frame)), want);
     let mut s = Scratch::default();
     for plan in [Plan::Auto, Plan::Walk, Plan::Select] {
         let program = Program::compile_with(&model.tree, model.threshold, plan);
@@ -179,7 +177,7 @@ fn golden_case_through_every_evaluator() {
             let mask = program.detect_with(b, &frame, &mut s);
             assert_eq!(
                 mask,
-                evaluate::detect(&model.tree, model.threshold, &frame),
+                walker::detect(&model.tree, model.threshold, &frame),
                 "{plan:?} {b:?}"
             );
         }
@@ -247,7 +245,7 @@ fn no_allocation_per_frame_after_warm_up() {
                 program.ops(),
                 program.strategy()
             );
-            assert_eq!(out, evaluate::detect(&tree, 0.5, &b));
+            assert_eq!(out, walker::detect(&tree, 0.5, &b));
         }
     }
 }

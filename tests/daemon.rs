@@ -9,9 +9,9 @@ use std::path::PathBuf;
 use std::process::{Child, Command, Stdio};
 use std::time::{Duration, Instant};
 
-use treeline::codec;
-use treeline::record::{sha256_hex, FrameRecord};
-use treeline::synth::{self, LoomParams};
+use burlwatch::codec;
+use burlwatch::record::{sha256_hex, FrameRecord};
+use burlwatch::synth::{self, LoomParams};
 
 use crate::util::{repo, Dir};
 
@@ -29,7 +29,7 @@ impl Setup {
         let state = s.dir.join("state");
         std::fs::create_dir_all(&state).unwrap();
         std::fs::copy(
-            repo().join("tests/data/model-v1.json"),
+            repo().join("tests/data/model-v2.json"),
             state.join("model.json"),
         )
         .unwrap();
@@ -57,7 +57,7 @@ impl Setup {
     }
 
     fn config(&self) -> PathBuf {
-        self.dir.join("treeline.toml")
+        self.dir.join("burlwatch.toml")
     }
 
     fn inbox(&self) -> PathBuf {
@@ -70,7 +70,7 @@ impl Setup {
             .append(true)
             .open(self.dir.join("daemon.stderr"))
             .unwrap();
-        Command::new(env!("CARGO_BIN_EXE_treeline"))
+        Command::new(env!("CARGO_BIN_EXE_burlwatch"))
             .args(["run", "--config"])
             .arg(self.config())
             .current_dir(self.dir.path())
@@ -449,7 +449,7 @@ fn sighup_reloads_and_keeps_the_running_config_when_the_new_one_is_broken() {
     // The committed golden frame, whose objects under the committed model
     // are committed too.
     let golden = std::fs::read(repo().join("tests/data/golden-0000.pbm")).unwrap();
-    let want: Vec<treeline::record::ObjectRecord> = serde_json::from_str(
+    let want: Vec<burlwatch::record::ObjectRecord> = serde_json::from_str(
         &std::fs::read_to_string(repo().join("tests/data/golden-0000.objects.json")).unwrap(),
     )
     .unwrap();
@@ -482,7 +482,7 @@ fn sighup_reloads_and_keeps_the_running_config_when_the_new_one_is_broken() {
     s.write_config(extra);
     std::fs::write(
         &model,
-        "{\"format\": \"treeline-model\", \"format_version\": 1",
+        "{\"format\": \"burlwatch-model\", \"format_version\": 2",
     )
     .unwrap();
     signal(&d, libc::SIGHUP);
@@ -538,7 +538,7 @@ fn a_restart_archives_frames_already_logged_without_a_second_record() {
 
 #[test]
 fn file_events_work_with_folders_relative_to_the_working_folder() {
-    // As in config/treeline.toml: folders relative to where the daemon
+    // As in config/burlwatch.toml: folders relative to where the daemon
     // runs. Listing only every hour, so only file events can find a frame.
     let s = Setup::new("");
     std::fs::write(
@@ -597,17 +597,21 @@ fn frames_waiting_at_start_are_processed_oldest_first() {
 fn a_second_daemon_on_the_same_folders_stops_with_a_clear_message() {
     let s = Setup::new("");
     let mut first = s.start_watching();
-    let second = crate::util::treeline(
+    let second = crate::util::burlwatch(
         s.dir.path(),
         &["run", "--config", s.config().to_str().unwrap()],
     );
     assert_eq!(second.code, 1);
     assert!(
-        second.stderr.contains("another treeline daemon"),
+        second.stderr.contains("another burlwatch daemon"),
         "{}",
         second.stderr
     );
-    assert!(second.stderr.contains("treeline.lock"), "{}", second.stderr);
+    assert!(
+        second.stderr.contains("burlwatch.lock"),
+        "{}",
+        second.stderr
+    );
     signal(&first, libc::SIGINT);
     assert_eq!(exit_code(&mut first, 20), 0);
 }
@@ -617,7 +621,7 @@ fn a_fresh_box_trains_its_first_model_from_the_seed_data() {
     let s = Setup::new("");
     std::fs::remove_file(s.dir.join("state/model.json")).unwrap();
     let seed = s.dir.join("seed");
-    let g = crate::util::treeline(
+    let g = crate::util::burlwatch(
         s.dir.path(),
         &[
             "generate",
@@ -646,7 +650,7 @@ fn a_fresh_box_trains_its_first_model_from_the_seed_data() {
     });
     let all = frames(3, 2);
     feed_and_stop(&s, &mut d, &all, 30);
-    let m = treeline::model::Model::from_json(
+    let m = burlwatch::model::Model::from_json(
         &std::fs::read_to_string(s.dir.join("state/model.json")).unwrap(),
     )
     .unwrap();
@@ -657,16 +661,16 @@ fn a_fresh_box_trains_its_first_model_from_the_seed_data() {
 fn check_reports_what_is_wrong() {
     let s = Setup::new("");
     let cfg = s.config();
-    let ok = crate::util::treeline(s.dir.path(), &["check", "--config", cfg.to_str().unwrap()]);
+    let ok = crate::util::burlwatch(s.dir.path(), &["check", "--config", cfg.to_str().unwrap()]);
     assert_eq!(ok.code, 0, "{}{}", ok.stdout, ok.stderr);
     assert!(ok.stdout.contains("ready to run"), "{}", ok.stdout);
     // A damaged model is named.
     std::fs::write(
         s.dir.join("state/model.json"),
-        "{\"format\": \"treeline-model\"",
+        "{\"format\": \"burlwatch-model\"",
     )
     .unwrap();
-    let bad = crate::util::treeline(s.dir.path(), &["check", "--config", cfg.to_str().unwrap()]);
+    let bad = crate::util::burlwatch(s.dir.path(), &["check", "--config", cfg.to_str().unwrap()]);
     assert_eq!(bad.code, 1);
     assert!(
         bad.stdout.contains("BAD") && bad.stdout.contains("model.json"),
@@ -675,7 +679,7 @@ fn check_reports_what_is_wrong() {
     );
     // An unknown key is named with its line.
     std::fs::write(&cfg, s.config_text("[log]\nrotate = 5\n")).unwrap();
-    let bad = crate::util::treeline(
+    let bad = crate::util::burlwatch(
         s.dir.path(),
         &["check", "--config", cfg.to_str().unwrap(), "--json"],
     );
@@ -686,7 +690,7 @@ fn check_reports_what_is_wrong() {
 }
 
 /// Whether an outside tool may be missing: tests that need one skip with a
-/// printed reason, unless `TREELINE_REQUIRE_TOOLS=1` (set by `.ci/run`).
+/// printed reason, unless `BURLWATCH_REQUIRE_TOOLS=1` (set by `.ci/run`).
 fn tool(name: &str) -> Option<PathBuf> {
     let found = std::env::var_os("PATH").and_then(|paths| {
         std::env::split_paths(&paths)
@@ -695,8 +699,8 @@ fn tool(name: &str) -> Option<PathBuf> {
     });
     if found.is_none() {
         assert!(
-            std::env::var("TREELINE_REQUIRE_TOOLS").as_deref() != Ok("1"),
-            "{name} is required (TREELINE_REQUIRE_TOOLS=1) but not installed"
+            std::env::var("BURLWATCH_REQUIRE_TOOLS").as_deref() != Ok("1"),
+            "{name} is required (BURLWATCH_REQUIRE_TOOLS=1) but not installed"
         );
         eprintln!("skipped: {name} is not installed (Debian package `systemd`)");
     }
@@ -711,9 +715,9 @@ fn the_systemd_unit_verifies_and_is_well_hardened() {
     // The unit as shipped, with ExecStart pointing at the binary just built
     // (verify checks that the program exists).
     let d = Dir::new();
-    let unit = std::fs::read_to_string(repo().join("systemd/treeline.service")).unwrap();
-    let unit = unit.replace("/usr/local/bin/treeline", env!("CARGO_BIN_EXE_treeline"));
-    let path = d.write("treeline.service", unit.as_bytes());
+    let unit = std::fs::read_to_string(repo().join("systemd/burlwatch.service")).unwrap();
+    let unit = unit.replace("/usr/local/bin/burlwatch", env!("CARGO_BIN_EXE_burlwatch"));
+    let path = d.write("burlwatch.service", unit.as_bytes());
     let verify = Command::new(&analyze)
         .args(["verify", "--man=no"])
         .arg(&path)
@@ -723,7 +727,7 @@ fn the_systemd_unit_verifies_and_is_well_hardened() {
         + &String::from_utf8_lossy(&verify.stdout);
     assert!(verify.status.success(), "systemd-analyze verify: {said}");
     assert!(
-        !said.contains("treeline.service:"),
+        !said.contains("burlwatch.service:"),
         "systemd-analyze verify: {said}"
     );
     // systemd-analyze security: overall exposure 2.0 or lower ("OK" or
@@ -757,7 +761,7 @@ fn the_demo_runs_the_daemon_and_stops_with_a_summary() {
     let d = Dir::new();
     let (seed, test) = (d.join("seed"), d.join("test"));
     for (dir, count, s) in [(&seed, "6", "4"), (&test, "8", "5")] {
-        let g = crate::util::treeline(
+        let g = crate::util::burlwatch(
             d.path(),
             &[
                 "generate",
@@ -775,7 +779,7 @@ fn the_demo_runs_the_daemon_and_stops_with_a_summary() {
         );
         assert_eq!(g.code, 0, "{}", g.stderr);
     }
-    let r = crate::util::treeline(
+    let r = crate::util::burlwatch(
         d.path(),
         &[
             "demo",

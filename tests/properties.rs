@@ -13,14 +13,14 @@ use proptest::prelude::*;
 use proptest::sample::select;
 use proptest::test_runner::RngSeed;
 
-use treeline::evaluate;
-use treeline::frame::BitFrame;
-use treeline::learn::grow::{grow, GrowParams};
-use treeline::learn::prune::prune_sequence;
-use treeline::learn::{self, ClassWeight, Criterion, LabelledFrame, TrainParams};
-use treeline::model::{Model, Node};
-use treeline::store::{Counts, LabelStore};
-use treeline::window::{self, Window};
+use burlwatch::detect::walker;
+use burlwatch::frame::BitFrame;
+use burlwatch::learn::grow::{grow, GrowParams};
+use burlwatch::learn::prune::prune_sequence;
+use burlwatch::learn::store::{Counts, LabelStore};
+use burlwatch::learn::{self, ClassWeight, Criterion, LabelledFrame, TrainParams};
+use burlwatch::model::{Model, Node};
+use burlwatch::window::{self, Window};
 
 fn config(cases: u32, seed: u64) -> ProptestConfig {
     ProptestConfig {
@@ -157,7 +157,7 @@ proptest! {
 
 /// A leaf-free-of-surprises check of a frozen tree on some frames: every
 /// leaf score and every pixel score lies in [0, 1].
-fn check_scores(tree: &treeline::model::Tree, frames: &[&BitFrame]) -> Result<(), TestCaseError> {
+fn check_scores(tree: &burlwatch::model::Tree, frames: &[&BitFrame]) -> Result<(), TestCaseError> {
     for n in tree.nodes() {
         if let Node::Leaf(l) = n {
             prop_assert!((0.0..=1.0).contains(&l.score), "leaf score {}", l.score);
@@ -167,7 +167,7 @@ fn check_scores(tree: &treeline::model::Tree, frames: &[&BitFrame]) -> Result<()
     for f in frames {
         for y in 0..f.height() {
             for x in 0..f.width() {
-                let s = evaluate::score_at(tree, f, x, y);
+                let s = walker::score_at(tree, f, x, y);
                 prop_assert!((0.0..=1.0).contains(&s), "score {} at ({},{})", s, x, y);
             }
         }

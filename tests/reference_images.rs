@@ -9,17 +9,17 @@ use image::{
 };
 use imageproc::region_labelling::{connected_components, Connectivity};
 
-use treeline::codec::{self, DecodeLimits};
-use treeline::frame::BitFrame;
-use treeline::group::{self, BBox, GroupParams};
-use treeline::synth::Rng;
-use treeline::ErrorKind;
+use burlwatch::codec::{self, DecodeLimits};
+use burlwatch::detect::group::{self, BBox, GroupParams};
+use burlwatch::frame::BitFrame;
+use burlwatch::synth::Rng;
+use burlwatch::ErrorKind;
 
 fn lim() -> DecodeLimits {
     DecodeLimits::default()
 }
 
-fn decode(bytes: &[u8]) -> treeline::Result<BitFrame> {
+fn decode(bytes: &[u8]) -> burlwatch::Result<BitFrame> {
     codec::decode(bytes, &lim())
 }
 
@@ -313,7 +313,7 @@ fn our_encoders_are_read_by_the_image_crate() {
 // 3. Bad input.
 
 /// The error of a file that must not decode; its message is never empty.
-fn err(bytes: &[u8]) -> treeline::Error {
+fn err(bytes: &[u8]) -> burlwatch::Error {
     match decode(bytes) {
         Ok(f) => panic!("{:?} decoded to {f:?}", String::from_utf8_lossy(bytes)),
         Err(e) => {

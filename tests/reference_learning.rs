@@ -19,14 +19,14 @@ use smartcore::tree::decision_tree_classifier::{
     DecisionTreeClassifier, DecisionTreeClassifierParameters, SplitCriterion,
 };
 
-use treeline::evaluate;
-use treeline::learn::criterion::{entropy, gain, gini, Criterion};
-use treeline::learn::grow::{grow, GrowParams, GrownTree};
-use treeline::learn::prune::{prune_sequence, Pruning};
-use treeline::learn::{self, LabelledFrame, TrainParams};
-use treeline::model::{Model, Node};
-use treeline::store::Counts;
-use treeline::synth::{self, LoomParams};
+use burlwatch::detect::walker;
+use burlwatch::learn::criterion::{entropy, gain, gini, Criterion};
+use burlwatch::learn::grow::{grow, GrowParams, GrownTree};
+use burlwatch::learn::prune::{prune_sequence, Pruning};
+use burlwatch::learn::store::Counts;
+use burlwatch::learn::{self, LabelledFrame, TrainParams};
+use burlwatch::model::{Model, Node};
+use burlwatch::synth::{self, LoomParams};
 
 fn params(criterion: Criterion, max_depth: u32) -> GrowParams {
     GrowParams {
@@ -862,7 +862,7 @@ fn model_file_round_trips_floats_exactly() {
     let detected = |m: &Model| -> u64 {
         frames
             .iter()
-            .map(|f| evaluate::detect(&m.tree, m.threshold, &f.frame).count_set())
+            .map(|f| walker::detect(&m.tree, m.threshold, &f.frame).count_set())
             .sum()
     };
     assert_eq!(detected(&a), detected(&back), "detections change on reload");

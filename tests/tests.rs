@@ -6,8 +6,8 @@
 //!   specification, the `image` crate's decoder and `imageproc`;
 //! - `properties`: property tests of the invariants;
 //! - `compiled`: the compiled evaluator against the walker, bit for bit;
-//! - `cli`: the `treeline` binary end to end on temporary folders;
-//! - `daemon`: `treeline run` end to end: bursts, slow writers, bad files,
+//! - `cli`: the `burlwatch` binary end to end on temporary folders;
+//! - `daemon`: `burlwatch run` end to end: bursts, slow writers, bad files,
 //!   kills, signals, lost events.
 
 mod util;

@@ -12,7 +12,7 @@ impl Dir {
     pub fn new() -> Dir {
         Dir {
             inner: tempfile::Builder::new()
-                .prefix("treeline-test-")
+                .prefix("burlwatch-test-")
                 .tempdir()
                 .expect("temporary folder"),
         }
@@ -53,14 +53,14 @@ impl From<Output> for Run {
     }
 }
 
-/// Runs `treeline` with arguments, in `cwd`.
-pub fn treeline(cwd: &Path, args: &[&str]) -> Run {
-    Command::new(env!("CARGO_BIN_EXE_treeline"))
+/// Runs `burlwatch` with arguments, in `cwd`.
+pub fn burlwatch(cwd: &Path, args: &[&str]) -> Run {
+    Command::new(env!("CARGO_BIN_EXE_burlwatch"))
         .args(args)
         .current_dir(cwd)
         .env_remove("RUST_LOG")
         .output()
-        .expect("run treeline")
+        .expect("run burlwatch")
         .into()
 }
 

@@ -1,4 +1,4 @@
-//! `treeline bench`: how fast this box runs a model, so a user can tell
+//! `burlwatch bench`: how fast this box runs a model, so a user can tell
 //! whether it keeps up with a camera.
 //!
 //! On one thread, over a seeded loom frame of the requested size (or a
@@ -13,13 +13,14 @@ use std::time::Instant;
 use anyhow::{bail, Context, Result};
 use serde::Serialize;
 
-use treeline::codec::{self, DecodeLimits};
-use treeline::compile::{self, Backend, Program, Scratch};
-use treeline::detector::Detector;
-use treeline::evaluate::{self, Settings};
-use treeline::frame::BitFrame;
-use treeline::group;
-use treeline::synth::{self, LoomParams};
+use burlwatch::codec::{self, DecodeLimits};
+use burlwatch::detect::compile::{self, Backend, Program, Scratch};
+use burlwatch::detect::group;
+use burlwatch::detect::walker;
+use burlwatch::detect::Detector;
+use burlwatch::detect::Settings;
+use burlwatch::frame::BitFrame;
+use burlwatch::synth::{self, LoomParams};
 
 #[derive(clap::Args, Debug)]
 pub struct BenchArgs {
@@ -128,7 +129,7 @@ fn parse_size(s: &str) -> Result<(usize, usize)> {
 pub fn bench(a: BenchArgs) -> Result<i32> {
     let m = super::load_model(&a.model)?;
     let frame: BitFrame = match &a.frame {
-        Some(p) => treeline::data::read_frame(p, &DecodeLimits::default())
+        Some(p) => burlwatch::fileio::data::read_frame(p, &DecodeLimits::default())
             .map_err(|e| anyhow::anyhow!("{e}"))?,
         None => {
             let (width, height) = parse_size(&a.size)?;
@@ -157,7 +158,7 @@ pub fn bench(a: BenchArgs) -> Result<i32> {
     let walker_runs = a.runs.clamp(1, 3);
     let mut walked = BitFrame::new(0, 0);
     let walker = time(walker_runs, || {
-        walked = evaluate::detect(&m.tree, m.threshold, &frame)
+        walked = walker::detect(&m.tree, m.threshold, &frame)
     });
     if walked != out {
         bail!("internal error: the compiled and reference evaluators disagree on this frame");

@@ -1,4 +1,4 @@
-//! `treeline run`, `treeline check` and `treeline demo`: the daemon's
+//! `burlwatch run`, `burlwatch check` and `burlwatch demo`: the daemon's
 //! command-line glue. Signals become [`Control`] messages, statuses become
 //! systemd notifications, and `tracing` writes the daemon's own messages to
 //! stderr (which journald keeps).
@@ -14,9 +14,9 @@ use anyhow::{Context, Result};
 use crossbeam_channel::unbounded;
 use serde::Serialize;
 
-use treeline::config::{self, Config};
-use treeline::daemon::{self, detlog, files, Control};
-use treeline::record::FrameRecord;
+use burlwatch::config::{self, Config};
+use burlwatch::daemon::{self, detlog, files, Control};
+use burlwatch::record::FrameRecord;
 
 use super::notify::Notifier;
 
@@ -71,7 +71,7 @@ fn init_tracing(level: &str) {
         .try_init();
 }
 
-/// `treeline run`: the daemon, until SIGTERM or SIGINT.
+/// `burlwatch run`: the daemon, until SIGTERM or SIGINT.
 pub fn run(a: RunArgs) -> Result<i32> {
     let cfg = load(&a.config)?;
     init_tracing(&cfg.log.level);
@@ -84,7 +84,7 @@ pub fn run(a: RunArgs) -> Result<i32> {
     .context("cannot install signal handlers")?;
     let path = a.config.clone();
     thread::Builder::new()
-        .name("treeline-signals".into())
+        .name("burlwatch-signals".into())
         .spawn(move || {
             for sig in signals.forever() {
                 let msg = if sig == signal_hook::consts::SIGHUP {
@@ -115,7 +115,7 @@ struct Finding {
     detail: String,
 }
 
-/// `treeline check`: the configuration, its folders and its model, with
+/// `burlwatch check`: the configuration, its folders and its model, with
 /// nothing started. Exit 0 when everything is usable, 1 otherwise.
 pub fn check(a: CheckArgs) -> Result<i32> {
     let mut found: Vec<Finding> = Vec::new();
@@ -205,7 +205,7 @@ pub fn check(a: CheckArgs) -> Result<i32> {
                         model_path.display()
                     ),
                 ),
-                Some(seed) => match treeline::data::list_pairs(seed) {
+                Some(seed) => match burlwatch::fileio::data::list_pairs(seed) {
                     Ok((pairs, problems)) if !pairs.is_empty() && problems.is_empty() => note(
                         "model",
                         true,
@@ -269,20 +269,20 @@ pub fn check(a: CheckArgs) -> Result<i32> {
     Ok(if ok { 0 } else { 1 })
 }
 
-/// `treeline demo`: the real daemon on a temporary folder, fed the demo
+/// `burlwatch demo`: the real daemon on a temporary folder, fed the demo
 /// frames at a steady pace.
 pub fn demo(a: DemoArgs) -> Result<i32> {
     init_tracing("warn");
     let root = match &a.keep {
         Some(p) => p.clone(),
-        None => std::env::temp_dir().join(format!("treeline-demo-{}", std::process::id())),
+        None => std::env::temp_dir().join(format!("burlwatch-demo-{}", std::process::id())),
     };
     let mut names: Vec<PathBuf> = std::fs::read_dir(&a.frames)
         .with_context(|| format!("cannot read {}", a.frames.display()))?
         .filter_map(|e| e.ok().map(|e| e.path()))
         .filter(|p| {
             p.file_name().and_then(|n| n.to_str()).is_some_and(|n| {
-                !n.ends_with(treeline::data::MASK_SUFFIX)
+                !n.ends_with(burlwatch::fileio::data::MASK_SUFFIX)
                     && (n.ends_with(".pbm") || n.ends_with(".png"))
             })
         })
@@ -300,9 +300,9 @@ pub fn demo(a: DemoArgs) -> Result<i32> {
         root.join("state"), root.join("logs"), a.seed_data
     );
     std::fs::create_dir_all(&root)?;
-    std::fs::write(root.join("treeline.toml"), &text)?;
+    std::fs::write(root.join("burlwatch.toml"), &text)?;
     let cfg = config::from_str(&text).map_err(|e| anyhow::anyhow!("{e}"))?;
-    out!("treeline demo in {}", root.display());
+    out!("burlwatch demo in {}", root.display());
     out!(
         "training the demo model from {} (a few seconds)...",
         a.seed_data.display()

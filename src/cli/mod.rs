@@ -7,7 +7,7 @@
 //! files were bad (each named on stderr).
 
 /// `println!` that ends the program quietly when stdout is closed early
-/// (`treeline rules ... | head`) and reports other write errors.
+/// (`burlwatch rules ... | head`) and reports other write errors.
 macro_rules! out {
     ($($t:tt)*) => {{
         use std::io::Write as _;
@@ -32,24 +32,25 @@ use anyhow::{bail, Context, Result};
 use clap::{Parser, Subcommand};
 use serde::Serialize;
 
-use treeline::codec::DecodeLimits;
-use treeline::compile::{self, Program, Scratch};
-use treeline::config::{self, Config};
-use treeline::detector::Detector;
-use treeline::evaluate::Settings;
-use treeline::group::GroupParams;
-use treeline::learn::{self, ClassWeight, Criterion, Stage, TrainParams};
-use treeline::model::{Model, Node};
-use treeline::score::{self, Confusion, Scores};
-use treeline::synth::{self, LoomParams};
-use treeline::window::Window;
-use treeline::{data, model};
+use burlwatch::codec::DecodeLimits;
+use burlwatch::config::{self, Config};
+use burlwatch::detect::compile::{self, Program, Scratch};
+use burlwatch::detect::group::GroupParams;
+use burlwatch::detect::Detector;
+use burlwatch::detect::Settings;
+use burlwatch::fileio::data;
+use burlwatch::learn::{self, ClassWeight, Criterion, Stage, TrainParams};
+use burlwatch::model;
+use burlwatch::model::{Model, Node};
+use burlwatch::score::{self, Confusion, Scores};
+use burlwatch::synth::{self, LoomParams};
+use burlwatch::window::Window;
 
 use progress::Progress;
 
 #[derive(Parser, Debug)]
 #[command(
-    name = "treeline",
+    name = "burlwatch",
     version,
     about = "Finds defects in binarized camera frames with a compiled decision tree over pixel neighbourhoods."
 )]
@@ -335,9 +336,9 @@ fn read_data(dir: &Path, limits: &DecodeLimits, skip_bad: bool) -> Result<(data:
     let bad = folder.problems.len();
     for p in &folder.problems {
         if skip_bad {
-            eprintln!("treeline: warning: skipped {p}");
+            eprintln!("burlwatch: warning: skipped {p}");
         } else {
-            eprintln!("treeline: error: {p}");
+            eprintln!("burlwatch: error: {p}");
         }
     }
     if bad > 0 && !skip_bad {
@@ -446,7 +447,7 @@ fn train(a: TrainArgs) -> Result<i32> {
             )
         };
         eprintln!(
-            "treeline: warning: {why}; the tree is unpruned and uses threshold {}, min_area {}, \
+            "burlwatch: warning: {why}; the tree is unpruned and uses threshold {}, min_area {}, \
              merge_distance {} instead of settings chosen on held-out frames",
             m.threshold, m.grouping.min_area, m.grouping.merge_distance
         );
@@ -544,7 +545,7 @@ fn scan(a: ScanArgs) -> Result<i32> {
         let bytes = match data::read_bounded(path, &limits) {
             Ok(b) => b,
             Err(e) => {
-                eprintln!("treeline: error: {e}");
+                eprintln!("burlwatch: error: {e}");
                 failed += 1;
                 continue;
             }
@@ -556,7 +557,7 @@ fn scan(a: ScanArgs) -> Result<i32> {
         let rec = match detector.process(&name, &bytes, &limits, &mut scratch, &mut clock) {
             Ok(d) => d.record,
             Err(e) => {
-                eprintln!("treeline: error: {}", e.with_path(path));
+                eprintln!("burlwatch: error: {}", e.with_path(path));
                 failed += 1;
                 continue;
             }
@@ -590,7 +591,7 @@ fn scan(a: ScanArgs) -> Result<i32> {
     }
     if failed > 0 {
         eprintln!(
-            "treeline: {failed} of {} frame(s) could not be read",
+            "burlwatch: {failed} of {} frame(s) could not be read",
             a.frames.len()
         );
         return Ok(if failed == a.frames.len() { 1 } else { 2 });
@@ -656,7 +657,7 @@ fn eval(a: EvalArgs) -> Result<i32> {
         .iter()
         .find(|f| f.frame.width() == 0 || f.frame.height() == 0)
     {
-        eprintln!("treeline: note: frame {} is empty", f.name);
+        eprintln!("burlwatch: note: frame {} is empty", f.name);
     }
     let mut total = Scores::default();
     let mut per_frame = Vec::new();
@@ -846,7 +847,7 @@ fn rules(a: RulesArgs) -> Result<i32> {
             .map(|c| {
                 format!(
                     "{} is {}",
-                    treeline::window::Offset { dx: c.dx, dy: c.dy },
+                    burlwatch::window::Offset { dx: c.dx, dy: c.dy },
                     if c.set { "set" } else { "clear" }
                 )
             })
@@ -902,10 +903,10 @@ fn generate(a: GenerateArgs) -> Result<i32> {
         let name = format!("loom-{}-{:04}", a.preset, i);
         if a.png {
             let p = a.out.join(format!("{name}.png"));
-            std::fs::write(&p, treeline::codec::encode_png(&f.frame)?)
+            std::fs::write(&p, burlwatch::codec::encode_png(&f.frame)?)
                 .with_context(|| format!("cannot write {}", p.display()))?;
             let mp = a.out.join(format!("{name}{}", data::MASK_SUFFIX));
-            std::fs::write(&mp, treeline::codec::encode_pbm(&f.mask))
+            std::fs::write(&mp, burlwatch::codec::encode_pbm(&f.mask))
                 .with_context(|| format!("cannot write {}", mp.display()))?;
         } else {
             data::write_pair(&a.out, &name, &f.frame, &f.mask)?;

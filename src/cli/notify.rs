@@ -5,7 +5,7 @@
 use std::os::unix::net::UnixDatagram;
 use std::time::{Duration, Instant};
 
-use treeline::daemon::Status;
+use burlwatch::daemon::Status;
 
 pub struct Notifier {
     socket: Option<(UnixDatagram, String)>,

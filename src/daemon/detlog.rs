@@ -19,6 +19,7 @@ use std::io::{self, Read, Seek, SeekFrom, Write};
 use std::path::{Path, PathBuf};
 use std::time::SystemTime;
 
+use crate::fileio::durable::sync_dir;
 use crate::record::FrameRecord;
 
 /// The current log file's name.
@@ -228,11 +229,6 @@ fn read_keys(path: &Path, wanted: &HashSet<String>, keys: &mut HashSet<Key>) -> 
             }
         }
     }
-}
-
-/// Syncs a folder, so a file created or renamed in it survives a crash.
-pub fn sync_dir(dir: &Path) -> io::Result<()> {
-    File::open(dir)?.sync_all()
 }
 
 #[cfg(test)]

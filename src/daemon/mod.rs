@@ -47,12 +47,12 @@ use notify::{EventKind, RecursiveMode, Watcher};
 use tracing::{debug, error, info, warn};
 
 use crate::codec::DecodeLimits;
-use crate::compile::Scratch;
 use crate::config::{Config, SyncPolicy};
-use crate::detector::Detector;
+use crate::detect::compile::Scratch;
+use crate::detect::group::GroupParams;
+use crate::detect::Detector;
+use crate::detect::Settings;
 use crate::error::{Error, ErrorKind, Result};
-use crate::evaluate::Settings;
-use crate::group::GroupParams;
 use crate::learn;
 use crate::model::{self, Model};
 use crate::record::FrameRecord;
@@ -144,7 +144,7 @@ pub fn load_or_train(cfg: &Config) -> Result<Model> {
         )))
     })?;
     info!(seed = %seed.display(), "no model yet: training one from the seed data");
-    let folder = crate::data::read_folder(seed, &cfg.limits, &mut |_, _| {})?;
+    let folder = crate::fileio::data::read_folder(seed, &cfg.limits, &mut |_, _| {})?;
     if let Some(p) = folder.problems.first() {
         return Err(Error::new(ErrorKind::Data(format!(
             "seed data has {} bad file(s), first: {p}",
@@ -317,7 +317,7 @@ pub fn run(
         let (rx, tx, det) = (work_rx.clone(), res_tx.clone(), detector.clone());
         handles.push(
             thread::Builder::new()
-                .name(format!("treeline-worker-{k}"))
+                .name(format!("burlwatch-worker-{k}"))
                 .spawn(move || worker(rx, tx, det))
                 .map_err(Error::from)?,
         );
@@ -326,7 +326,7 @@ pub fn run(
     let writer = {
         let (folders, policy) = (cfg.folders.clone(), cfg.log.sync);
         thread::Builder::new()
-            .name("treeline-writer".into())
+            .name("burlwatch-writer".into())
             .spawn(move || write_loop(res_rx, flush_rx, done_tx, log, logged, policy, folders))
             .map_err(Error::from)?
     };
@@ -687,7 +687,7 @@ fn worker(jobs: Receiver<Job>, results: Sender<(Job, Outcome)>, running: Arc<Arc
                 }
                 _ => Outcome::Reject(e.to_string(), stamp),
             },
-            Ok((bytes, stamp)) => {
+            Ok(files::FileBytes { bytes, stamp }) => {
                 let det = &run.detector;
                 let limits = &run.limits;
                 // A bug in detection must cost one frame, not the daemon:

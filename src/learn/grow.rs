@@ -17,7 +17,7 @@
 //! parent; growth uses an explicit stack, never recursion.
 
 use super::criterion::{self, Criterion};
-use crate::store::Counts;
+use crate::learn::store::Counts;
 
 /// Parameters of growth.
 #[derive(Clone, Copy, Debug, PartialEq)]

@@ -6,7 +6,7 @@
 //!    deterministically by frame content hash (sorted by hash, the first
 //!    `holdout` share held out): the same frames always split the same way,
 //!    whatever their names or order.
-//! 2. **Label store** of the growing set ([`crate::store`]): linear in
+//! 2. **Label store** of the growing set ([`crate::learn::store`]): linear in
 //!    pixels, one hash-map update per pixel.
 //! 3. **Grow** ([`grow`]): greedy top-down induction over the store's
 //!    entries; a split search is O(features) once the per-feature counts are
@@ -26,19 +26,18 @@
 pub mod criterion;
 pub mod grow;
 pub mod prune;
+pub mod store;
 pub mod tune;
-
-use sha2::{Digest, Sha256};
 
 pub use criterion::Criterion;
 
+use crate::detect::group::GroupParams;
+use crate::detect::walker;
 use crate::error::{Error, Result};
-use crate::evaluate;
-use crate::frame::BitFrame;
-use crate::group::GroupParams;
+pub use crate::frame::LabelledFrame;
+use crate::learn::store::LabelStore;
 use crate::model::{DataSummary, HoldoutMetrics, Leaf, Model, Node, Reference, TrainingInfo, Tree};
 use crate::score;
-use crate::store::LabelStore;
 use crate::window::Window;
 
 use grow::{GrowParams, GrownTree};
@@ -166,38 +165,14 @@ impl TrainParams {
         }
         if self
             .merge_distance
-            .is_some_and(|m| m > crate::group::MAX_MERGE_DISTANCE)
+            .is_some_and(|m| m > crate::detect::group::MAX_MERGE_DISTANCE)
         {
             return Err(Error::training(format!(
                 "merge_distance must be at most {}",
-                crate::group::MAX_MERGE_DISTANCE
+                crate::detect::group::MAX_MERGE_DISTANCE
             )));
         }
         Ok(())
-    }
-}
-
-/// A frame with its target mask.
-#[derive(Clone, Debug)]
-pub struct LabelledFrame {
-    pub name: String,
-    pub frame: BitFrame,
-    pub mask: BitFrame,
-}
-
-impl LabelledFrame {
-    /// SHA-256 of the frame's and mask's pixels (with their sizes): the key
-    /// of the holdout split.
-    pub fn content_hash(&self) -> [u8; 32] {
-        let mut h = Sha256::new();
-        for f in [&self.frame, &self.mask] {
-            h.update((f.width() as u64).to_le_bytes());
-            h.update((f.height() as u64).to_le_bytes());
-            for w in f.words() {
-                h.update(w.to_le_bytes());
-            }
-        }
-        h.finalize().into()
     }
 }
 
@@ -432,7 +407,7 @@ pub fn train(
         let f = &frames[i];
         set_pixels += f.frame.count_set();
         pixels += f.frame.len() as u64;
-        detected += evaluate::detect(&tree, threshold, &f.frame).count_set();
+        detected += walker::detect(&tree, threshold, &f.frame).count_set();
         objects += score::truth_objects(&f.mask).len() as u64;
     }
     let share = |a: u64, b: u64| if b == 0 { 0.0 } else { a as f64 / b as f64 };
@@ -489,6 +464,7 @@ pub fn train(
 #[cfg(test)]
 mod tests {
     use super::*;
+    use crate::frame::BitFrame;
 
     fn lf(name: &str, targets: bool, seed: usize) -> LabelledFrame {
         LabelledFrame {

@@ -169,7 +169,7 @@ impl Pruning {
 mod tests {
     use super::super::grow::{grow, GrowParams};
     use super::*;
-    use crate::store::Counts;
+    use crate::learn::store::Counts;
 
     #[test]
     fn sequence_ends_at_root_and_shrinks() {

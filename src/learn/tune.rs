@@ -13,8 +13,8 @@
 //! then the smaller tree, then the earlier candidate (smaller merge
 //! distance, smaller minimum area, higher threshold).
 
+use crate::detect::group::{self, GroupParams, Object};
 use crate::frame::BitFrame;
-use crate::group::{self, GroupParams, Object};
 use crate::score::{self, Confusion};
 use crate::window::{self, Window};
 

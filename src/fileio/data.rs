@@ -16,8 +16,7 @@ use std::path::{Path, PathBuf};
 
 use crate::codec::{self, DecodeLimits};
 use crate::error::{Error, ErrorKind, Result};
-use crate::frame::BitFrame;
-use crate::learn::LabelledFrame;
+use crate::frame::{BitFrame, LabelledFrame};
 
 /// Suffix of mask files.
 pub const MASK_SUFFIX: &str = ".mask.pbm";
@@ -49,25 +48,16 @@ pub fn read_mask(path: &Path, limits: &DecodeLimits) -> Result<BitFrame> {
     }
 }
 
-/// Reads a whole file, refusing files over [`max_file_bytes`].
+/// Reads a whole file, refusing empty files and files over
+/// [`max_file_bytes`] (counted as read, so a growing file is bounded too).
 pub fn read_bounded(path: &Path, limits: &DecodeLimits) -> Result<Vec<u8>> {
-    let io = |e: std::io::Error| Error::from(e).with_path(path);
-    let meta = fs::metadata(path).map_err(io)?;
-    let max = max_file_bytes(limits);
-    if meta.len() > max {
-        return Err(Error::new(ErrorKind::Data(format!(
-            "file is {} bytes, over the {} bytes a frame of at most {}x{} can need",
-            meta.len(),
-            max,
-            limits.max_width,
-            limits.max_height
-        )))
-        .with_path(path));
-    }
-    if meta.len() == 0 {
-        return Err(Error::new(ErrorKind::Data("file is empty".into())).with_path(path));
-    }
-    fs::read(path).map_err(io)
+    let what = format!(
+        "a frame of at most {}x{}",
+        limits.max_width, limits.max_height
+    );
+    super::durable::read_bounded(path, max_file_bytes(limits), &what)
+        .map(|f| f.bytes)
+        .map_err(|(e, _)| e)
 }
 
 /// What kind of file a name denotes in a data folder.

@@ -8,7 +8,7 @@
 //! shared subtrees) and let any pass run as a plain loop over indices,
 //! never as recursion.
 //!
-//! The model file is JSON (`format = "treeline-model"`, `format_version`
+//! The model file is JSON (`format = "burlwatch-model"`, `format_version`
 //! 1). Its serde structs ([`json`]) are kept apart from the domain types
 //! so the file can stay stable while the code changes; loading validates
 //! every field and turns any inconsistency into an error naming it. A
@@ -18,8 +18,8 @@
 
 use serde::{Deserialize, Serialize};
 
+use crate::detect::group::{GroupParams, MAX_MERGE_DISTANCE};
 use crate::error::{Error, Result};
-use crate::group::{GroupParams, MAX_MERGE_DISTANCE};
 use crate::score::Prf;
 use crate::window::{Offset, Window};
 
@@ -166,6 +166,11 @@ impl Tree {
     #[inline]
     pub fn score(&self, pattern: u128) -> f64 {
         self.leaf(self.leaf_of(pattern)).score
+    }
+
+    /// Score of the pixel at `(x, y)` of `frame` (one walk from the root).
+    pub fn score_at(&self, frame: &crate::frame::BitFrame, x: usize, y: usize) -> f64 {
+        self.score(self.window.pattern_of(frame, x, y))
     }
 
     pub fn leaves(&self) -> usize {
@@ -349,8 +354,8 @@ pub fn validate_settings(threshold: f64, grouping: GroupParams) -> Result<()> {
 pub mod json {
     use super::*;
 
-    pub const FORMAT: &str = "treeline-model";
-    pub const FORMAT_VERSION: u32 = 1;
+    pub const FORMAT: &str = "burlwatch-model";
+    pub const FORMAT_VERSION: u32 = 2;
     /// The split criteria a model may name.
     pub const CRITERIA: [&str; 3] = ["gini", "entropy", "gain-ratio"];
     const MAX_RADIUS: u8 = crate::window::MAX_SIZE / 2;
@@ -643,7 +648,7 @@ mod tests {
     /// The committed model with one edit applied to its JSON value.
     fn edited(f: impl FnOnce(&mut serde_json::Value)) -> String {
         let mut v: serde_json::Value =
-            serde_json::from_str(include_str!("../tests/data/model-v1.json")).unwrap();
+            serde_json::from_str(include_str!("../../tests/data/model-v2.json")).unwrap();
         f(&mut v);
         v.to_string()
     }
@@ -677,20 +682,20 @@ mod tests {
                 "training.criterion",
             ),
             (
-                edited(|v| v["format_version"] = 2.into()),
-                "format_version 2 is not known",
+                edited(|v| v["format_version"] = 3.into()),
+                "format_version 3 is not known",
             ),
             (
                 edited(|v| {
-                    v["format_version"] = 2.into();
+                    v["format_version"] = 3.into();
                     v["new_thing"] = 1.into();
                     v.as_object_mut().unwrap().remove("reference");
                 }),
-                "format_version 2 is not known",
+                "format_version 3 is not known",
             ),
             (
                 edited(|v| v["format"] = "other".into()),
-                "expected \"treeline-model\"",
+                "expected \"burlwatch-model\"",
             ),
             (
                 edited(|v| v["nodes"][0]["if_clear"] = (-1).into()),

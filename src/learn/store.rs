@@ -10,9 +10,9 @@
 //! Invariants: every entry has a non-zero total; no pattern uses bits past
 //! the window's feature count; the totals equal the sum of the entries.
 //!
-//! File format (little-endian), version 1:
+//! File format (little-endian), version 2:
 //! ```text
-//! magic    8 bytes  "TLSTORE\0"
+//! magic    8 bytes  "BWSTORE\0"
 //! version  u32      1
 //! window   u8       odd, 3..=11
 //! reserved 3 bytes  zero
@@ -32,8 +32,8 @@ use crate::error::{Error, Result};
 use crate::frame::BitFrame;
 use crate::window::{self, Window};
 
-const MAGIC: &[u8; 8] = b"TLSTORE\0";
-const VERSION: u32 = 1;
+const MAGIC: &[u8; 8] = b"BWSTORE\0";
+const VERSION: u32 = 2;
 const HEADER_LEN: usize = 8 + 4 + 4 + 8 * 4;
 const ENTRY_LEN: usize = 32;
 
@@ -197,7 +197,7 @@ impl LabelStore {
     pub fn from_bytes(bytes: &[u8]) -> Result<LabelStore> {
         if bytes.len() < HEADER_LEN + 4 || &bytes[..8] != MAGIC {
             return Err(Error::bad_store(
-                "not a treeline label store (bad magic or too short)",
+                "not a burlwatch label store (bad magic or too short)",
             ));
         }
         let u32_at = |i: usize| u32::from_le_bytes(bytes[i..i + 4].try_into().unwrap());

@@ -60,7 +60,7 @@
 //!
 //! This module depends on the frozen [`Tree`] only, never on the learner.
 
-use crate::evaluate::{FrameResult, Settings};
+use crate::detect::{FrameResult, Settings};
 use crate::frame::BitFrame;
 use crate::model::{Node, Tree};
 use crate::window::Window;
@@ -1184,13 +1184,13 @@ pub fn run(
     scratch: &mut Scratch,
 ) -> FrameResult {
     let raw = program.detect(frame, scratch);
-    crate::evaluate::finish(tree, settings, frame, raw)
+    crate::detect::finish(tree, settings, frame, raw)
 }
 
 #[cfg(test)]
 mod tests {
     use super::*;
-    use crate::evaluate;
+    use crate::detect::walker;
     use crate::model::Leaf;
     use crate::window::Offset;
 
@@ -1251,7 +1251,7 @@ mod tests {
             for b in [Backend::Portable, Backend::detect()] {
                 assert_eq!(
                     p.detect_with(b, &frame, &mut s),
-                    evaluate::detect(&tree, 0.5, &frame),
+                    walker::detect(&tree, 0.5, &frame),
                     "{plan:?} {b:?}"
                 );
             }
@@ -1347,7 +1347,7 @@ mod tests {
         for b in [Backend::Portable, Backend::detect()] {
             assert_eq!(
                 p.detect_with(b, &frame, &mut s),
-                evaluate::detect(tree, 0.5, &frame),
+                walker::detect(tree, 0.5, &frame),
                 "{b:?}"
             );
             reached.push(s.reach());
@@ -1393,7 +1393,7 @@ mod tests {
                 for b in [Backend::Portable, Backend::detect()] {
                     assert_eq!(
                         p.detect_with(b, &frame, &mut s),
-                        evaluate::detect(&tree, thr, &frame),
+                        walker::detect(&tree, thr, &frame),
                         "threshold {thr}, {plan:?}, {b:?}"
                     );
                 }

@@ -1,4 +1,4 @@
-//! Evaluating a model on frames: the per-pixel reference walker.
+//! The per-pixel reference walker.
 //!
 //! For every pixel the window pattern is assembled and the tree walked from
 //! the root to a leaf; the pixel is a detection when the leaf's score
@@ -9,36 +9,10 @@
 //! Scores of detected pixels are recomputed on demand ([`score_at`]):
 //! detections are rare, so the walker never stores a per-pixel score map.
 
+use crate::detect::{finish, FrameResult, Settings};
 use crate::frame::BitFrame;
-use crate::group::{self, GroupParams, Object};
-use crate::model::{Model, Tree};
+use crate::model::Tree;
 use crate::window;
-
-/// The settings that turn scores into objects.
-#[derive(Clone, Copy, Debug, PartialEq)]
-pub struct Settings {
-    pub threshold: f64,
-    pub grouping: GroupParams,
-}
-
-impl Settings {
-    /// The settings stored in a model.
-    pub fn of(model: &Model) -> Settings {
-        Settings {
-            threshold: model.threshold,
-            grouping: model.grouping,
-        }
-    }
-}
-
-/// What detection found in one frame.
-#[derive(Clone, Debug)]
-pub struct FrameResult {
-    /// The detected pixels: score at or above the threshold and part of an
-    /// object that `min_area` kept.
-    pub mask: BitFrame,
-    pub objects: Vec<Object>,
-}
 
 /// The detection mask: pixels whose score is at least `threshold`.
 pub fn detect(tree: &Tree, threshold: f64, frame: &BitFrame) -> BitFrame {
@@ -62,22 +36,13 @@ pub fn detect(tree: &Tree, threshold: f64, frame: &BitFrame) -> BitFrame {
 
 /// Score of the pixel at `(x, y)`.
 pub fn score_at(tree: &Tree, frame: &BitFrame, x: usize, y: usize) -> f64 {
-    tree.score(tree.window().pattern_of(frame, x, y))
+    tree.score_at(frame, x, y)
 }
 
 /// Detection and grouping of one frame.
 pub fn run(tree: &Tree, settings: &Settings, frame: &BitFrame) -> FrameResult {
     let raw = detect(tree, settings.threshold, frame);
     finish(tree, settings, frame, raw)
-}
-
-/// Groups a raw detection mask (from any evaluator) into the frame's
-/// result: objects scored by the walker on the detected pixels only, and
-/// the mask of the pixels of the objects `min_area` kept.
-pub fn finish(tree: &Tree, settings: &Settings, frame: &BitFrame, raw: BitFrame) -> FrameResult {
-    let (objects, mask) =
-        group::group_and_keep(&raw, settings.grouping, |x, y| score_at(tree, frame, x, y));
-    FrameResult { mask, objects }
 }
 
 #[cfg(test)]

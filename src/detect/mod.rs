@@ -1,5 +1,5 @@
 //! One frame from bytes to its record: the step every frame takes, whoever
-//! calls it (the daemon's workers, `treeline scan`, `treeline bench`).
+//! calls it (the daemon's workers, `burlwatch scan`, `burlwatch bench`).
 //!
 //! A [`Detector`] is a model with its compiled program and the settings in
 //! force. It is immutable and shared behind an `Arc`: swapping the running
@@ -7,12 +7,43 @@
 //! frames in flight finish with the one they started with. Each caller
 //! brings its own [`Scratch`] and clock; nothing here reads files or time.
 
+pub mod compile;
+pub mod group;
+pub mod walker;
+
 use crate::codec::{self, DecodeLimits};
-use crate::compile::{self, Program, Scratch};
 use crate::error::Result;
-use crate::evaluate::{FrameResult, Settings};
-use crate::model::Model;
+use crate::frame::BitFrame;
+use crate::model::{Model, Tree};
 use crate::record::FrameRecord;
+use compile::{Program, Scratch};
+use group::{GroupParams, Object};
+
+/// The settings that turn scores into objects.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct Settings {
+    pub threshold: f64,
+    pub grouping: GroupParams,
+}
+
+impl Settings {
+    /// The settings stored in a model.
+    pub fn of(model: &Model) -> Settings {
+        Settings {
+            threshold: model.threshold,
+            grouping: model.grouping,
+        }
+    }
+}
+
+/// What detection found in one frame.
+#[derive(Clone, Debug)]
+pub struct FrameResult {
+    /// The detected pixels: score at or above the threshold and part of an
+    /// object that `min_area` kept.
+    pub mask: BitFrame,
+    pub objects: Vec<Object>,
+}
 
 /// A model ready to detect: the tree, its compiled program and settings.
 #[derive(Debug)]
@@ -80,4 +111,13 @@ impl Detector {
         );
         Ok(Detection { record, result })
     }
+}
+
+/// Groups a raw detection mask (from any evaluator) into the frame's
+/// result: objects scored by the walker on the detected pixels only, and
+/// the mask of the pixels of the objects `min_area` kept.
+pub fn finish(tree: &Tree, settings: &Settings, frame: &BitFrame, raw: BitFrame) -> FrameResult {
+    let (objects, mask) =
+        group::group_and_keep(&raw, settings.grouping, |x, y| tree.score_at(frame, x, y));
+    FrameResult { mask, objects }
 }

@@ -1,0 +1,253 @@
+//! Durable file operations: what the library and the daemon write must
+//! survive a crash whole or not at all, and what they read must be bounded.
+//!
+//! - [`write_atomic`]: a synced temporary sibling renamed over the target,
+//!   then the folder synced. A reader sees the old file or the new one.
+//! - [`move_into`]: moves a file into a folder under a free name, never
+//!   overwriting; across filesystems it copies, syncs, then removes.
+//! - [`read_bounded`]: reads a file through one open handle, refusing more
+//!   than a given number of bytes even while the file grows, and returns
+//!   the [`Stamp`] of the version it read.
+//!
+//! Nothing here knows what the files mean.
+
+use std::fs::{self, File, Metadata};
+use std::io::{self, Read, Write};
+use std::os::unix::fs::MetadataExt;
+use std::path::{Path, PathBuf};
+
+use crate::error::{Error, ErrorKind};
+
+/// One version of a file: its device, inode, size and time stamp. The
+/// daemon moves a frame only if it is still the version that was read, so
+/// a file replaced or rewritten under the same name meanwhile is read
+/// again rather than archived without its own record.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct Stamp {
+    dev: u64,
+    ino: u64,
+    len: u64,
+    mtime: (i64, i64),
+}
+
+impl Stamp {
+    pub fn of(m: &Metadata) -> Stamp {
+        Stamp {
+            dev: m.dev(),
+            ino: m.ino(),
+            len: m.len(),
+            mtime: (m.mtime(), m.mtime_nsec()),
+        }
+    }
+
+    /// The stamp of the file at `path` now (not following links).
+    pub fn now(path: &Path) -> io::Result<Stamp> {
+        fs::symlink_metadata(path).map(|m| Stamp::of(&m))
+    }
+}
+
+/// A file's bytes and the stamp of the version they came from.
+#[derive(Debug)]
+pub struct FileBytes {
+    pub bytes: Vec<u8>,
+    pub stamp: Stamp,
+}
+
+/// A failed [`read_bounded`]: the error (naming the file), with the stamp
+/// whenever the file could be opened, so an empty file that is filled
+/// later shows as changed.
+pub type ReadFailure = (Error, Option<Stamp>);
+
+/// Reads the file at `path` through one open handle, so its bytes and its
+/// stamp belong to the same file. Refuses empty files and files over
+/// `max` bytes, counting what is read rather than trusting the size seen
+/// at open (the file may grow meanwhile). `what_fits` says in the message
+/// what the limit is for ("a frame of at most 8192x8192").
+pub fn read_bounded(
+    path: &Path,
+    max: u64,
+    what_fits: &str,
+) -> std::result::Result<FileBytes, ReadFailure> {
+    let err = |e: io::Error| Error::from(e).with_path(path);
+    let file = File::open(path).map_err(|e| (err(e), None))?;
+    let meta = file.metadata().map_err(|e| (err(e), None))?;
+    let stamp = Stamp::of(&meta);
+    let fail = |e: Error| (e.with_path(path), Some(stamp));
+    let too_big = |len: u64| {
+        fail(Error::new(ErrorKind::Data(format!(
+            "file is {len} bytes, over the {max} bytes {what_fits} can need"
+        ))))
+    };
+    if meta.is_dir() {
+        return Err(fail(Error::new(ErrorKind::Data(
+            "is a folder, not a file".into(),
+        ))));
+    }
+    if meta.len() > max {
+        return Err(too_big(meta.len()));
+    }
+    let mut bytes = Vec::with_capacity(meta.len() as usize);
+    file.take(max + 1)
+        .read_to_end(&mut bytes)
+        .map_err(|e| fail(Error::from(e)))?;
+    if bytes.len() as u64 > max {
+        return Err(too_big(bytes.len() as u64));
+    }
+    if bytes.is_empty() {
+        return Err(fail(Error::new(ErrorKind::Data("file is empty".into()))));
+    }
+    Ok(FileBytes { bytes, stamp })
+}
+
+/// Writes `bytes` to `path` so that a crash leaves either the old file or
+/// the new one: a synced temporary sibling (`.NAME.tmp`) renamed over it,
+/// then the folder synced. Creates the folder if missing; removes the
+/// temporary file again when the write fails.
+pub fn write_atomic(path: &Path, bytes: &[u8]) -> io::Result<()> {
+    let name = path
+        .file_name()
+        .ok_or_else(|| io::Error::other("not a file path"))?;
+    let dir = match path.parent() {
+        Some(p) if !p.as_os_str().is_empty() => p,
+        _ => Path::new("."),
+    };
+    fs::create_dir_all(dir)?;
+    let tmp = dir.join(format!(".{}.tmp", name.to_string_lossy()));
+    let written = (|| {
+        let mut f = File::create(&tmp)?;
+        f.write_all(bytes)?;
+        f.sync_all()?;
+        fs::rename(&tmp, path)
+    })();
+    if let Err(e) = written {
+        let _ = fs::remove_file(&tmp);
+        return Err(e);
+    }
+    sync_dir(dir)
+}
+
+/// Syncs a folder, so a file created or renamed in it survives a crash.
+pub fn sync_dir(dir: &Path) -> io::Result<()> {
+    File::open(dir)?.sync_all()
+}
+
+/// A free name in `dir` for `name`: `name` itself, else `stem-2.ext`,
+/// `stem-3.ext`, ...
+fn free_name(dir: &Path, name: &str) -> PathBuf {
+    let first = dir.join(name);
+    if fs::symlink_metadata(&first).is_err() {
+        return first;
+    }
+    let (stem, ext) = match name.rsplit_once('.') {
+        Some((s, e)) if !s.is_empty() => (s, format!(".{e}")),
+        _ => (name, String::new()),
+    };
+    (2u64..)
+        .map(|k| dir.join(format!("{stem}-{k}{ext}")))
+        .find(|p| fs::symlink_metadata(p).is_err())
+        .expect("some name is free")
+}
+
+/// Moves `src` into `dir` under a free name and returns where it went.
+/// Across filesystems it copies, syncs, then removes the original, so the
+/// file exists somewhere at every moment.
+pub fn move_into(src: &Path, dir: &Path) -> io::Result<PathBuf> {
+    let name = src
+        .file_name()
+        .and_then(|n| n.to_str())
+        .ok_or_else(|| io::Error::other("file name is not UTF-8"))?;
+    let target = free_name(dir, name);
+    match fs::rename(src, &target) {
+        Ok(()) => Ok(target),
+        Err(e) if e.raw_os_error() == Some(libc::EXDEV) => {
+            fs::copy(src, &target)?;
+            File::open(&target)?.sync_all()?;
+            fs::remove_file(src)?;
+            Ok(target)
+        }
+        Err(e) => Err(e),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn moves_never_overwrite() {
+        let d = tempfile::tempdir().unwrap();
+        let (inbox, archive) = (d.path().join("in"), d.path().join("ar"));
+        fs::create_dir_all(&inbox).unwrap();
+        fs::create_dir_all(&archive).unwrap();
+        for k in 0..3 {
+            fs::write(inbox.join("a.pbm"), format!("{k}")).unwrap();
+            move_into(&inbox.join("a.pbm"), &archive).unwrap();
+        }
+        let mut names: Vec<_> = fs::read_dir(&archive)
+            .unwrap()
+            .map(|e| e.unwrap().file_name().into_string().unwrap())
+            .collect();
+        names.sort();
+        assert_eq!(names, ["a-2.pbm", "a-3.pbm", "a.pbm"]);
+        assert_eq!(fs::read_to_string(archive.join("a.pbm")).unwrap(), "0");
+    }
+
+    #[test]
+    fn stamps_tell_versions_apart() {
+        let d = tempfile::tempdir().unwrap();
+        let p = d.path().join("f.pbm");
+        fs::write(&p, "P1 1 1 0").unwrap();
+        let read = read_bounded(&p, 100, "a frame").unwrap();
+        assert_eq!(read.bytes, b"P1 1 1 0");
+        assert_eq!(Stamp::now(&p).unwrap(), read.stamp);
+        // Replaced by rename under the same name: another inode.
+        fs::write(d.path().join("g"), "P1 1 1 1").unwrap();
+        fs::rename(d.path().join("g"), &p).unwrap();
+        assert_ne!(Stamp::now(&p).unwrap(), read.stamp);
+        // An empty file: an error, but with its stamp, so filling it later
+        // shows as a change.
+        let e_path = d.path().join("e.pbm");
+        fs::write(&e_path, "").unwrap();
+        let (e, stamp) = read_bounded(&e_path, 100, "a frame").unwrap_err();
+        assert!(
+            e.to_string().contains("empty") && e.to_string().contains("e.pbm"),
+            "{e}"
+        );
+        fs::write(&e_path, "P1 1 1 0").unwrap();
+        assert!(stamp.is_some());
+        assert_ne!(Stamp::now(&e_path).ok(), stamp);
+    }
+
+    #[test]
+    fn reads_stop_at_the_bound() {
+        let d = tempfile::tempdir().unwrap();
+        let p = d.path().join("big.pbm");
+        fs::write(&p, vec![b'1'; 101]).unwrap();
+        let (e, _) = read_bounded(&p, 100, "a frame of at most 10x10").unwrap_err();
+        let msg = e.to_string();
+        assert!(
+            msg.contains("big.pbm") && msg.contains("101 bytes") && msg.contains("10x10"),
+            "{msg}"
+        );
+        assert!(read_bounded(d.path(), 100, "a frame").is_err());
+    }
+
+    #[test]
+    fn atomic_writes_replace_whole_files_and_leave_no_temporary() {
+        let d = tempfile::tempdir().unwrap();
+        let p = d.path().join("sub").join("model.json");
+        write_atomic(&p, b"one").unwrap();
+        write_atomic(&p, b"two").unwrap();
+        assert_eq!(fs::read(&p).unwrap(), b"two");
+        let names: Vec<_> = fs::read_dir(p.parent().unwrap())
+            .unwrap()
+            .map(|e| e.unwrap().file_name())
+            .collect();
+        assert_eq!(names, ["model.json"]);
+        // A target that is a folder fails, and the temporary file goes.
+        let dir_target = d.path().join("taken");
+        fs::create_dir_all(dir_target.join("x")).unwrap();
+        assert!(write_atomic(&dir_target, b"x").is_err());
+        assert!(!d.path().join(".taken.tmp").exists());
+    }
+}

@@ -1,0 +1,10 @@
+//! The library's file I/O: labelled data folders ([`data`]) and durable
+//! file operations ([`durable`]: atomic writes, synced folders, moves that
+//! never overwrite, bounded reads).
+//!
+//! Everything else in the library is pure; the daemon's own files (the
+//! lock, the detection log, the inbox) live in [`crate::daemon`] and build
+//! on [`durable`].
+
+pub mod data;
+pub mod durable;
