@@ -22,7 +22,6 @@ use burlwatch::detect::compile::{Backend, Program, Scratch};
 use burlwatch::detect::group::{self, GroupParams};
 use burlwatch::detect::walker;
 use burlwatch::detect::Detector;
-use burlwatch::detect::Settings;
 use burlwatch::frame::BitFrame;
 use burlwatch::learn::{self, TrainParams};
 use burlwatch::model::{Leaf, Node, Tree};
@@ -193,7 +192,7 @@ fn main() {
     .frame;
     let bytes = codec::encode_pbm(&small);
     let limits = DecodeLimits::default();
-    let settings = Settings::of(&model);
+    let settings = model.settings();
     let detector = Detector::new(model, settings);
     let started = Instant::now();
     let mut clock = || {

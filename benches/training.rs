@@ -18,7 +18,6 @@ use std::time::Instant;
 
 use burlwatch::codec::DecodeLimits;
 use burlwatch::detect::walker;
-use burlwatch::detect::Settings;
 use burlwatch::learn::store::LabelStore;
 use burlwatch::learn::{self, LabelledFrame, Stage, TrainParams};
 use burlwatch::model::Model;
@@ -56,7 +55,7 @@ fn median(v: &mut [f64]) -> f64 {
 }
 
 fn score(m: &Model, test: &[LabelledFrame]) -> Scores {
-    let settings = Settings::of(m);
+    let settings = m.settings();
     let mut s = Scores::default();
     for f in test {
         let r = walker::run(&m.tree, &settings, &f.frame);

@@ -57,12 +57,33 @@ pub enum ErrorKind {
     /// Invalid parameters or data for learning.
     #[error("cannot train: {0}")]
     Training(String),
-    /// A data folder that cannot be used.
+    /// A data folder or file that cannot be used.
     #[error("{0}")]
     Data(String),
+    /// A configuration key with a bad value, or a configuration that does
+    /// not parse (`key` is the whole path, such as `log.sync`; empty when
+    /// the text itself is broken).
+    #[error("{}", config_message(key, message))]
+    Config { key: String, message: String },
+    /// Detection settings out of range (threshold, min_area,
+    /// merge_distance), from whichever source set them.
+    #[error("bad detection setting: {0}")]
+    Settings(String),
+    /// The daemon cannot start or go on (another daemon holds the lock, a
+    /// watcher cannot be set up, its threads stopped).
+    #[error("{0}")]
+    Daemon(String),
     /// An operating-system error.
     #[error("{0}")]
     Io(#[from] std::io::Error),
+}
+
+fn config_message(key: &str, message: &str) -> String {
+    if key.is_empty() {
+        format!("invalid configuration: {message}")
+    } else {
+        format!("invalid configuration: {key}: {message}")
+    }
 }
 
 /// An error with the file it concerns, if any.
@@ -103,6 +124,17 @@ impl Error {
 
     pub(crate) fn training(msg: impl Into<String>) -> Error {
         Error::new(ErrorKind::Training(msg.into()))
+    }
+
+    pub(crate) fn config(key: impl Into<String>, message: impl std::fmt::Display) -> Error {
+        Error::new(ErrorKind::Config {
+            key: key.into(),
+            message: message.to_string(),
+        })
+    }
+
+    pub(crate) fn daemon(msg: impl Into<String>) -> Error {
+        Error::new(ErrorKind::Daemon(msg.into()))
     }
 
     pub(crate) fn header(offset: usize, detail: impl Into<String>) -> Error {

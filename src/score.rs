@@ -71,14 +71,7 @@ fn ratio(a: u64, b: u64) -> f64 {
     }
 }
 
-/// Precision, recall and F1.
-#[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
-#[serde(deny_unknown_fields)]
-pub struct Prf {
-    pub precision: f64,
-    pub recall: f64,
-    pub f1: f64,
-}
+pub use crate::model::settings::Prf;
 
 /// Pixel-level confusion of a detection mask against the target mask.
 ///

@@ -349,11 +349,7 @@ fn committed_model_keeps_loading_and_finding_the_same_objects() {
         &burlwatch::codec::DecodeLimits::default(),
     )
     .unwrap();
-    let got = burlwatch::detect::walker::run(
-        &model.tree,
-        &burlwatch::detect::Settings::of(&model),
-        &frame,
-    );
+    let got = burlwatch::detect::walker::run(&model.tree, &model.settings(), &frame);
     let want: Vec<burlwatch::record::ObjectRecord> = serde_json::from_str(
         &std::fs::read_to_string(data.join("golden-0000.objects.json")).unwrap(),
     )

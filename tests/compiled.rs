@@ -7,7 +7,6 @@ use proptest::test_runner::Config as ProptestConfig;
 
 use burlwatch::detect::compile::{self, Backend, Plan, Program, Scratch};
 use burlwatch::detect::walker;
-use burlwatch::detect::Settings;
 use burlwatch::model::{Leaf, Model, Node, Tree};
 use burlwatch::window::Window;
 use burlwatch::BitFrame;
@@ -162,7 +161,7 @@ fn golden_case_through_every_evaluator() {
         &std::fs::read_to_string(data.join("golden-0000.objects.json")).unwrap(),
     )
     .unwrap();
-    let settings = Settings::of(&model);
+    let settings = model.settings();
     let records = |r: &burlwatch::detect::FrameResult| -> Vec<burlwatch::record::ObjectRecord> {
         r.objects
             .iter()

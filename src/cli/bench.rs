@@ -18,7 +18,6 @@ use burlwatch::detect::compile::{self, Backend, Program, Scratch};
 use burlwatch::detect::group;
 use burlwatch::detect::walker;
 use burlwatch::detect::Detector;
-use burlwatch::detect::Settings;
 use burlwatch::frame::BitFrame;
 use burlwatch::synth::{self, LoomParams};
 
@@ -143,7 +142,7 @@ pub fn bench(a: BenchArgs) -> Result<i32> {
     };
     let (w, h) = (frame.width(), frame.height());
     let mpx = (w * h) as f64 / 1e6;
-    let settings = Settings::of(&m);
+    let settings = m.settings();
     let program = Program::compile(&m.tree, m.threshold);
     let backend = Backend::detect();
     let mut scratch = Scratch::default();

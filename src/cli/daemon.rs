@@ -12,10 +12,10 @@ use std::time::{Duration, Instant};
 
 use anyhow::{Context, Result};
 use crossbeam_channel::unbounded;
-use serde::Serialize;
 
 use burlwatch::config::{self, Config};
-use burlwatch::daemon::{self, detlog, files, Control};
+use burlwatch::daemon::checks::Finding;
+use burlwatch::daemon::{self, detlog, Control};
 use burlwatch::record::FrameRecord;
 
 use super::notify::Notifier;
@@ -54,9 +54,7 @@ pub struct DemoArgs {
 }
 
 fn load(path: &Path) -> Result<Config> {
-    let text = std::fs::read_to_string(path)
-        .with_context(|| format!("cannot read configuration {}", path.display()))?;
-    config::from_str(&text).map_err(|e| anyhow::anyhow!("{}", e.with_path(path)))
+    config::load(path).map_err(|e| anyhow::anyhow!("{e}"))
 }
 
 fn init_tracing(level: &str) {
@@ -74,7 +72,7 @@ fn init_tracing(level: &str) {
 /// `burlwatch run`: the daemon, until SIGTERM or SIGINT.
 pub fn run(a: RunArgs) -> Result<i32> {
     let cfg = load(&a.config)?;
-    init_tracing(&cfg.log.level);
+    init_tracing(&cfg.start.log.level);
     let (tx, rx) = unbounded();
     let mut signals = signal_hook::iterator::Signals::new([
         signal_hook::consts::SIGTERM,
@@ -108,139 +106,30 @@ pub fn run(a: RunArgs) -> Result<i32> {
     Ok(0)
 }
 
-#[derive(Serialize)]
-struct Finding {
-    what: String,
-    ok: bool,
-    detail: String,
-}
-
 /// `burlwatch check`: the configuration, its folders and its model, with
 /// nothing started. Exit 0 when everything is usable, 1 otherwise.
 pub fn check(a: CheckArgs) -> Result<i32> {
     let mut found: Vec<Finding> = Vec::new();
-    let mut note = |what: &str, ok: bool, detail: String| {
-        found.push(Finding {
-            what: what.into(),
-            ok,
-            detail,
-        })
-    };
     let cfg = match load(&a.config) {
         Ok(c) => {
-            note("configuration", true, a.config.display().to_string());
+            found.push(Finding {
+                what: "configuration".into(),
+                ok: true,
+                detail: a.config.display().to_string(),
+            });
             Some(c)
         }
         Err(e) => {
-            note("configuration", false, format!("{e:#}"));
+            found.push(Finding {
+                what: "configuration".into(),
+                ok: false,
+                detail: format!("{e:#}"),
+            });
             None
         }
     };
     if let Some(cfg) = &cfg {
-        let f = &cfg.folders;
-        for (name, dir) in f.named() {
-            match std::fs::metadata(dir) {
-                Ok(m) if m.is_dir() => {
-                    let ro = m.permissions().readonly();
-                    note(
-                        name,
-                        !ro,
-                        format!("{}{}", dir.display(), if ro { " is read-only" } else { "" }),
-                    )
-                }
-                Ok(_) => note(name, false, format!("{} is not a folder", dir.display())),
-                Err(_) => {
-                    // Missing folders are created at start, if the parent allows.
-                    let parent = dir
-                        .ancestors()
-                        .skip(1)
-                        .find(|p| p.as_os_str().is_empty() || p.exists())
-                        .map(|p| {
-                            if p.as_os_str().is_empty() {
-                                Path::new(".")
-                            } else {
-                                p
-                            }
-                        });
-                    let ok = parent.is_some_and(|p| p.is_dir());
-                    note(
-                        name,
-                        ok,
-                        format!(
-                            "{} does not exist yet; it is created at start",
-                            dir.display()
-                        ),
-                    )
-                }
-            }
-        }
-        let model_path = f.state.join(files::MODEL);
-        if model_path.exists() {
-            match daemon::load_model(cfg)
-                .and_then(|m| daemon::settings_for(&m, cfg).map(|s| (m, s)))
-            {
-                Ok((m, s)) => note(
-                    "model",
-                    true,
-                    format!(
-                        "{}: version {}, {}x{} window, {} nodes, threshold {}, min_area {}",
-                        model_path.display(),
-                        m.model_version,
-                        m.tree.window().size(),
-                        m.tree.window().size(),
-                        m.tree.nodes().len(),
-                        s.threshold,
-                        s.grouping.min_area
-                    ),
-                ),
-                Err(e) => note("model", false, e.to_string()),
-            }
-        } else {
-            match &cfg.seed_data {
-                None => note(
-                    "model",
-                    false,
-                    format!(
-                        "no {} and no training.seed_data to train one from",
-                        model_path.display()
-                    ),
-                ),
-                Some(seed) => match burlwatch::fileio::data::list_pairs(seed) {
-                    Ok((pairs, problems)) if !pairs.is_empty() && problems.is_empty() => note(
-                        "model",
-                        true,
-                        format!(
-                            "no model yet: one is trained at start from {} labelled frames in {}",
-                            pairs.len(),
-                            seed.display()
-                        ),
-                    ),
-                    Ok((pairs, problems)) => note(
-                        "model",
-                        false,
-                        format!(
-                            "seed data {}: {} labelled frames, {} problems{}",
-                            seed.display(),
-                            pairs.len(),
-                            problems.len(),
-                            problems
-                                .first()
-                                .map(|p| format!(", first: {p}"))
-                                .unwrap_or_default()
-                        ),
-                    ),
-                    Err(e) => note("model", false, format!("seed data: {e}")),
-                },
-            }
-        }
-        match files::daemon_running(&f.state) {
-            None => note("lock", true, "no daemon is running on these folders".into()),
-            Some(pid) => note(
-                "lock",
-                true,
-                format!("a daemon (process {pid}) is running on these folders"),
-            ),
-        }
+        found.extend(daemon::checks::all(cfg));
     }
     let ok = found.iter().all(|f| f.ok);
     if a.json {
@@ -334,7 +223,7 @@ pub fn demo(a: DemoArgs) -> Result<i32> {
     let feeder = {
         let (sent, inbox, period) = (
             sent.clone(),
-            cfg.folders.inbox.clone(),
+            cfg.start.folders.inbox.clone(),
             Duration::from_secs_f64(1.0 / a.rate),
         );
         let names = names.clone();
@@ -358,7 +247,7 @@ pub fn demo(a: DemoArgs) -> Result<i32> {
         })
     };
     // Follow the log as records appear.
-    let log_path = cfg.folders.logs.join(detlog::CURRENT);
+    let log_path = cfg.start.folders.logs.join(detlog::CURRENT);
     let mut pos = 0u64;
     let mut latencies: Vec<f64> = Vec::new();
     let (mut objects, mut seen) = (0usize, 0usize);
@@ -409,7 +298,7 @@ pub fn demo(a: DemoArgs) -> Result<i32> {
     feeder.join().expect("feeder thread")?;
     // Give the damaged file its moment, then stop.
     let reject_deadline = Instant::now() + Duration::from_secs(3);
-    while std::fs::read_dir(&cfg.folders.rejected)
+    while std::fs::read_dir(&cfg.start.folders.rejected)
         .map(|d| d.count())
         .unwrap_or(0)
         == 0
@@ -439,7 +328,7 @@ pub fn demo(a: DemoArgs) -> Result<i32> {
         pct(0.99)
     );
     // Why each reject was refused, from its reason file.
-    let mut reasons: Vec<PathBuf> = std::fs::read_dir(&cfg.folders.rejected)
+    let mut reasons: Vec<PathBuf> = std::fs::read_dir(&cfg.start.folders.rejected)
         .map(|d| d.filter_map(|e| e.ok().map(|e| e.path())).collect())
         .unwrap_or_default();
     reasons.retain(|p| p.to_string_lossy().ends_with(".reason.txt"));

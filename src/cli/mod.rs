@@ -35,9 +35,8 @@ use serde::Serialize;
 use burlwatch::codec::DecodeLimits;
 use burlwatch::config::{self, Config};
 use burlwatch::detect::compile::{self, Program, Scratch};
-use burlwatch::detect::group::GroupParams;
 use burlwatch::detect::Detector;
-use burlwatch::detect::Settings;
+use burlwatch::detect::{Overrides, Settings};
 use burlwatch::fileio::data;
 use burlwatch::learn::{self, ClassWeight, Criterion, Stage, TrainParams};
 use burlwatch::model;
@@ -100,7 +99,7 @@ struct DecodeArgs {
 
 impl DecodeArgs {
     fn limits(&self, cfg: &Config) -> DecodeLimits {
-        let d = &cfg.limits;
+        let d = &cfg.live.limits;
         DecodeLimits {
             max_width: self.max_width.unwrap_or(d.max_width),
             max_height: self.max_height.unwrap_or(d.max_height),
@@ -122,11 +121,7 @@ impl ConfigArg {
     fn load(&self) -> Result<Config> {
         match &self.config {
             None => Ok(Config::default()),
-            Some(p) => {
-                let text = std::fs::read_to_string(p)
-                    .with_context(|| format!("cannot read configuration {}", p.display()))?;
-                config::from_str(&text).map_err(|e| anyhow::anyhow!("{}", e.with_path(p)))
-            }
+            Some(p) => config::load(p).map_err(|e| anyhow::anyhow!("{e}")),
         }
     }
 }
@@ -146,27 +141,27 @@ struct SettingArgs {
 }
 
 impl SettingArgs {
+    /// The options as overrides (they win over the configuration's).
+    fn overrides(&self) -> Overrides {
+        Overrides {
+            threshold: self.threshold,
+            min_area: self.min_area,
+            merge_distance: self.merge_distance,
+        }
+    }
+
+    /// The settings in force for `m`: these options, then the
+    /// configuration's `[detection]` keys, then the model's own.
     fn apply(&self, m: &Model, cfg: &Config) -> Result<Settings> {
-        let s = Settings {
-            threshold: self.threshold.or(cfg.threshold).unwrap_or(m.threshold),
-            grouping: GroupParams {
-                min_area: self
-                    .min_area
-                    .or(cfg.min_area)
-                    .unwrap_or(m.grouping.min_area),
-                merge_distance: self
-                    .merge_distance
-                    .or(cfg.merge_distance)
-                    .unwrap_or(m.grouping.merge_distance),
-            },
-        };
-        model::validate_settings(s.threshold, s.grouping).map_err(|e| {
-            anyhow::anyhow!(
-                "bad detection setting (--threshold, --min-area, --merge-distance or [detection]): {}",
-                e.kind().to_string().trim_start_matches("invalid model: ")
-            )
-        })?;
-        Ok(s)
+        self.overrides()
+            .over(cfg.live.overrides)
+            .settings_for(m.settings())
+            .map_err(|e| {
+                anyhow::anyhow!(
+                    "{} (from --threshold, --min-area, --merge-distance or [detection])",
+                    e.kind()
+                )
+            })
     }
 }
 
@@ -374,7 +369,7 @@ struct TrainSummary<'a> {
 fn train(a: TrainArgs) -> Result<i32> {
     let started = Instant::now();
     let cfg = a.config.load()?;
-    let base = &cfg.training;
+    let base = &cfg.live.training;
     let window = match a.window {
         None => base.window,
         Some(w) => {
@@ -401,9 +396,12 @@ fn train(a: TrainArgs) -> Result<i32> {
         class_weight,
         holdout: a.holdout.unwrap_or(base.holdout),
         refit: a.refit || base.refit,
-        threshold: a.settings.threshold.or(cfg.threshold),
-        min_area: a.settings.min_area.or(cfg.min_area),
-        merge_distance: a.settings.merge_distance.or(cfg.merge_distance),
+        threshold: a.settings.threshold.or(cfg.live.overrides.threshold),
+        min_area: a.settings.min_area.or(cfg.live.overrides.min_area),
+        merge_distance: a
+            .settings
+            .merge_distance
+            .or(cfg.live.overrides.merge_distance),
         ..base.clone()
     };
     params.validate().context("bad training option")?;
@@ -416,7 +414,7 @@ fn train(a: TrainArgs) -> Result<i32> {
     let data = a
         .data
         .clone()
-        .or_else(|| cfg.seed_data.clone())
+        .or_else(|| cfg.live.seed_data.clone())
         .context("no data folder: pass --data DIR or set training.seed_data in --config")?;
     let a = TrainArgs {
         data: Some(data),

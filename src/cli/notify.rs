@@ -50,7 +50,9 @@ impl Notifier {
 
     pub fn status(&mut self, s: Status) {
         match s {
-            Status::Ready | Status::Reloaded => self.send("READY=1\nSTATUS=watching the inbox"),
+            Status::Ready | Status::Reloaded { .. } => {
+                self.send("READY=1\nSTATUS=watching the inbox")
+            }
             Status::Reloading => {
                 let mut ts = libc::timespec {
                     tv_sec: 0,

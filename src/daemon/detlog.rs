@@ -6,7 +6,13 @@
 //!
 //! Durability is the point of this module. A record is *durable* once the
 //! file has been synced after it; the daemon moves a frame out of the inbox
-//! only then. After a crash the file may end in a partial line (the write
+//! only then. The log is the single source of truth for that: each record
+//! is appended with a ticket (the caller's note of which frame it was), and
+//! [`DetectionLog::sync`] hands the tickets back as [`Settled`] — durable,
+//! or lost (cut off again after a failed sync). A rotation syncs the full
+//! file before renaming it, so its records become durable there and their
+//! tickets come back as durable with the next sync, whatever that sync
+//! does to the new file's records. After a crash the file may end in a partial line (the write
 //! of a record that was never durable): [`DetectionLog::open`] cuts it off
 //! and reads back, from the current file and the newest rotated one, the
 //! hashes of the records of the frames still in the inbox, so such a frame
@@ -19,6 +25,7 @@ use std::io::{self, Read, Seek, SeekFrom, Write};
 use std::path::{Path, PathBuf};
 use std::time::SystemTime;
 
+use super::faults::{Fault, Faults};
 use crate::fileio::durable::sync_dir;
 use crate::record::FrameRecord;
 
@@ -28,21 +35,42 @@ pub const CURRENT: &str = "detections.jsonl";
 /// A logged frame: its name and the SHA-256 of its bytes.
 pub type Key = (String, String);
 
-/// The open detection log.
+/// The tickets of records whose fate is known: made durable, or cut off
+/// again (never logged, as far as anyone reading the log can tell).
 #[derive(Debug)]
-pub struct DetectionLog {
+pub struct Settled<T> {
+    pub durable: Vec<T>,
+    pub lost: Vec<T>,
+}
+
+impl<T> Default for Settled<T> {
+    fn default() -> Self {
+        Settled {
+            durable: Vec::new(),
+            lost: Vec::new(),
+        }
+    }
+}
+
+/// The open detection log. `T` is the caller's ticket for a record.
+#[derive(Debug)]
+pub struct DetectionLog<T> {
     dir: PathBuf,
     file: File,
     size: u64,
     rotate_bytes: u64,
     keep_files: usize,
-    /// Records written since the last sync.
-    unsynced: usize,
     /// The file's length at the last successful sync.
     synced_size: u64,
+    /// Tickets of the records in the current file since its last sync.
+    unsynced: Vec<T>,
+    /// Tickets settled (by a rotation's sync, or a failure) and not yet
+    /// handed back.
+    settled: Settled<T>,
+    faults: Faults,
 }
 
-impl DetectionLog {
+impl<T> DetectionLog<T> {
     /// Opens (or creates) the log in `dir`, cutting off a partial last
     /// line, and returns it with the keys of the records, in the current
     /// file and the newest rotated one, of the frames named in `wanted`
@@ -52,6 +80,7 @@ impl DetectionLog {
         rotate_bytes: u64,
         keep_files: usize,
         wanted: &HashSet<String>,
+        faults: Faults,
     ) -> io::Result<(Self, HashSet<Key>)> {
         fs::create_dir_all(dir)?;
         let path = dir.join(CURRENT);
@@ -82,54 +111,107 @@ impl DetectionLog {
                 size,
                 rotate_bytes,
                 keep_files,
-                unsynced: 0,
                 synced_size: size,
+                unsynced: Vec::new(),
+                settled: Settled::default(),
+                faults,
             },
             keys,
         ))
     }
 
-    /// Appends one record (not yet durable: see [`DetectionLog::sync`]).
-    /// Rotates first when the file is full.
-    pub fn append(&mut self, record: &FrameRecord) -> io::Result<()> {
-        let mut line = serde_json::to_vec(record).map_err(io::Error::other)?;
-        line.push(b'\n');
-        if self.size > 0 && self.size + line.len() as u64 > self.rotate_bytes {
-            self.rotate()?;
+    /// Appends one record, not yet durable: see [`DetectionLog::append_line`].
+    pub fn append(&mut self, record: &FrameRecord, ticket: T) -> Result<(), (io::Error, T)> {
+        match line_of(record) {
+            Ok(line) => self.append_line(line, ticket),
+            Err(e) => Err((e, ticket)),
         }
-        if let Err(e) = self.file.write_all(&line) {
+    }
+
+    /// Appends one record's line (from [`line_of`]), not yet durable: its
+    /// ticket comes back from a later [`DetectionLog::sync`]. Rotates first
+    /// when the file is full. On failure nothing of this record is in the
+    /// log, and the ticket is handed back with the error.
+    pub fn append_line(&mut self, line: Vec<u8>, ticket: T) -> Result<(), (io::Error, T)> {
+        if self.size > 0 && self.size + line.len() as u64 > self.rotate_bytes {
+            if let Err(e) = self.rotate() {
+                return Err((e, ticket));
+            }
+        }
+        let written = self
+            .faults
+            .check(Fault::Write, &self.dir)
+            .and_then(|()| self.file.write_all(&line));
+        if let Err(e) = written {
             // A record written in part (disk full) is cut off again, so the
             // next one starts on a line of its own.
             let _ = self.file.set_len(self.size);
-            return Err(e);
+            return Err((e, ticket));
         }
         self.size += line.len() as u64;
-        self.unsynced += 1;
+        self.unsynced.push(ticket);
         Ok(())
     }
 
-    /// Makes every record appended so far durable.
-    /// On failure the records written since the last sync are cut off
-    /// again: the caller must treat them as never logged.
-    pub fn sync(&mut self) -> io::Result<()> {
-        if self.unsynced > 0 {
-            if let Err(e) = self.file.sync_data() {
-                let _ = self.file.set_len(self.synced_size);
-                self.size = self.synced_size;
-                self.unsynced = 0;
-                return Err(e);
+    /// Whether any ticket waits to be handed back by [`DetectionLog::sync`].
+    pub fn has_pending(&self) -> bool {
+        !self.unsynced.is_empty()
+            || !self.settled.durable.is_empty()
+            || !self.settled.lost.is_empty()
+    }
+
+    /// Records appended since the last sync, in the current file.
+    pub fn unsynced(&self) -> usize {
+        self.unsynced.len()
+    }
+
+    /// Makes every record appended so far durable, and hands back every
+    /// ticket whose fate is now known, with the sync's error if it failed.
+    /// After a failed sync the records written since the last good one are
+    /// cut off again and their tickets come back as lost: the caller must
+    /// treat them as never logged.
+    pub fn sync(&mut self) -> (Settled<T>, Option<io::Error>) {
+        let mut error = None;
+        if !self.unsynced.is_empty() {
+            match self.sync_file() {
+                Ok(()) => {
+                    self.synced_size = self.size;
+                    self.settled.durable.append(&mut self.unsynced);
+                }
+                Err(e) => {
+                    self.cut_unsynced();
+                    error = Some(e);
+                }
             }
-            self.unsynced = 0;
-            self.synced_size = self.size;
         }
-        Ok(())
+        (std::mem::take(&mut self.settled), error)
     }
 
-    /// Closes the current file (synced) under a time-stamped name, starts a
-    /// new one, and deletes the oldest files past `keep_files`.
+    fn sync_file(&mut self) -> io::Result<()> {
+        self.faults.check(Fault::Sync, &self.dir)?;
+        self.file.sync_data()
+    }
+
+    /// Cuts the records since the last good sync off again; their tickets
+    /// are lost.
+    fn cut_unsynced(&mut self) {
+        let _ = self.file.set_len(self.synced_size);
+        self.size = self.synced_size;
+        self.settled.lost.append(&mut self.unsynced);
+    }
+
+    /// Syncs the current file and closes it under a time-stamped name,
+    /// starts a new one, and deletes the oldest files past `keep_files`.
+    /// The old file's records are durable once its sync succeeded, whatever
+    /// happens after.
     fn rotate(&mut self) -> io::Result<()> {
-        self.file.sync_data()?;
-        self.unsynced = 0;
+        if let Err(e) = self.sync_file() {
+            self.cut_unsynced();
+            return Err(e);
+        }
+        self.synced_size = self.size;
+        self.settled.durable.append(&mut self.unsynced);
+        self.faults.check(Fault::Rotate, &self.dir)?;
         // UTC to the nanosecond: names of one length, so they sort by age.
         let stamp = humantime::format_rfc3339_nanos(SystemTime::now())
             .to_string()
@@ -157,6 +239,13 @@ impl DetectionLog {
         }
         Ok(())
     }
+}
+
+/// A record as one line of the log, newline included.
+pub fn line_of(record: &FrameRecord) -> io::Result<Vec<u8>> {
+    let mut line = serde_json::to_vec(record).map_err(io::Error::other)?;
+    line.push(b'\n');
+    Ok(line)
 }
 
 /// The rotated log files in `dir`, oldest first.
@@ -252,11 +341,12 @@ mod tests {
     fn partial_last_line_is_cut_and_keys_read_back() {
         let dir = tempfile::tempdir().unwrap();
         let wanted: HashSet<String> = ["a.pbm", "b.pbm", "c.pbm"].map(String::from).into();
-        let (mut log, keys) = DetectionLog::open(dir.path(), 1 << 20, 3, &wanted).unwrap();
+        let (mut log, keys) =
+            DetectionLog::open(dir.path(), 1 << 20, 3, &wanted, Faults::none()).unwrap();
         assert!(keys.is_empty());
-        log.append(&rec("a.pbm", "aa")).unwrap();
-        log.append(&rec("b.pbm", "bb")).unwrap();
-        log.sync().unwrap();
+        log.append(&rec("a.pbm", "aa"), ()).unwrap();
+        log.append(&rec("b.pbm", "bb"), ()).unwrap();
+        assert!(log.sync().1.is_none());
         drop(log);
         // A crash in the middle of the third record.
         let path = dir.path().join(CURRENT);
@@ -264,7 +354,8 @@ mod tests {
         f.write_all(b"{\"time\":\"2026-12-02T10:00:01.000Z\",\"frame\":\"c.p")
             .unwrap();
         drop(f);
-        let (log, keys) = DetectionLog::open(dir.path(), 1 << 20, 3, &wanted).unwrap();
+        let (log, keys) =
+            DetectionLog::<()>::open(dir.path(), 1 << 20, 3, &wanted, Faults::none()).unwrap();
         let want: HashSet<Key> = [("a.pbm", "aa"), ("b.pbm", "bb")]
             .iter()
             .map(|(a, b)| (a.to_string(), b.to_string()))
@@ -279,12 +370,15 @@ mod tests {
     #[test]
     fn rotation_keeps_the_newest_files() {
         let dir = tempfile::tempdir().unwrap();
-        let (mut log, _) = DetectionLog::open(dir.path(), 4096, 3, &HashSet::new()).unwrap();
+        let (mut log, _) =
+            DetectionLog::open(dir.path(), 4096, 3, &HashSet::new(), Faults::none()).unwrap();
         for i in 0..200 {
-            log.append(&rec(&format!("frame-{i:04}.pbm"), "00"))
+            log.append(&rec(&format!("frame-{i:04}.pbm"), "00"), i)
                 .unwrap();
         }
-        log.sync().unwrap();
+        let (settled, err) = log.sync();
+        assert!(err.is_none() && settled.lost.is_empty());
+        assert_eq!(settled.durable, (0..200).collect::<Vec<_>>());
         let old = rotated(dir.path()).unwrap();
         assert_eq!(old.len(), 2, "{old:?}");
         // Every kept file is whole JSON Lines, and the newest records are
@@ -307,8 +401,47 @@ mod tests {
         let wanted: HashSet<String> = ["frame-0199.pbm", "frame-0000.pbm"]
             .map(String::from)
             .into();
-        let (_, keys) = DetectionLog::open(dir.path(), 4096, 3, &wanted).unwrap();
+        let (_, keys) =
+            DetectionLog::<()>::open(dir.path(), 4096, 3, &wanted, Faults::none()).unwrap();
         assert_eq!(keys.len(), 1);
         assert!(keys.contains(&("frame-0199.pbm".to_string(), "00".to_string())));
+    }
+
+    /// Issue "Make room for the learning loop", first bug: a failed sync
+    /// right after a rotation must not report the records the rotation
+    /// made durable as lost (their frames would be logged a second time).
+    #[test]
+    fn a_failed_sync_after_a_rotation_keeps_the_rotated_records_durable() {
+        let dir = tempfile::tempdir().unwrap();
+        // Sync 0 is the rotation's own; sync 1 is the next one, which fails.
+        let faults = Faults::plan(|op, n, _| op == Fault::Sync && n == 1);
+        let (mut log, _) =
+            DetectionLog::open(dir.path(), 4096, 5, &HashSet::new(), faults).unwrap();
+        let mut i = 0;
+        while rotated(dir.path()).unwrap().is_empty() {
+            log.append(&rec(&format!("frame-{i:04}.pbm"), "00"), i)
+                .unwrap();
+            i += 1;
+        }
+        // The last append rotated: every record before it is in the rotated
+        // file, synced; the last one is alone in the new file.
+        let (settled, err) = log.sync();
+        assert!(err.is_some(), "the planned failure");
+        assert_eq!(settled.durable, (0..i - 1).collect::<Vec<_>>());
+        assert_eq!(settled.lost, [i - 1]);
+        // What the log holds agrees: the rotated file has the durable ones,
+        // the current file nothing.
+        let old = std::fs::read_to_string(&rotated(dir.path()).unwrap()[0]).unwrap();
+        assert_eq!(old.lines().count(), i - 1);
+        assert_eq!(
+            std::fs::metadata(dir.path().join(CURRENT)).unwrap().len(),
+            0
+        );
+        // A failed write and a failed rotation hand the ticket back.
+        let faults = Faults::plan(|op, _, _| op == Fault::Write);
+        let (mut log, _) =
+            DetectionLog::open(dir.path(), 1 << 20, 5, &HashSet::new(), faults).unwrap();
+        assert_eq!(log.append(&rec("x.pbm", "11"), 7).unwrap_err().1, 7);
+        assert!(!log.has_pending());
     }
 }

@@ -17,26 +17,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::frame::BitFrame;
 
-/// Largest accepted merge distance (keeps the look-back bounded).
-pub const MAX_MERGE_DISTANCE: u32 = 64;
-
-/// How detections become objects.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
-pub struct GroupParams {
-    /// Objects with fewer pixels are dropped.
-    pub min_area: u32,
-    /// Components separated by at most this many clear pixels merge.
-    pub merge_distance: u32,
-}
-
-impl Default for GroupParams {
-    fn default() -> Self {
-        GroupParams {
-            min_area: 1,
-            merge_distance: 0,
-        }
-    }
-}
+pub use crate::model::settings::{GroupParams, MAX_MERGE_DISTANCE};
 
 /// An inclusive pixel rectangle.
 #[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]

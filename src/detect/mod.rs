@@ -14,27 +14,11 @@ pub mod walker;
 use crate::codec::{self, DecodeLimits};
 use crate::error::Result;
 use crate::frame::BitFrame;
+pub use crate::model::settings::{Overrides, Settings};
 use crate::model::{Model, Tree};
 use crate::record::FrameRecord;
 use compile::{Program, Scratch};
-use group::{GroupParams, Object};
-
-/// The settings that turn scores into objects.
-#[derive(Clone, Copy, Debug, PartialEq)]
-pub struct Settings {
-    pub threshold: f64,
-    pub grouping: GroupParams,
-}
-
-impl Settings {
-    /// The settings stored in a model.
-    pub fn of(model: &Model) -> Settings {
-        Settings {
-            threshold: model.threshold,
-            grouping: model.grouping,
-        }
-    }
-}
+use group::Object;
 
 /// What detection found in one frame.
 #[derive(Clone, Debug)]
@@ -48,9 +32,9 @@ pub struct FrameResult {
 /// A model ready to detect: the tree, its compiled program and settings.
 #[derive(Debug)]
 pub struct Detector {
-    pub model: Model,
-    pub program: Program,
-    pub settings: Settings,
+    model: Model,
+    program: Program,
+    settings: Settings,
 }
 
 /// What detection made of one frame file.
@@ -69,6 +53,22 @@ impl Detector {
             program,
             settings,
         }
+    }
+
+    /// The model in service.
+    pub fn model(&self) -> &Model {
+        &self.model
+    }
+
+    /// The settings in force (the model's own, or overridden), which the
+    /// program was compiled for.
+    pub fn settings(&self) -> Settings {
+        self.settings
+    }
+
+    /// The compiled program.
+    pub fn program(&self) -> &Program {
+        &self.program
     }
 
     /// The model's version, which every record carries.

@@ -16,12 +16,13 @@
 //! index. The model knows nothing of how it was learned beyond the
 //! summary it carries: this module does not depend on the learner.
 
+pub mod settings;
+
 use serde::{Deserialize, Serialize};
 
-use crate::detect::group::{GroupParams, MAX_MERGE_DISTANCE};
 use crate::error::{Error, Result};
-use crate::score::Prf;
 use crate::window::{Offset, Window};
+pub use settings::{GroupParams, Overrides, Prf, Settings, MAX_MERGE_DISTANCE};
 
 /// Largest node count a model may have.
 pub const MAX_NODES: usize = 1 << 22;
@@ -325,29 +326,13 @@ impl Model {
         f.into_model()
     }
 
-    /// Checks the parameters a user may override.
-    pub fn validate_settings(&self) -> Result<()> {
-        validate_settings(self.threshold, self.grouping)
+    /// The settings the model carries.
+    pub fn settings(&self) -> Settings {
+        Settings {
+            threshold: self.threshold,
+            grouping: self.grouping,
+        }
     }
-}
-
-/// Checks a threshold and grouping parameters.
-pub fn validate_settings(threshold: f64, grouping: GroupParams) -> Result<()> {
-    if !(0.0..=1.0).contains(&threshold) {
-        return Err(Error::bad_model(format!(
-            "threshold {threshold} is outside [0, 1]"
-        )));
-    }
-    if grouping.min_area == 0 {
-        return Err(Error::bad_model("min_area must be at least 1"));
-    }
-    if grouping.merge_distance > MAX_MERGE_DISTANCE {
-        return Err(Error::bad_model(format!(
-            "merge_distance {} is over the limit of {MAX_MERGE_DISTANCE}",
-            grouping.merge_distance
-        )));
-    }
-    Ok(())
 }
 
 /// The model file's serde structs.
@@ -618,7 +603,12 @@ pub mod json {
                 min_area: self.min_area,
                 merge_distance: self.merge_distance,
             };
-            validate_settings(self.threshold, grouping)?;
+            Settings {
+                threshold: self.threshold,
+                grouping,
+            }
+            .validate()
+            .map_err(|e| Error::bad_model(e.kind().to_string()))?;
             Ok(Model {
                 tree,
                 threshold: self.threshold,

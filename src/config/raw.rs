@@ -1,23 +1,17 @@
-//! The configuration file (TOML): what the offline commands and the daemon
-//! read.
-//!
-//! Two stages. [`RawConfig`] mirrors the file: every key optional, unknown
-//! keys rejected (the error names the key and its line), nothing resolved.
-//! [`RawConfig::resolve`] then checks values and fills defaults, giving
-//! [`Config`] with library types (`DecodeLimits`, `TrainParams`, ...).
-//! Command-line options are applied on top of the resolved config by the
-//! binary, so the order of precedence is: option, file, built-in default.
-//!
-//! Relative folder paths in the file are taken relative to the folder the
-//! command runs in (the repository root for the example in `config/`).
+//! The configuration file as written: every key optional, unknown keys
+//! rejected, and the resolving step that checks values and fills defaults
+//! (see the parent module for the two stages). Each key is documented
+//! where it is defined, and in `config/burlwatch.toml`.
 
 use std::path::PathBuf;
 
 use serde::Deserialize;
 
+use super::{Config, Folders, LiveConfig, LogSettings, Retention, StartConfig, SyncPolicy, LEVELS};
 use crate::codec::DecodeLimits;
-use crate::error::{Error, ErrorKind, Result};
+use crate::error::{Error, Result};
 use crate::learn::{ClassWeight, Criterion, TrainParams};
+use crate::model::{Overrides, MAX_MERGE_DISTANCE};
 use crate::window::Window;
 
 /// `[frames]`: how frame files are decoded.
@@ -163,123 +157,30 @@ pub struct RawConfig {
     pub archive: RawArchive,
 }
 
-/// The daemon's folders.
-#[derive(Clone, Debug, PartialEq)]
-pub struct Folders {
-    pub inbox: PathBuf,
-    pub archive: PathBuf,
-    pub rejected: PathBuf,
-    pub corrections: PathBuf,
-    pub state: PathBuf,
-    pub logs: PathBuf,
-}
-
-impl Folders {
-    /// Every folder with its configuration key.
-    pub fn named(&self) -> [(&'static str, &PathBuf); 6] {
-        [
-            ("folders.inbox", &self.inbox),
-            ("folders.archive", &self.archive),
-            ("folders.rejected", &self.rejected),
-            ("folders.corrections", &self.corrections),
-            ("folders.state", &self.state),
-            ("folders.logs", &self.logs),
-        ]
-    }
-}
-
-/// How the detection log is made durable.
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
-pub enum SyncPolicy {
-    /// `fsync` after every record, before its frame leaves the inbox.
-    EveryRecord,
-    /// `fsync` after `records` records or `millis` ms, whichever comes
-    /// first; frames leave the inbox after the sync that covers them.
-    Batch { records: usize, millis: u64 },
-}
-
-/// Resolved `[watch]`.
-#[derive(Clone, Debug, PartialEq)]
-pub struct Watch {
-    /// Lower-case file name endings, without the dot.
-    pub formats: Vec<String>,
-    pub settle_millis: u64,
-    pub rescan_seconds: f64,
-    pub queue: usize,
-    pub events: bool,
-}
-
-/// Resolved `[log]`.
-#[derive(Clone, Debug, PartialEq)]
-pub struct LogSettings {
-    pub rotate_bytes: u64,
-    pub keep_files: usize,
-    pub sync: SyncPolicy,
-    pub level: String,
-}
-
-/// Resolved `[archive]`.
-#[derive(Clone, Copy, Debug, PartialEq)]
-pub struct Retention {
-    /// 0: no age limit.
-    pub keep_days: u64,
-    /// 0: no size limit.
-    pub keep_bytes: u64,
-}
-
-/// The resolved configuration.
-#[derive(Clone, Debug, PartialEq)]
-pub struct Config {
-    pub limits: DecodeLimits,
-    pub seed_data: Option<PathBuf>,
-    pub training: TrainParams,
-    pub threshold: Option<f64>,
-    pub min_area: Option<u32>,
-    pub merge_distance: Option<u32>,
-    /// Detection threads; 0 means one per processor.
-    pub workers: usize,
-    /// The window a model must have, when set.
-    pub window: Option<Window>,
-    pub folders: Folders,
-    pub watch: Watch,
-    pub log: LogSettings,
-    pub retention: Retention,
-}
-
-/// Levels accepted by `log.level`.
-pub const LEVELS: &[&str] = &["error", "warn", "info", "debug", "trace"];
-
-impl Default for Config {
-    fn default() -> Self {
-        RawConfig::default().resolve().expect("defaults are valid")
-    }
-}
-
 fn invalid(key: &str, msg: impl std::fmt::Display) -> Error {
-    Error::new(ErrorKind::Data(format!("{key}: {msg}")))
+    Error::config(key, msg)
 }
 
 impl RawConfig {
-    /// Parses TOML text (no path: the caller attaches it to errors).
+    /// Parses TOML text (no path: the caller attaches it to errors). An
+    /// error names the key by its whole path and gives the line.
     pub fn parse(text: &str) -> Result<RawConfig> {
-        toml::from_str(text).map_err(|e| {
-            // Name the key by its whole path (`training.depth`), found from
-            // the table header above the place the parser stopped.
-            let path = e
-                .message()
-                .strip_prefix("unknown field `")
-                .and_then(|m| m.split('`').next())
-                .map(
-                    |key| match e.span().and_then(|sp| section_at(text, sp.start)) {
-                        Some(section) => format!("unknown key {section}.{key}: "),
-                        None => format!("unknown key {key}: "),
-                    },
-                )
-                .unwrap_or_default();
-            Error::new(ErrorKind::Data(format!(
-                "invalid configuration: {path}{}",
-                e.to_string().trim_end()
-            )))
+        serde_path_to_error::deserialize(toml::Deserializer::new(text)).map_err(|e| {
+            let key = e.path().to_string();
+            let inner = e.into_inner();
+            let line = inner
+                .span()
+                .map(|sp| text[..sp.start.min(text.len())].matches('\n').count() + 1);
+            let mut message = inner.message().trim_end().to_string();
+            if message.starts_with("unknown field") {
+                message = format!("unknown key ({message})");
+            }
+            if let Some(line) = line {
+                message.push_str(&format!(" (line {line})"));
+            }
+            // The parser's own path for a syntax error is ".": no key.
+            let key = if key == "." { String::new() } else { key };
+            Error::config(key, message)
         })
     }
 
@@ -352,13 +253,10 @@ impl RawConfig {
             return Err(invalid("detection.min_area", "must be at least 1"));
         }
         if let Some(m) = det.merge_distance {
-            if m > crate::detect::group::MAX_MERGE_DISTANCE {
+            if m > MAX_MERGE_DISTANCE {
                 return Err(invalid(
                     "detection.merge_distance",
-                    format!(
-                        "{m} is over the limit of {}",
-                        crate::detect::group::MAX_MERGE_DISTANCE
-                    ),
+                    format!("{m} is over the limit of {}", MAX_MERGE_DISTANCE),
                 ));
             }
         }
@@ -486,84 +384,50 @@ impl RawConfig {
             ));
         }
         let a = self.archive;
-        Ok(Config {
-            limits,
-            seed_data: match t.seed_data {
-                None => Some(PathBuf::from("demo-frames/train")),
-                Some(p) if p.as_os_str().is_empty() => None,
-                Some(p) => Some(p),
-            },
-            training,
+        let overrides = Overrides {
             threshold: det.threshold,
             min_area: det.min_area,
             merge_distance: det.merge_distance,
-            workers,
-            window,
-            folders,
-            watch: Watch {
-                formats,
-                settle_millis,
-                rescan_seconds,
+        };
+        Ok(Config {
+            start: StartConfig {
+                folders,
+                workers,
                 queue,
+                settle_millis,
                 events: w.events.unwrap_or(true),
+                log: LogSettings {
+                    rotate_bytes,
+                    keep_files,
+                    sync,
+                    level,
+                },
             },
-            log: LogSettings {
-                rotate_bytes,
-                keep_files,
-                sync,
-                level,
-            },
-            retention: Retention {
-                keep_days: a.keep_days.unwrap_or(30),
-                keep_bytes: a.keep_bytes.unwrap_or(10 << 30),
+            live: LiveConfig {
+                limits,
+                formats,
+                overrides,
+                window,
+                seed_data: match t.seed_data {
+                    None => Some(PathBuf::from("demo-frames/train")),
+                    Some(p) if p.as_os_str().is_empty() => None,
+                    Some(p) => Some(p),
+                },
+                training,
+                rescan_seconds,
+                retention: Retention {
+                    keep_days: a.keep_days.unwrap_or(30),
+                    keep_bytes: a.keep_bytes.unwrap_or(10 << 30),
+                },
             },
         })
     }
 }
 
-/// The `[table]` header in force at byte `offset` of `text`, if any.
-fn section_at(text: &str, offset: usize) -> Option<String> {
-    text.get(..offset)?
-        .lines()
-        .rev()
-        .map(str::trim)
-        .find(|l| l.starts_with('[') && !l.starts_with("[["))
-        .map(|l| l.trim_matches(|c| c == '[' || c == ']').trim().to_string())
-}
-
-/// Parses and resolves configuration text.
-pub fn from_str(text: &str) -> Result<Config> {
-    RawConfig::parse(text)?.resolve()
-}
-
 #[cfg(test)]
 mod tests {
     use super::*;
-
-    #[test]
-    fn example_file_is_valid() {
-        let text = include_str!("../config/burlwatch.toml");
-        let c = from_str(text).expect("config/burlwatch.toml");
-        assert_eq!(
-            c.seed_data.as_deref(),
-            Some(std::path::Path::new("demo-frames/train"))
-        );
-    }
-
-    #[test]
-    fn system_file_is_valid() {
-        let c = from_str(include_str!("../config/system.toml")).expect("config/system.toml");
-        assert_eq!(c.folders.logs, std::path::Path::new("/var/log/burlwatch"));
-        assert_eq!(c.log.sync, SyncPolicy::EveryRecord);
-        assert_eq!(
-            c.seed_data.as_deref(),
-            Some(std::path::Path::new("/usr/local/share/burlwatch/seed"))
-        );
-        assert!(from_str("[training]\nseed_data = \"\"\n")
-            .unwrap()
-            .seed_data
-            .is_none());
-    }
+    use crate::config::from_str;
 
     #[test]
     fn unknown_keys_and_bad_values_are_named() {
@@ -572,7 +436,10 @@ mod tests {
         let e = from_str("[log]\nsync = \"batch\"\n\n[archive]\nkeep = 3\n")
             .unwrap_err()
             .to_string();
-        assert!(e.contains("unknown key archive.keep"), "{e}");
+        assert!(
+            e.contains("archive.keep: unknown key") && e.contains("line 5"),
+            "{e}"
+        );
         let e = from_str("[frames]\nmax_width = \"wide\"\n")
             .unwrap_err()
             .to_string();
@@ -608,7 +475,7 @@ mod tests {
         assert!(e.contains("queue"), "{e}");
         let c = from_str("[log]\nsync = \"batch\"\nsync_records = 8\n").unwrap();
         assert_eq!(
-            c.log.sync,
+            c.start.log.sync,
             SyncPolicy::Batch {
                 records: 8,
                 millis: 200

@@ -1,0 +1,158 @@
+//! Start-up checks: is this configuration ready to run? Shared by
+//! `burlwatch check`, the daemon's start and (later) the status endpoint,
+//! so all three say the same thing in the same words. Checking never
+//! writes anything and never takes the lock.
+
+use std::path::Path;
+
+use serde::Serialize;
+
+use super::{files, start};
+use crate::config::Config;
+
+/// One finding: what was checked, whether it is usable, and the detail.
+#[derive(Clone, Debug, PartialEq, Eq, Serialize)]
+pub struct Finding {
+    pub what: String,
+    pub ok: bool,
+    pub detail: String,
+}
+
+impl Finding {
+    fn new(what: &str, ok: bool, detail: String) -> Finding {
+        Finding {
+            what: what.into(),
+            ok,
+            detail,
+        }
+    }
+}
+
+/// Every folder: a usable folder, or missing with a parent it can be made
+/// in.
+pub fn folders(cfg: &Config) -> Vec<Finding> {
+    let mut out = Vec::new();
+    for (name, dir) in cfg.start.folders.named() {
+        out.push(match std::fs::metadata(dir) {
+            Ok(m) if m.is_dir() => {
+                let ro = m.permissions().readonly();
+                Finding::new(
+                    name,
+                    !ro,
+                    format!("{}{}", dir.display(), if ro { " is read-only" } else { "" }),
+                )
+            }
+            Ok(_) => Finding::new(name, false, format!("{} is not a folder", dir.display())),
+            Err(_) => {
+                // Missing folders are created at start, if the parent allows.
+                let parent = dir
+                    .ancestors()
+                    .skip(1)
+                    .find(|p| p.as_os_str().is_empty() || p.exists())
+                    .map(|p| {
+                        if p.as_os_str().is_empty() {
+                            Path::new(".")
+                        } else {
+                            p
+                        }
+                    });
+                let ok = parent.is_some_and(|p| p.is_dir());
+                Finding::new(
+                    name,
+                    ok,
+                    format!(
+                        "{} does not exist yet; it is created at start",
+                        dir.display()
+                    ),
+                )
+            }
+        });
+    }
+    out
+}
+
+/// The model in service, or the seed data a fresh box trains one from.
+pub fn model(cfg: &Config) -> Finding {
+    let path = start::model_path(&cfg.start.folders);
+    if path.exists() {
+        return match start::load_model(&cfg.start.folders, &cfg.live)
+            .and_then(|m| start::detector(m, &cfg.live))
+        {
+            Ok(d) => {
+                let (m, s) = (d.model(), d.settings());
+                Finding::new(
+                    "model",
+                    true,
+                    format!(
+                        "{}: version {}, {}x{} window, {} nodes, threshold {}, min_area {}",
+                        path.display(),
+                        m.model_version,
+                        m.tree.window().size(),
+                        m.tree.window().size(),
+                        m.tree.nodes().len(),
+                        s.threshold,
+                        s.grouping.min_area
+                    ),
+                )
+            }
+            Err(e) => Finding::new("model", false, e.to_string()),
+        };
+    }
+    match &cfg.live.seed_data {
+        None => Finding::new(
+            "model",
+            false,
+            format!(
+                "no {} and no training.seed_data to train one from",
+                path.display()
+            ),
+        ),
+        Some(seed) => match crate::fileio::data::list_pairs(seed) {
+            Ok((pairs, problems)) if !pairs.is_empty() && problems.is_empty() => Finding::new(
+                "model",
+                true,
+                format!(
+                    "no model yet: one is trained at start from {} labelled frames in {}",
+                    pairs.len(),
+                    seed.display()
+                ),
+            ),
+            Ok((pairs, problems)) => Finding::new(
+                "model",
+                false,
+                format!(
+                    "seed data {}: {} labelled frames, {} problems{}",
+                    seed.display(),
+                    pairs.len(),
+                    problems.len(),
+                    problems
+                        .first()
+                        .map(|p| format!(", first: {p}"))
+                        .unwrap_or_default()
+                ),
+            ),
+            Err(e) => Finding::new("model", false, format!("seed data: {e}")),
+        },
+    }
+}
+
+/// Whether a daemon holds the lock on these folders (not a problem: it
+/// says which process serves them).
+pub fn lock(cfg: &Config) -> Finding {
+    match files::daemon_running(&cfg.start.folders.state) {
+        None => Finding::new("lock", true, "no daemon is running on these folders".into()),
+        Some(pid) => Finding::new(
+            "lock",
+            true,
+            format!("a daemon (process {pid}) is running on these folders"),
+        ),
+    }
+}
+
+/// Every check, in the order `burlwatch check` prints them.
+pub fn all(cfg: &Config) -> Vec<Finding> {
+    let mut out = folders(cfg);
+    out.push(model(cfg));
+    out.push(lock(cfg));
+    out
+}

@@ -1,0 +1,591 @@
+//! Intake: a watched folder (the inbox now; the corrections folder next),
+//! which files in it are wanted, and when one is complete.
+//!
+//! An [`Intake`] owns everything about one folder: its watcher, whose
+//! callback only forwards events into a bounded channel (a full channel
+//! means lost events, and so a listing), the settle tracker, the queue of
+//! ready files and the set of files queued or in flight, so a file is
+//! never handed out twice at once. The main loop asks it for ready files
+//! and tells it when one is finished.
+//!
+//! File events are unreliable (queues overflow, some writers never close,
+//! some filesystems send nothing), so the inbox is also listed: at start,
+//! periodically, and after any watcher error. A file becomes *ready* when
+//! an event says its writer is done (close after write, or a rename into
+//! the inbox), or, for a file no event announced, when a listing finds its
+//! size and time stamp unchanged for the settle time. A file that events
+//! announced as being written waits for its close event; only if that
+//! never comes does it fall back to a long settle time.
+//!
+//! [`Settle`] is pure: the caller passes the time in, so tests need no
+//! sleeping.
+
+use std::collections::{HashMap, HashSet, VecDeque};
+use std::fs;
+use std::path::{Path, PathBuf};
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+use std::time::{Duration, Instant, SystemTime};
+
+use crossbeam_channel::{bounded, Receiver, RecvError};
+use notify::{EventKind, RecursiveMode, Watcher};
+use tracing::{debug, info, warn};
+
+use crate::error::{Error, Result};
+
+/// Name endings of files being written by common tools: never frames.
+const TEMP_SUFFIXES: &[&str] = &[".tmp", ".part", ".partial", ".swp", "~"];
+
+/// Whether a file name in the inbox can be a frame: not hidden, not a
+/// temporary file, and ending in one of `formats` (lower-case, no dot).
+pub fn is_frame_name(name: &str, formats: &[String]) -> bool {
+    if name.starts_with('.') || name.is_empty() {
+        return false;
+    }
+    let lower = name.to_ascii_lowercase();
+    if TEMP_SUFFIXES.iter().any(|s| lower.ends_with(s)) {
+        return false;
+    }
+    match lower.rsplit_once('.') {
+        Some((stem, ext)) => !stem.is_empty() && formats.iter().any(|f| f == ext),
+        None => false,
+    }
+}
+
+/// A frame file found by listing the inbox.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct Listed {
+    pub path: PathBuf,
+    pub size: u64,
+    pub modified: SystemTime,
+}
+
+/// The frame files directly in `dir`: plain files only (symbolic links and
+/// folders are passed over), oldest first (then by name).
+pub fn list(dir: &Path, formats: &[String]) -> std::io::Result<Vec<Listed>> {
+    let mut out = Vec::new();
+    for entry in fs::read_dir(dir)? {
+        let Ok(entry) = entry else { continue };
+        let name = entry.file_name();
+        let Some(name) = name.to_str() else { continue };
+        if !is_frame_name(name, formats) {
+            continue;
+        }
+        // `DirEntry::metadata` does not follow symbolic links.
+        let Ok(meta) = entry.metadata() else { continue };
+        if !meta.file_type().is_file() {
+            continue;
+        }
+        out.push(Listed {
+            path: entry.path(),
+            size: meta.len(),
+            modified: meta.modified().unwrap_or(SystemTime::UNIX_EPOCH),
+        });
+    }
+    out.sort_by(|a, b| a.modified.cmp(&b.modified).then(a.path.cmp(&b.path)));
+    Ok(out)
+}
+
+/// A file's size and time stamp, as last seen.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+struct Seen {
+    size: u64,
+    modified: SystemTime,
+    /// When it was first seen with this size and stamp.
+    since: Instant,
+    /// An event announced it as being written: wait for its close event.
+    announced: bool,
+}
+
+/// Tracks files that are not known to be complete yet.
+#[derive(Debug)]
+pub struct Settle {
+    settle: Duration,
+    /// How long an announced file may stay unchanged without its close
+    /// event before it is taken anyway.
+    announced_settle: Duration,
+    files: HashMap<PathBuf, Seen>,
+}
+
+impl Settle {
+    pub fn new(settle: Duration) -> Settle {
+        Settle {
+            settle,
+            announced_settle: settle.max(Duration::from_secs(60)),
+            files: HashMap::new(),
+        }
+    }
+
+    /// An event says `path` is being written.
+    pub fn announce(&mut self, path: &Path, now: Instant) {
+        self.files
+            .entry(path.to_path_buf())
+            .and_modify(|s| {
+                s.since = now;
+                s.announced = true;
+            })
+            .or_insert(Seen {
+                size: u64::MAX,
+                modified: SystemTime::UNIX_EPOCH,
+                since: now,
+                announced: true,
+            });
+    }
+
+    /// Events may have been lost: no file waits for a close event any more.
+    pub fn forget_announcements(&mut self) {
+        for s in self.files.values_mut() {
+            s.announced = false;
+        }
+    }
+
+    /// `path` is done (or gone): stop tracking it.
+    pub fn remove(&mut self, path: &Path) {
+        self.files.remove(path);
+    }
+
+    /// A listing saw `file`: returns true when it is ready to be read.
+    pub fn observe(&mut self, file: &Listed, now: Instant) -> bool {
+        let seen = self.files.entry(file.path.clone()).or_insert(Seen {
+            size: file.size,
+            modified: file.modified,
+            since: now,
+            announced: false,
+        });
+        if seen.size != file.size || seen.modified != file.modified {
+            seen.size = file.size;
+            seen.modified = file.modified;
+            seen.since = now;
+            return false;
+        }
+        let wait = if seen.announced {
+            self.announced_settle
+        } else {
+            self.settle
+        };
+        if now.duration_since(seen.since) >= wait {
+            self.files.remove(&file.path);
+            return true;
+        }
+        false
+    }
+
+    /// The files being tracked.
+    pub fn paths(&self) -> Vec<PathBuf> {
+        self.files.keys().cloned().collect()
+    }
+
+    /// Drops files a listing no longer found.
+    pub fn retain_listed(&mut self, listed: &[Listed]) {
+        let keep: std::collections::HashSet<&Path> =
+            listed.iter().map(|l| l.path.as_path()).collect();
+        self.files.retain(|p, _| keep.contains(p.as_path()));
+    }
+
+    pub fn len(&self) -> usize {
+        self.files.len()
+    }
+
+    pub fn is_empty(&self) -> bool {
+        self.files.is_empty()
+    }
+}
+
+/// Whether `path` names a wanted file directly in `dir`.
+fn wanted(dir: &Path, formats: &[String], path: &Path) -> bool {
+    path.parent() == Some(dir)
+        && path
+            .file_name()
+            .and_then(|n| n.to_str())
+            .is_some_and(|n| is_frame_name(n, formats))
+}
+
+/// A file event from the watcher, or the watcher's channel closing.
+pub(super) type WatchEvent = std::result::Result<notify::Result<notify::Event>, RecvError>;
+
+/// Events waiting between the watcher and the main loop, at most; more
+/// means a listing.
+const EVENT_QUEUE: usize = 4096;
+
+/// One watched folder and the files found in it.
+pub(super) struct Intake {
+    /// What the folder is, for messages ("inbox").
+    what: &'static str,
+    dir: PathBuf,
+    formats: Vec<String>,
+    settle: Settle,
+    ready: VecDeque<PathBuf>,
+    /// Files queued or in flight: never handed out twice at once.
+    known: HashSet<PathBuf>,
+    rescan_every: Duration,
+    next_rescan: Instant,
+    /// Set by the watcher's callback when its channel was full.
+    overflow: Arc<AtomicBool>,
+    events: Receiver<notify::Result<notify::Event>>,
+    _watcher: Option<notify::RecommendedWatcher>,
+}
+
+impl Intake {
+    /// Starts watching `dir` (an absolute path) for files ending in one of
+    /// `formats`; with `use_events` false, files are found by listing alone.
+    /// The first listing is due at once.
+    pub fn open(
+        what: &'static str,
+        dir: &Path,
+        formats: Vec<String>,
+        settle: Duration,
+        rescan_every: Duration,
+        use_events: bool,
+        now: Instant,
+    ) -> Result<Intake> {
+        let (tx, rx) = bounded::<notify::Result<notify::Event>>(EVENT_QUEUE);
+        let overflow = Arc::new(AtomicBool::new(false));
+        let flag = overflow.clone();
+        let cannot = |e: notify::Error| {
+            Error::daemon(format!("cannot watch the {what}: {e}")).with_path(dir)
+        };
+        let watcher = if use_events {
+            let mut w = notify::recommended_watcher(move |ev| {
+                if tx.try_send(ev).is_err() {
+                    flag.store(true, Ordering::Relaxed);
+                }
+            })
+            .map_err(cannot)?;
+            w.watch(dir, RecursiveMode::NonRecursive).map_err(cannot)?;
+            Some(w)
+        } else {
+            info!("file events are off: the {what} is found by listing alone");
+            None
+        };
+        Ok(Intake {
+            what,
+            dir: dir.to_path_buf(),
+            formats,
+            settle: Settle::new(settle),
+            ready: VecDeque::new(),
+            known: HashSet::new(),
+            rescan_every,
+            next_rescan: now,
+            overflow,
+            events: rx,
+            _watcher: watcher,
+        })
+    }
+
+    /// The watcher's events, for the main loop's `select!`.
+    pub fn events(&self) -> &Receiver<notify::Result<notify::Event>> {
+        &self.events
+    }
+
+    /// Takes a reload's new file endings and listing period.
+    pub fn configure(&mut self, formats: Vec<String>, rescan_every: Duration) {
+        self.formats = formats;
+        self.rescan_every = rescan_every;
+    }
+
+    /// The next file ready to be read, oldest first.
+    pub fn next_ready(&mut self) -> Option<PathBuf> {
+        self.ready.pop_front()
+    }
+
+    /// A file handed out is finished (moved, or left for the next listing).
+    pub fn finished(&mut self, path: &Path) {
+        self.known.remove(path);
+    }
+
+    /// Lists the folder if the watcher lost events or the period is up.
+    pub fn poll(&mut self, now: Instant) {
+        let lost = self.overflow.swap(false, Ordering::Relaxed);
+        if lost {
+            // Close events may be among those lost.
+            self.settle.forget_announcements();
+        }
+        if now >= self.next_rescan || lost {
+            self.rescan(now);
+            self.next_rescan = now + self.rescan_every;
+        }
+    }
+
+    /// Stats the files that are settling; those unchanged long enough
+    /// become ready, oldest first.
+    pub fn tick(&mut self, now: Instant) {
+        let mut done: Vec<Listed> = Vec::new();
+        for path in self.settle.paths() {
+            match fs::symlink_metadata(&path) {
+                Ok(m) if m.file_type().is_file() => {
+                    let l = Listed {
+                        path,
+                        size: m.len(),
+                        modified: m.modified().unwrap_or(SystemTime::UNIX_EPOCH),
+                    };
+                    if self.settle.observe(&l, now) {
+                        done.push(l);
+                    }
+                }
+                _ => self.settle.remove(&path),
+            }
+        }
+        done.sort_by(|a, b| a.modified.cmp(&b.modified).then(a.path.cmp(&b.path)));
+        for l in done {
+            self.make_ready(l.path);
+        }
+    }
+
+    /// Handles what the watcher sent; a watcher error or a closed channel
+    /// means listing (alone, from then on, for a closed channel).
+    pub fn on_watch(&mut self, ev: WatchEvent, now: Instant) {
+        match ev {
+            Ok(Ok(ev)) => self.on_event(ev, now),
+            Ok(Err(e)) => {
+                warn!("file watcher: {e}; listing the {} again", self.what);
+                self.settle.forget_announcements();
+                self.next_rescan = now;
+            }
+            Err(_) => {
+                warn!(
+                    "the file watcher stopped; the {} is found by listing alone",
+                    self.what
+                );
+                self.events = crossbeam_channel::never();
+                self.settle.forget_announcements();
+                self.next_rescan = now;
+            }
+        }
+    }
+
+    /// Queues `path` if it is a plain file not queued or in flight.
+    fn make_ready(&mut self, path: PathBuf) {
+        self.settle.remove(&path);
+        let plain = fs::symlink_metadata(&path).is_ok_and(|m| m.file_type().is_file());
+        if plain && self.known.insert(path.clone()) {
+            self.ready.push_back(path);
+        }
+    }
+
+    fn on_event(&mut self, ev: notify::Event, now: Instant) {
+        use notify::event::{AccessKind, AccessMode, CreateKind, ModifyKind, RenameMode};
+        if ev.need_rescan() {
+            debug!("file events were lost; listing the {} again", self.what);
+            self.settle.forget_announcements();
+            self.next_rescan = now;
+            return;
+        }
+        // Events name paths under the watched folder as given to `watch`,
+        // so they compare equal to paths built from the absolute folder.
+        let (dir, formats) = (&self.dir, &self.formats);
+        let target = |i: usize| ev.paths.get(i).filter(|p| wanted(dir, formats, p)).cloned();
+        match ev.kind {
+            EventKind::Access(AccessKind::Close(AccessMode::Write))
+            | EventKind::Modify(ModifyKind::Name(RenameMode::To)) => {
+                if let Some(p) = target(0) {
+                    self.make_ready(p);
+                }
+            }
+            EventKind::Modify(ModifyKind::Name(RenameMode::Both)) => {
+                if let Some(p) = ev.paths.first() {
+                    self.settle.remove(p);
+                }
+                if let Some(p) = target(1) {
+                    self.make_ready(p);
+                }
+            }
+            EventKind::Modify(ModifyKind::Name(RenameMode::From)) | EventKind::Remove(_) => {
+                for p in &ev.paths {
+                    self.settle.remove(p);
+                }
+            }
+            EventKind::Create(CreateKind::File | CreateKind::Any) | EventKind::Modify(_) => {
+                if let Some(p) = target(0) {
+                    if !self.known.contains(&p) {
+                        self.settle.announce(&p, now);
+                    }
+                }
+            }
+            _ => {}
+        }
+    }
+
+    /// Lists the folder: every wanted file not queued or in flight is
+    /// observed by the settle tracker (a file first seen now is ready only
+    /// with a settle time of zero); the ready ones are queued oldest first.
+    fn rescan(&mut self, now: Instant) {
+        match list(&self.dir, &self.formats) {
+            Ok(listed) => {
+                self.settle.retain_listed(&listed);
+                let done: Vec<PathBuf> = listed
+                    .iter()
+                    .filter(|l| !self.known.contains(&l.path) && self.settle.observe(l, now))
+                    .map(|l| l.path.clone())
+                    .collect();
+                for p in done {
+                    self.make_ready(p);
+                }
+            }
+            Err(e) => warn!(folder = %self.dir.display(), "cannot list the {}: {e}", self.what),
+        }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn formats() -> Vec<String> {
+        vec!["pbm".into(), "png".into()]
+    }
+
+    #[test]
+    fn frame_names() {
+        let f = formats();
+        for ok in ["a.pbm", "loom-0001.PNG", "x.y.pbm"] {
+            assert!(is_frame_name(ok, &f), "{ok}");
+        }
+        for bad in [
+            ".a.pbm",
+            "a.pbm.tmp",
+            "a.pbm.part",
+            "a.pbm~",
+            "a.txt",
+            "pbm",
+            ".pbm",
+            "a.jpg",
+            "",
+        ] {
+            assert!(!is_frame_name(bad, &f), "{bad}");
+        }
+        assert!(!is_frame_name("a.png", &["pbm".to_string()]));
+    }
+
+    #[test]
+    fn unannounced_files_settle_after_the_settle_time() {
+        let t0 = Instant::now();
+        let ms = Duration::from_millis;
+        let mut s = Settle::new(ms(500));
+        let mut f = Listed {
+            path: "in/a.pbm".into(),
+            size: 10,
+            modified: SystemTime::UNIX_EPOCH,
+        };
+        assert!(!s.observe(&f, t0));
+        assert!(!s.observe(&f, t0 + ms(499)));
+        // It grew: the clock starts again.
+        f.size = 20;
+        assert!(!s.observe(&f, t0 + ms(600)));
+        assert!(!s.observe(&f, t0 + ms(1000)));
+        assert!(s.observe(&f, t0 + ms(1100)));
+        assert!(s.is_empty());
+    }
+
+    #[test]
+    fn announced_files_wait_for_their_close_event() {
+        let t0 = Instant::now();
+        let ms = Duration::from_millis;
+        let mut s = Settle::new(ms(500));
+        let f = Listed {
+            path: "in/a.pbm".into(),
+            size: 10,
+            modified: SystemTime::UNIX_EPOCH,
+        };
+        s.announce(&f.path, t0);
+        assert!(!s.observe(&f, t0 + ms(10)));
+        assert!(!s.observe(&f, t0 + ms(5000)));
+        // The close event never came: a minute without change is enough.
+        assert!(s.observe(&f, t0 + ms(61_000)));
+        // After lost events, plain settling applies.
+        s.announce(&f.path, t0);
+        s.forget_announcements();
+        assert!(!s.observe(&f, t0 + ms(100)));
+        assert!(s.observe(&f, t0 + ms(700)));
+    }
+
+    #[test]
+    fn listing_skips_links_folders_and_others() {
+        let dir = tempfile::tempdir().unwrap();
+        let d = dir.path();
+        fs::write(d.join("b.pbm"), b"P1 1 1 0").unwrap();
+        fs::write(d.join("a.png"), b"x").unwrap();
+        fs::write(d.join(".hidden.pbm"), b"x").unwrap();
+        fs::write(d.join("c.pbm.tmp"), b"x").unwrap();
+        fs::create_dir(d.join("sub.pbm")).unwrap();
+        std::os::unix::fs::symlink(d.join("b.pbm"), d.join("link.pbm")).unwrap();
+        let names: Vec<String> = list(d, &formats())
+            .unwrap()
+            .iter()
+            .map(|l| l.path.file_name().unwrap().to_string_lossy().into_owned())
+            .collect();
+        let mut sorted = names.clone();
+        sorted.sort();
+        assert_eq!(sorted, ["a.png", "b.pbm"]);
+    }
+
+    fn intake(dir: &Path) -> Intake {
+        Intake::open(
+            "inbox",
+            dir,
+            formats(),
+            Duration::from_millis(100),
+            Duration::from_secs(3600),
+            false,
+            Instant::now(),
+        )
+        .unwrap()
+    }
+
+    #[test]
+    fn lost_events_ask_for_a_listing_and_end_waits_for_close_events() {
+        let d = tempfile::tempdir().unwrap();
+        let mut i = intake(d.path());
+        let t0 = Instant::now();
+        i.next_rescan = t0 + Duration::from_secs(3600);
+        let path = d.path().join("a.pbm");
+        i.settle.announce(&path, t0);
+        let ev = notify::Event::new(EventKind::Other).set_flag(notify::event::Flag::Rescan);
+        i.on_watch(Ok(Ok(ev)), t0);
+        assert!(i.next_rescan <= t0);
+        // The announced file now settles like any other.
+        let l = Listed {
+            path,
+            size: 1,
+            modified: SystemTime::UNIX_EPOCH,
+        };
+        assert!(!i.settle.observe(&l, t0));
+        assert!(i.settle.observe(&l, t0 + Duration::from_millis(150)));
+    }
+
+    #[test]
+    fn events_outside_the_folder_or_for_other_files_are_ignored() {
+        use notify::event::{AccessKind, AccessMode};
+        let d = tempfile::tempdir().unwrap();
+        let mut i = intake(d.path());
+        let now = Instant::now();
+        let other = d.path().join("elsewhere");
+        for p in [
+            other.join("a.pbm"),
+            d.path().join(".a.pbm"),
+            d.path().join("a.txt"),
+        ] {
+            std::fs::create_dir_all(p.parent().unwrap()).unwrap();
+            std::fs::write(&p, "P1 1 1 0").unwrap();
+            let ev = notify::Event::new(EventKind::Access(AccessKind::Close(AccessMode::Write)))
+                .add_path(p);
+            i.on_watch(Ok(Ok(ev)), now);
+        }
+        // A close event for a frame name whose file is gone is ignored too.
+        let ev = notify::Event::new(EventKind::Access(AccessKind::Close(AccessMode::Write)))
+            .add_path(d.path().join("b.pbm"));
+        i.on_watch(Ok(Ok(ev)), now);
+        assert!(i.ready.is_empty() && i.known.is_empty() && i.settle.is_empty());
+        // A real one is queued once, however often it is announced.
+        let p = d.path().join("c.pbm");
+        std::fs::write(&p, "P1 1 1 0").unwrap();
+        for _ in 0..2 {
+            let ev = notify::Event::new(EventKind::Access(AccessKind::Close(AccessMode::Write)))
+                .add_path(p.clone());
+            i.on_watch(Ok(Ok(ev)), now);
+        }
+        assert_eq!(i.next_ready(), Some(p.clone()));
+        assert_eq!(i.next_ready(), None);
+        i.finished(&p);
+        assert!(i.known.is_empty());
+    }
+}

@@ -1,0 +1,84 @@
+//! What the daemon needs before it watches anything: its folders, its
+//! lock, and the model in service (the state folder's, or one trained from
+//! the seed data on a fresh box).
+
+use std::path::PathBuf;
+
+use tracing::info;
+
+use super::files;
+use crate::config::{Config, Folders, LiveConfig};
+use crate::detect::Detector;
+use crate::error::{Error, ErrorKind, Result};
+use crate::learn;
+use crate::model::Model;
+
+/// Where the model in service lives.
+pub fn model_path(folders: &Folders) -> PathBuf {
+    folders.state.join(files::MODEL)
+}
+
+/// Loads the model in service from `folders.state`, checking it against
+/// the live configuration (`detection.window`).
+pub fn load_model(folders: &Folders, live: &LiveConfig) -> Result<Model> {
+    let path = model_path(folders);
+    let text = std::fs::read_to_string(&path).map_err(|e| Error::from(e).with_path(&path))?;
+    let m = Model::from_json(&text).map_err(|e| e.with_path(&path))?;
+    if let Some(w) = live.window {
+        if m.tree.window() != w {
+            return Err(Error::new(ErrorKind::BadModel(format!(
+                "the model uses a {0}x{0} window but detection.window is {1}",
+                m.tree.window().size(),
+                w.size()
+            )))
+            .with_path(&path));
+        }
+    }
+    Ok(m)
+}
+
+/// The detector for a model under the live configuration's overrides.
+pub fn detector(model: Model, live: &LiveConfig) -> Result<Detector> {
+    let settings = live.overrides.settings_for(model.settings())?;
+    Ok(Detector::new(model, settings))
+}
+
+/// The model in service: the state folder's, or, on a fresh box, one
+/// trained from `training.seed_data` and stored there as version 1.
+pub fn load_or_train(cfg: &Config) -> Result<Model> {
+    let (folders, live) = (&cfg.start.folders, &cfg.live);
+    let path = model_path(folders);
+    if path.exists() {
+        return load_model(folders, live);
+    }
+    let seed = live.seed_data.as_ref().ok_or_else(|| {
+        Error::new(ErrorKind::Data(format!(
+            "no model at {} and no training.seed_data to train one from",
+            path.display()
+        )))
+    })?;
+    info!(seed = %seed.display(), "no model yet: training one from the seed data");
+    let folder = crate::fileio::data::read_folder(seed, &live.limits, &mut |_, _| {})?;
+    if let Some(p) = folder.problems.first() {
+        return Err(Error::new(ErrorKind::Data(format!(
+            "seed data has {} bad file(s), first: {p}",
+            folder.problems.len()
+        ))));
+    }
+    let mut m = learn::train(&folder.frames, &live.training, &mut |_| {})?;
+    m.model_version = 1;
+    files::write_atomic(&path, m.to_json().as_bytes())
+        .map_err(|e| Error::from(e).with_path(&path))?;
+    info!(path = %path.display(), leaves = m.tree.leaves(), "stored model version 1");
+    load_model(folders, live)
+}
+
+/// Creates the folders the daemon writes to and returns them made
+/// absolute (file events name absolute paths, and a path must have one
+/// spelling to be recognised in flight).
+pub fn make_folders(folders: &Folders) -> Result<Folders> {
+    for (_, d) in folders.named() {
+        std::fs::create_dir_all(d).map_err(|e| Error::from(e).with_path(d))?;
+    }
+    folders.absolute().map_err(Error::from)
+}
