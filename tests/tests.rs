@@ -8,13 +8,16 @@
 //! - `compiled`: the compiled evaluator against the walker, bit for bit;
 //! - `cli`: the `burlwatch` binary end to end on temporary folders;
 //! - `daemon`: `burlwatch run` end to end: bursts, slow writers, bad files,
-//!   kills, signals, lost events.
+//!   kills, signals, lost events;
+//! - `inprocess`: the daemon driven in-process, with the clock, ticks,
+//!   control channel and disk faults in the test's hands.
 
 mod util;
 
 mod cli;
 mod compiled;
 mod daemon;
+mod inprocess;
 mod properties;
 mod reference_images;
 mod reference_learning;

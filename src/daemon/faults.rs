@@ -18,9 +18,10 @@ use std::sync::Arc;
 pub enum Fault {
     /// Appending a record to the detection log.
     Write,
-    /// Syncing the detection log (including the sync a rotation starts with).
+    /// Syncing the detection log when the writer asks for it.
     Sync,
-    /// Renaming the full log file and starting a new one.
+    /// Rotating the full log file: its failure is that of the sync a
+    /// rotation starts with (the full file's unsynced records are cut off).
     Rotate,
     /// Moving a frame to the archive or to `rejected/`.
     Move,

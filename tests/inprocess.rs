@@ -1,0 +1,346 @@
+//! The daemon driven in-process: `daemon::run_with` on temporary folders
+//! with the control channel, the clock, the ticks and the disk-fault plan
+//! in the test's hands, and a sink that reports every finished frame — so
+//! these tests wait on messages, not on sleeps.
+
+use std::collections::HashMap;
+use std::path::{Path, PathBuf};
+use std::sync::{Arc, Mutex};
+use std::thread;
+use std::time::{Duration, Instant, SystemTime};
+
+use crossbeam_channel::{unbounded, Receiver, Sender};
+
+use burlwatch::codec;
+use burlwatch::config::{self, Config};
+use burlwatch::daemon::{self, Clock, Control, Fault, Faults, Finished, Hooks, RecordSink, Status};
+use burlwatch::record::FrameRecord;
+use burlwatch::synth::{self, LoomParams};
+
+use crate::util::{repo, Dir};
+
+/// Reports each finished frame as (kind, file name).
+struct Report(Sender<(&'static str, String)>);
+
+impl RecordSink for Report {
+    fn finished(&mut self, event: &Finished<'_>) {
+        let name = |p: &Path| p.file_name().unwrap().to_string_lossy().into_owned();
+        let _ = self.0.send(match event {
+            Finished::Logged(r) => ("logged", r.frame.clone()),
+            Finished::AlreadyLogged { frame } => ("already", name(frame)),
+            Finished::Rejected { frame, .. } => ("rejected", name(frame)),
+            Finished::Left { frame } => ("left", name(frame)),
+        });
+    }
+}
+
+/// A clock that moves only when the test says so.
+#[derive(Clone)]
+struct TestClock(Arc<Mutex<(Instant, SystemTime)>>);
+
+impl TestClock {
+    fn new() -> TestClock {
+        TestClock(Arc::new(Mutex::new((Instant::now(), SystemTime::now()))))
+    }
+    fn advance(&self, d: Duration) {
+        let mut t = self.0.lock().unwrap();
+        t.0 += d;
+        t.1 += d;
+    }
+}
+
+impl Clock for TestClock {
+    fn now(&self) -> Instant {
+        self.0.lock().unwrap().0
+    }
+    fn wall(&self) -> SystemTime {
+        self.0.lock().unwrap().1
+    }
+}
+
+/// Folders with the committed model in service, and a config around them.
+struct Box_ {
+    dir: Dir,
+}
+
+impl Box_ {
+    fn new() -> Box_ {
+        let dir = Dir::new();
+        let state = dir.join("state");
+        std::fs::create_dir_all(&state).unwrap();
+        std::fs::copy(
+            repo().join("tests/data/model-v2.json"),
+            state.join("model.json"),
+        )
+        .unwrap();
+        std::fs::create_dir_all(dir.join("inbox")).unwrap();
+        Box_ { dir }
+    }
+
+    /// Configuration text with folders under `root` as written.
+    fn text(root: &Path, extra: &str) -> String {
+        let f = |n: &str| format!("{:?}", root.join(n));
+        format!(
+            "[folders]\ninbox = {}\narchive = {}\nrejected = {}\ncorrections = {}\n\
+             state = {}\nlogs = {}\n{extra}",
+            f("inbox"),
+            f("archive"),
+            f("rejected"),
+            f("corrections"),
+            f("state"),
+            f("logs")
+        )
+    }
+
+    fn config(&self, extra: &str) -> Config {
+        config::from_str(&Box_::text(self.dir.path(), extra)).unwrap()
+    }
+
+    fn drop_frames(&self, all: &[(String, Vec<u8>)]) {
+        let stage = self.dir.join("stage");
+        std::fs::create_dir_all(&stage).unwrap();
+        for (n, b) in all {
+            std::fs::write(stage.join(n), b).unwrap();
+            std::fs::rename(stage.join(n), self.dir.join("inbox").join(n)).unwrap();
+        }
+    }
+
+    /// Every record in every log file.
+    fn records(&self) -> Vec<FrameRecord> {
+        let mut out = Vec::new();
+        for e in std::fs::read_dir(self.dir.join("logs")).unwrap() {
+            let text = std::fs::read_to_string(e.unwrap().path()).unwrap();
+            for line in text.lines() {
+                out.push(serde_json::from_str(line).unwrap());
+            }
+        }
+        out
+    }
+}
+
+fn frames(count: usize, seed: u64) -> Vec<(String, Vec<u8>)> {
+    let p = LoomParams {
+        width: 64,
+        height: 40,
+        ..LoomParams::standard()
+    };
+    (0..count)
+        .map(|i| {
+            let f = synth::generate(&p, synth::frame_seed(seed, i)).frame;
+            (format!("frame-{i:04}.pbm"), codec::encode_pbm(&f))
+        })
+        .collect()
+}
+
+/// The daemon on its own thread, with what the test needs to drive it.
+struct Running {
+    control: Sender<Control>,
+    statuses: Receiver<Status>,
+    finished: Receiver<(&'static str, String)>,
+    thread: thread::JoinHandle<burlwatch::Result<daemon::Summary>>,
+}
+
+fn start(
+    cfg: Config,
+    clock: Option<TestClock>,
+    ticks: Option<Receiver<Instant>>,
+    faults: Faults,
+) -> Running {
+    let (control, rx) = unbounded();
+    let (status_tx, statuses) = unbounded();
+    let (fin_tx, finished) = unbounded();
+    let thread = thread::spawn(move || {
+        let mut hooks = Hooks {
+            faults,
+            ticks,
+            sinks: vec![Box::new(Report(fin_tx))],
+            ..Hooks::default()
+        };
+        if let Some(c) = clock {
+            hooks.clock = Arc::new(c);
+        }
+        daemon::run_with(
+            cfg,
+            rx,
+            &mut |s| {
+                let _ = status_tx.send(s);
+            },
+            hooks,
+        )
+    });
+    let r = Running {
+        control,
+        statuses,
+        finished,
+        thread,
+    };
+    r.wait_status("ready", |s| *s == Status::Ready);
+    r
+}
+
+impl Running {
+    fn wait_status(&self, what: &str, want: impl Fn(&Status) -> bool) -> Status {
+        let deadline = Instant::now() + Duration::from_secs(60);
+        loop {
+            let left = deadline.saturating_duration_since(Instant::now());
+            match self.statuses.recv_timeout(left) {
+                Ok(s) if want(&s) => return s,
+                Ok(_) => {}
+                Err(_) => panic!("no {what} status within 60 s"),
+            }
+        }
+    }
+
+    /// Waits until `n` frames were finished with `kind`; returns every
+    /// finished frame seen meanwhile.
+    fn wait_finished(&self, kind: &str, n: usize) -> Vec<(&'static str, String)> {
+        let mut seen = Vec::new();
+        let deadline = Instant::now() + Duration::from_secs(120);
+        while seen.iter().filter(|(k, _)| *k == kind).count() < n {
+            let left = deadline.saturating_duration_since(Instant::now());
+            match self.finished.recv_timeout(left) {
+                Ok(f) => seen.push(f),
+                Err(_) => panic!("only {seen:?} finished within 120 s"),
+            }
+        }
+        seen
+    }
+
+    fn stop(self) -> daemon::Summary {
+        self.control.send(Control::Stop).unwrap();
+        self.thread.join().unwrap().unwrap()
+    }
+}
+
+/// Issue "Make room for the learning loop", first bug. A batch of records
+/// is unsynced when a rotation syncs the full file; the next sync fails.
+/// The rotated records are durable, so their frames must be archived, and
+/// only the records the failed sync cut off are logged again, once.
+#[test]
+fn a_failed_sync_after_a_rotation_logs_every_frame_exactly_once() {
+    let b = Box_::new();
+    let cfg = b.config(
+        "[log]\nrotate_bytes = 4096\nkeep_files = 100\nsync = \"batch\"\nsync_records = 1000\n\
+         sync_millis = 300\n[watch]\nrescan_seconds = 0.1\nsettle_millis = 20\n[detection]\nworkers = 2\n",
+    );
+    // Fail the first sync that follows the first rotation.
+    let state = Arc::new(Mutex::new((false, false)));
+    let s = state.clone();
+    let faults = Faults::plan(move |op, _, _| {
+        let mut s = s.lock().unwrap();
+        match op {
+            Fault::Rotate => s.0 = true,
+            Fault::Sync if s.0 && !s.1 => {
+                s.1 = true;
+                return true;
+            }
+            _ => {}
+        }
+        false
+    });
+    let d = start(cfg, None, None, faults);
+    let all = frames(80, 5);
+    b.drop_frames(&all);
+    let seen = d.wait_finished("logged", all.len());
+    assert!(state.lock().unwrap().1, "the planned sync failure happened");
+    let left: Vec<_> = seen.iter().filter(|(k, _)| *k == "left").collect();
+    assert!(
+        !left.is_empty(),
+        "the failed sync left some frames: {seen:?}"
+    );
+    let summary = d.stop();
+    assert_eq!(summary.logged, 80);
+    // Each frame once in the logs, and every frame archived.
+    let mut count: HashMap<String, usize> = HashMap::new();
+    for r in b.records() {
+        *count.entry(r.frame).or_default() += 1;
+    }
+    let twice: Vec<_> = count.iter().filter(|(_, &c)| c != 1).collect();
+    assert!(twice.is_empty(), "logged more than once: {twice:?}");
+    assert_eq!(count.len(), 80);
+    assert_eq!(
+        std::fs::read_dir(b.dir.join("archive")).unwrap().count(),
+        80
+    );
+    assert_eq!(std::fs::read_dir(b.dir.join("inbox")).unwrap().count(), 0);
+}
+
+/// Issue "Make room for the learning loop", second bug: a reload of the
+/// same configuration with relative folders needs no restart; a changed
+/// start-only key is named.
+#[test]
+fn a_reload_with_relative_folders_names_only_real_changes() {
+    let b = Box_::new();
+    // The same folders, spelled relative to the working folder.
+    let cwd = std::env::current_dir().unwrap();
+    let depth = cwd.components().count() - 1;
+    let up: PathBuf = std::iter::repeat_n("..", depth).collect();
+    let rel = up.join(b.dir.path().strip_prefix("/").unwrap());
+    assert!(rel.is_relative());
+    let text = Box_::text(&rel, "[watch]\nrescan_seconds = 3600\n");
+    let cfg = config::from_str(&text).unwrap();
+    let d = start(cfg.clone(), None, None, Faults::none());
+    d.control
+        .send(Control::Reload(Some(Box::new(cfg.clone()))))
+        .unwrap();
+    let s = d.wait_status("reloaded", |s| matches!(s, Status::Reloaded { .. }));
+    assert_eq!(
+        s,
+        Status::Reloaded {
+            applied: true,
+            restart_needed: vec![]
+        }
+    );
+    let changed = config::from_str(&format!("{text}queue = 8\n")).unwrap();
+    d.control
+        .send(Control::Reload(Some(Box::new(changed))))
+        .unwrap();
+    let s = d.wait_status("reloaded", |s| matches!(s, Status::Reloaded { .. }));
+    assert_eq!(
+        s,
+        Status::Reloaded {
+            applied: true,
+            restart_needed: vec!["watch.queue"]
+        }
+    );
+    // A configuration that did not parse keeps everything.
+    d.control.send(Control::Reload(None)).unwrap();
+    let s = d.wait_status("reloaded", |s| matches!(s, Status::Reloaded { .. }));
+    assert!(matches!(s, Status::Reloaded { applied: false, .. }));
+    d.stop();
+}
+
+/// Settling and listing follow the daemon's clock and ticks, not the wall:
+/// with the clock held, a frame dropped after start is not listed; once
+/// the clock reaches the listing, it is seen but must stay unchanged for
+/// the settle time of the daemon's clock before it is read.
+#[test]
+fn settling_follows_the_clock_it_is_given() {
+    let b = Box_::new();
+    let cfg = b.config("[watch]\nevents = false\nsettle_millis = 500\nrescan_seconds = 60\n");
+    let clock = TestClock::new();
+    let (tick, ticks) = unbounded();
+    let d = start(cfg, Some(clock.clone()), Some(ticks), Faults::none());
+    b.drop_frames(&frames(1, 9));
+    // Nothing may finish meanwhile; a short real wait shows it did not.
+    let quiet = |d: &Running, why: &str| {
+        tick.send(Instant::now()).unwrap();
+        d.wait_status("alive", |s| *s == Status::Alive);
+        if let Ok(f) = d.finished.recv_timeout(Duration::from_millis(200)) {
+            panic!("{f:?} finished {why}");
+        }
+    };
+    quiet(&d, "before its listing");
+    clock.advance(Duration::from_secs(30));
+    quiet(&d, "before its listing");
+    // The listing is due: it sees the frame for the first time.
+    clock.advance(Duration::from_secs(30));
+    quiet(&d, "before it settled");
+    clock.advance(Duration::from_millis(300));
+    quiet(&d, "before it settled");
+    clock.advance(Duration::from_millis(300));
+    tick.send(Instant::now()).unwrap();
+    let seen = d.wait_finished("logged", 1);
+    assert_eq!(seen, [("logged", "frame-0000.pbm".to_string())]);
+    assert_eq!(d.stop().logged, 1);
+}
