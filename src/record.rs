@@ -3,7 +3,9 @@
 //! frame).
 //!
 //! These serde structs are the log format, kept apart from the domain
-//! types ([`crate::detect::group::Object`]) so the format changes only on purpose.
+//! types so the format changes only on purpose; this module knows nothing
+//! of detection, which builds the records from its objects
+//! (`FrameRecord::new`, `ObjectRecord::from_object` in [`crate::detect`]).
 //! Fields:
 //! - `time`: when the frame was processed, RFC 3339 in UTC (`...Z`);
 //! - `frame`: the frame's file name; `sha256`: hex SHA-256 of its bytes;
@@ -15,8 +17,6 @@
 
 use serde::{Deserialize, Serialize};
 use sha2::{Digest, Sha256};
-
-use crate::detect::group::Object;
 
 /// One object of a record.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
@@ -39,46 +39,6 @@ pub struct FrameRecord {
     pub model_version: u64,
     pub millis: f64,
     pub objects: Vec<ObjectRecord>,
-}
-
-impl FrameRecord {
-    /// The record of one processed frame: `bytes` is the frame file's
-    /// content (hashed), `objects` what detection found.
-    #[allow(clippy::too_many_arguments)]
-    pub fn new(
-        time: std::time::SystemTime,
-        frame: &str,
-        bytes: &[u8],
-        width: usize,
-        height: usize,
-        model_version: u64,
-        millis: f64,
-        objects: &[Object],
-    ) -> FrameRecord {
-        FrameRecord {
-            time: rfc3339(time),
-            frame: frame.to_string(),
-            sha256: sha256_hex(bytes),
-            width: width as u32,
-            height: height as u32,
-            model_version,
-            millis: (millis * 1000.0).round() / 1000.0,
-            objects: objects.iter().map(ObjectRecord::from_object).collect(),
-        }
-    }
-}
-
-impl ObjectRecord {
-    pub fn from_object(o: &Object) -> ObjectRecord {
-        let r2 = |v: f64| (v * 100.0).round() / 100.0;
-        ObjectRecord {
-            id: o.id,
-            bbox: [o.bbox.x0, o.bbox.y0, o.bbox.x1, o.bbox.y1],
-            centroid: [r2(o.centroid.0), r2(o.centroid.1)],
-            area: o.area,
-            score: (o.score * 10_000.0).round() / 10_000.0,
-        }
-    }
 }
 
 /// Lower-case hex SHA-256 of some bytes (FIPS 180-4).

@@ -11,7 +11,7 @@ use std::time::{Duration, SystemTime};
 
 use crate::codec::DecodeLimits;
 use crate::config::Retention;
-use crate::error::{Error, ErrorKind, Result};
+use crate::error::{Error, Result};
 pub use crate::fileio::durable::{
     move_into, read_bounded, write_atomic, FileBytes, ReadFailure, Stamp,
 };
@@ -43,11 +43,11 @@ impl StateLock {
         let rc = unsafe { libc::flock(file.as_raw_fd(), libc::LOCK_EX | libc::LOCK_NB) };
         if rc != 0 {
             let holder = fs::read_to_string(&path).unwrap_or_default();
-            return Err(Error::new(ErrorKind::Data(format!(
+            return Err(Error::daemon(format!(
                 "another burlwatch daemon (process {}) is running on these folders; \
                  stop it first, or give this one its own state folder",
                 holder.trim()
-            )))
+            ))
             .with_path(&path));
         }
         let _ = file.set_len(0);

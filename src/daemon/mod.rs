@@ -266,13 +266,14 @@ pub fn run_with(
         unfinished: 0,
         stopping: false,
         workers_lost: false,
+        writer_lost: false,
         last_progress: now,
         next_prune: now + Duration::from_secs(3600),
     };
     status(Status::Ready);
     info!(inbox = %main.start.folders.inbox.display(), workers, queue = main.queue, "watching");
     main.run(status);
-    let workers_lost = main.workers_lost;
+    let (workers_lost, writer_lost) = (main.workers_lost, main.writer_lost);
     drop(main);
     for t in threads {
         let _ = t.join();
@@ -283,7 +284,7 @@ pub fn run_with(
             "every detection worker stopped; frames not yet logged are still in the inbox",
         ));
     }
-    if !writer_ok {
+    if writer_lost || !writer_ok {
         return Err(Error::daemon(
             "the detection log writer stopped unexpectedly; frames not yet logged are still in the inbox",
         ));
@@ -352,6 +353,7 @@ struct MainLoop {
     unfinished: usize,
     stopping: bool,
     workers_lost: bool,
+    writer_lost: bool,
     last_progress: Instant,
     next_prune: Instant,
 }
@@ -360,7 +362,7 @@ impl MainLoop {
     fn run(&mut self, status: &mut dyn FnMut(Status)) {
         loop {
             self.hand_out();
-            if (self.stopping && self.unfinished == 0) || self.workers_lost {
+            if (self.stopping && self.unfinished == 0) || self.workers_lost || self.writer_lost {
                 return;
             }
             if !self.stopping {
@@ -376,7 +378,7 @@ impl MainLoop {
                 }
                 Event::WriterGone => {
                     error!("the detection log writer stopped");
-                    self.workers_lost = true;
+                    self.writer_lost = true;
                 }
                 Event::Control(Control::Reload(new)) => {
                     status(Status::Reloading);

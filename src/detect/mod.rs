@@ -16,7 +16,7 @@ use crate::error::Result;
 use crate::frame::BitFrame;
 pub use crate::model::settings::{Overrides, Settings};
 use crate::model::{Model, Tree};
-use crate::record::FrameRecord;
+use crate::record::{rfc3339, sha256_hex, FrameRecord, ObjectRecord};
 use compile::{Program, Scratch};
 use group::Object;
 
@@ -120,4 +120,45 @@ pub fn finish(tree: &Tree, settings: &Settings, frame: &BitFrame, raw: BitFrame)
     let (objects, mask) =
         group::group_and_keep(&raw, settings.grouping, |x, y| tree.score_at(frame, x, y));
     FrameResult { mask, objects }
+}
+
+// The log format knows nothing of detection; detection builds its records.
+impl FrameRecord {
+    /// The record of one processed frame: `bytes` is the frame file's
+    /// content (hashed), `objects` what detection found.
+    #[allow(clippy::too_many_arguments)]
+    pub fn new(
+        time: std::time::SystemTime,
+        frame: &str,
+        bytes: &[u8],
+        width: usize,
+        height: usize,
+        model_version: u64,
+        millis: f64,
+        objects: &[Object],
+    ) -> FrameRecord {
+        FrameRecord {
+            time: rfc3339(time),
+            frame: frame.to_string(),
+            sha256: sha256_hex(bytes),
+            width: width as u32,
+            height: height as u32,
+            model_version,
+            millis: (millis * 1000.0).round() / 1000.0,
+            objects: objects.iter().map(ObjectRecord::from_object).collect(),
+        }
+    }
+}
+
+impl ObjectRecord {
+    pub fn from_object(o: &Object) -> ObjectRecord {
+        let r2 = |v: f64| (v * 100.0).round() / 100.0;
+        ObjectRecord {
+            id: o.id,
+            bbox: [o.bbox.x0, o.bbox.y0, o.bbox.x1, o.bbox.y1],
+            centroid: [r2(o.centroid.0), r2(o.centroid.1)],
+            area: o.area,
+            score: (o.score * 10_000.0).round() / 10_000.0,
+        }
+    }
 }

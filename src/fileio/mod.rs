@@ -3,8 +3,8 @@
 //! never overwrite, bounded reads).
 //!
 //! Everything else in the library is pure; the daemon's own files (the
-//! lock, the detection log, the inbox) live in [`crate::daemon`] and build
-//! on [`durable`].
+//! lock, the detection log, the inbox) live with the daemon and build on
+//! [`durable`].
 
 pub mod data;
 pub mod durable;
