@@ -13,7 +13,7 @@ use burlwatch::codec;
 use burlwatch::record::{sha256_hex, FrameRecord};
 use burlwatch::synth::{self, LoomParams};
 
-use crate::util::{repo, Dir};
+use crate::util::{frames, repo, Dir};
 
 /// A daemon's folders, its configuration and the committed model as its
 /// running model.
@@ -173,20 +173,6 @@ fn exit_code(child: &mut Child, secs: u64) -> i32 {
 }
 
 /// `count` small seeded loom frames as PBM bytes, named frame-NNNN.pbm.
-fn frames(count: usize, seed: u64) -> Vec<(String, Vec<u8>)> {
-    let p = LoomParams {
-        width: 64,
-        height: 40,
-        ..LoomParams::standard()
-    };
-    (0..count)
-        .map(|i| {
-            let f = synth::generate(&p, synth::frame_seed(seed, i)).frame;
-            (format!("frame-{i:04}.pbm"), codec::encode_pbm(&f))
-        })
-        .collect()
-}
-
 /// Drops `all` into the inbox, waits until every one is archived, stops the
 /// daemon with SIGTERM (exit 0), and checks one record per frame.
 fn feed_and_stop(s: &Setup, d: &mut Child, all: &[(String, Vec<u8>)], secs: u64) {

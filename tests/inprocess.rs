@@ -11,13 +11,11 @@ use std::time::{Duration, Instant, SystemTime};
 
 use crossbeam_channel::{unbounded, Receiver, Sender};
 
-use burlwatch::codec;
 use burlwatch::config::{self, Config};
 use burlwatch::daemon::{self, Clock, Control, Fault, Faults, Finished, Hooks, RecordSink, Status};
 use burlwatch::record::FrameRecord;
-use burlwatch::synth::{self, LoomParams};
 
-use crate::util::{repo, Dir};
+use crate::util::{frames, repo, Dir};
 
 /// Reports each finished frame as (kind, file name).
 struct Report(Sender<(&'static str, String)>);
@@ -116,20 +114,6 @@ impl Box_ {
         }
         out
     }
-}
-
-fn frames(count: usize, seed: u64) -> Vec<(String, Vec<u8>)> {
-    let p = LoomParams {
-        width: 64,
-        height: 40,
-        ..LoomParams::standard()
-    };
-    (0..count)
-        .map(|i| {
-            let f = synth::generate(&p, synth::frame_seed(seed, i)).frame;
-            (format!("frame-{i:04}.pbm"), codec::encode_pbm(&f))
-        })
-        .collect()
 }
 
 /// The daemon on its own thread, with what the test needs to drive it.

@@ -68,3 +68,22 @@ pub fn burlwatch(cwd: &Path, args: &[&str]) -> Run {
 pub fn repo() -> PathBuf {
     PathBuf::from(env!("CARGO_MANIFEST_DIR"))
 }
+
+/// `count` small loom frames (64x40, PBM) named `frame-0000.pbm`, ...,
+/// from the seeded generator.
+pub fn frames(count: usize, seed: u64) -> Vec<(String, Vec<u8>)> {
+    let p = burlwatch::synth::LoomParams {
+        width: 64,
+        height: 40,
+        ..burlwatch::synth::LoomParams::standard()
+    };
+    (0..count)
+        .map(|i| {
+            let f = burlwatch::synth::generate(&p, burlwatch::synth::frame_seed(seed, i)).frame;
+            (
+                format!("frame-{i:04}.pbm"),
+                burlwatch::codec::encode_pbm(&f),
+            )
+        })
+        .collect()
+}

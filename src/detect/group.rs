@@ -243,20 +243,6 @@ pub fn group_and_keep(
     (objects, kept)
 }
 
-/// The pixels of the objects that survive `min_area`: what a frame's
-/// detections are once grouping has dropped the small ones.
-pub fn kept_mask(mask: &BitFrame, params: GroupParams) -> BitFrame {
-    let (runs, comp, n) = label(mask, params.merge_distance);
-    kept_of(
-        &runs,
-        &comp,
-        n,
-        params.min_area,
-        mask.width(),
-        mask.height(),
-    )
-}
-
 /// Objects of at least `min_area` pixels from a labelling (as [`label`]
 /// returns it), ids 1..n in raster order.
 pub fn objects_of(

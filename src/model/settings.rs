@@ -92,16 +92,6 @@ impl Overrides {
         s.validate()?;
         Ok(s)
     }
-
-    /// Checks the values that are set, each on its own (the same ranges as
-    /// [`Settings::validate`]).
-    pub fn validate(&self) -> Result<()> {
-        Overrides::default().over(*self).settings_for(Settings {
-            threshold: 0.5,
-            grouping: GroupParams::default(),
-        })?;
-        Ok(())
-    }
 }
 
 /// Precision, recall and F1.
@@ -147,11 +137,5 @@ mod tests {
         .unwrap_err();
         assert!(matches!(e.kind(), ErrorKind::Settings(_)));
         assert!(e.to_string().contains("merge_distance 65"), "{e}");
-        assert!(Overrides {
-            threshold: Some(1.5),
-            ..Overrides::default()
-        }
-        .validate()
-        .is_err());
     }
 }
