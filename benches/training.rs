@@ -7,9 +7,10 @@
 //! 2. Label store: time per labelled pixel for 10, 30 and 60 frames (it
 //!    should stay flat: building the store is linear in pixels).
 //! 3. Quality: a model trained with the defaults on all of
-//!    `demo-frames/train`, scored on `demo-frames/test`; and the same on a
-//!    second loom setting (`alternate`: another thread period, width and
-//!    noise level) generated in memory with the same frame counts.
+//!    `demo-frames/train`, scored on `demo-frames/test` the way `burlwatch
+//!    eval` scores (`score::score_frames`); and the same on a second loom
+//!    setting (`alternate`: another thread period, width and noise level)
+//!    generated in memory with the same frame counts.
 //!
 //! Environment: `BURLWATCH_BENCH_RUNS` (default 5) runs for the medians.
 
@@ -17,11 +18,10 @@ use std::path::Path;
 use std::time::Instant;
 
 use burlwatch::codec::DecodeLimits;
-use burlwatch::detect::walker;
+use burlwatch::detect::Detector;
 use burlwatch::learn::store::LabelStore;
 use burlwatch::learn::{self, LabelledFrame, Stage, TrainParams};
-use burlwatch::model::Model;
-use burlwatch::score::{self, Scores};
+use burlwatch::score;
 use burlwatch::synth::{self, LoomParams};
 
 fn demo(set: &str) -> Vec<LabelledFrame> {
@@ -37,14 +37,13 @@ fn demo(set: &str) -> Vec<LabelledFrame> {
 
 /// Frames as `burlwatch generate` writes them (same seeds, same bits).
 fn generated(p: &LoomParams, seed: u64, n: usize) -> Vec<LabelledFrame> {
-    (0..n)
-        .map(|i| {
-            let f = synth::generate(p, seed.wrapping_mul(1_000_003).wrapping_add(i as u64));
-            LabelledFrame {
-                name: format!("loom-{i:04}"),
-                frame: f.frame,
-                mask: f.mask,
-            }
+    synth::generate_set(p, seed, n)
+        .into_iter()
+        .enumerate()
+        .map(|(i, f)| LabelledFrame {
+            name: format!("loom-{i:04}"),
+            frame: f.frame,
+            mask: f.mask,
         })
         .collect()
 }
@@ -54,25 +53,16 @@ fn median(v: &mut [f64]) -> f64 {
     v[v.len() / 2]
 }
 
-fn score(m: &Model, test: &[LabelledFrame]) -> Scores {
-    let settings = m.settings();
-    let mut s = Scores::default();
-    for f in test {
-        let r = walker::run(&m.tree, &settings, &f.frame);
-        s.pixel.add(&score::pixel_confusion(&r.mask, &f.mask));
-        s.object.add(&score::object_confusion(
-            &r.objects,
-            &score::truth_objects(&f.mask),
-        ));
-    }
-    s
-}
-
 fn quality(name: &str, train: &[LabelledFrame], test: &[LabelledFrame]) {
     let t0 = Instant::now();
     let m = learn::train(train, &TrainParams::default(), &mut |_| {}).expect("training");
     let secs = t0.elapsed().as_secs_f64();
-    let s = score(&m, test);
+    let settings = m.settings();
+    let detector = Detector::new(m, settings);
+    let s = score::score_frames(&detector, test, false, &mut |_, _| {})
+        .expect("demo masks match their frames")
+        .total;
+    let m = detector.model();
     println!(
         "quality {name}: trained on {} frames in {secs:.2} s ({} leaves, depth {}, threshold {:.4}, \
          min_area {}, merge_distance {}); {} test frames: object F1 {:.3} (P {:.3} R {:.3}), \

@@ -294,13 +294,13 @@ fn decode_p4_raster(raster: &[u8], width: usize, height: usize) -> Result<BitFra
 
 /// Decodes a PNG of any colour type and bit depth, thresholding its luma.
 ///
-/// Non-interlaced PNGs (what cameras write) are decoded row by row, so
-/// memory stays one row plus the packed frame whatever the colour type or
-/// bit depth; interlaced ones need the whole picture and go through the
-/// `image` crate. Luma follows the `image` crate's conversion (Rec. 709
-/// weights 2126/7152/722 over 10000, 16-bit samples rounded to 8 bits), so
-/// both paths agree. Alpha is composited over white: a transparent pixel
-/// is background, never ink.
+/// The picture is decoded row by row and each row's pixels go straight
+/// into the packed frame, so memory stays one row plus the frame whatever
+/// the colour type, bit depth or interlacing. Luma follows the `image`
+/// crate's conversion (Rec. 709 weights 2126/7152/722 over 10000, 16-bit
+/// samples rounded to 8 bits), which tests/reference_images.rs checks.
+/// Alpha is composited over white: a transparent pixel is background,
+/// never ink.
 pub fn decode_png(bytes: &[u8], limits: &DecodeLimits) -> Result<BitFrame> {
     let png_err = |e: png::DecodingError| Error::new(ErrorKind::Png(e.to_string()));
     let mut decoder = png::Decoder::new(std::io::Cursor::new(bytes));
@@ -311,28 +311,31 @@ pub fn decode_png(bytes: &[u8], limits: &DecodeLimits) -> Result<BitFrame> {
         (info.width, info.height, info.interlaced)
     };
     check_size(w as u64, h as u64, limits)?;
-    if interlaced {
-        return decode_png_whole(bytes, limits);
-    }
     let (color, depth) = reader.output_color_type();
     let channels = color.samples();
     let wide = depth == png::BitDepth::Sixteen;
     let (width, height) = (w as usize, h as usize);
+    let lines = PassLine::all(width, height, interlaced);
     let mut frame = BitFrame::new(width, height);
-    let mut y = 0;
+    let mut done = 0;
     while let Some(row) = reader.next_row().map_err(png_err)? {
-        if y >= height {
-            break;
-        }
+        let Some(line) = lines.get(done) else { break };
         let data = row.data();
-        let out = frame.row_mut(y);
-        for x in 0..width {
+        let need = line.samples * channels * if wide { 2 } else { 1 };
+        if data.len() < need {
+            return Err(Error::new(ErrorKind::Png(format!(
+                "row {done} holds {} bytes, {need} expected",
+                data.len()
+            ))));
+        }
+        let out = frame.row_mut(line.y);
+        for i in 0..line.samples {
             let sample = |c: usize| -> u32 {
-                let i = x * channels + c;
+                let k = i * channels + c;
                 if wide {
-                    u16::from_be_bytes([data[2 * i], data[2 * i + 1]]) as u32
+                    u16::from_be_bytes([data[2 * k], data[2 * k + 1]]) as u32
                 } else {
-                    data[i] as u32
+                    data[k] as u32
                 }
             };
             let (luma, alpha) = match channels {
@@ -353,20 +356,77 @@ pub fn decode_png(bytes: &[u8], limits: &DecodeLimits) -> Result<BitFrame> {
             };
             let dark = luma < limits.png_threshold as u32;
             if dark != limits.png_invert {
+                let x = line.x0 + i * line.step;
                 out[x / 64] |= 1 << (x % 64);
             }
         }
-        y += 1;
+        done += 1;
     }
-    if y < height {
+    if done < lines.len() {
         return Err(ErrorKind::Truncated {
-            expected: height,
-            found: y,
+            expected: lines.len(),
+            found: done,
             unit: "rows",
         }
         .into());
     }
     Ok(frame)
+}
+
+/// Where the pixels of one stored PNG row go: row `y` of the picture,
+/// columns `x0`, `x0 + step`, ... (`samples` of them).
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+struct PassLine {
+    y: usize,
+    x0: usize,
+    step: usize,
+    samples: usize,
+}
+
+impl PassLine {
+    /// The stored rows of a `width` x `height` picture in file order. A
+    /// plain PNG stores the picture's rows top to bottom. An interlaced one
+    /// stores the seven passes of Adam7 one after the other, each a reduced
+    /// picture of every `step`-th pixel of every `row_step`-th row; a pass
+    /// with no pixel stores no row (PNG specification, second edition, W3C
+    /// Recommendation of 10 November 2003, section 8.2, "Interlace
+    /// methods", <https://www.w3.org/TR/2003/REC-PNG-20031110/>).
+    fn all(width: usize, height: usize, interlaced: bool) -> Vec<PassLine> {
+        if !interlaced {
+            return (0..height)
+                .map(|y| PassLine {
+                    y,
+                    x0: 0,
+                    step: 1,
+                    samples: width,
+                })
+                .collect();
+        }
+        // Per pass: starting row, starting column, row step, column step.
+        const ADAM7: [(usize, usize, usize, usize); 7] = [
+            (0, 0, 8, 8),
+            (0, 4, 8, 8),
+            (4, 0, 8, 4),
+            (0, 2, 4, 4),
+            (2, 0, 4, 2),
+            (0, 1, 2, 2),
+            (1, 0, 2, 1),
+        ];
+        let mut lines = Vec::new();
+        for (y0, x0, row_step, step) in ADAM7 {
+            let samples = width.saturating_sub(x0).div_ceil(step);
+            if samples == 0 {
+                continue;
+            }
+            lines.extend((y0..height).step_by(row_step).map(|y| PassLine {
+                y,
+                x0,
+                step,
+                samples,
+            }));
+        }
+        lines
+    }
 }
 
 /// Luma of an RGB sample as the `image` crate computes it.
@@ -378,39 +438,6 @@ fn rec709(r: u32, g: u32, b: u32) -> u32 {
 /// `round(c * 255 / 65535)`.
 fn to_8_bits(c: u32) -> u32 {
     (c + 128) / 257
-}
-
-/// Interlaced PNG: whole-picture decoding through the `image` crate.
-fn decode_png_whole(bytes: &[u8], limits: &DecodeLimits) -> Result<BitFrame> {
-    use image::ImageDecoder;
-    let png_err = |e: image::ImageError| Error::new(ErrorKind::Png(e.to_string()));
-    let decoder =
-        image::codecs::png::PngDecoder::new(std::io::Cursor::new(bytes)).map_err(png_err)?;
-    let (w, h) = decoder.dimensions();
-    check_size(w as u64, h as u64, limits)?;
-    let img = image::DynamicImage::from_decoder(decoder).map_err(png_err)?;
-    let has_alpha = img.color().has_alpha();
-    let la = img.to_luma_alpha8();
-    let (width, height) = (w as usize, h as usize);
-    let mut frame = BitFrame::new(width, height);
-    let raw = la.as_raw();
-    for y in 0..height {
-        let row = frame.row_mut(y);
-        for x in 0..width {
-            let i = 2 * (y * width + x);
-            let (l, a) = (raw[i] as u32, raw[i + 1] as u32);
-            let luma = if has_alpha {
-                (l * a + 255 * (255 - a) + 127) / 255
-            } else {
-                l
-            };
-            let dark = luma < limits.png_threshold as u32;
-            if dark != limits.png_invert {
-                row[x / 64] |= 1 << (x % 64);
-            }
-        }
-    }
-    Ok(frame)
 }
 
 /// Encodes raw PBM (P4).
@@ -443,25 +470,32 @@ pub fn encode_pbm_plain(frame: &BitFrame) -> Vec<u8> {
     s.into_bytes()
 }
 
-/// Encodes a frame as an 8-bit grey PNG (set = black). PNG cannot hold an
-/// empty picture, so a frame of width or height 0 is an error.
+/// Encodes a frame as an 8-bit grey PNG (set = black), fast compression
+/// with an adaptive filter per row. PNG cannot hold an empty picture, so a
+/// frame of width or height 0 is an error.
 pub fn encode_png(frame: &BitFrame) -> Result<Vec<u8>> {
-    if frame.is_empty() {
+    let png_err = |e: png::EncodingError| Error::new(ErrorKind::Png(e.to_string()));
+    let size = |n: usize| u32::try_from(n).ok().filter(|&n| n > 0);
+    let (Some(width), Some(height)) = (size(frame.width()), size(frame.height())) else {
         return Err(Error::new(ErrorKind::Png(format!(
             "a {}x{} frame cannot be written as PNG",
             frame.width(),
             frame.height()
         ))));
-    }
-    let mut buf = Vec::new();
+    };
     let pixels: Vec<u8> = (0..frame.height())
         .flat_map(|y| (0..frame.width()).map(move |x| (x, y)))
         .map(|(x, y)| if frame.get(x, y) { 0 } else { 255 })
         .collect();
-    let img = image::GrayImage::from_raw(frame.width() as u32, frame.height() as u32, pixels)
-        .expect("buffer size matches");
-    img.write_to(&mut std::io::Cursor::new(&mut buf), image::ImageFormat::Png)
-        .map_err(|e| Error::new(ErrorKind::Png(e.to_string())))?;
+    let mut buf = Vec::new();
+    let mut encoder = png::Encoder::new(&mut buf, width, height);
+    encoder.set_color(png::ColorType::Grayscale);
+    encoder.set_depth(png::BitDepth::Eight);
+    encoder.set_compression(png::Compression::Fast);
+    encoder.set_filter(png::Filter::Adaptive);
+    let mut writer = encoder.write_header().map_err(png_err)?;
+    writer.write_image_data(&pixels).map_err(png_err)?;
+    writer.finish().map_err(png_err)?;
     Ok(buf)
 }
 
@@ -527,20 +561,77 @@ mod tests {
         ));
     }
 
+    /// A PNG of `width` x 1 pixels in `color` at 8 bits, from its samples.
+    fn png_of(color: png::ColorType, width: u32, samples: &[u8]) -> Vec<u8> {
+        let mut buf = Vec::new();
+        let mut e = png::Encoder::new(&mut buf, width, 1);
+        e.set_color(color);
+        e.set_depth(png::BitDepth::Eight);
+        let mut w = e.write_header().unwrap();
+        w.write_image_data(samples).unwrap();
+        w.finish().unwrap();
+        buf
+    }
+
     #[test]
     fn png_alpha_is_composited_over_white() {
         // Black pixels at alpha 255, 200, 100 and 0 (common practice: a
         // transparent pixel shows the background, here white paper).
-        let img = image::RgbaImage::from_fn(4, 1, |x, _| {
-            image::Rgba([0, 0, 0, [255u8, 200, 100, 0][x as usize]])
-        });
-        let mut png = Vec::new();
-        image::DynamicImage::ImageRgba8(img)
-            .write_to(&mut std::io::Cursor::new(&mut png), image::ImageFormat::Png)
-            .unwrap();
-        let f = decode(&png, &lim()).unwrap();
+        let rgba: Vec<u8> = [255u8, 200, 100, 0]
+            .iter()
+            .flat_map(|&a| [0, 0, 0, a])
+            .collect();
+        let f = decode(&png_of(png::ColorType::Rgba, 4, &rgba), &lim()).unwrap();
         // Over white: luma 0, 55, 155, 255; below 128 is ink.
         assert_eq!(f.to_ascii(), "##..\n");
+        let grey_alpha = [0u8, 255, 0, 200, 0, 100, 0, 0];
+        let f = decode(
+            &png_of(png::ColorType::GrayscaleAlpha, 4, &grey_alpha),
+            &lim(),
+        )
+        .unwrap();
+        assert_eq!(f.to_ascii(), "##..\n");
+    }
+
+    #[test]
+    fn adam7_places_every_pixel_once() {
+        for (w, h) in [(1, 1), (3, 2), (5, 5), (8, 8), (9, 17), (13, 3)] {
+            let mut seen = vec![0u8; w * h];
+            for l in PassLine::all(w, h, true) {
+                assert!(l.samples > 0 && l.y < h);
+                for i in 0..l.samples {
+                    seen[l.y * w + l.x0 + i * l.step] += 1;
+                }
+            }
+            assert!(seen.iter().all(|&n| n == 1), "{w}x{h}: {seen:?}");
+        }
+        // The first rows of an 8x8 picture: pass 1 row 0 (one pixel), pass
+        // 2 row 0 (one pixel, column 4), pass 3 row 4 (two pixels).
+        let l = PassLine::all(8, 8, true);
+        assert_eq!(
+            &l[..3],
+            &[
+                PassLine {
+                    y: 0,
+                    x0: 0,
+                    step: 8,
+                    samples: 1
+                },
+                PassLine {
+                    y: 0,
+                    x0: 4,
+                    step: 8,
+                    samples: 1
+                },
+                PassLine {
+                    y: 4,
+                    x0: 0,
+                    step: 4,
+                    samples: 2
+                },
+            ]
+        );
+        assert_eq!(l.len(), 1 + 1 + 1 + 2 + 2 + 4 + 4);
     }
 
     #[test]

@@ -10,11 +10,17 @@
 //!
 //! Counts add across frames ([`Confusion::add`]), so a data set's score is
 //! computed from the summed counts, never by averaging per-frame ratios.
+//! [`score_frames`] scores a [`Detector`] on a set of labelled frames this
+//! way: `burlwatch eval` prints its [`Report`], and two detectors (a new
+//! model and the one in service) compare on the same held-out frames.
 
 use serde::{Deserialize, Serialize};
 
+use crate::detect::compile::{self, Scratch};
 use crate::detect::group::{self, GroupParams, Object};
-use crate::frame::BitFrame;
+use crate::detect::Detector;
+use crate::error::{Error, ErrorKind, Result};
+use crate::frame::{BitFrame, LabelledFrame};
 
 /// The IoU a detection must reach to match a ground-truth object.
 pub const IOU_MATCH: f64 = 0.5;
@@ -141,10 +147,79 @@ impl Scores {
     }
 }
 
+/// One labelled frame's scores.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct FrameScores {
+    /// The frame's name (in a data folder, its files' shared stem).
+    pub name: String,
+    pub scores: Scores,
+}
+
+/// What a detector scored on a set of labelled frames.
+#[derive(Clone, Debug, Default, PartialEq, Eq)]
+pub struct Report {
+    /// Frames scored.
+    pub frames: usize,
+    /// Pixel and object counts summed over every frame.
+    pub total: Scores,
+    /// Each frame's scores in the order given, when asked for; else empty.
+    pub per_frame: Vec<FrameScores>,
+}
+
+/// Runs `detector` (its compiled program with the settings it holds) over
+/// `frames` and adds up pixel and object confusion against their masks;
+/// with `per_frame`, also keeps every frame's own scores.
+/// `progress(done, total)` is called before each frame and once at the end.
+///
+/// A frame whose mask differs from it in size is an error naming the frame
+/// (`fileio::data::read_folder` never returns such a pair).
+pub fn score_frames(
+    detector: &Detector,
+    frames: &[LabelledFrame],
+    per_frame: bool,
+    progress: &mut dyn FnMut(usize, usize),
+) -> Result<Report> {
+    if let Some(f) = frames.iter().find(|f| !f.frame.same_size(&f.mask)) {
+        return Err(Error::new(ErrorKind::MaskSizeMismatch {
+            width: f.frame.width(),
+            height: f.frame.height(),
+            mask_width: f.mask.width(),
+            mask_height: f.mask.height(),
+        })
+        .with_path(&f.name));
+    }
+    let settings = detector.settings();
+    let tree = &detector.model().tree;
+    let mut scratch = Scratch::default();
+    let mut report = Report {
+        frames: frames.len(),
+        ..Report::default()
+    };
+    for (k, f) in frames.iter().enumerate() {
+        progress(k, frames.len());
+        let r = compile::run(detector.program(), tree, &settings, &f.frame, &mut scratch);
+        let s = Scores {
+            pixel: pixel_confusion(&r.mask, &f.mask),
+            object: object_confusion(&r.objects, &truth_objects(&f.mask)),
+        };
+        report.total.add(&s);
+        if per_frame {
+            report.per_frame.push(FrameScores {
+                name: f.name.clone(),
+                scores: s,
+            });
+        }
+    }
+    progress(frames.len(), frames.len());
+    Ok(report)
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
     use crate::detect::group::BBox;
+    use crate::model::{DataSummary, Leaf, Model, Node, Reference, TrainingInfo, Tree};
+    use crate::window::Window;
 
     fn obj(id: u32, x0: u32, y0: u32, x1: u32, y1: u32, score: f64) -> Object {
         Object {
@@ -188,5 +263,156 @@ mod tests {
         assert_eq!((c.tp, c.fp, c.fn_), (1, 1, 1));
         // Nothing to find and nothing found is a perfect score.
         assert_eq!(object_confusion(&[], &[]).f1(), 1.0);
+    }
+
+    /// A model that detects exactly the set pixels: one split on the
+    /// centre pixel of a 3x3 window, leaves 0 (clear) and 1 (set).
+    fn ink_detector(min_area: u32) -> Detector {
+        let leaf = |score: f64| {
+            Node::Leaf(Leaf {
+                counts: [1, 1],
+                score,
+                share: 0.5,
+            })
+        };
+        let tree = Tree::new(
+            Window::new(3).unwrap(),
+            vec![
+                Node::Split {
+                    feature: 4,
+                    if_clear: 1,
+                    if_set: 2,
+                },
+                leaf(0.0),
+                leaf(1.0),
+            ],
+        )
+        .unwrap();
+        let model = Model {
+            tree,
+            threshold: 0.5,
+            grouping: GroupParams {
+                min_area,
+                merge_distance: 0,
+            },
+            model_version: 1,
+            training: TrainingInfo {
+                criterion: "entropy".into(),
+                max_depth: 1,
+                min_leaf: 1.0,
+                min_gain: 0.0,
+                class_weight: "none".into(),
+                class_weights: [1.0, 1.0],
+                holdout: 0.0,
+                pruning_alpha: 0.0,
+                tuned: false,
+                grown_leaves: 2,
+                pruned_leaves: 2,
+                refit: false,
+                overridden: Vec::new(),
+            },
+            data: DataSummary::default(),
+            holdout: None,
+            reference: Reference::default(),
+        };
+        let settings = model.settings();
+        Detector::new(model, settings)
+    }
+
+    fn labelled(name: &str, frame: &str, mask: &str) -> LabelledFrame {
+        LabelledFrame {
+            name: name.into(),
+            frame: BitFrame::from_ascii(frame),
+            mask: BitFrame::from_ascii(mask),
+        }
+    }
+
+    #[test]
+    fn frames_are_scored_and_summed() {
+        // Frame a: a 2x2 blob that is a defect, and a lone pixel that is
+        // not. Frame b: a defect the detector misses (its pixels are
+        // clear), and one it finds only in part (IoU 2/8 < 0.5).
+        let frames = [
+            labelled(
+                "a",
+                "##....\n##....\n......\n....#.\n",
+                "##....\n##....\n......\n......\n",
+            ),
+            labelled(
+                "b",
+                "......\n......\n....##\n......\n",
+                "#.....\n......\n..####\n..####\n",
+            ),
+        ];
+        let mut calls = Vec::new();
+        let r = score_frames(&ink_detector(1), &frames, true, &mut |d, t| {
+            calls.push((d, t))
+        })
+        .unwrap();
+        assert_eq!(calls, [(0, 2), (1, 2), (2, 2)]);
+        assert_eq!(r.frames, 2);
+        let a = Scores {
+            pixel: Confusion {
+                tp: 4,
+                fp: 1,
+                fn_: 0,
+                tn: 19,
+            },
+            object: Confusion {
+                tp: 1,
+                fp: 1,
+                fn_: 0,
+                tn: 0,
+            },
+        };
+        let b = Scores {
+            pixel: Confusion {
+                tp: 2,
+                fp: 0,
+                fn_: 7,
+                tn: 15,
+            },
+            object: Confusion {
+                tp: 0,
+                fp: 1,
+                fn_: 2,
+                tn: 0,
+            },
+        };
+        assert_eq!(
+            r.per_frame,
+            [
+                FrameScores {
+                    name: "a".into(),
+                    scores: a
+                },
+                FrameScores {
+                    name: "b".into(),
+                    scores: b
+                }
+            ]
+        );
+        let mut total = a;
+        total.add(&b);
+        assert_eq!(r.total, total);
+        // Without per_frame: the same totals, no list.
+        let quiet = score_frames(&ink_detector(1), &frames, false, &mut |_, _| {}).unwrap();
+        assert_eq!((quiet.total, quiet.per_frame.len()), (total, 0));
+        // The detector's settings are the ones used: min_area 2 drops the
+        // lone pixel of frame a, so its false positives go.
+        let r = score_frames(&ink_detector(2), &frames[..1], false, &mut |_, _| {}).unwrap();
+        assert_eq!((r.total.pixel.fp, r.total.object.fp), (0, 0));
+        assert_eq!(
+            score_frames(&ink_detector(1), &[], true, &mut |_, _| {}).unwrap(),
+            Report::default()
+        );
+    }
+
+    #[test]
+    fn a_mask_of_another_size_is_an_error_naming_the_frame() {
+        let frames = [labelled("odd", "##\n##\n", "#\n")];
+        let e = score_frames(&ink_detector(1), &frames, false, &mut |_, _| {}).unwrap_err();
+        assert!(matches!(e.kind(), ErrorKind::MaskSizeMismatch { .. }));
+        assert!(e.to_string().contains("odd"), "{e}");
     }
 }

@@ -71,6 +71,34 @@ fn train_scan_eval_rules_round_trip() {
         }
     }
     assert_eq!(v["per_frame"].as_array().unwrap().len(), 4);
+    // The counts are the library's score of the same frames.
+    let folder = burlwatch::fileio::data::read_folder(
+        &dir.join("test"),
+        &burlwatch::codec::DecodeLimits::default(),
+        &mut |_, _| {},
+    )
+    .unwrap();
+    let m_read =
+        burlwatch::model::Model::from_json(&std::fs::read_to_string(&model).unwrap()).unwrap();
+    let settings = m_read.settings();
+    let detector = burlwatch::detect::Detector::new(m_read, settings);
+    let want =
+        burlwatch::score::score_frames(&detector, &folder.frames, true, &mut |_, _| {}).unwrap();
+    let counts = |level: &serde_json::Value| ["tp", "fp", "fn"].map(|k| level[k].as_u64().unwrap());
+    let c = |c: &burlwatch::score::Confusion| [c.tp, c.fp, c.fn_];
+    assert_eq!(counts(&v["pixel"]), c(&want.total.pixel));
+    assert_eq!(v["pixel"]["tn"].as_u64(), Some(want.total.pixel.tn));
+    assert_eq!(counts(&v["object"]), c(&want.total.object));
+    for (line, f) in v["per_frame"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .zip(&want.per_frame)
+    {
+        assert_eq!(line["frame"].as_str(), Some(f.name.as_str()));
+        assert_eq!(counts(&line["pixel"]), c(&f.scores.pixel));
+        assert_eq!(counts(&line["object"]), c(&f.scores.object));
+    }
 
     // scan --json: one record per frame, hash of the file's bytes.
     let frames: Vec<String> = (0..4)
@@ -322,6 +350,62 @@ fn generate_is_deterministic() {
                 std::fs::read(dir.join(&format!("a/{name}"))).unwrap(),
                 std::fs::read(dir.join(&format!("b/{name}"))).unwrap(),
                 "{name}"
+            );
+        }
+    }
+}
+
+/// The `burlwatch generate` commands README.md gives for `demo-frames/`,
+/// each as its arguments after `burlwatch`.
+fn readme_demo_commands() -> Vec<Vec<String>> {
+    let readme = std::fs::read_to_string(repo().join("README.md")).unwrap();
+    readme
+        .lines()
+        .filter(|l| l.starts_with("burlwatch generate --out demo-frames/"))
+        .map(|l| l.split_whitespace().skip(1).map(str::to_string).collect())
+        .collect()
+}
+
+#[test]
+fn committed_demo_frames_regenerate_bit_for_bit() {
+    let dir = Dir::new();
+    let demo = repo().join("demo-frames");
+    let commands = readme_demo_commands();
+    let mut made = Vec::new();
+    for mut args in commands {
+        // Into the temporary folder instead of the committed one.
+        let out = args.iter().position(|a| a == "--out").unwrap() + 1;
+        let set = args[out].trim_start_matches("demo-frames/").to_string();
+        args[out] = dir.join(&set).to_str().unwrap().to_string();
+        let args: Vec<&str> = args.iter().map(String::as_str).collect();
+        let r = burlwatch(dir.path(), &args);
+        assert_eq!(r.code, 0, "{args:?}: {}", r.stderr);
+        made.push(set);
+    }
+    // Every committed set has its command, and every file is the same.
+    let mut sets: Vec<String> = std::fs::read_dir(&demo)
+        .unwrap()
+        .map(|e| e.unwrap().file_name().into_string().unwrap())
+        .collect();
+    sets.sort();
+    made.sort();
+    assert_eq!(made, sets, "README.md's generate commands for demo-frames/");
+    let names = |d: &std::path::Path| {
+        let mut v: Vec<String> = std::fs::read_dir(d)
+            .unwrap()
+            .map(|e| e.unwrap().file_name().into_string().unwrap())
+            .collect();
+        v.sort();
+        v
+    };
+    for set in &sets {
+        let (committed, again) = (demo.join(set), dir.join(set));
+        let files = names(&committed);
+        assert_eq!(names(&again), files, "{set}: other files");
+        for f in &files {
+            assert!(
+                std::fs::read(committed.join(f)).unwrap() == std::fs::read(again.join(f)).unwrap(),
+                "demo-frames/{set}/{f} differs when regenerated"
             );
         }
     }

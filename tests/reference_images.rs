@@ -568,6 +568,250 @@ fn colour_png_goes_through_luma() {
     assert_eq!(codec::decode(&png, &inverted).unwrap(), want.not());
 }
 
+/// Adler-32 of `data` as RFC 1950 defines it: two running sums modulo
+/// 65521, the second summing the first.
+fn adler32(data: &[u8]) -> u32 {
+    let (mut a, mut b) = (1u32, 0u32);
+    for &d in data {
+        a = (a + d as u32) % 65521;
+        b = (b + a) % 65521;
+    }
+    (b << 16) | a
+}
+
+/// A zlib stream (RFC 1950) of stored, uncompressed deflate blocks (RFC
+/// 1951, section 3.2.4).
+fn zlib_stored(data: &[u8]) -> Vec<u8> {
+    let mut out = vec![0x78, 0x01];
+    let blocks: Vec<&[u8]> = data.chunks(65535).collect();
+    for (k, block) in blocks.iter().enumerate() {
+        out.push((k + 1 == blocks.len()) as u8);
+        let len = block.len() as u16;
+        out.extend(len.to_le_bytes());
+        out.extend((!len).to_le_bytes());
+        out.extend_from_slice(block);
+    }
+    out.extend(adler32(data).to_be_bytes());
+    out
+}
+
+/// How a hand-made PNG stores its pixels.
+struct PngLayout {
+    /// IHDR colour type: 0 grey, 2 RGB, 3 palette, 4 grey + alpha, 6 RGBA.
+    color_type: u8,
+    bit_depth: u8,
+    /// Samples per pixel (1 for palette indices).
+    channels: usize,
+    /// Extra chunks between IHDR and IDAT (PLTE, tRNS).
+    chunks: Vec<([u8; 4], Vec<u8>)>,
+}
+
+/// A PNG file written by hand from the PNG specification (second edition,
+/// W3C Recommendation of 10 November 2003,
+/// <https://www.w3.org/TR/2003/REC-PNG-20031110/>): IHDR, the layout's extra chunks,
+/// one IDAT, IEND, each with its CRC-32. Every stored row has filter type
+/// 0 and packs its samples most significant bit first (section 7.2). With
+/// `interlaced`, the rows are the seven Adam7 passes of section 8.2, each
+/// a reduced picture; a pass with no pixel stores no row. `sample(x, y, c)`
+/// gives channel `c` of pixel `(x, y)`.
+fn handmade_png(
+    w: usize,
+    h: usize,
+    layout: &PngLayout,
+    interlaced: bool,
+    sample: &dyn Fn(usize, usize, usize) -> u16,
+) -> Vec<u8> {
+    // Starting row, starting column, row step, column step of each pass.
+    let passes: &[(usize, usize, usize, usize)] = if interlaced {
+        &[
+            (0, 0, 8, 8),
+            (0, 4, 8, 8),
+            (4, 0, 8, 4),
+            (0, 2, 4, 4),
+            (2, 0, 4, 2),
+            (0, 1, 2, 2),
+            (1, 0, 2, 1),
+        ]
+    } else {
+        &[(0, 0, 1, 1)]
+    };
+    let depth = layout.bit_depth as usize;
+    let mut raw = Vec::new();
+    for &(y0, x0, dy, dx) in passes {
+        let xs: Vec<usize> = (x0..w).step_by(dx).collect();
+        if xs.is_empty() {
+            continue;
+        }
+        for y in (y0..h).step_by(dy) {
+            raw.push(0); // filter type None
+            let mut bits: Vec<bool> = Vec::new();
+            for &x in &xs {
+                for c in 0..layout.channels {
+                    let v = sample(x, y, c);
+                    bits.extend((0..depth).rev().map(|b| (v >> b) & 1 == 1));
+                }
+            }
+            for byte in bits.chunks(8) {
+                raw.push(
+                    byte.iter()
+                        .enumerate()
+                        .fold(0u8, |acc, (i, &b)| acc | (u8::from(b) << (7 - i))),
+                );
+            }
+        }
+    }
+    let mut ihdr = Vec::new();
+    ihdr.extend((w as u32).to_be_bytes());
+    ihdr.extend((h as u32).to_be_bytes());
+    ihdr.extend([
+        layout.bit_depth,
+        layout.color_type,
+        0,
+        0,
+        u8::from(interlaced),
+    ]);
+    let mut out = b"\x89PNG\r\n\x1a\n".to_vec();
+    let mut chunk = |kind: &[u8; 4], data: &[u8]| {
+        out.extend((data.len() as u32).to_be_bytes());
+        let start = out.len();
+        out.extend_from_slice(kind);
+        out.extend_from_slice(data);
+        let crc = crc32fast::hash(&out[start..]);
+        out.extend(crc.to_be_bytes());
+    };
+    chunk(b"IHDR", &ihdr);
+    for (kind, data) in &layout.chunks {
+        chunk(kind, data);
+    }
+    chunk(b"IDAT", &zlib_stored(&raw));
+    chunk(b"IEND", &[]);
+    out
+}
+
+/// What the `image` crate makes of a PNG: its 8-bit luma and alpha, alpha
+/// composited over white, darker than 128 set.
+fn image_crate_png(bytes: &[u8]) -> BitFrame {
+    let img = image::load_from_memory_with_format(bytes, ImageFormat::Png).unwrap();
+    let la = img.to_luma_alpha8();
+    BitFrame::from_fn(la.width() as usize, la.height() as usize, |x, y| {
+        let [l, a] = la.get_pixel(x as u32, y as u32).0.map(u32::from);
+        (l * a + 255 * (255 - a) + 127) / 255 < 128
+    })
+}
+
+#[test]
+fn interlaced_png_matches_the_plain_one_and_the_image_crate() {
+    let mut rng = Rng::new(0xada7);
+    // A palette of four entries: black, white, dark red, and black made
+    // half transparent by tRNS (luma 0 at alpha 128 over white: 127, ink).
+    let palette = PngLayout {
+        color_type: 3,
+        bit_depth: 2,
+        channels: 1,
+        chunks: vec![
+            (*b"PLTE", vec![0, 0, 0, 255, 255, 255, 120, 0, 0, 0, 0, 0]),
+            (*b"tRNS", vec![255, 255, 255, 128]),
+        ],
+    };
+    let layouts = [
+        (
+            PngLayout {
+                color_type: 0,
+                bit_depth: 1,
+                channels: 1,
+                chunks: vec![],
+            },
+            1u16,
+        ),
+        (
+            PngLayout {
+                color_type: 0,
+                bit_depth: 4,
+                channels: 1,
+                chunks: vec![],
+            },
+            15,
+        ),
+        (
+            PngLayout {
+                color_type: 0,
+                bit_depth: 8,
+                channels: 1,
+                chunks: vec![],
+            },
+            255,
+        ),
+        (
+            PngLayout {
+                color_type: 0,
+                bit_depth: 16,
+                channels: 1,
+                chunks: vec![],
+            },
+            65535,
+        ),
+        (
+            PngLayout {
+                color_type: 2,
+                bit_depth: 8,
+                channels: 3,
+                chunks: vec![],
+            },
+            255,
+        ),
+        (
+            PngLayout {
+                color_type: 4,
+                bit_depth: 8,
+                channels: 2,
+                chunks: vec![],
+            },
+            255,
+        ),
+        (
+            PngLayout {
+                color_type: 6,
+                bit_depth: 16,
+                channels: 4,
+                chunks: vec![],
+            },
+            65535,
+        ),
+        (palette, 3),
+    ];
+    for (layout, max) in &layouts {
+        for (w, h) in [(1, 1), (3, 2), (9, 17), (33, 12)] {
+            let values: Vec<u16> = (0..w * h * layout.channels)
+                .map(|_| rng.range(0, *max as usize + 1) as u16)
+                .collect();
+            let sample = |x: usize, y: usize, c: usize| values[(y * w + x) * layout.channels + c];
+            let plain = handmade_png(w, h, layout, false, &sample);
+            let adam7 = handmade_png(w, h, layout, true, &sample);
+            let what = format!(
+                "colour type {} depth {} {w}x{h}",
+                layout.color_type, layout.bit_depth
+            );
+            let want = image_crate_png(&plain);
+            assert_eq!(image_crate_png(&adam7), want, "image crate, {what}");
+            assert_eq!(decode(&plain).unwrap(), want, "plain, {what}");
+            assert_eq!(decode(&adam7).unwrap(), want, "interlaced, {what}");
+        }
+    }
+    // A cut interlaced file is an error, never a short or wrong frame; a
+    // cut past the last pixel row may still give the whole picture.
+    let layout = &layouts[2].0;
+    let adam7 = handmade_png(16, 16, layout, true, &|x, y, _| (x * 16 + y) as u16);
+    let whole = decode(&adam7).unwrap();
+    let mut refused = 0;
+    for n in 0..adam7.len() {
+        match decode(&adam7[..n]) {
+            Ok(f) => assert_eq!(f, whole, "{n} bytes"),
+            Err(_) => refused += 1,
+        }
+    }
+    assert!(refused > adam7.len() / 2, "{refused} cuts refused");
+}
+
 // ---------------------------------------------------------------------------
 // 5. Connected components against imageproc.
 

@@ -125,7 +125,7 @@ fn parse_size(s: &str) -> Result<(usize, usize)> {
     Ok((w, h))
 }
 
-pub fn bench(a: BenchArgs) -> Result<i32> {
+pub fn run(a: BenchArgs) -> Result<i32> {
     let m = super::load_model(&a.model)?;
     let frame: BitFrame = match &a.frame {
         Some(p) => burlwatch::fileio::data::read_frame(p, &DecodeLimits::default())

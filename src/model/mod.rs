@@ -16,6 +16,7 @@
 //! index. The model knows nothing of how it was learned beyond the
 //! summary it carries: this module does not depend on the learner.
 
+pub mod rules;
 pub mod settings;
 
 use serde::{Deserialize, Serialize};

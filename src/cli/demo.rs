@@ -1,11 +1,10 @@
-//! `burlwatch run`, `burlwatch check` and `burlwatch demo`: the daemon's
-//! command-line glue. Signals become [`Control`] messages, statuses become
-//! systemd notifications, and `tracing` writes the daemon's own messages to
-//! stderr (which journald keeps).
+//! `burlwatch demo`: the real daemon at work on the demo frames in a
+//! temporary folder, fed at a steady pace, with each record printed as it
+//! is logged.
 
 use std::collections::HashMap;
 use std::io::{BufRead, BufReader, Seek, SeekFrom};
-use std::path::{Path, PathBuf};
+use std::path::PathBuf;
 use std::sync::{Arc, Mutex};
 use std::thread;
 use std::time::{Duration, Instant};
@@ -13,29 +12,11 @@ use std::time::{Duration, Instant};
 use anyhow::{Context, Result};
 use crossbeam_channel::unbounded;
 
-use burlwatch::config::{self, Config};
-use burlwatch::daemon::checks::Finding;
+use burlwatch::config;
 use burlwatch::daemon::{self, detlog, Control};
 use burlwatch::record::FrameRecord;
 
-use super::notify::Notifier;
-
-#[derive(clap::Args, Debug)]
-pub struct RunArgs {
-    /// Configuration file (TOML).
-    #[arg(long)]
-    config: PathBuf,
-}
-
-#[derive(clap::Args, Debug)]
-pub struct CheckArgs {
-    /// Configuration file (TOML).
-    #[arg(long)]
-    config: PathBuf,
-    /// Print the findings as JSON.
-    #[arg(long)]
-    json: bool,
-}
+use super::init_tracing;
 
 #[derive(clap::Args, Debug)]
 pub struct DemoArgs {
@@ -53,114 +34,9 @@ pub struct DemoArgs {
     keep: Option<PathBuf>,
 }
 
-fn load(path: &Path) -> Result<Config> {
-    config::load(path).map_err(|e| anyhow::anyhow!("{e}"))
-}
-
-fn init_tracing(level: &str) {
-    use std::io::IsTerminal;
-    use tracing_subscriber::EnvFilter;
-    let filter = EnvFilter::try_from_default_env().unwrap_or_else(|_| EnvFilter::new(level));
-    let _ = tracing_subscriber::fmt()
-        .with_env_filter(filter)
-        .with_writer(std::io::stderr)
-        .with_ansi(std::io::stderr().is_terminal())
-        .with_target(false)
-        .try_init();
-}
-
-/// `burlwatch run`: the daemon, until SIGTERM or SIGINT.
-pub fn run(a: RunArgs) -> Result<i32> {
-    let cfg = load(&a.config)?;
-    init_tracing(&cfg.start.log.level);
-    let (tx, rx) = unbounded();
-    let mut signals = signal_hook::iterator::Signals::new([
-        signal_hook::consts::SIGTERM,
-        signal_hook::consts::SIGINT,
-        signal_hook::consts::SIGHUP,
-    ])
-    .context("cannot install signal handlers")?;
-    let path = a.config.clone();
-    thread::Builder::new()
-        .name("burlwatch-signals".into())
-        .spawn(move || {
-            for sig in signals.forever() {
-                let msg = if sig == signal_hook::consts::SIGHUP {
-                    tracing::info!(config = %path.display(), "SIGHUP: reloading");
-                    Control::Reload(
-                        load(&path)
-                            .map_err(|e| tracing::error!("reload: {e:#}"))
-                            .ok()
-                            .map(Box::new),
-                    )
-                } else {
-                    Control::Stop
-                };
-                if tx.send(msg).is_err() {
-                    return;
-                }
-            }
-        })?;
-    let mut notifier = Notifier::from_env();
-    daemon::run(cfg, rx, &mut |s| notifier.status(s)).map_err(|e| anyhow::anyhow!("{e}"))?;
-    Ok(0)
-}
-
-/// `burlwatch check`: the configuration, its folders and its model, with
-/// nothing started. Exit 0 when everything is usable, 1 otherwise.
-pub fn check(a: CheckArgs) -> Result<i32> {
-    let mut found: Vec<Finding> = Vec::new();
-    let cfg = match load(&a.config) {
-        Ok(c) => {
-            found.push(Finding {
-                what: "configuration".into(),
-                ok: true,
-                detail: a.config.display().to_string(),
-            });
-            Some(c)
-        }
-        Err(e) => {
-            found.push(Finding {
-                what: "configuration".into(),
-                ok: false,
-                detail: format!("{e:#}"),
-            });
-            None
-        }
-    };
-    if let Some(cfg) = &cfg {
-        found.extend(daemon::checks::all(cfg));
-    }
-    let ok = found.iter().all(|f| f.ok);
-    if a.json {
-        out!(
-            "{}",
-            serde_json::to_string_pretty(&serde_json::json!({"ok": ok, "checks": found}))?
-        );
-    } else {
-        for f in &found {
-            out!(
-                "{:<4} {:<20} {}",
-                if f.ok { "ok" } else { "BAD" },
-                f.what,
-                f.detail
-            );
-        }
-        out!(
-            "{}",
-            if ok {
-                "ready to run"
-            } else {
-                "not ready: see BAD above"
-            }
-        );
-    }
-    Ok(if ok { 0 } else { 1 })
-}
-
 /// `burlwatch demo`: the real daemon on a temporary folder, fed the demo
 /// frames at a steady pace.
-pub fn demo(a: DemoArgs) -> Result<i32> {
+pub fn run(a: DemoArgs) -> Result<i32> {
     init_tracing("warn");
     let root = match &a.keep {
         Some(p) => p.clone(),

@@ -1,0 +1,222 @@
+//! `burlwatch train`: learns a model from a folder of frames and masks
+//! and writes it whole (a reader never sees half a model), with a summary
+//! of the data, the tree and the held-out scores.
+
+use std::path::PathBuf;
+use std::time::Instant;
+
+use anyhow::{bail, Context, Result};
+use serde::Serialize;
+
+use burlwatch::fileio::durable;
+use burlwatch::learn::{self, ClassWeight, Criterion, Stage, TrainParams};
+use burlwatch::model;
+use burlwatch::window::Window;
+
+use super::progress::Progress;
+use super::{read_data, ConfigArg, DecodeArgs, SettingArgs};
+
+#[derive(clap::Args, Debug)]
+pub struct TrainArgs {
+    /// Folder of NAME.pbm / NAME.png frames with NAME.mask.pbm masks
+    /// [default: training.seed_data of the configuration].
+    #[arg(long)]
+    data: Option<PathBuf>,
+    /// Where to write the model (JSON).
+    #[arg(long)]
+    out: PathBuf,
+    /// Split criterion: gini, entropy or gain-ratio [default: entropy].
+    #[arg(long)]
+    criterion: Option<String>,
+    /// Deepest level of splits, the root being depth 0 [default: 48].
+    #[arg(long)]
+    max_depth: Option<u32>,
+    /// Least weighted pixel count on each side of a split [default: 1].
+    #[arg(long)]
+    min_leaf: Option<f64>,
+    /// Least decrease of the tree's weighted impurity for a split [default: 0].
+    #[arg(long)]
+    min_gain: Option<f64>,
+    /// Window side in pixels: 3, 5, 7, 9 or 11 [default: 11].
+    #[arg(long)]
+    window: Option<u8>,
+    /// Class weights: none, balanced, or CLEAR:TARGET such as 1:50 [default: balanced].
+    #[arg(long)]
+    class_weight: Option<String>,
+    /// Share of frames held out to choose pruning, threshold and grouping [default: 0.2].
+    #[arg(long)]
+    holdout: Option<f64>,
+    /// Grow the final tree again on all frames once the holdout has chosen.
+    #[arg(long)]
+    refit: bool,
+    /// Skip bad frame/mask pairs with a warning instead of failing.
+    #[arg(long)]
+    skip_bad: bool,
+    /// Print the training summary as JSON.
+    #[arg(long)]
+    json: bool,
+    #[command(flatten)]
+    settings: SettingArgs,
+    #[command(flatten)]
+    decode: DecodeArgs,
+    #[command(flatten)]
+    config: ConfigArg,
+}
+
+#[derive(Serialize)]
+struct TrainSummary<'a> {
+    model: String,
+    seconds: f64,
+    skipped: usize,
+    frames: u64,
+    holdout_frames: u64,
+    pixels: u64,
+    unique_patterns: u64,
+    grown_leaves: u64,
+    leaves: u64,
+    depth: u32,
+    threshold: f64,
+    min_area: u32,
+    merge_distance: u32,
+    holdout: &'a Option<model::HoldoutMetrics>,
+}
+
+pub fn run(a: TrainArgs) -> Result<i32> {
+    let started = Instant::now();
+    let cfg = a.config.load()?;
+    let base = &cfg.live.training;
+    let window = match a.window {
+        None => base.window,
+        Some(w) => {
+            Window::new(w).with_context(|| format!("--window {w} must be one of 3, 5, 7, 9, 11"))?
+        }
+    };
+    let criterion = match &a.criterion {
+        None => base.criterion,
+        Some(c) => Criterion::parse(c)
+            .with_context(|| format!("--criterion {c:?} must be gini, entropy or gain-ratio"))?,
+    };
+    let class_weight = match &a.class_weight {
+        None => base.class_weight,
+        Some(c) => ClassWeight::parse(c).with_context(|| {
+            format!("--class-weight {c:?} must be none, balanced or CLEAR:TARGET with two positive numbers")
+        })?,
+    };
+    let params = TrainParams {
+        window,
+        criterion,
+        max_depth: a.max_depth.unwrap_or(base.max_depth),
+        min_leaf: a.min_leaf.unwrap_or(base.min_leaf),
+        min_gain: a.min_gain.unwrap_or(base.min_gain),
+        class_weight,
+        holdout: a.holdout.unwrap_or(base.holdout),
+        refit: a.refit || base.refit,
+        threshold: a.settings.threshold.or(cfg.live.overrides.threshold),
+        min_area: a.settings.min_area.or(cfg.live.overrides.min_area),
+        merge_distance: a
+            .settings
+            .merge_distance
+            .or(cfg.live.overrides.merge_distance),
+        ..base.clone()
+    };
+    params.validate().context("bad training option")?;
+    if a.out.is_dir() {
+        bail!(
+            "--out {} is a folder; give the model file's path",
+            a.out.display()
+        );
+    }
+    let data_dir = a
+        .data
+        .clone()
+        .or_else(|| cfg.live.seed_data.clone())
+        .context("no data folder: pass --data DIR or set training.seed_data in --config")?;
+    let (folder, skipped) = read_data(&data_dir, &a.decode.limits(&cfg), a.skip_bad)?;
+    let mut bar = Progress::new(folder.frames.len(), 10);
+    let m = learn::train(&folder.frames, &params, &mut |s| match s {
+        Stage::Store { done, total } => {
+            bar.set_label("building label store");
+            bar.update(done, total)
+        }
+        Stage::Grow => bar.stage("growing tree"),
+        Stage::Prune => bar.stage("pruning"),
+        Stage::Tune => bar.stage("choosing threshold and grouping on held-out frames"),
+    })
+    .with_context(|| format!("training on {} failed", data_dir.display()))?;
+    bar.finish();
+    durable::write_atomic(&a.out, m.to_json().as_bytes())
+        .with_context(|| format!("cannot write {}", a.out.display()))?;
+    if !m.training.tuned {
+        let why = if m.data.holdout_frames == 0 {
+            "no frame was held out (--holdout 0, or too few frames)".to_string()
+        } else {
+            format!(
+                "no pixel of the {} held-out frame(s) scored above 0",
+                m.data.holdout_frames
+            )
+        };
+        eprintln!(
+            "burlwatch: warning: {why}; the tree is unpruned and uses threshold {}, min_area {}, \
+             merge_distance {} instead of settings chosen on held-out frames",
+            m.threshold, m.grouping.min_area, m.grouping.merge_distance
+        );
+    }
+    let seconds = started.elapsed().as_secs_f64();
+    if a.json {
+        let s = TrainSummary {
+            model: a.out.display().to_string(),
+            seconds,
+            skipped,
+            frames: m.data.frames,
+            holdout_frames: m.data.holdout_frames,
+            pixels: m.data.pixels,
+            unique_patterns: m.data.unique_patterns,
+            grown_leaves: m.training.grown_leaves,
+            leaves: m.training.pruned_leaves,
+            depth: m.tree.depth(),
+            threshold: m.threshold,
+            min_area: m.grouping.min_area,
+            merge_distance: m.grouping.merge_distance,
+            holdout: &m.holdout,
+        };
+        out!("{}", serde_json::to_string_pretty(&s)?);
+    } else {
+        out!(
+            "trained on {} frames ({} held out), {} pixels, {} distinct patterns",
+            m.data.frames,
+            m.data.holdout_frames,
+            m.data.pixels,
+            m.data.unique_patterns
+        );
+        out!(
+            "tree: {} leaves grown, {} kept after pruning (alpha {:.3e}), depth {}",
+            m.training.grown_leaves,
+            m.training.pruned_leaves,
+            m.training.pruning_alpha,
+            m.tree.depth()
+        );
+        out!(
+            "settings: threshold {:.4}, min_area {}, merge_distance {}",
+            m.threshold,
+            m.grouping.min_area,
+            m.grouping.merge_distance
+        );
+        match &m.holdout {
+            Some(h) => out!(
+                "held-out frames: objects P {:.3} R {:.3} F1 {:.3}; pixels P {:.3} R {:.3} F1 {:.3}",
+                h.object.precision,
+                h.object.recall,
+                h.object.f1,
+                h.pixel.precision,
+                h.pixel.recall,
+                h.pixel.f1
+            ),
+            None => out!("held-out frames: none (pruning and tuning skipped)"),
+        }
+        if skipped > 0 {
+            out!("skipped {skipped} bad file(s)");
+        }
+        out!("wrote {} in {seconds:.2} s", a.out.display());
+    }
+    Ok(if skipped > 0 { 2 } else { 0 })
+}
