@@ -1,7 +1,7 @@
 //! Intake: a watched folder (the inbox now; the corrections folder next),
 //! which files in it are wanted, and when one is complete.
 //!
-//! An [`Intake`] owns everything about one folder: its watcher, whose
+//! An `Intake` owns everything about one folder: its watcher, whose
 //! callback only forwards events into a bounded channel (a full channel
 //! means lost events, and so a listing), the settle tracker, the queue of
 //! ready files and the set of files queued or in flight, so a file is

@@ -9,9 +9,9 @@
 //! ```
 //!
 //! - [`run`] only wires the parts together: [`start`] (folders, lock,
-//!   model), an [`intake::Intake`] per watched folder, the workers, the
-//!   [`writer::Writer`] thread, and the main loop, which selects over a
-//!   closed [`Event`] type and hands ready frames out.
+//!   model), an `intake::Intake` per watched folder, the workers, the
+//!   `writer::Writer` thread, and the main loop, which selects over a
+//!   closed `Event` type and hands ready frames out.
 //! - At most `watch.queue` frames' bytes are between the main loop and the
 //!   writer at any moment: a burst waits in the inbox, only its names in
 //!   memory.
