@@ -16,24 +16,27 @@
 //! list:
 //!
 //! - [`error`]: typed errors that name the file and the problem.
-//! - [`frame`], [`window`], [`codec`]: the bit-packed frame, each pixel's
-//!   neighbourhood as a `u128` pattern, PBM/PNG bytes to frames and back.
+//! - [`frame`], [`window`], [`codec`], [`record`]: the bit-packed frame,
+//!   each pixel's neighbourhood as a `u128` pattern, PBM/PNG bytes to
+//!   frames and back, the JSON record of one frame (the detection log's
+//!   line).
 //! - [`model`]: the frozen tree and its validated JSON file; knows nothing
 //!   of the learner or of evaluation strategies.
 //! - [`detect`]: the [`detect::Detector`] (one frame from bytes to its
 //!   record), the reference walker, the compiled evaluator, grouping.
-//! - [`score`]: pixel and object precision/recall/F1 (IoU >= 0.5 matching).
+//! - [`score`]: pixel and object precision/recall/F1 (IoU >= 0.5 matching),
+//!   and a detector scored over labelled frames.
 //! - [`learn`]: the label store, greedy induction, cost-complexity pruning,
 //!   holdout tuning; builds a [`model::Model`].
-//! - [`record`]: the JSON record of one scanned frame (the detection log's
-//!   line).
 //! - [`synth`]: the seeded loom-frame generator for demo and test data.
-//! - [`config`]: the TOML configuration file, parsed then resolved.
+//! - [`config`]: the TOML configuration file, parsed then resolved
+//!   (parsing is pure; [`config::load`] is its one file read).
 //! - [`fileio`]: labelled data folders and durable file operations.
 //! - [`daemon`]: the unattended detector: inbox watching, workers, the
 //!   detection log, archive and rejects, reload and stop.
 //!
-//! Everything except [`fileio`], [`daemon`] and the binary is pure: bytes
+//! Everything except [`fileio`], [`daemon`], [`config::load`] and the
+//! binary is pure: bytes
 //! and bit rows in, values out; the core knows nothing of threads, file
 //! watching or the filesystem.
 
