@@ -214,18 +214,92 @@ impl Program {
     unsafe fn run_avx2(&self, frame: &BitFrame, s: &mut Scratch, out: &mut BitFrame) {
         // SAFETY: the caller checked that the processor supports AVX2.
         let kernel = unsafe { Avx2Kernel::new() };
-        self.run_body(kernel, frame, s, out)
+        self.run_body::<_, 0>(kernel, frame, s, out)
     }
 
     fn run(&self, frame: &BitFrame, s: &mut Scratch, out: &mut BitFrame) {
-        self.run_body(PortableKernel, frame, s, out)
+        self.run_body::<_, 0>(PortableKernel, frame, s, out)
+    }
+
+    #[cfg(target_arch = "x86_64")]
+    #[target_feature(enable = "avx2")]
+    fn run_variant_avx2<K: Kernel, const U: u8>(
+        &self,
+        kernel: K,
+        frame: &BitFrame,
+        s: &mut Scratch,
+        out: &mut BitFrame,
+    ) {
+        self.run_body::<K, U>(kernel, frame, s, out)
+    }
+
+    /// Measurement only: one kernel and block loop variant.
+    pub(super) fn detect_variant_inner(
+        &self,
+        v: super::Variant,
+        frame: &BitFrame,
+        s: &mut Scratch,
+        out: &mut BitFrame,
+    ) {
+        use super::Variant as V;
+        assert!(out.same_size(frame) && !frame.is_empty() && self.constant.is_none());
+        s.reach = Reach::default();
+        self.prepare(frame, s);
+        macro_rules! modes {
+            ($mode:expr, |$m:ident| $e:expr) => {
+                match $mode {
+                    0 => {
+                        const $m: u8 = 0;
+                        $e
+                    }
+                    1 => {
+                        const $m: u8 = 1;
+                        $e
+                    }
+                    _ => {
+                        const $m: u8 = 2;
+                        $e
+                    }
+                }
+            };
+        }
+        match v {
+            V::Portable { mode } => modes!(mode, |M| self.run_body::<_, M>(
+                PortableKernel,
+                frame,
+                s,
+                out
+            )),
+            #[cfg(target_arch = "x86_64")]
+            V::Avx2Intrinsics { mode } => {
+                assert!(Backend::Avx2.available());
+                unsafe {
+                    let k = Avx2Kernel::new();
+                    modes!(mode, |M| self.run_variant_avx2::<_, M>(k, frame, s, out))
+                }
+            }
+            #[cfg(target_arch = "x86_64")]
+            V::Avx2Portable { mode } => {
+                assert!(Backend::Avx2.available());
+                unsafe {
+                    modes!(mode, |M| self.run_variant_avx2::<_, M>(
+                        PortableKernel,
+                        frame,
+                        s,
+                        out
+                    ))
+                }
+            }
+            #[cfg(not(target_arch = "x86_64"))]
+            _ => unimplemented!(),
+        }
     }
 
     /// The evaluation loop, inlined into each backend so each is compiled
     /// with its own target features: every block of the frame from its
     /// root mask (the block's valid pixels) to its detections.
     #[inline(always)]
-    fn run_body<K: Kernel>(
+    fn run_body<K: Kernel, const MODE: u8>(
         &self,
         kernel: K,
         frame: &BitFrame,
@@ -281,7 +355,9 @@ impl Program {
             let planes = &planes[start..];
             // SAFETY: `prepare` made `steps` for this program, and `planes`
             // holds a block at every step's offset (checked above).
-            let acc = unsafe { self.block(kernel, root, planes, steps, cur, next, slots, reach) };
+            let acc = unsafe {
+                self.block::<K, MODE>(kernel, root, planes, steps, cur, next, slots, reach)
+            };
             // The root mask excluded padding bits, so `acc` has none.
             detected[start..start + len].copy_from_slice(&acc[..len]);
             start += len;
@@ -305,7 +381,7 @@ impl Program {
     /// hold [`BLOCK`] words from every step's offset on.
     #[allow(clippy::too_many_arguments)]
     #[inline(always)]
-    unsafe fn block<K: Kernel>(
+    unsafe fn block<K: Kernel, const MODE: u8>(
         &self,
         kernel: K,
         root: [u64; BLOCK],
@@ -337,17 +413,30 @@ impl Program {
                     && 2 * pending <= next.masks.len(),
                 "a level's lists fit its buffers"
             );
-            let list = next.list.as_mut_ptr();
-            let masks = next.masks.as_mut_ptr();
+            let list = if MODE != 2 {
+                next.list.as_mut_ptr()
+            } else {
+                std::ptr::null_mut()
+            };
+            let masks = if MODE != 2 {
+                next.masks.as_mut_ptr()
+            } else {
+                std::ptr::null_mut()
+            };
             let mut n = 0;
             for e in 0..pending {
                 // SAFETY: `e < pending`, checked above. The entries below
                 // `pending` are the root or were counted by the previous
                 // level, so each names an op (a pushed outcome of a step),
                 // and there is one step per op (the caller's contract).
-                let (i, slot, step) = unsafe {
-                    let (i, slot) = *cur.list.get_unchecked(e);
-                    (i, slot, *steps.get_unchecked(i as usize))
+                let (i, slot, step) = if MODE != 2 {
+                    unsafe {
+                        let (i, slot) = *cur.list.get_unchecked(e);
+                        (i, slot, *steps.get_unchecked(i as usize))
+                    }
+                } else {
+                    let (i, slot) = cur.list[e];
+                    (i, slot, steps[i as usize])
                 };
                 let m = &cur.masks[slot as usize];
                 if step.flags & SELECTS != 0 {
@@ -364,12 +453,52 @@ impl Program {
                 // overlap neither `m` nor anything else borrowed here; the
                 // plane holds a block at every step's offset (the caller's
                 // contract).
-                let (kids, b) = unsafe {
+                let (kids, b): (&mut [Mask; 2], &[u64; BLOCK]) = if MODE != 2 {
+                    unsafe {
+                        (
+                            &mut *(masks.add(2 * e) as *mut [Mask; 2]),
+                            &*(planes.as_ptr().add(step.offset as usize) as *const [u64; BLOCK]),
+                        )
+                    }
+                } else {
                     (
-                        &mut *(masks.add(2 * e) as *mut [Mask; 2]),
-                        &*(planes.as_ptr().add(step.offset as usize) as *const [u64; BLOCK]),
+                        (&mut next.masks[2 * e..2 * e + 2])
+                            .try_into()
+                            .expect("checked"),
+                        block(step.offset),
                     )
                 };
+                if MODE == 1 {
+                    let [any_set, any_clear] = kernel.split(m, b, kids);
+                    // SAFETY: `n <= 2e`, so entries `n` and `n + 1` are below
+                    // `2 * pending` (checked above).
+                    unsafe {
+                        *list.add(n) = (step.next[0], 2 * e as u32);
+                        n += pushes(step, 0, any_set);
+                        *list.add(n) = (step.next[1], 2 * e as u32 + 1);
+                    }
+                    n += pushes(step, 1, any_clear);
+                    if step.flags & (DETECT_SET | DETECT_SET << 1) != 0 {
+                        kernel.detect(&mut acc, kids, [detect_word(step, 0), detect_word(step, 1)]);
+                    }
+                    continue;
+                }
+                if MODE == 2 {
+                    // The list entries first, then the detections: the
+                    // children's emptiness is used as soon as it is known,
+                    // so no child vector has to outlive the split.
+                    let entries: &mut [(u32, u32); 2] =
+                        (&mut next.list[n..n + 2]).try_into().expect("two entries");
+                    let [any_set, any_clear] = kernel.split(m, b, kids);
+                    entries[0] = (step.next[0], 2 * e as u32);
+                    let p = pushes(step, 0, any_set);
+                    entries[p] = (step.next[1], 2 * e as u32 + 1);
+                    n += p + pushes(step, 1, any_clear);
+                    if step.flags & (DETECT_SET | DETECT_SET << 1) != 0 {
+                        kernel.detect(&mut acc, kids, [detect_word(step, 0), detect_word(step, 1)]);
+                    }
+                    continue;
+                }
                 let [any_set, any_clear] = kernel.split(m, b, kids);
                 if step.flags & (DETECT_SET | DETECT_SET << 1) != 0 {
                     kernel.detect(&mut acc, kids, [detect_word(step, 0), detect_word(step, 1)]);

@@ -201,6 +201,37 @@ impl Program {
     }
 }
 
+/// Measurement only: a kernel and a block loop.
+#[doc(hidden)]
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Variant {
+    /// mode 0: today's block loop; 1: unchecked, list before detect;
+    /// 2: checked, list before detect.
+    Portable {
+        mode: u8,
+    },
+    Avx2Intrinsics {
+        mode: u8,
+    },
+    Avx2Portable {
+        mode: u8,
+    },
+}
+
+impl Program {
+    /// Measurement only.
+    #[doc(hidden)]
+    pub fn detect_variant(
+        &self,
+        v: Variant,
+        frame: &BitFrame,
+        scratch: &mut Scratch,
+        out: &mut BitFrame,
+    ) {
+        self.detect_variant_inner(v, frame, scratch, out)
+    }
+}
+
 /// Small trees and the backends to run them on, for the unit tests of
 /// every part.
 #[cfg(test)]
