@@ -135,31 +135,36 @@ fn variants(name: &str, tree: &Tree, threshold: f64, frame: &BitFrame, rounds: u
     let mut out = BitFrame::new(frame.width(), frame.height());
     let want = walker::detect(tree, threshold, frame);
     let vs = [
-        ("portable, today", Variant::Portable { mode: 0 }),
-        ("portable, unchecked", Variant::Portable { mode: 1 }),
-        ("portable, checked", Variant::Portable { mode: 2 }),
+        ("portable, checked", Variant::Portable { unchecked: false }),
+        ("portable, unchecked", Variant::Portable { unchecked: true }),
         (
-            "avx2 intrinsics, today",
-            Variant::Avx2Intrinsics { mode: 0 },
+            "avx2 intrinsics, checked",
+            Variant::Avx2Intrinsics { unchecked: false },
         ),
         (
             "avx2 intrinsics, unchecked",
-            Variant::Avx2Intrinsics { mode: 1 },
+            Variant::Avx2Intrinsics { unchecked: true },
         ),
         (
-            "avx2 intrinsics, checked",
-            Variant::Avx2Intrinsics { mode: 2 },
+            "avx2 portable, checked",
+            Variant::Avx2Portable { unchecked: false },
         ),
-        ("avx2 portable, today", Variant::Avx2Portable { mode: 0 }),
         (
             "avx2 portable, unchecked",
-            Variant::Avx2Portable { mode: 1 },
+            Variant::Avx2Portable { unchecked: true },
         ),
-        ("avx2 portable, checked", Variant::Avx2Portable { mode: 2 }),
     ];
     for (_, v) in vs {
         program.detect_variant(v, frame, &mut scratch, &mut out);
         assert_eq!(out, want, "{v:?}");
+    }
+    if let Ok(only) = std::env::var("BURLWATCH_BENCH_ONLY") {
+        let (label, v) = vs.iter().find(|(l, _)| *l == only).expect("variant");
+        let t = time(rounds, || {
+            program.detect_variant(*v, frame, &mut scratch, &mut out)
+        });
+        println!("{name}: {label} {:.1} Mpx/s", mpx / t);
+        return;
     }
     let mut times = vec![Vec::new(); vs.len()];
     for r in 0..rounds {
@@ -194,15 +199,20 @@ fn variants(name: &str, tree: &Tree, threshold: f64, frame: &BitFrame, rounds: u
             hi
         );
     }
-    // Paired ratios to today's AVX2 build (intrinsics).
-    for k in 4..vs.len() {
-        let ratios: Vec<f64> = (0..rounds).map(|r| times[3][r] / times[k][r]).collect();
-        println!(
-            "  {:<28} x{:.3} of avx2 intrinsics, today",
-            vs[k].0,
-            median(ratios)
-        );
-    }
+    // Paired ratios within each round.
+    let paired =
+        |a: usize, b: usize| median((0..rounds).map(|r| times[b][r] / times[a][r]).collect());
+    println!(
+        "  avx2 portable / avx2 intrinsics: checked x{:.3}, unchecked x{:.3}",
+        paired(4, 2),
+        paired(5, 3)
+    );
+    println!(
+        "  checked / unchecked: portable x{:.3}, avx2 intrinsics x{:.3}, avx2 portable x{:.3}",
+        paired(0, 1),
+        paired(2, 3),
+        paired(4, 5)
+    );
 }
 
 fn main() {

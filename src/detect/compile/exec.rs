@@ -60,6 +60,8 @@ pub struct Scratch {
     slots: Vec<Mask>,
     /// Select values of one chunk (whole-program select).
     wide: Vec<Lanes<WIDE>>,
+    /// The detections of one block.
+    acc: Mask,
     /// What the last frame cost the walk (see [`Scratch::reach`]).
     reach: Reach,
 }
@@ -214,16 +216,16 @@ impl Program {
     unsafe fn run_avx2(&self, frame: &BitFrame, s: &mut Scratch, out: &mut BitFrame) {
         // SAFETY: the caller checked that the processor supports AVX2.
         let kernel = unsafe { Avx2Kernel::new() };
-        self.run_body::<_, 0>(kernel, frame, s, out)
+        self.run_body::<_, true>(kernel, frame, s, out)
     }
 
     fn run(&self, frame: &BitFrame, s: &mut Scratch, out: &mut BitFrame) {
-        self.run_body::<_, 0>(PortableKernel, frame, s, out)
+        self.run_body::<_, true>(PortableKernel, frame, s, out)
     }
 
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx2")]
-    fn run_variant_avx2<K: Kernel, const U: u8>(
+    fn run_variant_avx2<K: Kernel, const U: bool>(
         &self,
         kernel: K,
         frame: &BitFrame,
@@ -246,43 +248,37 @@ impl Program {
         s.reach = Reach::default();
         self.prepare(frame, s);
         macro_rules! modes {
-            ($mode:expr, |$m:ident| $e:expr) => {
-                match $mode {
-                    0 => {
-                        const $m: u8 = 0;
-                        $e
-                    }
-                    1 => {
-                        const $m: u8 = 1;
-                        $e
-                    }
-                    _ => {
-                        const $m: u8 = 2;
-                        $e
-                    }
+            ($unchecked:expr, |$m:ident| $e:expr) => {
+                if $unchecked {
+                    const $m: bool = true;
+                    $e
+                } else {
+                    const $m: bool = false;
+                    $e
                 }
             };
         }
         match v {
-            V::Portable { mode } => modes!(mode, |M| self.run_body::<_, M>(
+            V::Portable { unchecked } => modes!(unchecked, |U| self.run_body::<_, U>(
                 PortableKernel,
                 frame,
                 s,
                 out
             )),
             #[cfg(target_arch = "x86_64")]
-            V::Avx2Intrinsics { mode } => {
+            V::Avx2Intrinsics { unchecked } => {
                 assert!(Backend::Avx2.available());
                 unsafe {
                     let k = Avx2Kernel::new();
-                    modes!(mode, |M| self.run_variant_avx2::<_, M>(k, frame, s, out))
+                    modes!(unchecked, |U| self
+                        .run_variant_avx2::<_, U>(k, frame, s, out))
                 }
             }
             #[cfg(target_arch = "x86_64")]
-            V::Avx2Portable { mode } => {
+            V::Avx2Portable { unchecked } => {
                 assert!(Backend::Avx2.available());
                 unsafe {
-                    modes!(mode, |M| self.run_variant_avx2::<_, M>(
+                    modes!(unchecked, |U| self.run_variant_avx2::<_, U>(
                         PortableKernel,
                         frame,
                         s,
@@ -299,7 +295,7 @@ impl Program {
     /// with its own target features: every block of the frame from its
     /// root mask (the block's valid pixels) to its detections.
     #[inline(always)]
-    fn run_body<K: Kernel, const MODE: u8>(
+    fn run_body<K: Kernel, const UNCHECKED: bool>(
         &self,
         kernel: K,
         frame: &BitFrame,
@@ -315,6 +311,7 @@ impl Program {
             next,
             slots,
             wide,
+            acc,
             reach,
         } = s;
         let detected = out.words_mut();
@@ -355,11 +352,13 @@ impl Program {
             let planes = &planes[start..];
             // SAFETY: `prepare` made `steps` for this program, and `planes`
             // holds a block at every step's offset (checked above).
-            let acc = unsafe {
-                self.block::<K, MODE>(kernel, root, planes, steps, cur, next, slots, reach)
+            unsafe {
+                self.block::<K, UNCHECKED>(
+                    kernel, root, planes, steps, cur, next, slots, acc, reach,
+                )
             };
             // The root mask excluded padding bits, so `acc` has none.
-            detected[start..start + len].copy_from_slice(&acc[..len]);
+            detected[start..start + len].copy_from_slice(&acc.0[..len]);
             start += len;
         }
     }
@@ -381,7 +380,7 @@ impl Program {
     /// hold [`BLOCK`] words from every step's offset on.
     #[allow(clippy::too_many_arguments)]
     #[inline(always)]
-    unsafe fn block<K: Kernel, const MODE: u8>(
+    unsafe fn block<K: Kernel, const UNCHECKED: bool>(
         &self,
         kernel: K,
         root: [u64; BLOCK],
@@ -390,14 +389,15 @@ impl Program {
         cur: &mut Pending,
         next: &mut Pending,
         slots: &mut [Mask],
+        acc: &mut Mask,
         reach: &mut Reach,
-    ) -> [u64; BLOCK] {
+    ) {
         // Plane words of this block at a step's offset (checked).
         let block = |offset: u32| -> &[u64; BLOCK] {
             let o = offset as usize;
             planes[o..o + BLOCK].try_into().expect("padded")
         };
-        let mut acc = Mask::default();
+        *acc = Mask::default();
         reach.blocks += 1;
         cur.list[0] = (0, 0);
         cur.masks[0] = Lanes(root);
@@ -413,12 +413,12 @@ impl Program {
                     && 2 * pending <= next.masks.len(),
                 "a level's lists fit its buffers"
             );
-            let list = if MODE != 2 {
+            let list = if UNCHECKED {
                 next.list.as_mut_ptr()
             } else {
                 std::ptr::null_mut()
             };
-            let masks = if MODE != 2 {
+            let masks = if UNCHECKED {
                 next.masks.as_mut_ptr()
             } else {
                 std::ptr::null_mut()
@@ -429,7 +429,7 @@ impl Program {
                 // `pending` are the root or were counted by the previous
                 // level, so each names an op (a pushed outcome of a step),
                 // and there is one step per op (the caller's contract).
-                let (i, slot, step) = if MODE != 2 {
+                let (i, slot, step) = if UNCHECKED {
                     unsafe {
                         let (i, slot) = *cur.list.get_unchecked(e);
                         (i, slot, *steps.get_unchecked(i as usize))
@@ -445,7 +445,7 @@ impl Program {
                         kernel.select(block(steps[ins.op as usize].offset), slots, *ins);
                     }
                     let v = &slots[self.select[b as usize].out as usize];
-                    kernel.keep(&mut acc, m, v);
+                    kernel.keep(acc, m, v);
                     continue;
                 }
                 // SAFETY: slots `2e` and `2e + 1` are below `2 * pending`
@@ -453,7 +453,7 @@ impl Program {
                 // overlap neither `m` nor anything else borrowed here; the
                 // plane holds a block at every step's offset (the caller's
                 // contract).
-                let (kids, b): (&mut [Mask; 2], &[u64; BLOCK]) = if MODE != 2 {
+                let (kids, b): (&mut [Mask; 2], &[u64; BLOCK]) = if UNCHECKED {
                     unsafe {
                         (
                             &mut *(masks.add(2 * e) as *mut [Mask; 2]),
@@ -468,7 +468,7 @@ impl Program {
                         block(step.offset),
                     )
                 };
-                if MODE == 1 {
+                if UNCHECKED {
                     let [any_set, any_clear] = kernel.split(m, b, kids);
                     // SAFETY: `n <= 2e`, so entries `n` and `n + 1` are below
                     // `2 * pending` (checked above).
@@ -478,12 +478,7 @@ impl Program {
                         *list.add(n) = (step.next[1], 2 * e as u32 + 1);
                     }
                     n += pushes(step, 1, any_clear);
-                    if step.flags & (DETECT_SET | DETECT_SET << 1) != 0 {
-                        kernel.detect(&mut acc, kids, [detect_word(step, 0), detect_word(step, 1)]);
-                    }
-                    continue;
-                }
-                if MODE == 2 {
+                } else {
                     // The list entries first, then the detections: the
                     // children's emptiness is used as soon as it is known,
                     // so no child vector has to outlive the split.
@@ -494,28 +489,14 @@ impl Program {
                     let p = pushes(step, 0, any_set);
                     entries[p] = (step.next[1], 2 * e as u32 + 1);
                     n += p + pushes(step, 1, any_clear);
-                    if step.flags & (DETECT_SET | DETECT_SET << 1) != 0 {
-                        kernel.detect(&mut acc, kids, [detect_word(step, 0), detect_word(step, 1)]);
-                    }
-                    continue;
                 }
-                let [any_set, any_clear] = kernel.split(m, b, kids);
                 if step.flags & (DETECT_SET | DETECT_SET << 1) != 0 {
-                    kernel.detect(&mut acc, kids, [detect_word(step, 0), detect_word(step, 1)]);
+                    kernel.detect(acc, kids, [detect_word(step, 0), detect_word(step, 1)]);
                 }
-                // SAFETY: `n <= 2e`, so entries `n` and `n + 1` are below
-                // `2 * pending` (checked above).
-                unsafe {
-                    *list.add(n) = (step.next[0], 2 * e as u32);
-                    n += pushes(step, 0, any_set);
-                    *list.add(n) = (step.next[1], 2 * e as u32 + 1);
-                }
-                n += pushes(step, 1, any_clear);
             }
             std::mem::swap(cur, next);
             pending = n;
         }
-        acc.0
     }
 }
 

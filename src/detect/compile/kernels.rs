@@ -131,33 +131,68 @@ impl Kernel for PortableKernel {
 
     #[inline(always)]
     fn select<const W: usize>(self, b: &[u64; W], slots: &mut [Lanes<W>], ins: Select) {
-        let s = |slots: &[Lanes<W>]| slots[ins.set as usize].0;
-        let c = |slots: &[Lanes<W>]| slots[ins.clear as usize].0;
-        let v: [u64; W] = match ins.form {
-            Form::Plane => *b,
-            Form::NotPlane => b.map(|x| !x),
-            Form::SetOnly => {
-                let s = s(slots);
-                std::array::from_fn(|k| b[k] & s[k])
+        // Plain loops over the words, each written where its result goes:
+        // no temporary arrays, and nothing left out of line (a helper that
+        // is not inlined would not get the caller's target features). The
+        // loops take their arrays as separate arguments, which tells the
+        // compiler that the output overlaps no input.
+        let out = ins.out as usize;
+        if let Form::Both | Form::BothClearHere = ins.form {
+            let [Lanes(v), Lanes(w)] = slots
+                .get_disjoint_mut([out, ins.other as usize])
+                .expect("two different slots");
+            select_both(ins.form == Form::Both, b, v, w);
+        } else {
+            select_one(ins.form, b, &mut slots[out].0);
+        }
+    }
+}
+
+/// [`Form::Both`] (`set_here`) or [`Form::BothClearHere`], in place.
+#[inline(always)]
+fn select_both<const W: usize>(set_here: bool, b: &[u64; W], v: &mut [u64; W], w: &[u64; W]) {
+    if set_here {
+        for k in 0..W {
+            v[k] = (b[k] & v[k]) | (!b[k] & w[k]);
+        }
+    } else {
+        for k in 0..W {
+            v[k] = (b[k] & w[k]) | (!b[k] & v[k]);
+        }
+    }
+}
+
+/// Every other form, in place.
+#[inline(always)]
+fn select_one<const W: usize>(form: Form, b: &[u64; W], v: &mut [u64; W]) {
+    match form {
+        Form::Plane => *v = *b,
+        Form::NotPlane => {
+            for k in 0..W {
+                v[k] = !b[k];
             }
-            Form::SetOrClear => {
-                let s = s(slots);
-                std::array::from_fn(|k| s[k] | !b[k])
+        }
+        Form::SetOnly => {
+            for k in 0..W {
+                v[k] &= b[k];
             }
-            Form::ClearOnly => {
-                let c = c(slots);
-                std::array::from_fn(|k| !b[k] & c[k])
+        }
+        Form::SetOrClear => {
+            for k in 0..W {
+                v[k] |= !b[k];
             }
-            Form::PlaneOrClear => {
-                let c = c(slots);
-                std::array::from_fn(|k| b[k] | c[k])
+        }
+        Form::ClearOnly => {
+            for k in 0..W {
+                v[k] &= !b[k];
             }
-            Form::Both => {
-                let (s, c) = (s(slots), c(slots));
-                std::array::from_fn(|k| (b[k] & s[k]) | (!b[k] & c[k]))
+        }
+        Form::PlaneOrClear => {
+            for k in 0..W {
+                v[k] |= b[k];
             }
-        };
-        slots[ins.out as usize] = Lanes(v);
+        }
+        Form::Both | Form::BothClearHere => unreachable!("two slots"),
     }
 }
 
@@ -220,47 +255,47 @@ impl Kernel for Avx2Kernel {
     fn select<const W: usize>(self, b: &[u64; W], slots: &mut [Lanes<W>], ins: Select) {
         use std::arch::x86_64::*;
         let v_per = W / 4;
-        let (set, clear, out) = (ins.set as usize, ins.clear as usize, ins.out as usize);
-        assert!(set < slots.len() && clear < slots.len() && out < slots.len());
-        // SAFETY: AVX2 was detected; the three slots are in bounds (checked
-        // above) and aligned (`Mask` is 64-byte aligned); every input of a
+        let (out, other) = (ins.out as usize, ins.other as usize);
+        assert!(out < slots.len() && other < slots.len());
+        // SAFETY: AVX2 was detected; the two slots are in bounds (checked
+        // above) and aligned (`Lanes` is 64-byte aligned); every input of a
         // vector is loaded before its output is stored, so the output may
         // be an input slot.
         unsafe {
             let base = slots.as_mut_ptr() as *mut __m256i;
             let ones = _mm256_set1_epi64x(-1);
-            let (sp, cp, op) = (
-                base.add(set * v_per),
-                base.add(clear * v_per),
-                base.add(out * v_per),
-            );
+            let (vp, wp) = (base.add(out * v_per), base.add(other * v_per));
             let bp = b.as_ptr() as *const __m256i;
             // One loop per form, so the form is decided once per instruction.
             macro_rules! each {
                 (|$bv:ident, $q:ident| $e:expr) => {
                     for $q in 0..v_per {
                         let $bv = _mm256_loadu_si256(bp.add($q));
-                        _mm256_store_si256(op.add($q), $e);
+                        _mm256_store_si256(vp.add($q), $e);
                     }
                 };
             }
             match ins.form {
                 Form::Plane => each!(|bv, q| bv),
                 Form::NotPlane => each!(|bv, q| _mm256_andnot_si256(bv, ones)),
-                Form::SetOnly => each!(|bv, q| _mm256_and_si256(bv, _mm256_load_si256(sp.add(q)))),
+                Form::SetOnly => each!(|bv, q| _mm256_and_si256(bv, _mm256_load_si256(vp.add(q)))),
                 Form::SetOrClear => each!(|bv, q| _mm256_or_si256(
-                    _mm256_load_si256(sp.add(q)),
+                    _mm256_load_si256(vp.add(q)),
                     _mm256_andnot_si256(bv, ones)
                 )),
                 Form::ClearOnly => {
-                    each!(|bv, q| _mm256_andnot_si256(bv, _mm256_load_si256(cp.add(q))))
+                    each!(|bv, q| _mm256_andnot_si256(bv, _mm256_load_si256(vp.add(q))))
                 }
                 Form::PlaneOrClear => {
-                    each!(|bv, q| _mm256_or_si256(bv, _mm256_load_si256(cp.add(q))))
+                    each!(|bv, q| _mm256_or_si256(bv, _mm256_load_si256(vp.add(q))))
                 }
                 Form::Both => each!(|bv, q| _mm256_or_si256(
-                    _mm256_and_si256(bv, _mm256_load_si256(sp.add(q))),
-                    _mm256_andnot_si256(bv, _mm256_load_si256(cp.add(q)))
+                    _mm256_and_si256(bv, _mm256_load_si256(vp.add(q))),
+                    _mm256_andnot_si256(bv, _mm256_load_si256(wp.add(q)))
+                )),
+                Form::BothClearHere => each!(|bv, q| _mm256_or_si256(
+                    _mm256_and_si256(bv, _mm256_load_si256(wp.add(q))),
+                    _mm256_andnot_si256(bv, _mm256_load_si256(vp.add(q)))
                 )),
             }
         }

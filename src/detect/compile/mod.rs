@@ -205,17 +205,9 @@ impl Program {
 #[doc(hidden)]
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub enum Variant {
-    /// mode 0: today's block loop; 1: unchecked, list before detect;
-    /// 2: checked, list before detect.
-    Portable {
-        mode: u8,
-    },
-    Avx2Intrinsics {
-        mode: u8,
-    },
-    Avx2Portable {
-        mode: u8,
-    },
+    Portable { unchecked: bool },
+    Avx2Intrinsics { unchecked: bool },
+    Avx2Portable { unchecked: bool },
 }
 
 impl Program {

@@ -59,38 +59,46 @@ pub(super) struct Op {
 }
 
 /// One select instruction:
-/// `slot[out] = (plane AND value_if_set) OR (NOT plane AND value_if_clear)`,
+/// `value = (plane AND value_if_set) OR (NOT plane AND value_if_clear)`,
 /// where each value is a constant (`Drop` = zeros, `Detect` = ones) or an
 /// earlier result in a slot. The constants are folded into `form`, so an
-/// instruction loads only the slots it needs.
+/// instruction loads only the slots it needs. The value goes to slot
+/// `out`, and a child subtree's value that the instruction reads is read
+/// from `out` too (a subtree's value replaces its child's, as on a stack),
+/// except the second one of [`Form::Both`] and [`Form::BothClearHere`],
+/// read from `other`, a different slot.
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub(super) struct Select {
     /// The op whose plane is tested.
     pub(super) op: u32,
     pub(super) form: Form,
-    pub(super) set: u16,
-    pub(super) clear: u16,
     pub(super) out: u16,
+    pub(super) other: u16,
 }
 
 /// The shape of a select instruction once its constants are folded in
-/// (`b` the plane, `s` and `c` the set and clear slots).
+/// (`b` the plane, `v` the value in slot `out`, `w` the value in slot
+/// `other`).
 #[derive(Clone, Copy, Debug, PartialEq, Eq)]
 pub(super) enum Form {
     /// Set -> Detect, clear -> Drop: `b`.
     Plane,
     /// Set -> Drop, clear -> Detect: `!b`.
     NotPlane,
-    /// Clear -> Drop: `b & s`.
+    /// Set -> the set subtree `v`, clear -> Drop: `b & v`.
     SetOnly,
-    /// Clear -> Detect: `s | !b`.
+    /// Set -> the set subtree `v`, clear -> Detect: `v | !b`.
     SetOrClear,
-    /// Set -> Drop: `!b & c`.
+    /// Set -> Drop, clear -> the clear subtree `v`: `!b & v`.
     ClearOnly,
-    /// Set -> Detect: `b | c`.
+    /// Set -> Detect, clear -> the clear subtree `v`: `b | v`.
     PlaneOrClear,
-    /// Both subtrees: `(b & s) | (!b & c)`.
+    /// Set -> the set subtree `v`, clear -> the clear subtree `w`:
+    /// `(b & v) | (!b & w)`.
     Both,
+    /// Set -> the set subtree `w`, clear -> the clear subtree `v`:
+    /// `(b & w) | (!b & v)`.
+    BothClearHere,
 }
 
 /// How [`Program::compile_with`] splits the work between walking and
@@ -286,34 +294,34 @@ fn post_order(ops: &[Op]) -> (Vec<Select>, Vec<(u32, u32)>, usize) {
             continue;
         }
         let detects = |t: u32| t == DETECT;
-        let (form, set, clear, out) = match (s, c) {
+        let (form, out, other) = match (s, c) {
             (Some(_), Some(_)) => {
+                // The first child's value is lower on the stack, and the
+                // result replaces it.
                 let (lower, upper) = (slot(depth - 2), slot(depth - 1));
                 depth -= 1;
-                let (set, clear) = if set_first {
-                    (lower, upper)
+                let form = if set_first {
+                    Form::Both
                 } else {
-                    (upper, lower)
+                    Form::BothClearHere
                 };
-                (Form::Both, set, clear, lower)
+                (form, lower, upper)
             }
             (Some(_), None) => {
-                let top = slot(depth - 1);
                 let form = if detects(op.on_clear) {
                     Form::SetOrClear
                 } else {
                     Form::SetOnly
                 };
-                (form, top, 0, top)
+                (form, slot(depth - 1), 0)
             }
             (None, Some(_)) => {
-                let top = slot(depth - 1);
                 let form = if detects(op.on_set) {
                     Form::PlaneOrClear
                 } else {
                     Form::ClearOnly
                 };
-                (form, 0, top, top)
+                (form, slot(depth - 1), 0)
             }
             (None, None) => {
                 depth += 1;
@@ -323,15 +331,14 @@ fn post_order(ops: &[Op]) -> (Vec<Select>, Vec<(u32, u32)>, usize) {
                 } else {
                     Form::NotPlane
                 };
-                (form, 0, 0, slot(depth - 1))
+                (form, slot(depth - 1), 0)
             }
         };
         select.push(Select {
             op: i as u32,
             form,
-            set,
-            clear,
             out,
+            other,
         });
         range[i].1 = select.len() as u32 - 1;
     }
