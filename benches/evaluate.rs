@@ -18,7 +18,7 @@ use std::path::Path;
 use std::time::Instant;
 
 use burlwatch::codec::{self, DecodeLimits};
-use burlwatch::detect::compile::{Backend, Program, Scratch, Variant};
+use burlwatch::detect::compile::{Backend, Program, Scratch};
 use burlwatch::detect::group::{self, GroupParams};
 use burlwatch::detect::walker;
 use burlwatch::detect::Detector;
@@ -124,127 +124,7 @@ fn evaluators(name: &str, tree: &Tree, threshold: f64, frame: &BitFrame, runs: u
     );
 }
 
-/// Kernel and block loop variants, interleaved: each round runs every
-/// variant (in a rotating order) three times and keeps the median; the
-/// report gives each variant's median over the rounds and its median
-/// per-round ratio to the first variant.
-fn variants(name: &str, tree: &Tree, threshold: f64, frame: &BitFrame, rounds: usize) {
-    let mpx = frame.len() as f64 / 1e6;
-    let program = Program::compile(tree, threshold);
-    let mut scratch = Scratch::default();
-    let mut out = BitFrame::new(frame.width(), frame.height());
-    let want = walker::detect(tree, threshold, frame);
-    let vs = [
-        ("portable, checked", Variant::Portable { unchecked: false }),
-        ("portable, unchecked", Variant::Portable { unchecked: true }),
-        (
-            "avx2 intrinsics, checked",
-            Variant::Avx2Intrinsics { unchecked: false },
-        ),
-        (
-            "avx2 intrinsics, unchecked",
-            Variant::Avx2Intrinsics { unchecked: true },
-        ),
-        (
-            "avx2 portable, checked",
-            Variant::Avx2Portable { unchecked: false },
-        ),
-        (
-            "avx2 portable, unchecked",
-            Variant::Avx2Portable { unchecked: true },
-        ),
-    ];
-    for (_, v) in vs {
-        program.detect_variant(v, frame, &mut scratch, &mut out);
-        assert_eq!(out, want, "{v:?}");
-    }
-    if let Ok(only) = std::env::var("BURLWATCH_BENCH_ONLY") {
-        let (label, v) = vs.iter().find(|(l, _)| *l == only).expect("variant");
-        let t = time(rounds, || {
-            program.detect_variant(*v, frame, &mut scratch, &mut out)
-        });
-        println!("{name}: {label} {:.1} Mpx/s", mpx / t);
-        return;
-    }
-    let mut times = vec![Vec::new(); vs.len()];
-    for r in 0..rounds {
-        for j in 0..vs.len() {
-            let k = (j + r) % vs.len();
-            let t = median(
-                (0..3)
-                    .map(|_| {
-                        let t = Instant::now();
-                        program.detect_variant(vs[k].1, frame, &mut scratch, &mut out);
-                        t.elapsed().as_secs_f64()
-                    })
-                    .collect(),
-            );
-            times[k].push(t);
-        }
-    }
-    println!("{name}: {rounds} rounds");
-    for (k, (label, _)) in vs.iter().enumerate() {
-        let ratios: Vec<f64> = (0..rounds).map(|r| times[0][r] / times[k][r]).collect();
-        let (lo, hi) = {
-            let mut v = ratios.clone();
-            v.sort_by(f64::total_cmp);
-            (v[rounds / 4], v[rounds * 3 / 4])
-        };
-        println!(
-            "  {label:<28} {:>7.1} Mpx/s (best {:>7.1})  x{:.3} of first (quartiles {:.3}..{:.3})",
-            mpx / median(times[k].clone()),
-            mpx / times[k].iter().copied().fold(f64::INFINITY, f64::min),
-            median(ratios),
-            lo,
-            hi
-        );
-    }
-    // Paired ratios within each round.
-    let paired =
-        |a: usize, b: usize| median((0..rounds).map(|r| times[b][r] / times[a][r]).collect());
-    println!(
-        "  avx2 portable / avx2 intrinsics: checked x{:.3}, unchecked x{:.3}",
-        paired(4, 2),
-        paired(5, 3)
-    );
-    println!(
-        "  checked / unchecked: portable x{:.3}, avx2 intrinsics x{:.3}, avx2 portable x{:.3}",
-        paired(0, 1),
-        paired(2, 3),
-        paired(4, 5)
-    );
-}
-
 fn main() {
-    if let Ok(rounds) = std::env::var("BURLWATCH_BENCH_VARIANTS") {
-        let rounds: usize = rounds.parse().expect("rounds");
-        let big = synth::generate(
-            &LoomParams {
-                width: 2048,
-                height: 2048,
-                ..LoomParams::standard()
-            },
-            2026,
-        )
-        .frame;
-        let tree = random_tree(10);
-        let dir = Path::new(env!("CARGO_MANIFEST_DIR")).join("demo-frames/train");
-        let folder =
-            burlwatch::fileio::data::read_folder(&dir, &DecodeLimits::default(), &mut |_, _| {})
-                .expect("demo frames");
-        let model =
-            learn::train(&folder.frames, &TrainParams::default(), &mut |_| {}).expect("train");
-        variants("random depth-10 tree, 2048x2048", &tree, 0.5, &big, rounds);
-        variants(
-            "demo model, 2048x2048",
-            &model.tree,
-            model.threshold,
-            &big,
-            rounds,
-        );
-        return;
-    }
-
     let runs: usize = std::env::var("BURLWATCH_BENCH_RUNS")
         .ok()
         .and_then(|s| s.parse().ok())

@@ -2,22 +2,25 @@
 //! per-worker [`Scratch`], the walk's block loop and the whole-program
 //! select loop, and [`run`] (detection plus grouping of one frame).
 //!
-//! Invariant kept here: every load the loops make is a whole block (or
-//! chunk) of words inside the shifted planes. `prepare` pads each plane
+//! Invariants kept here: every load the loops make is a whole block (or
+//! chunk) of words inside the shifted planes (`prepare` pads each plane
 //! with a chunk of zero words and resolves each op to the offset of its
-//! plane row, and the loops check once per frame (and once per level) that
-//! every read fits, so that the visits themselves need no bounds
-//! bookkeeping. The output has no padding bits set: every walk starts from
-//! the block's valid pixels, and the select loop masks its result by them.
+//! plane row); and the output has no padding bits set (every walk starts
+//! from the block's valid pixels, and the select loop masks its result by
+//! them). All indexing is checked: the checks are cheap where they stand
+//! (see [`Program::block`]), and this module has no `unsafe` but the call
+//! into the AVX2 build of the loop, made after AVX2 was detected.
 
-#[cfg(target_arch = "x86_64")]
-use super::kernels::Avx2Kernel;
-use super::kernels::{Kernel, Lanes, Mask, PortableKernel};
+use super::kernels::{self, Lanes, Mask};
 use super::plan::{DETECT, DROP, SLOT0};
 use super::{Backend, Program, BLOCK, WIDE};
 use crate::detect::{FrameResult, Settings};
 use crate::frame::BitFrame;
 use crate::model::Tree;
+
+// Planes and the valid mask are padded by a chunk of words, which must
+// cover a block read from the frame's last word too.
+const _: () = assert!(WIDE >= BLOCK, "a chunk of padding covers a block");
 
 /// What the evaluation loop needs of one op, resolved for a frame's layout.
 #[derive(Clone, Copy, Debug, Default)]
@@ -119,7 +122,8 @@ pub(super) fn detect_into(
     match backend {
         #[cfg(target_arch = "x86_64")]
         Backend::Avx2 if backend.available() => {
-            // SAFETY: the processor supports AVX2 (checked just above).
+            // SAFETY: `run_avx2` is compiled for AVX2 and this processor
+            // has it (checked just above).
             unsafe { program.run_avx2(frame, scratch, out) }
         }
         _ => program.run(frame, scratch, out),
@@ -206,102 +210,25 @@ impl Program {
         }
     }
 
-    /// The evaluation loop compiled with AVX2.
-    ///
-    /// # Safety
-    ///
-    /// The processor must support AVX2.
+    /// The evaluation loop compiled with AVX2: the same code as
+    /// [`Program::run`], vectorised for 256-bit registers. Callers must
+    /// check that the processor has AVX2.
     #[cfg(target_arch = "x86_64")]
     #[target_feature(enable = "avx2")]
-    unsafe fn run_avx2(&self, frame: &BitFrame, s: &mut Scratch, out: &mut BitFrame) {
-        // SAFETY: the caller checked that the processor supports AVX2.
-        let kernel = unsafe { Avx2Kernel::new() };
-        self.run_body::<_, true>(kernel, frame, s, out)
+    fn run_avx2(&self, frame: &BitFrame, s: &mut Scratch, out: &mut BitFrame) {
+        self.run_body(frame, s, out)
     }
 
+    /// The evaluation loop for the baseline target.
     fn run(&self, frame: &BitFrame, s: &mut Scratch, out: &mut BitFrame) {
-        self.run_body::<_, true>(PortableKernel, frame, s, out)
-    }
-
-    #[cfg(target_arch = "x86_64")]
-    #[target_feature(enable = "avx2")]
-    fn run_variant_avx2<K: Kernel, const U: bool>(
-        &self,
-        kernel: K,
-        frame: &BitFrame,
-        s: &mut Scratch,
-        out: &mut BitFrame,
-    ) {
-        self.run_body::<K, U>(kernel, frame, s, out)
-    }
-
-    /// Measurement only: one kernel and block loop variant.
-    pub(super) fn detect_variant_inner(
-        &self,
-        v: super::Variant,
-        frame: &BitFrame,
-        s: &mut Scratch,
-        out: &mut BitFrame,
-    ) {
-        use super::Variant as V;
-        assert!(out.same_size(frame) && !frame.is_empty() && self.constant.is_none());
-        s.reach = Reach::default();
-        self.prepare(frame, s);
-        macro_rules! modes {
-            ($unchecked:expr, |$m:ident| $e:expr) => {
-                if $unchecked {
-                    const $m: bool = true;
-                    $e
-                } else {
-                    const $m: bool = false;
-                    $e
-                }
-            };
-        }
-        match v {
-            V::Portable { unchecked } => modes!(unchecked, |U| self.run_body::<_, U>(
-                PortableKernel,
-                frame,
-                s,
-                out
-            )),
-            #[cfg(target_arch = "x86_64")]
-            V::Avx2Intrinsics { unchecked } => {
-                assert!(Backend::Avx2.available());
-                unsafe {
-                    let k = Avx2Kernel::new();
-                    modes!(unchecked, |U| self
-                        .run_variant_avx2::<_, U>(k, frame, s, out))
-                }
-            }
-            #[cfg(target_arch = "x86_64")]
-            V::Avx2Portable { unchecked } => {
-                assert!(Backend::Avx2.available());
-                unsafe {
-                    modes!(unchecked, |U| self.run_variant_avx2::<_, U>(
-                        PortableKernel,
-                        frame,
-                        s,
-                        out
-                    ))
-                }
-            }
-            #[cfg(not(target_arch = "x86_64"))]
-            _ => unimplemented!(),
-        }
+        self.run_body(frame, s, out)
     }
 
     /// The evaluation loop, inlined into each backend so each is compiled
     /// with its own target features: every block of the frame from its
     /// root mask (the block's valid pixels) to its detections.
     #[inline(always)]
-    fn run_body<K: Kernel, const UNCHECKED: bool>(
-        &self,
-        kernel: K,
-        frame: &BitFrame,
-        s: &mut Scratch,
-        out: &mut BitFrame,
-    ) {
+    fn run_body(&self, frame: &BitFrame, s: &mut Scratch, out: &mut BitFrame) {
         let total = frame.stride() * frame.height();
         let Scratch {
             planes,
@@ -324,7 +251,7 @@ impl Program {
                 for ins in &self.select {
                     let o = steps[ins.op as usize].offset as usize + start;
                     let plane: &[u64; WIDE] = planes[o..o + WIDE].try_into().expect("padded");
-                    kernel.select(plane, wide, *ins);
+                    kernels::select(plane, wide, *ins);
                 }
                 for (k, d) in detected[start..start + len].iter_mut().enumerate() {
                     *d = wide[last].0[k] & valid[start + k];
@@ -333,56 +260,40 @@ impl Program {
             }
             return;
         }
-        // The walk reads the block of words at `start + offset` for block
-        // starts below `total` and the steps' offsets: one check covers
-        // every such read (`prepare` pads each plane by a chunk, so it
-        // holds).
-        let furthest = steps.iter().map(|st| st.offset as usize).max().unwrap_or(0);
-        assert!(
-            furthest + total + BLOCK <= planes.len(),
-            "every plane is padded by at least a block"
-        );
         let mut start = 0;
         while start < total {
             let len = BLOCK.min(total - start);
             let root: [u64; BLOCK] = valid[start..start + BLOCK].try_into().expect("padded");
-            // The planes from this block's first word on: every step's
-            // offset plus a block stays inside (checked for the frame
-            // above).
+            // The planes from this block's first word on: `prepare` padded
+            // them so that a block at every step's offset stays inside.
             let planes = &planes[start..];
-            // SAFETY: `prepare` made `steps` for this program, and `planes`
-            // holds a block at every step's offset (checked above).
-            unsafe {
-                self.block::<K, UNCHECKED>(
-                    kernel, root, planes, steps, cur, next, slots, acc, reach,
-                )
-            };
+            self.block(root, planes, steps, cur, next, slots, acc, reach);
             // The root mask excluded padding bits, so `acc` has none.
             detected[start..start + len].copy_from_slice(&acc.0[..len]);
             start += len;
         }
     }
 
-    /// One block: level by level over the pending (op, mask) pairs. A walked
-    /// op splits its mask and appends the children that received pixels to
-    /// the next level's list (branch-free: both are written, only those
-    /// wanted are counted); a select root adds its subtree's value, masked
-    /// by the pixels that reached it.
+    /// One block, into `acc`: level by level over the pending (op, mask)
+    /// pairs. A walked op splits its mask and appends the children that
+    /// received pixels to the next level's list (branch-free: both are
+    /// written, only those wanted are counted); a select root adds its
+    /// subtree's value, masked by the pixels that reached it.
     ///
-    /// This is the evaluator's hot loop, so its bookkeeping is kept short:
-    /// the bounds of a level are checked once, and the visits index the
-    /// lists, the steps and the plane without checks.
-    ///
-    /// # Safety
-    ///
-    /// `steps` must be this program's steps as [`Program::prepare`] made
-    /// them (one per op, each op outcome naming an op), and `planes` must
-    /// hold [`BLOCK`] words from every step's offset on.
+    /// This is the evaluator's hot loop. Its reads are bounds-checked: the
+    /// checks are well-predicted branches, and unchecked reads measured
+    /// no faster than noise. What matters is where they stand: a visit
+    /// checks everything it will touch before the split, and uses the
+    /// children's emptiness (for the list) before anything else. A check
+    /// between the split and that use kept a block of child vectors alive
+    /// across it, spilled to the stack, and cost a quarter of the walk.
+    /// For the same reason the block's detections stay in `acc`, in the
+    /// [`Scratch`], and not in a local array that the compiler may keep in
+    /// registers across visits.
     #[allow(clippy::too_many_arguments)]
     #[inline(always)]
-    unsafe fn block<K: Kernel, const UNCHECKED: bool>(
+    fn block(
         &self,
-        kernel: K,
         root: [u64; BLOCK],
         planes: &[u64],
         steps: &[Step],
@@ -392,7 +303,7 @@ impl Program {
         acc: &mut Mask,
         reach: &mut Reach,
     ) {
-        // Plane words of this block at a step's offset (checked).
+        // Plane words of this block at a step's offset.
         let block = |offset: u32| -> &[u64; BLOCK] {
             let o = offset as usize;
             planes[o..o + BLOCK].try_into().expect("padded")
@@ -406,92 +317,42 @@ impl Program {
             reach.visits += pending as u64;
             // The level reads entries below `pending` and writes entries
             // and mask slots below `2 * pending` (a visit adds at most two
-            // entries, so `n <= 2e` at visit `e`).
+            // entries, so `n <= 2e` at visit `e`). Checked once here, which
+            // lets the compiler drop most checks of the visits.
             assert!(
                 pending <= cur.list.len()
                     && 2 * pending <= next.list.len()
                     && 2 * pending <= next.masks.len(),
                 "a level's lists fit its buffers"
             );
-            let list = if UNCHECKED {
-                next.list.as_mut_ptr()
-            } else {
-                std::ptr::null_mut()
-            };
-            let masks = if UNCHECKED {
-                next.masks.as_mut_ptr()
-            } else {
-                std::ptr::null_mut()
-            };
             let mut n = 0;
             for e in 0..pending {
-                // SAFETY: `e < pending`, checked above. The entries below
-                // `pending` are the root or were counted by the previous
-                // level, so each names an op (a pushed outcome of a step),
-                // and there is one step per op (the caller's contract).
-                let (i, slot, step) = if UNCHECKED {
-                    unsafe {
-                        let (i, slot) = *cur.list.get_unchecked(e);
-                        (i, slot, *steps.get_unchecked(i as usize))
-                    }
-                } else {
-                    let (i, slot) = cur.list[e];
-                    (i, slot, steps[i as usize])
-                };
+                let (i, slot) = cur.list[e];
+                let step = steps[i as usize];
                 let m = &cur.masks[slot as usize];
                 if step.flags & SELECTS != 0 {
                     let (a, b) = self.select_range[i as usize];
                     for ins in &self.select[a as usize..=b as usize] {
-                        kernel.select(block(steps[ins.op as usize].offset), slots, *ins);
+                        kernels::select(block(steps[ins.op as usize].offset), slots, *ins);
                     }
                     let v = &slots[self.select[b as usize].out as usize];
-                    kernel.keep(acc, m, v);
+                    kernels::keep(acc, m, v);
                     continue;
                 }
-                // SAFETY: slots `2e` and `2e + 1` are below `2 * pending`
-                // (checked above) and in the other level's buffer, so they
-                // overlap neither `m` nor anything else borrowed here; the
-                // plane holds a block at every step's offset (the caller's
-                // contract).
-                let (kids, b): (&mut [Mask; 2], &[u64; BLOCK]) = if UNCHECKED {
-                    unsafe {
-                        (
-                            &mut *(masks.add(2 * e) as *mut [Mask; 2]),
-                            &*(planes.as_ptr().add(step.offset as usize) as *const [u64; BLOCK]),
-                        )
-                    }
-                } else {
-                    (
-                        (&mut next.masks[2 * e..2 * e + 2])
-                            .try_into()
-                            .expect("checked"),
-                        block(step.offset),
-                    )
-                };
-                if UNCHECKED {
-                    let [any_set, any_clear] = kernel.split(m, b, kids);
-                    // SAFETY: `n <= 2e`, so entries `n` and `n + 1` are below
-                    // `2 * pending` (checked above).
-                    unsafe {
-                        *list.add(n) = (step.next[0], 2 * e as u32);
-                        n += pushes(step, 0, any_set);
-                        *list.add(n) = (step.next[1], 2 * e as u32 + 1);
-                    }
-                    n += pushes(step, 1, any_clear);
-                } else {
-                    // The list entries first, then the detections: the
-                    // children's emptiness is used as soon as it is known,
-                    // so no child vector has to outlive the split.
-                    let entries: &mut [(u32, u32); 2] =
-                        (&mut next.list[n..n + 2]).try_into().expect("two entries");
-                    let [any_set, any_clear] = kernel.split(m, b, kids);
-                    entries[0] = (step.next[0], 2 * e as u32);
-                    let p = pushes(step, 0, any_set);
-                    entries[p] = (step.next[1], 2 * e as u32 + 1);
-                    n += p + pushes(step, 1, any_clear);
-                }
+                // Slots `2e` and `2e + 1` of the other level's buffer, and
+                // list entries `n` and `n + 1`: both below `2 * pending`.
+                let kids: &mut [Mask; 2] = (&mut next.masks[2 * e..2 * e + 2])
+                    .try_into()
+                    .expect("two slots");
+                let entries: &mut [(u32, u32); 2] =
+                    (&mut next.list[n..n + 2]).try_into().expect("two entries");
+                let [any_set, any_clear] = kernels::split(m, block(step.offset), kids);
+                entries[0] = (step.next[0], 2 * e as u32);
+                let p = pushes(step, 0, any_set);
+                entries[p] = (step.next[1], 2 * e as u32 + 1);
+                n += p + pushes(step, 1, any_clear);
                 if step.flags & (DETECT_SET | DETECT_SET << 1) != 0 {
-                    kernel.detect(acc, kids, [detect_word(step, 0), detect_word(step, 1)]);
+                    kernels::detect(acc, kids, [detect_word(step, 0), detect_word(step, 1)]);
                 }
             }
             std::mem::swap(cur, next);

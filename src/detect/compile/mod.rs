@@ -201,29 +201,6 @@ impl Program {
     }
 }
 
-/// Measurement only: a kernel and a block loop.
-#[doc(hidden)]
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
-pub enum Variant {
-    Portable { unchecked: bool },
-    Avx2Intrinsics { unchecked: bool },
-    Avx2Portable { unchecked: bool },
-}
-
-impl Program {
-    /// Measurement only.
-    #[doc(hidden)]
-    pub fn detect_variant(
-        &self,
-        v: Variant,
-        frame: &BitFrame,
-        scratch: &mut Scratch,
-        out: &mut BitFrame,
-    ) {
-        self.detect_variant_inner(v, frame, scratch, out)
-    }
-}
-
 /// Small trees and the backends to run them on, for the unit tests of
 /// every part.
 #[cfg(test)]

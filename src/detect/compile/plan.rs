@@ -441,6 +441,9 @@ mod tests {
         for ins in &p.select {
             assert!(!std::mem::replace(&mut seen[ins.op as usize], true));
             assert!((ins.out as usize) < p.slots);
+            if let Form::Both | Form::BothClearHere = ins.form {
+                assert!((ins.other as usize) < p.slots && ins.other != ins.out);
+            }
         }
         for (i, op) in p.ops.iter().enumerate() {
             let (a, b) = p.select_range[i];
