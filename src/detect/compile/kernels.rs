@@ -8,9 +8,11 @@
 //! the evaluation loop is compiled with (the baseline, or AVX2 chosen at
 //! run time), and so compute the same words bit for bit.
 //!
-//! Invariant: every function here is `#[inline(always)]` and calls nothing
-//! out of line that does vector work. A function that is not inlined into
-//! the AVX2 build of the loop is compiled for the baseline only: an
+//! Invariant: every function here is `#[inline(always)]`, and none calls
+//! crate or library code of its own out of line to do vector work (the C
+//! library's `memcpy`, which the compiler may use for a plain copy, picks
+//! its vector width at run time). A Rust function that is not inlined
+//! into the AVX2 build of the loop is compiled for the baseline only: an
 //! earlier version built select values with `std::array::from_fn`, and one
 //! of those calls stayed out of line as SSE2 code, through the stack.
 
