@@ -25,12 +25,14 @@ pub(super) const SLOT0: u32 = 2;
 /// tests both for emptiness; a select instruction within a walked block
 /// waits on the previous instruction's result; a whole-program select runs
 /// each instruction over [`WIDE`](super::WIDE) words at once, which hides that wait.
-/// The values are tuned rather than measured ratios (a visit takes about
+/// The values are tuned rather than measured ratios, and were tuned with
+/// the hand-written AVX2 kernel this module used before (a visit took about
 /// 17 ns and a whole-program select instruction about 8 ns per 2,048
-/// pixels): visit costs from 2.5 to 3.5 give the same speed (within 3%) on
+/// pixels): visit costs from 2.5 to 3.5 gave the same speed (within 3%) on
 /// the demo model and on depth-14 and depth-16 models of the demo data,
-/// while 4.5 turns the latter two into whole select programs that run 40%
-/// slower.
+/// while 4.5 turned the latter two into whole select programs that ran 40%
+/// slower. They have not been tuned again for the compiled-for-AVX2
+/// portable kernel.
 const VISIT_COST: f64 = 3.5;
 const SELECT_COST: f64 = 2.0;
 const WIDE_SELECT_COST: f64 = 1.0;
