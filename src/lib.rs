@@ -35,10 +35,11 @@
 //! - [`daemon`]: the unattended detector: inbox watching, workers, the
 //!   detection log, archive and rejects, reload and stop.
 //!
-//! Everything except [`fileio`], [`daemon`], [`config::load`] and the
-//! binary is pure: bytes
-//! and bit rows in, values out; the core knows nothing of threads, file
-//! watching or the filesystem.
+//! Everything except [`fileio`], [`daemon`], [`config::load`],
+//! [`config::Folders::absolute`] and the binary is pure: bytes and bit
+//! rows in, values out; the core knows nothing of file watching or the
+//! filesystem, and starts no thread except the scoped pair in
+//! [`learn::tune`].
 
 pub mod codec;
 pub mod config;

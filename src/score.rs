@@ -16,7 +16,7 @@
 
 use serde::{Deserialize, Serialize};
 
-use crate::detect::compile::{self, Scratch};
+use crate::detect::compile::Scratch;
 use crate::detect::group::{self, GroupParams, Object};
 use crate::detect::Detector;
 use crate::error::{Error, ErrorKind, Result};
@@ -188,8 +188,6 @@ pub fn score_frames(
         })
         .with_path(&f.name));
     }
-    let settings = detector.settings();
-    let tree = &detector.model().tree;
     let mut scratch = Scratch::default();
     let mut report = Report {
         frames: frames.len(),
@@ -197,7 +195,7 @@ pub fn score_frames(
     };
     for (k, f) in frames.iter().enumerate() {
         progress(k, frames.len());
-        let r = compile::run(detector.program(), tree, &settings, &f.frame, &mut scratch);
+        let r = detector.detect(&f.frame, &mut scratch);
         let s = Scores {
             pixel: pixel_confusion(&r.mask, &f.mask),
             object: object_confusion(&r.objects, &truth_objects(&f.mask)),

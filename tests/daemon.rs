@@ -172,7 +172,6 @@ fn exit_code(child: &mut Child, secs: u64) -> i32 {
     }
 }
 
-/// `count` small seeded loom frames as PBM bytes, named frame-NNNN.pbm.
 /// Drops `all` into the inbox, waits until every one is archived, stops the
 /// daemon with SIGTERM (exit 0), and checks one record per frame.
 fn feed_and_stop(s: &Setup, d: &mut Child, all: &[(String, Vec<u8>)], secs: u64) {

@@ -42,20 +42,27 @@ pub(crate) mod counting {
         let _ = BYTES.try_with(|b| b.set(b.get().wrapping_add(n as u64)));
     }
 
+    // SAFETY: every method hands the caller's arguments, unchanged, to the
+    // system allocator, whose contract is the same as the trait's; the
+    // counting touches only a thread-local integer and never allocates.
     unsafe impl GlobalAlloc for Counting {
         unsafe fn alloc(&self, l: Layout) -> *mut u8 {
             add(l.size());
+            // SAFETY: the caller keeps `GlobalAlloc`'s contract; passed on as is.
             unsafe { System.alloc(l) }
         }
         unsafe fn alloc_zeroed(&self, l: Layout) -> *mut u8 {
             add(l.size());
+            // SAFETY: the caller keeps `GlobalAlloc`'s contract; passed on as is.
             unsafe { System.alloc_zeroed(l) }
         }
         unsafe fn realloc(&self, p: *mut u8, l: Layout, new_size: usize) -> *mut u8 {
             add(new_size);
+            // SAFETY: the caller keeps `GlobalAlloc`'s contract; passed on as is.
             unsafe { System.realloc(p, l, new_size) }
         }
         unsafe fn dealloc(&self, p: *mut u8, l: Layout) {
+            // SAFETY: the caller keeps `GlobalAlloc`'s contract; passed on as is.
             unsafe { System.dealloc(p, l) }
         }
     }

@@ -102,6 +102,8 @@ pub fn run(a: TrainArgs) -> Result<i32> {
             format!("--class-weight {c:?} must be none, balanced or CLEAR:TARGET with two positive numbers")
         })?,
     };
+    // Settings fixed instead of tuned: options over `[detection]`.
+    let fixed = a.settings.overrides().over(cfg.live.overrides);
     let params = TrainParams {
         window,
         criterion,
@@ -111,12 +113,9 @@ pub fn run(a: TrainArgs) -> Result<i32> {
         class_weight,
         holdout: a.holdout.unwrap_or(base.holdout),
         refit: a.refit || base.refit,
-        threshold: a.settings.threshold.or(cfg.live.overrides.threshold),
-        min_area: a.settings.min_area.or(cfg.live.overrides.min_area),
-        merge_distance: a
-            .settings
-            .merge_distance
-            .or(cfg.live.overrides.merge_distance),
+        threshold: fixed.threshold,
+        min_area: fixed.min_area,
+        merge_distance: fixed.merge_distance,
         ..base.clone()
     };
     params.validate().context("bad training option")?;

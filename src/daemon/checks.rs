@@ -8,7 +8,7 @@ use std::path::Path;
 use serde::Serialize;
 
 use super::{files, start};
-use crate::config::Config;
+use crate::config::{Config, Folders};
 
 /// One finding: what was checked, whether it is usable, and the detail.
 #[derive(Clone, Debug, PartialEq, Eq, Serialize)]
@@ -30,9 +30,9 @@ impl Finding {
 
 /// Every folder: a usable folder, or missing with a parent it can be made
 /// in.
-pub fn folders(cfg: &Config) -> Vec<Finding> {
+pub fn folders(folders: &Folders) -> Vec<Finding> {
     let mut out = Vec::new();
-    for (name, dir) in cfg.start.folders.named() {
+    for (name, dir) in folders.named() {
         out.push(match std::fs::metadata(dir) {
             Ok(m) if m.is_dir() => {
                 let ro = m.permissions().readonly();
@@ -151,7 +151,7 @@ pub fn lock(cfg: &Config) -> Finding {
 
 /// Every check, in the order `burlwatch check` prints them.
 pub fn all(cfg: &Config) -> Vec<Finding> {
-    let mut out = folders(cfg);
+    let mut out = folders(&cfg.start.folders);
     out.push(model(cfg));
     out.push(lock(cfg));
     out

@@ -68,6 +68,10 @@ pub struct DetectionLog<T> {
     /// handed back.
     settled: Settled<T>,
     faults: Faults,
+    /// Set when the file could not be put back in order (a cut after a
+    /// failed write or sync failed, or a rotation stopped half-way): every
+    /// later append fails, and the daemon must stop and open the log again.
+    broken: Option<String>,
 }
 
 impl<T> DetectionLog<T> {
@@ -115,12 +119,14 @@ impl<T> DetectionLog<T> {
                 unsynced: Vec::new(),
                 settled: Settled::default(),
                 faults,
+                broken: None,
             },
             keys,
         ))
     }
 
     /// Appends one record, not yet durable: see [`DetectionLog::append_line`].
+    #[cfg(test)]
     pub fn append(&mut self, record: &FrameRecord, ticket: T) -> Result<(), (io::Error, T)> {
         match line_of(record) {
             Ok(line) => self.append_line(line, ticket),
@@ -133,6 +139,9 @@ impl<T> DetectionLog<T> {
     /// when the file is full. On failure nothing of this record is in the
     /// log, and the ticket is handed back with the error.
     pub fn append_line(&mut self, line: Vec<u8>, ticket: T) -> Result<(), (io::Error, T)> {
+        if let Some(why) = &self.broken {
+            return Err((io::Error::other(why.clone()), ticket));
+        }
         if self.size > 0 && self.size + line.len() as u64 > self.rotate_bytes {
             if let Err(e) = self.rotate() {
                 return Err((e, ticket));
@@ -145,7 +154,11 @@ impl<T> DetectionLog<T> {
         if let Err(e) = written {
             // A record written in part (disk full) is cut off again, so the
             // next one starts on a line of its own.
-            let _ = self.file.set_len(self.size);
+            if let Err(cut) = self.file.set_len(self.size) {
+                self.broken = Some(format!(
+                    "a write failed ({e}) and the partial record could not be cut off ({cut})"
+                ));
+            }
             return Err((e, ticket));
         }
         self.size += line.len() as u64;
@@ -155,9 +168,24 @@ impl<T> DetectionLog<T> {
 
     /// Whether any ticket waits to be handed back by [`DetectionLog::sync`].
     pub fn has_pending(&self) -> bool {
-        !self.unsynced.is_empty()
-            || !self.settled.durable.is_empty()
-            || !self.settled.lost.is_empty()
+        !self.unsynced.is_empty() || self.has_settled()
+    }
+
+    /// Whether tickets whose fate is known (a rotation made their records
+    /// durable, or a failure cut them off) wait to be handed back.
+    pub fn has_settled(&self) -> bool {
+        !self.settled.durable.is_empty() || !self.settled.lost.is_empty()
+    }
+
+    /// Hands back the tickets whose fate is already known, without syncing.
+    pub fn take_settled(&mut self) -> Settled<T> {
+        std::mem::take(&mut self.settled)
+    }
+
+    /// Why the log cannot go on, if it cannot: the caller must stop and
+    /// open it again (opening cuts a partial last line and syncs).
+    pub fn broken(&self) -> Option<&str> {
+        self.broken.as_deref()
     }
 
     /// Records appended since the last sync, in the current file.
@@ -195,7 +223,13 @@ impl<T> DetectionLog<T> {
     /// Cuts the records since the last good sync off again; their tickets
     /// are lost.
     fn cut_unsynced(&mut self) {
-        let _ = self.file.set_len(self.synced_size);
+        if let Err(e) = self.file.set_len(self.synced_size) {
+            // The records stay in the file: a later sync would make them
+            // durable although their frames were told they were lost.
+            self.broken = Some(format!(
+                "records that could not be synced could not be cut off ({e})"
+            ));
+        }
         self.size = self.synced_size;
         self.settled.lost.append(&mut self.unsynced);
     }
@@ -227,18 +261,37 @@ impl<T> DetectionLog<T> {
             k += 1;
         }
         fs::rename(self.dir.join(CURRENT), &target)?;
-        self.file = OpenOptions::new()
+        // From here on the rotation must finish: the handle still writes
+        // to the renamed file.
+        let reopened = OpenOptions::new()
             .read(true)
             .append(true)
             .create(true)
-            .open(self.dir.join(CURRENT))?;
-        self.size = 0;
-        self.synced_size = 0;
-        sync_dir(&self.dir)?;
-        let old = rotated(&self.dir)?;
-        let excess = (old.len() + 1).saturating_sub(self.keep_files);
-        for p in old.iter().take(excess) {
-            fs::remove_file(p)?;
+            .open(self.dir.join(CURRENT))
+            .and_then(|f| sync_dir(&self.dir).map(|()| f));
+        match reopened {
+            Ok(f) => {
+                self.file = f;
+                self.size = 0;
+                self.synced_size = 0;
+            }
+            Err(e) => {
+                self.broken = Some(format!(
+                    "the full log was renamed to {} but a new one could not be started ({e})",
+                    target.display()
+                ));
+                return Err(e);
+            }
+        }
+        // Old files past `keep_files`: a failure here is tried again at the
+        // next rotation.
+        if let Ok(old) = rotated(&self.dir) {
+            let excess = (old.len() + 1).saturating_sub(self.keep_files);
+            for p in old.iter().take(excess) {
+                if let Err(e) = fs::remove_file(p) {
+                    tracing::warn!(file = %p.display(), "cannot delete an old detection log: {e}");
+                }
+            }
         }
         Ok(())
     }
@@ -447,5 +500,40 @@ mod tests {
             DetectionLog::open(dir.path(), 1 << 20, 5, &HashSet::new(), faults).unwrap();
         assert_eq!(log.append(&rec("x.pbm", "11"), 7).unwrap_err().1, 7);
         assert!(!log.has_pending());
+    }
+
+    #[test]
+    fn a_failed_rotation_cuts_the_full_files_unsynced_records_off() {
+        let dir = tempfile::tempdir().unwrap();
+        let faults = Faults::plan(|op, _, _| op == Fault::Rotate);
+        let (mut log, _) =
+            DetectionLog::open(dir.path(), 4096, 5, &HashSet::new(), faults).unwrap();
+        // Two records synced, then records until the next one needs a
+        // rotation, which fails.
+        for i in 0..2 {
+            log.append(&rec(&format!("frame-{i:04}.pbm"), "00"), i)
+                .unwrap();
+        }
+        let (settled, err) = log.sync();
+        assert!(err.is_none() && settled.durable == [0, 1]);
+        let synced = std::fs::metadata(dir.path().join(CURRENT)).unwrap().len();
+        let mut i = 2;
+        let failed = loop {
+            match log.append(&rec(&format!("frame-{i:04}.pbm"), "00"), i) {
+                Ok(()) => i += 1,
+                Err((_, ticket)) => break ticket,
+            }
+        };
+        assert_eq!(failed, i, "the record that needed the rotation comes back");
+        let settled = log.take_settled();
+        assert!(settled.durable.is_empty());
+        assert_eq!(settled.lost, (2..i).collect::<Vec<_>>());
+        // The file holds the synced records only, and nothing rotated.
+        assert_eq!(
+            std::fs::metadata(dir.path().join(CURRENT)).unwrap().len(),
+            synced
+        );
+        assert!(rotated(dir.path()).unwrap().is_empty());
+        assert!(log.broken().is_none());
     }
 }

@@ -182,10 +182,6 @@ impl Settle {
         self.files.retain(|p, _| keep.contains(p.as_path()));
     }
 
-    pub fn len(&self) -> usize {
-        self.files.len()
-    }
-
     pub fn is_empty(&self) -> bool {
         self.files.is_empty()
     }
@@ -244,7 +240,7 @@ impl Intake {
         let cannot = |e: notify::Error| {
             Error::daemon(format!("cannot watch the {what}: {e}")).with_path(dir)
         };
-        let watcher = if use_events {
+        let (watcher, events) = if use_events {
             let mut w = notify::recommended_watcher(move |ev| {
                 if tx.try_send(ev).is_err() {
                     flag.store(true, Ordering::Relaxed);
@@ -252,10 +248,10 @@ impl Intake {
             })
             .map_err(cannot)?;
             w.watch(dir, RecursiveMode::NonRecursive).map_err(cannot)?;
-            Some(w)
+            (Some(w), rx)
         } else {
             info!("file events are off: the {what} is found by listing alone");
-            None
+            (None, crossbeam_channel::never())
         };
         Ok(Intake {
             what,
@@ -267,7 +263,7 @@ impl Intake {
             rescan_every,
             next_rescan: now,
             overflow,
-            events: rx,
+            events,
             _watcher: watcher,
         })
     }
@@ -277,10 +273,21 @@ impl Intake {
         &self.events
     }
 
-    /// Takes a reload's new file endings and listing period.
-    pub fn configure(&mut self, formats: Vec<String>, rescan_every: Duration) {
+    /// Takes a reload's new file endings and listing period; a shorter
+    /// period takes effect from now, not from the last listing's deadline.
+    pub fn configure(&mut self, formats: Vec<String>, rescan_every: Duration, now: Instant) {
         self.formats = formats;
         self.rescan_every = rescan_every;
+        self.next_rescan = self.next_rescan.min(now + rescan_every);
+    }
+
+    /// The names of the wanted files in the folder now (for the detection
+    /// log's read-back at start).
+    pub fn names(&self) -> std::io::Result<HashSet<String>> {
+        Ok(list(&self.dir, &self.formats)?
+            .iter()
+            .filter_map(|l| l.path.file_name()?.to_str().map(String::from))
+            .collect())
     }
 
     /// The next file ready to be read, oldest first.
@@ -304,6 +311,11 @@ impl Intake {
             self.rescan(now);
             self.next_rescan = now + self.rescan_every;
         }
+    }
+
+    /// The folder watched.
+    pub fn dir(&self) -> &Path {
+        &self.dir
     }
 
     /// Stats the files that are settling; those unchanged long enough

@@ -158,21 +158,12 @@ pub fn run_with(
     hooks: Hooks,
 ) -> Result<Summary> {
     let Config { mut start, live } = cfg;
-    if let Some(bad) = checks::folders(&Config {
-        start: start.clone(),
-        live: live.clone(),
-    })
-    .into_iter()
-    .find(|f| !f.ok)
-    {
+    if let Some(bad) = checks::folders(&start.folders).into_iter().find(|f| !f.ok) {
         return Err(Error::daemon(format!("{}: {}", bad.what, bad.detail)));
     }
     start.folders = start::make_folders(&start.folders)?;
     let _lock = files::StateLock::acquire(&start.folders.state)?;
-    let model = start::load_or_train(&Config {
-        start: start.clone(),
-        live: live.clone(),
-    })?;
+    let model = start::load_or_train(&start.folders, &live)?;
     let detector = start::detector(model, &live)?;
     info!(
         version = detector.version(),
@@ -191,11 +182,9 @@ pub fn run_with(
         now,
     )?;
     // The frames waiting now: the log is asked which of them it holds.
-    let waiting = intake::list(&start.folders.inbox, &live.formats)
-        .map_err(|e| Error::from(e).with_path(&start.folders.inbox))?
-        .iter()
-        .filter_map(|l| l.path.file_name()?.to_str().map(String::from))
-        .collect();
+    let waiting = inbox
+        .names()
+        .map_err(|e| Error::from(e).with_path(inbox.dir()))?;
     let (log, logged) = detlog::DetectionLog::open(
         &start.folders.logs,
         start.log.rotate_bytes,
@@ -234,8 +223,7 @@ pub fn run_with(
         log,
         logged,
         start.log.sync,
-        start.folders.archive.clone(),
-        start.folders.rejected.clone(),
+        &start.folders,
         hooks.faults,
         out_tx,
         sinks,
@@ -330,6 +318,8 @@ enum Event {
     /// No one can send control messages any more: stop.
     ControlGone,
     Tick,
+    /// The tick channel closed (a test's).
+    TicksGone,
 }
 
 /// The main loop's state: what is handed out, and what is running.
@@ -361,12 +351,12 @@ struct MainLoop {
 impl MainLoop {
     fn run(&mut self, status: &mut dyn FnMut(Status)) {
         loop {
+            if !self.stopping {
+                self.inbox.poll(self.clock.now());
+            }
             self.hand_out();
             if (self.stopping && self.unfinished == 0) || self.workers_lost || self.writer_lost {
                 return;
-            }
-            if !self.stopping {
-                self.inbox.poll(self.clock.now());
             }
             match self.next_event() {
                 Event::Watch(ev) => self.inbox.on_watch(ev, self.clock.now()),
@@ -394,6 +384,8 @@ impl MainLoop {
                     self.stop(status);
                 }
                 Event::Tick => self.tick(status),
+                // Only a test's tick channel can close: no more ticks.
+                Event::TicksGone => self.ticks = crossbeam_channel::never(),
             }
         }
     }
@@ -403,7 +395,7 @@ impl MainLoop {
             recv(self.inbox.events()) -> ev => Event::Watch(ev),
             recv(self.from_writer) -> m => m.map_or(Event::WriterGone, Event::Writer),
             recv(self.control) -> c => c.map_or(Event::ControlGone, Event::Control),
-            recv(self.ticks) -> _ => Event::Tick,
+            recv(self.ticks) -> t => t.map_or(Event::TicksGone, |_| Event::Tick),
         }
     }
 
@@ -496,6 +488,7 @@ impl MainLoop {
         self.inbox.configure(
             live.formats.clone(),
             Duration::from_secs_f64(live.rescan_seconds),
+            self.clock.now(),
         );
         self.running.store(Arc::new(Running { detector, live }));
         (true, restart_needed)

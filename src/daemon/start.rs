@@ -1,13 +1,14 @@
-//! What the daemon needs before it watches anything: its folders, its
-//! lock, and the model in service (the state folder's, or one trained from
-//! the seed data on a fresh box).
+//! What the daemon needs before it watches anything: its folders made and
+//! made absolute, and the model in service (the state folder's, or one
+//! trained from the seed data on a fresh box). The lock is taken between
+//! the two, in `run_with`, and held for the run.
 
 use std::path::PathBuf;
 
 use tracing::info;
 
 use super::files;
-use crate::config::{Config, Folders, LiveConfig};
+use crate::config::{Folders, LiveConfig};
 use crate::detect::Detector;
 use crate::error::{Error, ErrorKind, Result};
 use crate::learn;
@@ -45,8 +46,7 @@ pub fn detector(model: Model, live: &LiveConfig) -> Result<Detector> {
 
 /// The model in service: the state folder's, or, on a fresh box, one
 /// trained from `training.seed_data` and stored there as version 1.
-pub fn load_or_train(cfg: &Config) -> Result<Model> {
-    let (folders, live) = (&cfg.start.folders, &cfg.live);
+pub fn load_or_train(folders: &Folders, live: &LiveConfig) -> Result<Model> {
     let path = model_path(folders);
     if path.exists() {
         return load_model(folders, live);

@@ -5,14 +5,22 @@
 //! version that was read. Then it tells the subscribers ([`RecordSink`])
 //! and the main loop.
 //!
-//! Exactly once rests on two sets: the keys (name, sha256) of records
+//! Exactly once rests on two things: the keys (name, sha256) of records
 //! durable in the log whose frames are not moved yet (read back at start
-//! for the frames in the inbox, then kept until each move), so a frame met
-//! again is archived without a second record; and the log's own word on
-//! which records are durable ([`Settled`]), so a failed sync never makes
+//! for the frames in the inbox, then kept until the frame of that name is
+//! moved or gone, so at most one entry per name in the inbox), so a frame
+//! met again is archived without a second record; and the log's own word
+//! on which records are durable ([`Settled`]), taken as soon as the log
+//! knows (after every append and every sync), so a failed sync never makes
 //! the writer forget a record that a rotation had already made durable.
+//!
+//! Subscribers hear `Logged` when a record is durable, whatever happens to
+//! the move after; a frame whose move fails is `Left` and, when met again,
+//! `AlreadyLogged`. If the log cannot be put back in order after a failure
+//! ([`DetectionLog::broken`]), the writer stops, and with it the daemon:
+//! opening the log again at the next start repairs it.
 
-use std::collections::{BTreeMap, HashSet};
+use std::collections::{BTreeMap, HashMap, HashSet};
 use std::path::{Path, PathBuf};
 use std::time::{Duration, Instant};
 
@@ -24,7 +32,7 @@ use super::faults::{Fault, Faults};
 use super::files::{self, Stamp};
 use super::sink::{Finished, RecordSink};
 use super::worker::{Job, Outcome};
-use crate::config::SyncPolicy;
+use crate::config::{Folders, SyncPolicy};
 use crate::record::FrameRecord;
 
 /// What the writer tells the main loop.
@@ -50,8 +58,8 @@ pub(super) struct Pending {
 /// The writer's state; [`Writer::run`] is its thread.
 pub(super) struct Writer {
     log: DetectionLog<Pending>,
-    /// Keys durable in the log whose frames are not moved yet.
-    unmoved: HashSet<Key>,
+    /// Keys durable in the log whose frames are not moved yet, by name.
+    unmoved: Unmoved,
     /// Outcomes that arrived before an earlier job's.
     waiting: BTreeMap<u64, (Job, Outcome)>,
     next: u64,
@@ -67,27 +75,29 @@ pub(super) struct Writer {
 }
 
 impl Writer {
-    #[allow(clippy::too_many_arguments)]
     pub fn new(
         log: DetectionLog<Pending>,
         recovered: HashSet<Key>,
         policy: SyncPolicy,
-        archive: PathBuf,
-        rejected: PathBuf,
+        folders: &Folders,
         faults: Faults,
         out: Sender<FromWriter>,
         sinks: Vec<Box<dyn RecordSink>>,
     ) -> Writer {
+        let mut unmoved = Unmoved::default();
+        for key in recovered {
+            unmoved.remember(key);
+        }
         Writer {
             log,
-            unmoved: recovered,
+            unmoved,
             waiting: BTreeMap::new(),
             next: 0,
             policy,
             first_unsynced: None,
             draining: false,
-            archive,
-            rejected,
+            archive: folders.archive.clone(),
+            rejected: folders.rejected.clone(),
             faults,
             out,
             sinks,
@@ -125,6 +135,10 @@ impl Writer {
             if self.sync_due() {
                 self.sync();
             }
+            if let Some(why) = self.log.broken() {
+                error!("the detection log cannot go on: {why}; stopping (a restart repairs it)");
+                return;
+            }
         }
         self.sync();
     }
@@ -136,6 +150,12 @@ impl Writer {
             self.next += 1;
             let _ = self.out.send(FromWriter::Taken);
             self.handle(job, outcome);
+            // A rotation may have made earlier records durable, or a
+            // failure cut some off: act on it now.
+            if self.log.has_settled() {
+                let settled = self.log.take_settled();
+                self.settle(settled);
+            }
         }
     }
 
@@ -169,12 +189,7 @@ impl Writer {
                 let key = (record.frame.clone(), record.sha256.clone());
                 if self.unmoved.contains(&key) {
                     debug!(frame = %job.path.display(), "already in the log: archiving only");
-                    if self
-                        .archive_frame(&job.path, stamp, |p| Finished::AlreadyLogged { frame: p })
-                    {
-                        self.unmoved.remove(&key);
-                    }
-                    return;
+                    return self.archive_frame(&job.path, &key.0, stamp, true);
                 }
                 let line = match line_of(&record) {
                     Ok(l) => l,
@@ -232,32 +247,29 @@ impl Writer {
         self.settle(settled);
     }
 
-    /// Durable records: keys kept until the frame is moved, then the frame
-    /// archived. Lost records: forgotten, so the frames are logged when the
-    /// next listing finds them.
+    /// Durable records: told to the subscribers, their keys kept until the
+    /// frame is moved, then the frame archived. Lost records: forgotten, so
+    /// the frames are logged when the next listing finds them.
     fn settle(&mut self, settled: Settled<Pending>) {
         for p in settled.durable {
-            self.unmoved.insert(p.key.clone());
-            let record = p.record;
-            if self.archive_frame(&p.path, p.stamp, |_| Finished::Logged(&record)) {
-                self.unmoved.remove(&p.key);
-            }
+            self.tell(&Finished::Logged(&p.record));
+            self.unmoved.remember(p.key.clone());
+            self.archive_frame(&p.path, &p.key.0, p.stamp, false);
         }
         for p in settled.lost {
             self.left(p.path);
         }
     }
 
-    /// Moves a logged frame to the archive; true if it went.
-    fn archive_frame<'a>(
-        &mut self,
-        path: &'a Path,
-        stamp: Stamp,
-        event: impl FnOnce(&'a Path) -> Finished<'a>,
-    ) -> bool {
+    /// Moves a frame whose record is durable to the archive. Its key is
+    /// forgotten once the frame is moved or gone; a frame left in place
+    /// keeps it, so it is archived without a second record when met again.
+    fn archive_frame(&mut self, path: &Path, name: &str, stamp: Stamp, already_logged: bool) {
         if changed(path, Some(stamp)) {
-            self.left(path.to_path_buf());
-            return false;
+            if std::fs::symlink_metadata(path).is_err() {
+                self.unmoved.forget(name);
+            }
+            return self.left(path.to_path_buf());
         }
         let moved = self
             .faults
@@ -265,13 +277,18 @@ impl Writer {
             .and_then(|()| files::move_into(path, &self.archive));
         match moved {
             Ok(_) => {
-                self.finish(path, &event(path));
-                true
+                self.unmoved.forget(name);
+                if already_logged {
+                    self.tell(&Finished::AlreadyLogged { frame: path });
+                }
+                let _ = self.out.send(FromWriter::Done(path.to_path_buf()));
             }
             Err(e) => {
                 error!(frame = %path.display(), "cannot move the frame to the archive: {e}");
+                if std::fs::symlink_metadata(path).is_err() {
+                    self.unmoved.forget(name);
+                }
                 self.left(path.to_path_buf());
-                false
             }
         }
     }
@@ -280,11 +297,37 @@ impl Writer {
         self.finish(&path, &Finished::Left { frame: &path });
     }
 
+    /// Tells the subscribers and the main loop that a frame is finished.
     fn finish(&mut self, path: &Path, event: &Finished<'_>) {
+        self.tell(event);
+        let _ = self.out.send(FromWriter::Done(path.to_path_buf()));
+    }
+
+    fn tell(&mut self, event: &Finished<'_>) {
         for s in &mut self.sinks {
             s.finished(event);
         }
-        let _ = self.out.send(FromWriter::Done(path.to_path_buf()));
+    }
+}
+
+/// The keys of durable records whose frames are not moved yet, by frame
+/// name: a name holds one file at a time, so once the frame of a name is
+/// moved or gone, every key of that name can go. Bounded by the names in
+/// the inbox.
+#[derive(Debug, Default)]
+struct Unmoved(HashMap<String, HashSet<String>>);
+
+impl Unmoved {
+    fn remember(&mut self, (name, hash): Key) {
+        self.0.entry(name).or_default().insert(hash);
+    }
+
+    fn contains(&self, (name, hash): &Key) -> bool {
+        self.0.get(name).is_some_and(|h| h.contains(hash))
+    }
+
+    fn forget(&mut self, name: &str) {
+        self.0.remove(name);
     }
 }
 

@@ -71,6 +71,18 @@ impl Detector {
         &self.program
     }
 
+    /// Detects and groups one decoded frame with the compiled program and
+    /// the settings it was compiled for.
+    pub fn detect(&self, frame: &BitFrame, scratch: &mut Scratch) -> FrameResult {
+        compile::run(
+            &self.program,
+            &self.model.tree,
+            &self.settings,
+            frame,
+            scratch,
+        )
+    }
+
     /// The model's version, which every record carries.
     pub fn version(&self) -> u64 {
         self.model.model_version
@@ -91,13 +103,7 @@ impl Detector {
     ) -> Result<Detection> {
         let (_, start) = clock();
         let frame = codec::decode(bytes, limits)?;
-        let result = compile::run(
-            &self.program,
-            &self.model.tree,
-            &self.settings,
-            &frame,
-            scratch,
-        );
+        let result = self.detect(&frame, scratch);
         let (now, end) = clock();
         let record = FrameRecord::new(
             now,
