@@ -493,3 +493,47 @@ fn bench_reports_the_capacity_of_this_box() {
     assert_eq!(r.code, 0, "{}", r.stderr);
     assert!(r.stdout.contains("frame 128x128"), "{}", r.stdout);
 }
+
+/// Issue "First run and everyday use", point 2: a shell glob over a data
+/// folder names the masks too; they are skipped, with one line, and only
+/// the frames are scanned.
+#[test]
+fn scan_skips_masks_named_by_a_glob() {
+    let test = repo().join("demo-frames/test");
+    let mut files: Vec<String> = std::fs::read_dir(&test)
+        .unwrap()
+        .map(|e| e.unwrap().path().to_string_lossy().into_owned())
+        .filter(|p| p.ends_with(".pbm"))
+        .collect();
+    files.sort();
+    let masks = files.iter().filter(|p| p.ends_with(".mask.pbm")).count();
+    assert!(masks > 0 && masks < files.len());
+    let model = repo().join("tests/data/model-v2.json");
+    let mut args = vec!["scan", "--json", "--model", model.to_str().unwrap()];
+    args.extend(files.iter().map(String::as_str));
+    let d = Dir::new();
+    let r = burlwatch(d.path(), &args);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert_eq!(r.stdout.lines().count(), files.len() - masks);
+    assert!(!r.stdout.contains(".mask.pbm"), "a mask was scanned");
+    assert!(
+        r.stderr.contains(&format!("skipped {masks} mask file(s)")),
+        "{}",
+        r.stderr
+    );
+    // Masks alone: nothing to scan is an error that says why.
+    let only: Vec<&str> = files
+        .iter()
+        .filter(|p| p.ends_with(".mask.pbm"))
+        .map(String::as_str)
+        .collect();
+    let mut args = vec!["scan", "--model", model.to_str().unwrap()];
+    args.extend(only);
+    let r = burlwatch(d.path(), &args);
+    assert_eq!(r.code, 1);
+    assert!(
+        r.stderr.contains("every file given is a mask"),
+        "{}",
+        r.stderr
+    );
+}

@@ -684,6 +684,38 @@ fn check_reports_what_is_wrong() {
     assert_eq!(v["ok"], false);
 }
 
+/// Issue "First run and everyday use", point 4: `check` while a daemon
+/// serves the folders says so, not just "ready to run".
+#[test]
+fn check_says_when_a_daemon_already_serves_the_folders() {
+    let s = Setup::new("");
+    let mut d = s.start_watching();
+    let cfg = s.config();
+    let r = crate::util::burlwatch(s.dir.path(), &["check", "--config", cfg.to_str().unwrap()]);
+    signal(&d, libc::SIGTERM);
+    assert_eq!(exit_code(&mut d, 20), 0, "{}", s.stderr());
+    assert_eq!(r.code, 0, "{}{}", r.stdout, r.stderr);
+    let want = format!("already served by process {}", d.id());
+    assert!(r.stdout.contains(&want), "{}", r.stdout);
+    assert!(!r.stdout.contains("ready to run"), "{}", r.stdout);
+}
+
+/// Issue "First run and everyday use", point 3: `demo --keep` on a folder
+/// from an earlier run is refused with a message naming it.
+#[test]
+fn the_demo_refuses_a_kept_folder_that_is_not_empty() {
+    let d = Dir::new();
+    let kept = d.join("kept");
+    std::fs::create_dir_all(kept.join("logs")).unwrap();
+    let r = crate::util::burlwatch(d.path(), &["demo", "--keep", kept.to_str().unwrap()]);
+    assert_eq!(r.code, 1, "{}{}", r.stdout, r.stderr);
+    assert!(
+        r.stderr.contains("not empty") && r.stderr.contains(kept.to_str().unwrap()),
+        "{}",
+        r.stderr
+    );
+}
+
 /// Whether an outside tool may be missing: tests that need one skip with a
 /// printed reason, unless `BURLWATCH_REQUIRE_TOOLS=1` (set by `.ci/run`).
 fn tool(name: &str) -> Option<PathBuf> {

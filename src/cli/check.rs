@@ -59,14 +59,17 @@ pub fn run(a: CheckArgs) -> Result<i32> {
                 f.detail
             );
         }
-        out!(
-            "{}",
-            if ok {
-                "ready to run"
-            } else {
-                "not ready: see BAD above"
-            }
-        );
+        let serving = cfg
+            .as_ref()
+            .and_then(|c| daemon::files::daemon_running(&c.start.folders.state));
+        match (ok, serving) {
+            (true, None) => out!("ready to run"),
+            (true, Some(pid)) => out!(
+                "ready, but already served by process {pid}: a second daemon on these folders \
+                 would stop on the lock; stop that one first (or use it)"
+            ),
+            (false, _) => out!("not ready: see BAD above"),
+        }
     }
     Ok(if ok { 0 } else { 1 })
 }

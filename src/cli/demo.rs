@@ -39,7 +39,16 @@ pub struct DemoArgs {
 pub fn run(a: DemoArgs) -> Result<i32> {
     init_tracing("warn");
     let root = match &a.keep {
-        Some(p) => p.clone(),
+        Some(p) => {
+            // An earlier run's folders would be replayed and miscounted.
+            let used = std::fs::read_dir(p).is_ok_and(|mut d| d.next().is_some());
+            anyhow::ensure!(
+                !used,
+                "--keep {}: the folder is not empty (an earlier demo's?); give a new or empty folder",
+                p.display()
+            );
+            p.clone()
+        }
         None => std::env::temp_dir().join(format!("burlwatch-demo-{}", std::process::id())),
     };
     let mut names: Vec<PathBuf> = std::fs::read_dir(&a.frames)

@@ -41,8 +41,27 @@ pub fn run(a: ScanArgs) -> Result<i32> {
     let mut scratch = Scratch::default();
     let started = Instant::now();
     let mut clock = || (SystemTime::now(), started.elapsed().as_secs_f64());
+    // A shell glob such as `*.pbm` also names the masks beside labelled
+    // frames: they are not frames, so they are passed over, with one line.
+    let (masks, frames): (Vec<&PathBuf>, Vec<&PathBuf>) = a.frames.iter().partition(|p| {
+        p.file_name()
+            .and_then(|n| n.to_str())
+            .is_some_and(|n| n.ends_with(data::MASK_SUFFIX))
+    });
+    if !masks.is_empty() {
+        eprintln!(
+            "burlwatch: skipped {} mask file(s) (names ending in {}), which label frames and are not frames",
+            masks.len(),
+            data::MASK_SUFFIX
+        );
+    }
+    anyhow::ensure!(
+        !frames.is_empty(),
+        "no frame to scan: every file given is a mask ({})",
+        data::MASK_SUFFIX
+    );
     let mut failed = 0;
-    for path in &a.frames {
+    for path in frames.iter().copied() {
         let bytes = match data::read_bounded(path, &limits) {
             Ok(b) => b,
             Err(e) => {
@@ -93,9 +112,9 @@ pub fn run(a: ScanArgs) -> Result<i32> {
     if failed > 0 {
         eprintln!(
             "burlwatch: {failed} of {} frame(s) could not be read",
-            a.frames.len()
+            frames.len()
         );
-        return Ok(if failed == a.frames.len() { 1 } else { 2 });
+        return Ok(if failed == frames.len() { 1 } else { 2 });
     }
     Ok(0)
 }

@@ -452,6 +452,11 @@ mod tests {
             .unwrap_err()
             .to_string();
         assert!(e.contains("detection.threshold"), "{e}");
+        // A misspelled section is named as written, with no stray dot
+        // (issue "First run and everyday use", point 8).
+        let e = from_str("[wacth]\nqueue = 4\n").unwrap_err().to_string();
+        assert!(e.contains("configuration: wacth: unknown key"), "{e}");
+        assert!(!e.contains(".wacth"), "{e}");
         let e = from_str("[camera]\n").unwrap_err().to_string();
         assert!(e.contains("camera"), "{e}");
         let e = from_str("[log]\nsync = \"sometimes\"\n")
