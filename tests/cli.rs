@@ -238,7 +238,8 @@ fn bad_files_are_named_and_can_be_skipped() {
         dir.path(),
         &["train", "--data", "data", "--out", "m.json", "--skip-bad"],
     );
-    assert_eq!(r.code, 2, "{}", r.stderr);
+    // 3: finished, but bad files were passed over (2 is a usage error).
+    assert_eq!(r.code, 3, "{}", r.stderr);
     assert!(r.stdout.contains("skipped 12 bad file(s)"), "{}", r.stdout);
     assert!(r.stderr.contains("warning: skipped"), "{}", r.stderr);
     assert!(dir.join("m.json").exists());
@@ -255,7 +256,7 @@ fn bad_files_are_named_and_can_be_skipped() {
             "data/missing.pbm",
         ],
     );
-    assert_eq!(r.code, 2);
+    assert_eq!(r.code, 3);
     assert!(r.stdout.contains("loom-standard-0001.pbm"), "{}", r.stdout);
     assert!(
         r.stderr.contains("garbage.pbm: not a PBM or PNG"),
@@ -536,4 +537,17 @@ fn scan_skips_masks_named_by_a_glob() {
         "{}",
         r.stderr
     );
+}
+
+/// Issue "First run and everyday use", point 6: a wrong command line exits
+/// with 2 (the argument parser's convention), which no longer also means
+/// "some input files were bad" (3).
+#[test]
+fn a_usage_error_has_its_own_exit_status() {
+    let d = Dir::new();
+    let r = burlwatch(d.path(), &["scan"]);
+    assert_eq!(r.code, 2, "{}", r.stderr);
+    assert!(r.stderr.to_lowercase().contains("usage"), "{}", r.stderr);
+    let r = burlwatch(d.path(), &["train", "--no-such-option"]);
+    assert_eq!(r.code, 2, "{}", r.stderr);
 }

@@ -189,5 +189,5 @@ pub fn run(a: EvalArgs) -> Result<i32> {
             out!("skipped {skipped} bad file(s)");
         }
     }
-    Ok(if skipped > 0 { 2 } else { 0 })
+    Ok(if skipped > 0 { super::EXIT_SOME_BAD } else { 0 })
 }

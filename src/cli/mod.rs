@@ -7,8 +7,9 @@
 //! - the daemon: `run` (with `notify` for systemd), `check`, `demo`;
 //! - `progress`: the progress bar the long offline commands draw.
 //!
-//! Exit codes: 0 success; 1 the command failed; 2 it finished but some input
-//! files were bad (each named on stderr).
+//! Exit codes: 0 success; 1 the command failed; 2 the command line was
+//! wrong (the argument parser's usage error); 3 it finished, but some input
+//! files were bad (each named on stderr) and were passed over.
 
 /// `println!` that ends the program quietly when stdout is closed early
 /// (`burlwatch rules ... | head`) and reports other write errors.
@@ -166,6 +167,10 @@ impl SettingArgs {
             })
     }
 }
+
+/// Exit status: finished, but some input files were bad and passed over
+/// (2 is the argument parser's, for a wrong command line).
+pub const EXIT_SOME_BAD: i32 = 3;
 
 pub fn run(args: Args) -> Result<i32> {
     match args.command {

@@ -114,7 +114,11 @@ pub fn run(a: ScanArgs) -> Result<i32> {
             "burlwatch: {failed} of {} frame(s) could not be read",
             frames.len()
         );
-        return Ok(if failed == frames.len() { 1 } else { 2 });
+        return Ok(if failed == frames.len() {
+            1
+        } else {
+            super::EXIT_SOME_BAD
+        });
     }
     Ok(0)
 }

@@ -217,5 +217,5 @@ pub fn run(a: TrainArgs) -> Result<i32> {
         }
         out!("wrote {} in {seconds:.2} s", a.out.display());
     }
-    Ok(if skipped > 0 { 2 } else { 0 })
+    Ok(if skipped > 0 { super::EXIT_SOME_BAD } else { 0 })
 }
