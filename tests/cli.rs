@@ -551,3 +551,31 @@ fn a_usage_error_has_its_own_exit_status() {
     let r = burlwatch(d.path(), &["train", "--no-such-option"]);
     assert_eq!(r.code, 2, "{}", r.stderr);
 }
+
+/// Issue "First run and everyday use", point 5: a frame or a configuration
+/// given where a model belongs is named for what it is.
+#[test]
+fn a_wrong_file_given_as_the_model_is_named() {
+    let d = Dir::new();
+    let frame = repo().join("demo-frames/test/loom-standard-0000.pbm");
+    let config = repo().join("config/burlwatch.toml");
+    for (model, what) in [(&frame, "a PBM image"), (&config, "a TOML file")] {
+        let r = burlwatch(
+            d.path(),
+            &[
+                "scan",
+                "--model",
+                model.to_str().unwrap(),
+                frame.to_str().unwrap(),
+            ],
+        );
+        assert_eq!(r.code, 1, "{}", r.stderr);
+        assert!(
+            r.stderr.contains(model.to_str().unwrap())
+                && r.stderr.contains(what)
+                && r.stderr.contains("not a model file"),
+            "{}",
+            r.stderr
+        );
+    }
+}

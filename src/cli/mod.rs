@@ -193,9 +193,7 @@ fn load_config(path: &Path) -> Result<Config> {
 
 /// Reads and validates a model file; errors name the file.
 fn load_model(path: &Path) -> Result<Model> {
-    let text = std::fs::read_to_string(path)
-        .with_context(|| format!("cannot read model {}", path.display()))?;
-    Model::from_json(&text).map_err(|e| anyhow::anyhow!("{}: {e}", path.display()))
+    burlwatch::fileio::models::read_model(path).map_err(|e| anyhow::anyhow!("{e}"))
 }
 
 /// Reads a data folder, reporting bad pairs; fails on them unless `skip_bad`.

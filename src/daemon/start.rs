@@ -23,8 +23,7 @@ pub fn model_path(folders: &Folders) -> PathBuf {
 /// the live configuration (`detection.window`).
 pub fn load_model(folders: &Folders, live: &LiveConfig) -> Result<Model> {
     let path = model_path(folders);
-    let text = std::fs::read_to_string(&path).map_err(|e| Error::from(e).with_path(&path))?;
-    let m = Model::from_json(&text).map_err(|e| e.with_path(&path))?;
+    let m = crate::fileio::models::read_model(&path)?;
     if let Some(w) = live.window {
         if m.tree.window() != w {
             return Err(Error::new(ErrorKind::BadModel(format!(

@@ -1,6 +1,7 @@
-//! The library's file I/O: labelled data folders ([`data`]) and durable
-//! file operations ([`durable`]: atomic writes, synced folders, moves that
-//! never overwrite, bounded reads).
+//! The library's file I/O: labelled data folders ([`data`]), model files
+//! ([`models`]: bounded reads that name a wrong file) and durable file
+//! operations ([`durable`]: atomic writes, synced folders, moves that never
+//! overwrite, bounded reads).
 //!
 //! Everything else in the library is pure; the daemon's own files (the
 //! lock, the detection log, the inbox) live with the daemon and build on
@@ -8,3 +9,4 @@
 
 pub mod data;
 pub mod durable;
+pub mod models;

@@ -32,7 +32,8 @@ use crate::error::{Error, Result};
 use crate::frame::BitFrame;
 use crate::window::{self, Window};
 
-const MAGIC: &[u8; 8] = b"BWSTORE\0";
+/// The first bytes of a label store file.
+pub const MAGIC: &[u8; 8] = b"BWSTORE\0";
 const VERSION: u32 = 2;
 const HEADER_LEN: usize = 8 + 4 + 4 + 8 * 4;
 const ENTRY_LEN: usize = 32;
