@@ -373,3 +373,38 @@ fn a_failed_move_archives_the_frame_later_without_a_second_record() {
         10
     );
 }
+
+/// Issue "First run and everyday use", point 7: every
+/// `log.summary_seconds` of the daemon's clock, one summary of what
+/// happened since the last one (also an info line, and systemd's STATUS).
+#[test]
+fn a_summary_counts_what_happened_since_the_last_one() {
+    let b = Box_::new();
+    let cfg = b.config(
+        "[watch]\nevents = false\nsettle_millis = 0\nrescan_seconds = 1\n[log]\nsummary_seconds = 60\n",
+    );
+    b.drop_frames(&frames(2, 31));
+    let clock = TestClock::new();
+    let (tick, ticks) = unbounded();
+    let d = start(cfg, Some(clock.clone()), Some(ticks), Faults::none());
+    d.wait_finished("logged", 2);
+    clock.advance(Duration::from_secs(60));
+    tick.send(Instant::now()).unwrap();
+    let s = d.wait_status("summary", |s| matches!(s, Status::Summary { .. }));
+    let Status::Summary { last, seconds } = s else {
+        unreachable!()
+    };
+    assert_eq!((last.logged, last.rejected, seconds), (2, 0, 60));
+    clock.advance(Duration::from_secs(60));
+    tick.send(Instant::now()).unwrap();
+    let s = d.wait_status("summary", |s| matches!(s, Status::Summary { .. }));
+    let Status::Summary { last, .. } = s else {
+        unreachable!()
+    };
+    assert_eq!(
+        last,
+        daemon::Summary::default(),
+        "nothing since the last one"
+    );
+    assert_eq!(d.stop().logged, 2);
+}

@@ -64,6 +64,13 @@ impl Notifier {
                 self.send(&format!("RELOADING=1\nMONOTONIC_USEC={usec}"));
             }
             Status::Stopping => self.send("STOPPING=1"),
+            // `systemctl status` shows the latest.
+            Status::Summary { last, seconds } => self.send(&format!(
+                "STATUS=watching the inbox; last {seconds} s: {} frames, {} objects, {} rejected",
+                last.logged + last.already_logged,
+                last.objects,
+                last.rejected
+            )),
             Status::Alive => {
                 let Some(every) = self.watchdog else { return };
                 if self.last_ping.is_none_or(|t| t.elapsed() >= every) {

@@ -98,6 +98,8 @@ pub struct LogSettings {
     pub keep_files: usize,
     pub sync: SyncPolicy,
     pub level: String,
+    /// Seconds between one-line summaries; 0: none.
+    pub summary_seconds: u64,
 }
 
 /// Resolved `[archive]`.
@@ -153,6 +155,10 @@ impl StartConfig {
         differs("log.keep_files", self.log.keep_files != new.log.keep_files);
         differs("log.sync", self.log.sync != new.log.sync);
         differs("log.level", self.log.level != new.log.level);
+        differs(
+            "log.summary_seconds",
+            self.log.summary_seconds != new.log.summary_seconds,
+        );
         keys
     }
 }

@@ -123,6 +123,9 @@ pub struct RawLog {
     /// The daemon's own messages: "error", "warn", "info" (default),
     /// "debug" or "trace". `RUST_LOG` wins when set.
     pub level: Option<String>,
+    /// Seconds between the daemon's one-line summaries (frames, objects,
+    /// rejects since the last one), at info level (default 60; 0: none).
+    pub summary_seconds: Option<u64>,
 }
 
 /// `[archive]`: how long archived frames are kept.
@@ -376,6 +379,13 @@ impl RawConfig {
                 ))
             }
         };
+        let summary_seconds = l.summary_seconds.unwrap_or(60);
+        if summary_seconds > 86_400 {
+            return Err(invalid(
+                "log.summary_seconds",
+                "must be at most 86400 (a day)",
+            ));
+        }
         let level = l.level.unwrap_or_else(|| "info".into());
         if !LEVELS.contains(&level.as_str()) {
             return Err(invalid(
@@ -401,6 +411,7 @@ impl RawConfig {
                     keep_files,
                     sync,
                     level,
+                    summary_seconds,
                 },
             },
             live: LiveConfig {

@@ -96,6 +96,12 @@ pub enum Status {
     Stopping,
     /// The pipeline is making progress (or has nothing to do).
     Alive,
+    /// What the daemon did in the last `seconds` (every
+    /// `log.summary_seconds`; also written as an info line).
+    Summary {
+        last: Summary,
+        seconds: u64,
+    },
 }
 
 /// The daemon's time: monotonic for deadlines, wall-clock for retention.
@@ -217,6 +223,7 @@ pub fn run_with(
     }
     drop((work_rx, res_tx));
     let counts = Counter::default();
+    let summary_every = Duration::from_secs(start.log.summary_seconds);
     let mut sinks: Vec<Box<dyn RecordSink>> = vec![Box::new(counts.clone())];
     sinks.extend(hooks.sinks);
     let writer = Writer::new(
@@ -257,6 +264,10 @@ pub fn run_with(
         writer_lost: false,
         last_progress: now,
         next_prune: now + Duration::from_secs(3600),
+        counts: counts.clone(),
+        summary_every,
+        next_summary: now + summary_every,
+        summarised: Summary::default(),
     };
     status(Status::Ready);
     info!(inbox = %main.start.folders.inbox.display(), workers, queue = main.queue, "watching");
@@ -346,6 +357,11 @@ struct MainLoop {
     writer_lost: bool,
     last_progress: Instant,
     next_prune: Instant,
+    /// The run's counts, and what the last summary line had counted.
+    counts: Counter,
+    summary_every: Duration,
+    next_summary: Instant,
+    summarised: Summary,
 }
 
 impl MainLoop {
@@ -444,6 +460,20 @@ impl MainLoop {
         if now >= self.next_prune {
             self.next_prune = now + Duration::from_secs(3600);
             prune(&self.start, &self.running.load().live, self.clock.wall());
+        }
+        if !self.summary_every.is_zero() && now >= self.next_summary {
+            self.next_summary = now + self.summary_every;
+            let total = self.counts.get();
+            let last = total.since(&self.summarised);
+            self.summarised = total;
+            let seconds = self.summary_every.as_secs();
+            info!(
+                frames = last.logged + last.already_logged,
+                objects = last.objects,
+                rejected = last.rejected,
+                "in the last {seconds} s"
+            );
+            status(Status::Summary { last, seconds });
         }
     }
 

@@ -44,6 +44,17 @@ pub struct Summary {
 }
 
 impl Summary {
+    /// What was counted since `earlier` (an earlier reading of the same
+    /// counts).
+    pub fn since(&self, earlier: &Summary) -> Summary {
+        Summary {
+            logged: self.logged - earlier.logged,
+            already_logged: self.already_logged - earlier.already_logged,
+            rejected: self.rejected - earlier.rejected,
+            objects: self.objects - earlier.objects,
+        }
+    }
+
     /// Counts one finished frame.
     pub fn add(&mut self, event: &Finished<'_>) {
         match event {
