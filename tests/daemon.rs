@@ -839,3 +839,42 @@ fn the_demo_runs_the_daemon_and_stops_with_a_summary() {
     }
     assert!(d.join("run/rejected/damaged-frame.pbm.reason.txt").exists());
 }
+
+/// Issue "First run and everyday use", point 1: away from the repository
+/// (no `demo-frames/` in the working folder) the demo makes its frames with
+/// the loom generator instead of failing. The seed data is given here so
+/// the test trains on a few frames; the test frames are the generated 30.
+#[test]
+fn the_demo_runs_away_from_the_repository() {
+    let d = Dir::new();
+    let seed = d.join("seed");
+    let g = crate::util::burlwatch(
+        d.path(),
+        &[
+            "generate",
+            "--out",
+            seed.to_str().unwrap(),
+            "--count",
+            "6",
+            "--seed",
+            "4",
+        ],
+    );
+    assert_eq!(g.code, 0, "{}", g.stderr);
+    assert!(!d.join("demo-frames").exists());
+    let r = crate::util::burlwatch(
+        d.path(),
+        &[
+            "demo",
+            "--seed-data",
+            seed.to_str().unwrap(),
+            "--rate",
+            "200",
+        ],
+    );
+    assert_eq!(r.code, 0, "{}{}", r.stdout, r.stderr);
+    assert!(r.stdout.contains("loom generator"), "{}", r.stdout);
+    // The README's test set: 30 frames, the same names as demo-frames/test.
+    assert!(r.stdout.contains("done: 30 frames logged"), "{}", r.stdout);
+    assert!(r.stdout.contains("loom-standard-0029.pbm"), "{}", r.stdout);
+}

@@ -4,7 +4,7 @@
 
 use std::collections::HashMap;
 use std::io::{BufRead, BufReader, Seek, SeekFrom};
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 use std::sync::{Arc, Mutex};
 use std::thread;
 use std::time::{Duration, Instant};
@@ -15,17 +15,21 @@ use crossbeam_channel::unbounded;
 use burlwatch::config;
 use burlwatch::daemon::{self, detlog, Control};
 use burlwatch::record::FrameRecord;
+use burlwatch::synth::LoomParams;
 
 use super::init_tracing;
 
 #[derive(clap::Args, Debug)]
 pub struct DemoArgs {
-    /// Frames fed to the daemon (their masks are not used).
-    #[arg(long, default_value = "demo-frames/test")]
-    frames: PathBuf,
-    /// Labelled frames the demo model is trained from.
-    #[arg(long, default_value = "demo-frames/train")]
-    seed_data: PathBuf,
+    /// Frames fed to the daemon (their masks are not used) [default:
+    /// demo-frames/test, or the same frames made by the loom generator
+    /// when that folder is not here].
+    #[arg(long)]
+    frames: Option<PathBuf>,
+    /// Labelled frames the demo model is trained from [default:
+    /// demo-frames/train, or made by the loom generator likewise].
+    #[arg(long)]
+    seed_data: Option<PathBuf>,
     /// Frames per second dropped into the inbox.
     #[arg(long, default_value_t = 10.0)]
     rate: f64,
@@ -51,8 +55,33 @@ pub fn run(a: DemoArgs) -> Result<i32> {
         }
         None => std::env::temp_dir().join(format!("burlwatch-demo-{}", std::process::id())),
     };
-    let mut names: Vec<PathBuf> = std::fs::read_dir(&a.frames)
-        .with_context(|| format!("cannot read {}", a.frames.display()))?
+    // The committed demo frames, or the same frames made afresh (the
+    // README's `generate` commands), so the demo runs from any folder.
+    let committed = |d: &str| Path::new("demo-frames").join(d);
+    let have_committed = committed("test").is_dir() && committed("train").is_dir();
+    let pick = |given: &Option<PathBuf>, d: &str| -> Option<PathBuf> {
+        given
+            .clone()
+            .or_else(|| have_committed.then(|| committed(d)))
+    };
+    let (mut frames, mut seed_data) = (pick(&a.frames, "test"), pick(&a.seed_data, "train"));
+    if frames.is_none() || seed_data.is_none() {
+        out!("no demo-frames/ folder here: making the demo frames with the loom generator...");
+        let p = LoomParams::standard();
+        if seed_data.is_none() {
+            let dir = root.join("made/train");
+            super::generate::write_set(&dir, "standard", &p, 1, 120, false)?;
+            seed_data = Some(dir);
+        }
+        if frames.is_none() {
+            let dir = root.join("made/test");
+            super::generate::write_set(&dir, "standard", &p, 2, 30, false)?;
+            frames = Some(dir);
+        }
+    }
+    let (frames, seed_data) = (frames.expect("set above"), seed_data.expect("set above"));
+    let mut names: Vec<PathBuf> = std::fs::read_dir(&frames)
+        .with_context(|| format!("cannot read {}", frames.display()))?
         .filter_map(|e| e.ok().map(|e| e.path()))
         .filter(|p| {
             p.file_name().and_then(|n| n.to_str()).is_some_and(|n| {
@@ -62,7 +91,7 @@ pub fn run(a: DemoArgs) -> Result<i32> {
         })
         .collect();
     names.sort();
-    anyhow::ensure!(!names.is_empty(), "no frames in {}", a.frames.display());
+    anyhow::ensure!(!names.is_empty(), "no frames in {}", frames.display());
     anyhow::ensure!(
         a.rate > 0.0 && a.rate <= 1000.0,
         "--rate must be in (0, 1000]"
@@ -71,7 +100,7 @@ pub fn run(a: DemoArgs) -> Result<i32> {
         "[folders]\ninbox = {:?}\narchive = {:?}\nrejected = {:?}\ncorrections = {:?}\nstate = {:?}\nlogs = {:?}\n\
          [training]\nseed_data = {:?}\n[watch]\nsettle_millis = 100\nrescan_seconds = 1.0\n[log]\nsync = \"batch\"\nsync_millis = 20\nlevel = \"warn\"\n",
         root.join("inbox"), root.join("archive"), root.join("rejected"), root.join("corrections"),
-        root.join("state"), root.join("logs"), a.seed_data
+        root.join("state"), root.join("logs"), seed_data
     );
     std::fs::create_dir_all(&root)?;
     std::fs::write(root.join("burlwatch.toml"), &text)?;
@@ -79,7 +108,7 @@ pub fn run(a: DemoArgs) -> Result<i32> {
     out!("burlwatch demo in {}", root.display());
     out!(
         "training the demo model from {} (a few seconds)...",
-        a.seed_data.display()
+        seed_data.display()
     );
     let (tx, rx) = unbounded();
     let (ready_tx, ready_rx) = unbounded();

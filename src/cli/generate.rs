@@ -2,7 +2,7 @@
 //! masks. Frame `i` of seed `S` is [`synth::frame_seed`]`(S, i)`, so the
 //! same seed and preset always give the same files.
 
-use std::path::PathBuf;
+use std::path::{Path, PathBuf};
 
 use anyhow::{bail, Context, Result};
 
@@ -59,24 +59,7 @@ pub fn run(a: GenerateArgs) -> Result<i32> {
     if params.width < 32 || params.height < 32 || params.width > 8192 || params.height > 8192 {
         bail!("frame size must be between 32x32 and 8192x8192");
     }
-    std::fs::create_dir_all(&a.out)
-        .with_context(|| format!("cannot create {}", a.out.display()))?;
-    let mut defects = 0;
-    for i in 0..a.count {
-        let f = synth::generate(&params, synth::frame_seed(a.seed, i));
-        defects += f.defects.len();
-        let name = format!("loom-{}-{:04}", a.preset, i);
-        if a.png {
-            let p = a.out.join(format!("{name}.png"));
-            std::fs::write(&p, burlwatch::codec::encode_png(&f.frame)?)
-                .with_context(|| format!("cannot write {}", p.display()))?;
-            let mp = a.out.join(format!("{name}{}", data::MASK_SUFFIX));
-            std::fs::write(&mp, burlwatch::codec::encode_pbm(&f.mask))
-                .with_context(|| format!("cannot write {}", mp.display()))?;
-        } else {
-            data::write_pair(&a.out, &name, &f.frame, &f.mask)?;
-        }
-    }
+    let defects = write_set(&a.out, &a.preset, &params, a.seed, a.count, a.png)?;
     out!(
         "wrote {} {} frames ({}x{}, {} defects) to {}",
         a.count,
@@ -87,4 +70,35 @@ pub fn run(a: GenerateArgs) -> Result<i32> {
         a.out.display()
     );
     Ok(0)
+}
+
+/// Writes `count` frames of a loom setting with their masks into `out`
+/// (created if missing), named `loom-PRESET-NNNN`; frame `i` is seeded
+/// with `synth::frame_seed(seed, i)`. Returns how many defects they hold.
+pub(super) fn write_set(
+    out: &Path,
+    preset: &str,
+    params: &LoomParams,
+    seed: u64,
+    count: usize,
+    png: bool,
+) -> Result<usize> {
+    std::fs::create_dir_all(out).with_context(|| format!("cannot create {}", out.display()))?;
+    let mut defects = 0;
+    for i in 0..count {
+        let f = synth::generate(params, synth::frame_seed(seed, i));
+        defects += f.defects.len();
+        let name = format!("loom-{preset}-{i:04}");
+        if png {
+            let p = out.join(format!("{name}.png"));
+            std::fs::write(&p, burlwatch::codec::encode_png(&f.frame)?)
+                .with_context(|| format!("cannot write {}", p.display()))?;
+            let mp = out.join(format!("{name}{}", data::MASK_SUFFIX));
+            std::fs::write(&mp, burlwatch::codec::encode_pbm(&f.mask))
+                .with_context(|| format!("cannot write {}", mp.display()))?;
+        } else {
+            data::write_pair(out, &name, &f.frame, &f.mask)?;
+        }
+    }
+    Ok(defects)
 }
