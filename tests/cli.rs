@@ -50,6 +50,17 @@ fn train_scan_eval_rules_round_trip() {
     let r = burlwatch(dir.path(), &["eval", "--data", "test", "--model", m]);
     assert_eq!(r.code, 0, "{}", r.stderr);
     assert!(r.stdout.contains("pixels") && r.stdout.contains("objects"));
+    // The per-frame columns say they count objects.
+    let r = burlwatch(
+        dir.path(),
+        &["eval", "--data", "test", "--model", m, "--per-frame"],
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert!(
+        r.stdout.contains("obj TP") && r.stdout.contains("obj FN"),
+        "{}",
+        r.stdout
+    );
     let r = burlwatch(
         dir.path(),
         &[

@@ -838,6 +838,16 @@ fn the_demo_runs_the_daemon_and_stops_with_a_summary() {
         );
     }
     assert!(d.join("run/rejected/damaged-frame.pbm.reason.txt").exists());
+    // Lines say what their columns are; a reject is reported where it is
+    // now, after the frame lines, and no warning interleaves with them.
+    assert!(r.stdout.contains("time (UTC)"), "{}", r.stdout);
+    assert!(
+        r.stdout.contains("rejected, now in")
+            && r.stdout.contains("run/rejected/damaged-frame.pbm"),
+        "{}",
+        r.stdout
+    );
+    assert!(!r.stderr.contains("rejected"), "{}", r.stderr);
 }
 
 /// Issue "First run and everyday use", point 1: away from the repository

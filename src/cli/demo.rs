@@ -41,7 +41,9 @@ pub struct DemoArgs {
 /// `burlwatch demo`: the real daemon on a temporary folder, fed the demo
 /// frames at a steady pace.
 pub fn run(a: DemoArgs) -> Result<i32> {
-    init_tracing("warn");
+    // Rejects are reported after the frame lines, from their reason files,
+    // so the daemon's own warnings would only interleave with them.
+    init_tracing("error");
     let root = match &a.keep {
         Some(p) => {
             // An earlier run's folders would be replayed and miscounted.
@@ -132,6 +134,7 @@ pub fn run(a: DemoArgs) -> Result<i32> {
         names.len(),
         a.rate
     );
+    out!("time (UTC)     frame  detection time  objects (id at centre x,y, area)");
     // Feeder: write to a temporary name, then rename into the inbox.
     let sent: Arc<Mutex<HashMap<String, Instant>>> = Arc::default();
     let feeder = {
@@ -196,8 +199,8 @@ pub fn run(a: DemoArgs) -> Result<i32> {
                 })
                 .collect();
             out!(
-                "{}  {}  {:.1} ms  {}",
-                &rec.time[11..23],
+                "{}  {}  {:>5.1} ms  {}",
+                &rec.time[11..],
                 rec.frame,
                 rec.millis,
                 if what.is_empty() {
@@ -249,8 +252,10 @@ pub fn run(a: DemoArgs) -> Result<i32> {
     reasons.sort();
     for r in reasons {
         let text = std::fs::read_to_string(&r).unwrap_or_default();
+        let frame = r.to_string_lossy();
         out!(
-            "rejected: {}",
+            "rejected, now in {}: {}",
+            frame.trim_end_matches(".reason.txt"),
             text.lines().nth(1).unwrap_or("(no reason recorded)")
         );
     }

@@ -168,9 +168,9 @@ pub fn run(a: EvalArgs) -> Result<i32> {
                 "frame",
                 "pixel F1",
                 "obj F1",
-                "TP",
-                "FP",
-                "FN"
+                "obj TP",
+                "obj FP",
+                "obj FN"
             );
             for f in &report.per_frame {
                 out!(
