@@ -590,3 +590,66 @@ fn a_wrong_file_given_as_the_model_is_named() {
         );
     }
 }
+
+/// Issue "First run and everyday use", point 8: `train` and `generate` do
+/// not overwrite or mix into earlier output without `--force`; an empty
+/// data folder's error says what a pair is; `rules` says "background" and
+/// "defect" for training pixels, keeping "clear" for pixel tests.
+#[test]
+fn earlier_output_is_kept_unless_forced() {
+    let d = Dir::new();
+    let gen = |extra: &[&str]| {
+        let mut args = vec![
+            "generate", "--out", "data", "--count", "4", "--width", "64", "--height", "64",
+        ];
+        args.extend_from_slice(extra);
+        burlwatch(d.path(), &args)
+    };
+    assert_eq!(gen(&[]).code, 0);
+    let again = gen(&["--seed", "2"]);
+    assert_eq!(again.code, 1);
+    assert!(
+        again.stderr.contains("not empty") && again.stderr.contains("--force"),
+        "{}",
+        again.stderr
+    );
+    assert_eq!(gen(&["--force"]).code, 0);
+    let train = |extra: &[&str]| {
+        let mut args = vec![
+            "train",
+            "--data",
+            "data",
+            "--out",
+            "m.json",
+            "--holdout",
+            "0.25",
+        ];
+        args.extend_from_slice(extra);
+        burlwatch(d.path(), &args)
+    };
+    assert_eq!(train(&[]).code, 0, "{}", train(&[]).stderr);
+    let before = std::fs::read(d.join("m.json")).unwrap();
+    let again = train(&["--max-depth", "3"]);
+    assert_eq!(again.code, 1);
+    assert!(
+        again.stderr.contains("exists") && again.stderr.contains("--force"),
+        "{}",
+        again.stderr
+    );
+    assert_eq!(
+        std::fs::read(d.join("m.json")).unwrap(),
+        before,
+        "the model was kept"
+    );
+    assert_eq!(train(&["--max-depth", "3", "--force"]).code, 0);
+    let rules = burlwatch(d.path(), &["rules", "--model", "m.json"]);
+    assert!(
+        rules.stdout.contains("background and") && rules.stdout.contains("defect training pixels"),
+        "{}",
+        rules.stdout
+    );
+    std::fs::create_dir_all(d.join("empty")).unwrap();
+    let r = burlwatch(d.path(), &["train", "--data", "empty", "--out", "e.json"]);
+    assert_eq!(r.code, 1);
+    assert!(r.stderr.contains("NAME.mask.pbm"), "{}", r.stderr);
+}

@@ -35,6 +35,10 @@ pub struct GenerateArgs {
     /// Write frames as PNG instead of PBM (masks stay PBM).
     #[arg(long)]
     png: bool,
+    /// Write into a folder that already holds files (same names are
+    /// replaced, other files stay and mix with the new set).
+    #[arg(long)]
+    force: bool,
 }
 
 pub fn run(a: GenerateArgs) -> Result<i32> {
@@ -58,6 +62,14 @@ pub fn run(a: GenerateArgs) -> Result<i32> {
     }
     if params.width < 32 || params.height < 32 || params.width > 8192 || params.height > 8192 {
         bail!("frame size must be between 32x32 and 8192x8192");
+    }
+    let used = std::fs::read_dir(&a.out).is_ok_and(|mut d| d.next().is_some());
+    if used && !a.force {
+        bail!(
+            "--out {} is not empty; its files would mix with the new set (same names replaced): \
+             give a new or empty folder, or pass --force",
+            a.out.display()
+        );
     }
     let defects = write_set(&a.out, &a.preset, &params, a.seed, a.count, a.png)?;
     out!(

@@ -225,7 +225,11 @@ fn read_data(dir: &Path, limits: &DecodeLimits, skip_bad: bool) -> Result<(data:
         );
     }
     if folder.frames.is_empty() {
-        bail!("no usable frame/mask pairs in {}", dir.display());
+        bail!(
+            "no usable frame/mask pairs in {}: a pair is a frame NAME.pbm or NAME.png with its \
+             mask NAME.mask.pbm beside it (set pixels mark the defects)",
+            dir.display()
+        );
     }
     Ok((folder, bad))
 }

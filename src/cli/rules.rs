@@ -51,7 +51,7 @@ pub fn run(a: RulesArgs) -> Result<i32> {
             format!("if {}", conds.join(" and "))
         };
         out!(
-            "rule {:>4}: {cond}\n           then score {:.4} ({} clear, {} target pixels){}",
+            "rule {:>4}: {cond}\n           then score {:.4} (from {} background and {} defect training pixels){}",
             k + 1,
             r.score,
             r.counts[0],

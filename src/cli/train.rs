@@ -25,6 +25,9 @@ pub struct TrainArgs {
     /// Where to write the model (JSON).
     #[arg(long)]
     out: PathBuf,
+    /// Replace the model at --out if there is one.
+    #[arg(long)]
+    force: bool,
     /// Split criterion: gini, entropy or gain-ratio [default: entropy].
     #[arg(long)]
     criterion: Option<String>,
@@ -122,6 +125,12 @@ pub fn run(a: TrainArgs) -> Result<i32> {
     if a.out.is_dir() {
         bail!(
             "--out {} is a folder; give the model file's path",
+            a.out.display()
+        );
+    }
+    if a.out.exists() && !a.force {
+        bail!(
+            "--out {} exists; pass --force to replace it (or give another path)",
             a.out.display()
         );
     }

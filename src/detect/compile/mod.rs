@@ -68,6 +68,32 @@
 //!   choice of [`Backend`] at run time.
 //!
 //! This module depends on the frozen [`Tree`] only, never on the learner.
+//!
+//! # Why deep trees run slower
+//!
+//! The demo model's 2,000 Mpx/s target cannot be met on this machine by the walk as it is built,
+//! whatever its block size. The figures behind that (`cargo bench --bench evaluate`, the demo model
+//! on the 2048x2048 demo texture; user-level figures are in README.md):
+//! - `burlwatch bench` reports how many ops a block of 2,048 pixels reaches. On the demo texture
+//!   the demo model's blocks reach 582 ops on average (0.28 per pixel; every pixel passes through
+//!   about 11 ops, but neighbouring pixels take different paths through the weave).
+//! - Each op a block reaches costs a visit: 8 vector loads of the mask, 8 of the shifted frame, and
+//!   16 vector stores of the two child masks. This machine's core (AMD EPYC, AVX2, about 3.3 GHz
+//!   as a chain of dependent adds measures it) is assumed to store one 32-byte vector per cycle
+//!   (our reading of AMD's optimization guide for this core family, from memory), so the stores
+//!   alone take 16 cycles a visit: 4.5 cycles a pixel, or about 730 Mpx/s at best. A visit
+//!   measured 17 ns with the earlier hand-written AVX2 kernel (about 57 cycles, 121 instructions
+//!   as cachegrind counts them): the masks of the busiest levels do not fit in the first-level
+//!   cache.
+//! - Smaller blocks reach fewer ops each but more per pixel (257 per 256 pixels, 132 per 64), and
+//!   the floor set by their stores stays above 2 cycles a pixel (below 1,650 Mpx/s). Selecting
+//!   every op instead of walking costs 6,601 instructions per 256 pixels.
+//! - 2,000 Mpx/s would need 1.65 cycles a pixel. Grouping the pixels of 2,048-pixel blocks by the
+//!   weave's phase (rows and columns one thread period apart) would cut their visits by about 1.6
+//!   (0.18 instead of 0.28 a pixel, measured on the demo texture): a store floor near 2.9 cycles a
+//!   pixel, and the real cost several times higher. Smaller trees are much faster (above), but the
+//!   demo model's pixel F1 needs its depth: the depth-14 model that still reaches pixel F1 0.82
+//!   runs at about 250 Mpx/s.
 
 mod exec;
 mod kernels;
