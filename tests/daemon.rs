@@ -842,12 +842,12 @@ fn the_demo_runs_the_daemon_and_stops_with_a_summary() {
     // now, after the frame lines, and no warning interleaves with them.
     assert!(r.stdout.contains("time (UTC)"), "{}", r.stdout);
     assert!(
-        r.stdout.contains("rejected, now in")
-            && r.stdout.contains("run/rejected/damaged-frame.pbm"),
+        r.stdout.contains("rejected (moved to") && r.stdout.contains("run/rejected"),
         "{}",
         r.stdout
     );
     assert!(!r.stderr.contains("rejected"), "{}", r.stderr);
+    assert!(!r.stdout.contains("inbox/damaged-frame"), "{}", r.stdout);
 }
 
 /// Issue "First run and everyday use", point 1: away from the repository

@@ -134,7 +134,17 @@ pub fn run(a: DemoArgs) -> Result<i32> {
         names.len(),
         a.rate
     );
-    out!("time (UTC)     frame  detection time  objects (id at centre x,y, area)");
+    let width = names
+        .iter()
+        .filter_map(|p| p.file_name().map(|n| n.len()))
+        .max()
+        .unwrap_or(5);
+    out!(
+        "{:<13}  {:<width$}  {:>8}  objects (id at centre x,y, area)",
+        "time (UTC)",
+        "frame",
+        "detect"
+    );
     // Feeder: write to a temporary name, then rename into the inbox.
     let sent: Arc<Mutex<HashMap<String, Instant>>> = Arc::default();
     let feeder = {
@@ -199,7 +209,7 @@ pub fn run(a: DemoArgs) -> Result<i32> {
                 })
                 .collect();
             out!(
-                "{}  {}  {:>5.1} ms  {}",
+                "{:<13}  {:<width$}  {:>5.1} ms  {}",
                 &rec.time[11..],
                 rec.frame,
                 rec.millis,
@@ -252,10 +262,9 @@ pub fn run(a: DemoArgs) -> Result<i32> {
     reasons.sort();
     for r in reasons {
         let text = std::fs::read_to_string(&r).unwrap_or_default();
-        let frame = r.to_string_lossy();
         out!(
-            "rejected, now in {}: {}",
-            frame.trim_end_matches(".reason.txt"),
+            "rejected (moved to {}): {}",
+            cfg.start.folders.rejected.display(),
             text.lines().nth(1).unwrap_or("(no reason recorded)")
         );
     }

@@ -34,7 +34,9 @@ pub(super) struct Job {
     pub path: PathBuf,
 }
 
-/// What a worker made of a frame, with the stamp of the file it read.
+/// What a worker made of a frame, with the stamp of the file it read. A
+/// reject's reason names the frame by its file name, not by the inbox path
+/// it had when read: the reason file goes beside the frame in `rejected/`.
 #[derive(Debug)]
 pub(super) enum Outcome {
     Record(Box<FrameRecord>, Stamp),
@@ -81,14 +83,14 @@ fn detect_one(
                 ErrorKind::Io(io) if io.kind() == std::io::ErrorKind::NotFound => Outcome::Gone,
                 // The file cannot be read by us: reject it, with the reason.
                 ErrorKind::Io(io) if io.kind() == std::io::ErrorKind::PermissionDenied => {
-                    Outcome::Reject(e.to_string(), stamp)
+                    Outcome::Reject(format!("{name}: {}", e.kind()), stamp)
                 }
                 // Out of file handles, an I/O error...: try again later.
                 ErrorKind::Io(_) => {
                     warn!("{e}; it will be read again");
                     Outcome::Gone
                 }
-                _ => Outcome::Reject(e.to_string(), stamp),
+                _ => Outcome::Reject(format!("{name}: {}", e.kind()), stamp),
             };
         }
     };
@@ -99,7 +101,7 @@ fn detect_one(
     }));
     match result {
         Ok(Ok(d)) => Outcome::Record(Box::new(d.record), stamp),
-        Ok(Err(e)) => Outcome::Reject(e.with_path(&job.path).to_string(), Some(stamp)),
+        Ok(Err(e)) => Outcome::Reject(format!("{name}: {}", e.kind()), Some(stamp)),
         Err(panic) => {
             *scratch = Scratch::default();
             let what = panic
@@ -109,10 +111,7 @@ fn detect_one(
                 .unwrap_or_default();
             error!(frame = %job.path.display(), "internal error while detecting: {what}");
             Outcome::Reject(
-                format!(
-                    "{}: internal error while detecting: {what}",
-                    job.path.display()
-                ),
+                format!("{name}: internal error while detecting: {what}"),
                 Some(stamp),
             )
         }
