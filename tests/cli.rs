@@ -570,7 +570,7 @@ fn a_wrong_file_given_as_the_model_is_named() {
     let d = Dir::new();
     let frame = repo().join("demo-frames/test/loom-standard-0000.pbm");
     let config = repo().join("config/burlwatch.toml");
-    for (model, what) in [(&frame, "a PBM image"), (&config, "a TOML file")] {
+    for (model, what) in [(&frame, "a PBM image"), (&config, "configuration-style")] {
         let r = burlwatch(
             d.path(),
             &[

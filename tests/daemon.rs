@@ -714,6 +714,11 @@ fn the_demo_refuses_a_kept_folder_that_is_not_empty() {
         "{}",
         r.stderr
     );
+    // A file where the folder should be is named too.
+    let file = d.write("a-file", b"x");
+    let r = crate::util::burlwatch(d.path(), &["demo", "--keep", file.to_str().unwrap()]);
+    assert_eq!(r.code, 1);
+    assert!(r.stderr.contains("not a folder"), "{}", r.stderr);
 }
 
 /// Whether an outside tool may be missing: tests that need one skip with a

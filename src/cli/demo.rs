@@ -46,6 +46,11 @@ pub fn run(a: DemoArgs) -> Result<i32> {
     init_tracing("error");
     let root = match &a.keep {
         Some(p) => {
+            anyhow::ensure!(
+                !p.exists() || p.is_dir(),
+                "--keep {}: not a folder",
+                p.display()
+            );
             // An earlier run's folders would be replayed and miscounted.
             let used = std::fs::read_dir(p).is_ok_and(|mut d| d.next().is_some());
             anyhow::ensure!(

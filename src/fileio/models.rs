@@ -56,11 +56,21 @@ fn what_else(bytes: &[u8]) -> Option<&'static str> {
         .lines()
         .map(str::trim)
         .find(|l| !l.is_empty() && !l.starts_with('#'))?;
-    let toml_like = (first.starts_with('[') && first.ends_with(']') && !first.contains(','))
+    // A detection log or `scan --json` output: one frame record a line.
+    if let Ok(serde_json::Value::Object(o)) = serde_json::from_str(first) {
+        if o.contains_key("frame") && o.contains_key("objects") {
+            return Some("a detection log (frame records, one a line)");
+        }
+        return None;
+    }
+    let config_like = (first.starts_with('[') && first.ends_with(']') && !first.contains(','))
         || first
             .split_once('=')
             .is_some_and(|(k, _)| !k.trim().is_empty() && !k.contains('"') && !k.contains('{'));
-    toml_like.then_some("a TOML file (a configuration?)")
+    if config_like {
+        return Some("a configuration-style text file (TOML or INI)");
+    }
+    (!first.starts_with('{')).then_some("text that is not JSON")
 }
 
 #[cfg(test)]
@@ -80,8 +90,14 @@ mod tests {
         assert!(message(b"\x89PNG\r\n\x1a\n\0\0\0\rIHDR").contains("a PNG image"));
         assert!(message(b"BWSTORE\0\x02\0\0\0").contains("a label store"));
         let toml = message(b"# the box\n[folders]\ninbox = \"var/inbox\"\n");
-        assert!(toml.contains("a TOML file"), "{toml}");
-        assert!(message(b"threshold = 0.5\n").contains("a TOML file"));
+        assert!(toml.contains("a configuration-style text file"), "{toml}");
+        assert!(message(b"threshold = 0.5\n").contains("configuration-style"));
+        assert!(message(b"[Unit]\nDescription=x\n").contains("configuration-style"));
+        let log = message(
+            b"{\"frame\":\"a.pbm\",\"objects\":[]}\n{\"frame\":\"b.pbm\",\"objects\":[]}\n",
+        );
+        assert!(log.contains("a detection log"), "{log}");
+        assert!(message(b"# burlwatch\n\nSome words.\n").contains("text that is not JSON"));
         assert!(message(b"\xff\xfe\x00binary").contains("not text"));
         // Every message says what was expected.
         assert!(message(b"P4\n2 2\n\x00\x00").contains("burlwatch-model"));
