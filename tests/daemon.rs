@@ -799,25 +799,8 @@ fn the_systemd_unit_verifies_and_is_well_hardened() {
 fn the_demo_runs_the_daemon_and_stops_with_a_summary() {
     let d = Dir::new();
     let (seed, test) = (d.join("seed"), d.join("test"));
-    for (dir, count, s) in [(&seed, "6", "4"), (&test, "8", "5")] {
-        let g = crate::util::burlwatch(
-            d.path(),
-            &[
-                "generate",
-                "--out",
-                dir.to_str().unwrap(),
-                "--count",
-                count,
-                "--seed",
-                s,
-                "--width",
-                "96",
-                "--height",
-                "96",
-            ],
-        );
-        assert_eq!(g.code, 0, "{}", g.stderr);
-    }
+    generate(&d, &seed, "6", "4", &["--width", "96", "--height", "96"]);
+    generate(&d, &test, "8", "5", &["--width", "96", "--height", "96"]);
     let r = crate::util::burlwatch(
         d.path(),
         &[
@@ -863,19 +846,7 @@ fn the_demo_runs_the_daemon_and_stops_with_a_summary() {
 fn the_demo_runs_away_from_the_repository() {
     let d = Dir::new();
     let seed = d.join("seed");
-    let g = crate::util::burlwatch(
-        d.path(),
-        &[
-            "generate",
-            "--out",
-            seed.to_str().unwrap(),
-            "--count",
-            "6",
-            "--seed",
-            "4",
-        ],
-    );
-    assert_eq!(g.code, 0, "{}", g.stderr);
+    generate(&d, &seed, "6", "4", &[]);
     assert!(!d.join("demo-frames").exists());
     let r = crate::util::burlwatch(
         d.path(),
@@ -892,4 +863,20 @@ fn the_demo_runs_away_from_the_repository() {
     // The README's test set: 30 frames, the same names as demo-frames/test.
     assert!(r.stdout.contains("done: 30 frames logged"), "{}", r.stdout);
     assert!(r.stdout.contains("loom-standard-0029.pbm"), "{}", r.stdout);
+}
+
+/// `burlwatch generate` into `out`: `count` frames from `seed`.
+fn generate(d: &Dir, out: &std::path::Path, count: &str, seed: &str, extra: &[&str]) {
+    let mut args = vec![
+        "generate",
+        "--out",
+        out.to_str().unwrap(),
+        "--count",
+        count,
+        "--seed",
+        seed,
+    ];
+    args.extend_from_slice(extra);
+    let g = crate::util::burlwatch(d.path(), &args);
+    assert_eq!(g.code, 0, "{}", g.stderr);
 }

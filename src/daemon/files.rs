@@ -9,12 +9,9 @@ use std::os::unix::io::AsRawFd;
 use std::path::{Path, PathBuf};
 use std::time::{Duration, SystemTime};
 
-use crate::codec::DecodeLimits;
 use crate::config::Retention;
 use crate::error::{Error, Result};
-pub use crate::fileio::durable::{
-    move_into, read_bounded, write_atomic, FileBytes, ReadFailure, Stamp,
-};
+pub use crate::fileio::durable::{move_into, write_atomic, FileBytes, Stamp};
 
 /// The lock file's name in the state folder.
 pub const LOCK: &str = "burlwatch.lock";
@@ -56,19 +53,8 @@ impl StateLock {
     }
 }
 
-/// Reads a frame file (see [`read_bounded`]), refusing files larger than
-/// a frame of the largest accepted size can need
-/// ([`crate::fileio::data::max_file_bytes`]) and empty ones.
-pub fn read_frame(path: &Path, limits: &DecodeLimits) -> Result<FileBytes, ReadFailure> {
-    read_bounded(
-        path,
-        crate::fileio::data::max_file_bytes(limits),
-        &format!(
-            "a frame of at most {}x{}",
-            limits.max_width, limits.max_height
-        ),
-    )
-}
+/// Reads a frame file, bounded, with the stamp of the version read.
+pub use crate::fileio::data::read_frame_file as read_frame;
 
 /// Whether a daemon holds the lock on `state`, without touching the lock
 /// file: `Some(pid)` when one does. A missing lock file means none.

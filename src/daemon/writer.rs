@@ -226,7 +226,6 @@ impl Writer {
             SyncPolicy::EveryRecord => true,
             SyncPolicy::Batch { records, millis } => {
                 self.log.unsynced() >= records
-                    || self.log.unsynced() == 0
                     || self
                         .first_unsynced
                         .is_some_and(|t| t.elapsed() >= Duration::from_millis(millis))

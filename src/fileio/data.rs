@@ -51,13 +51,24 @@ pub fn read_mask(path: &Path, limits: &DecodeLimits) -> Result<BitFrame> {
 /// Reads a whole file, refusing empty files and files over
 /// [`max_file_bytes`] (counted as read, so a growing file is bounded too).
 pub fn read_bounded(path: &Path, limits: &DecodeLimits) -> Result<Vec<u8>> {
-    let what = format!(
-        "a frame of at most {}x{}",
-        limits.max_width, limits.max_height
-    );
-    super::durable::read_bounded(path, max_file_bytes(limits), &what)
+    read_frame_file(path, limits)
         .map(|f| f.bytes)
         .map_err(|(e, _)| e)
+}
+
+/// [`read_bounded`] with the stamp of the version read, and the stamp on
+/// failure when the file could be opened (what the daemon needs to tell
+/// versions apart): the one bounded frame reader.
+pub fn read_frame_file(
+    path: &Path,
+    limits: &DecodeLimits,
+) -> std::result::Result<super::durable::FileBytes, super::durable::ReadFailure> {
+    super::durable::read_bounded(path, max_file_bytes(limits), &|| {
+        format!(
+            "a frame of at most {}x{}",
+            limits.max_width, limits.max_height
+        )
+    })
 }
 
 /// What kind of file a name denotes in a data folder.

@@ -61,12 +61,13 @@ pub type ReadFailure = (Error, Option<Stamp>);
 /// Reads the file at `path` through one open handle, so its bytes and its
 /// stamp belong to the same file. Refuses empty files and files over
 /// `max` bytes, counting what is read rather than trusting the size seen
-/// at open (the file may grow meanwhile). `what_fits` says in the message
+/// at open (the file may grow meanwhile). `what_fits` (called only when
+/// the file is too big) says in the message
 /// what the limit is for ("a frame of at most 8192x8192").
 pub fn read_bounded(
     path: &Path,
     max: u64,
-    what_fits: &str,
+    what_fits: &dyn Fn() -> String,
 ) -> std::result::Result<FileBytes, ReadFailure> {
     let err = |e: io::Error| Error::from(e).with_path(path);
     let file = File::open(path).map_err(|e| (err(e), None))?;
@@ -75,7 +76,8 @@ pub fn read_bounded(
     let fail = |e: Error| (e.with_path(path), Some(stamp));
     let too_big = |len: u64| {
         fail(Error::new(ErrorKind::Data(format!(
-            "file is {len} bytes, over the {max} bytes {what_fits} can need"
+            "file is {len} bytes, over the {max} bytes {} can need",
+            what_fits()
         ))))
     };
     if meta.is_dir() {
@@ -197,7 +199,7 @@ mod tests {
         let d = tempfile::tempdir().unwrap();
         let p = d.path().join("f.pbm");
         fs::write(&p, "P1 1 1 0").unwrap();
-        let read = read_bounded(&p, 100, "a frame").unwrap();
+        let read = read_bounded(&p, 100, &|| "a frame".into()).unwrap();
         assert_eq!(read.bytes, b"P1 1 1 0");
         assert_eq!(Stamp::now(&p).unwrap(), read.stamp);
         // Replaced by rename under the same name: another inode.
@@ -208,7 +210,7 @@ mod tests {
         // shows as a change.
         let e_path = d.path().join("e.pbm");
         fs::write(&e_path, "").unwrap();
-        let (e, stamp) = read_bounded(&e_path, 100, "a frame").unwrap_err();
+        let (e, stamp) = read_bounded(&e_path, 100, &|| "a frame".into()).unwrap_err();
         assert!(
             e.to_string().contains("empty") && e.to_string().contains("e.pbm"),
             "{e}"
@@ -223,13 +225,13 @@ mod tests {
         let d = tempfile::tempdir().unwrap();
         let p = d.path().join("big.pbm");
         fs::write(&p, vec![b'1'; 101]).unwrap();
-        let (e, _) = read_bounded(&p, 100, "a frame of at most 10x10").unwrap_err();
+        let (e, _) = read_bounded(&p, 100, &|| "a frame of at most 10x10".into()).unwrap_err();
         let msg = e.to_string();
         assert!(
             msg.contains("big.pbm") && msg.contains("101 bytes") && msg.contains("10x10"),
             "{msg}"
         );
-        assert!(read_bounded(d.path(), 100, "a frame").is_err());
+        assert!(read_bounded(d.path(), 100, &|| "a frame".into()).is_err());
     }
 
     #[test]

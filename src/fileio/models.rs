@@ -17,7 +17,7 @@ pub const MAX_MODEL_BYTES: u64 = 2 << 30;
 
 /// Reads and validates the model file at `path`; errors name the file.
 pub fn read_model(path: &Path) -> Result<Model> {
-    let bytes = super::durable::read_bounded(path, MAX_MODEL_BYTES, "a model file")
+    let bytes = super::durable::read_bounded(path, MAX_MODEL_BYTES, &|| "a model file".into())
         .map_err(|(e, _)| e)?
         .bytes;
     model_from_bytes(&bytes).map_err(|e| e.with_path(path))
