@@ -40,11 +40,7 @@ fn generated(p: &LoomParams, seed: u64, n: usize) -> Vec<LabelledFrame> {
     synth::generate_set(p, seed, n)
         .into_iter()
         .enumerate()
-        .map(|(i, f)| LabelledFrame {
-            name: format!("loom-{i:04}"),
-            frame: f.frame,
-            mask: f.mask,
-        })
+        .map(|(i, f)| LabelledFrame::new(format!("loom-{i:04}"), f.frame, f.mask))
         .collect()
 }
 

@@ -190,6 +190,26 @@ impl BitFrame {
         }
     }
 
+    /// Pixel-wise union of two frames of the same size.
+    pub fn or(&self, other: &BitFrame) -> BitFrame {
+        assert!(self.same_size(other));
+        let mut out = self.clone();
+        for (a, b) in out.words.iter_mut().zip(&other.words) {
+            *a |= b;
+        }
+        out
+    }
+
+    /// The pixels set here and clear in `other` (same size).
+    pub fn and_not(&self, other: &BitFrame) -> BitFrame {
+        assert!(self.same_size(other));
+        let mut out = self.clone();
+        for (a, b) in out.words.iter_mut().zip(&other.words) {
+            *a &= !b;
+        }
+        out
+    }
+
     /// Pixel-wise complement (padding stays clear).
     pub fn not(&self) -> BitFrame {
         let mut out = BitFrame {
@@ -245,15 +265,61 @@ impl BitFrame {
     }
 }
 
-/// A frame with its target mask.
+/// A frame with its per-pixel labels: target where `mask` is set, clear
+/// elsewhere, except where `unknown` is set: those pixels are left out of
+/// training and scoring (an operator's "don't know here").
+///
+/// Invariant kept by the constructors that read files (and checked where
+/// frames are used): `mask` and `unknown` have the frame's size.
 #[derive(Clone, Debug)]
 pub struct LabelledFrame {
     pub name: String,
     pub frame: BitFrame,
     pub mask: BitFrame,
+    /// Pixels whose label is not known; `None` when every pixel is known.
+    pub unknown: Option<BitFrame>,
 }
 
 impl LabelledFrame {
+    /// A frame whose every pixel is labelled by `mask`.
+    pub fn new(name: impl Into<String>, frame: BitFrame, mask: BitFrame) -> LabelledFrame {
+        LabelledFrame {
+            name: name.into(),
+            frame,
+            mask,
+            unknown: None,
+        }
+    }
+
+    /// Whether every labelled plane has the frame's size.
+    pub fn sizes_agree(&self) -> bool {
+        self.frame.same_size(&self.mask)
+            && self
+                .unknown
+                .as_ref()
+                .is_none_or(|u| self.frame.same_size(u))
+    }
+
+    /// The pixels whose label is known (all of them without `unknown`).
+    pub fn known(&self) -> BitFrame {
+        match &self.unknown {
+            Some(u) => u.not(),
+            None => BitFrame::new(self.frame.width(), self.frame.height()).not(),
+        }
+    }
+
+    /// The target pixels whose label is known.
+    pub fn truth(&self) -> BitFrame {
+        match &self.unknown {
+            Some(u) => self.mask.and_not(u),
+            None => self.mask.clone(),
+        }
+    }
+
+    /// How many pixels have a known label.
+    pub fn known_pixels(&self) -> u64 {
+        self.frame.len() as u64 - self.unknown.as_ref().map_or(0, |u| u.count_set())
+    }
     /// SHA-256 of the frame's and mask's pixels (with their sizes): the key
     /// of the holdout split.
     pub fn content_hash(&self) -> [u8; 32] {

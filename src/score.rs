@@ -318,11 +318,11 @@ mod tests {
     }
 
     fn labelled(name: &str, frame: &str, mask: &str) -> LabelledFrame {
-        LabelledFrame {
-            name: name.into(),
-            frame: BitFrame::from_ascii(frame),
-            mask: BitFrame::from_ascii(mask),
-        }
+        LabelledFrame::new(
+            name,
+            BitFrame::from_ascii(frame),
+            BitFrame::from_ascii(mask),
+        )
     }
 
     #[test]

@@ -234,7 +234,7 @@ proptest! {
             .enumerate()
             .map(|(i, (frame, mut mask))| {
                 mask.set(0, 0, true);
-                LabelledFrame { name: format!("f{i}.pbm"), frame, mask }
+                LabelledFrame::new(format!("f{i}.pbm"), frame, mask)
             })
             .collect();
         let p = TrainParams {

@@ -735,11 +735,7 @@ fn loom_frames(base_seed: u64, count: usize) -> Vec<LabelledFrame> {
     (0..count)
         .map(|i| {
             let g = synth::generate(&p, synth::frame_seed(base_seed, i));
-            LabelledFrame {
-                name: format!("loom-{i:02}.pbm"),
-                frame: g.frame,
-                mask: g.mask,
-            }
+            LabelledFrame::new(format!("loom-{i:02}.pbm"), g.frame, g.mask)
         })
         .collect()
 }

@@ -249,7 +249,7 @@ pub fn read_folder(
             );
             continue;
         }
-        frames.push(LabelledFrame { name, frame, mask });
+        frames.push(LabelledFrame::new(name, frame, mask));
     }
     progress(total, total);
     problems.sort_by_key(|e| e.path().map(Path::to_path_buf));

@@ -467,11 +467,11 @@ mod tests {
     use crate::frame::BitFrame;
 
     fn lf(name: &str, targets: bool, seed: usize) -> LabelledFrame {
-        LabelledFrame {
-            name: name.into(),
-            frame: BitFrame::from_fn(16, 16, |x, y| (x * 7 + y * 3 + seed).is_multiple_of(5)),
-            mask: BitFrame::from_fn(16, 16, |x, y| targets && x < 3 && y < 3),
-        }
+        LabelledFrame::new(
+            name,
+            BitFrame::from_fn(16, 16, |x, y| (x * 7 + y * 3 + seed).is_multiple_of(5)),
+            BitFrame::from_fn(16, 16, |x, y| targets && x < 3 && y < 3),
+        )
     }
 
     #[test]
