@@ -73,6 +73,11 @@ pub enum ErrorKind {
     /// watcher cannot be set up, its threads stopped).
     #[error("{0}")]
     Daemon(String),
+    /// An operator's correction file that cannot be applied (bad TOML, an
+    /// unknown object id, a region outside the frame, a frame gone from
+    /// the archive, ...).
+    #[error("invalid correction: {0}")]
+    Correction(String),
     /// An operating-system error.
     #[error("{0}")]
     Io(#[from] std::io::Error),

@@ -10,7 +10,11 @@
 //! - `time`: when the frame was processed, RFC 3339 in UTC (`...Z`);
 //! - `frame`: the frame's file name; `sha256`: hex SHA-256 of its bytes;
 //! - `width`, `height`: pixels;
-//! - `model_version`: the version of the model that produced the record;
+//! - `model_version`: the registry version of the model that produced the
+//!   record; `model_hash`: the first 12 hex digits of the SHA-256 of that
+//!   model's file, so two models that both say "version 1" (trained on two
+//!   boxes, or by hand) are told apart (empty in records written before
+//!   models had one);
 //! - `millis`: processing time (decode to objects), milliseconds;
 //! - `objects`: id (1..n in raster order), `bbox` `[x0, y0, x1, y1]`
 //!   inclusive, `centroid` `[x, y]`, `area` in pixels, mean `score`.
@@ -37,6 +41,8 @@ pub struct FrameRecord {
     pub width: u32,
     pub height: u32,
     pub model_version: u64,
+    #[serde(default)]
+    pub model_hash: String,
     pub millis: f64,
     pub objects: Vec<ObjectRecord>,
 }

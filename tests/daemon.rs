@@ -505,6 +505,7 @@ fn a_restart_archives_frames_already_logged_without_a_second_record() {
         width: 64,
         height: 40,
         model_version: 1,
+        model_hash: "0123456789ab".into(),
         millis: 1.0,
         objects: vec![],
     };

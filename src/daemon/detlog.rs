@@ -388,6 +388,7 @@ mod tests {
             width: 4,
             height: 4,
             model_version: 1,
+            model_hash: "0123456789ab".into(),
             millis: 0.5,
             objects: vec![],
         }

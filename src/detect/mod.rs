@@ -33,6 +33,8 @@ pub struct FrameResult {
 #[derive(Debug)]
 pub struct Detector {
     model: Model,
+    /// `model_hash` of the model (see [`model_hash`]).
+    hash: String,
     program: Program,
     settings: Settings,
 }
@@ -49,6 +51,7 @@ impl Detector {
     pub fn new(model: Model, settings: Settings) -> Detector {
         let program = Program::compile(&model.tree, settings.threshold);
         Detector {
+            hash: model_hash(&model),
             model,
             program,
             settings,
@@ -88,6 +91,11 @@ impl Detector {
         self.model.model_version
     }
 
+    /// The model's short content hash, which every record carries.
+    pub fn hash(&self) -> &str {
+        &self.hash
+    }
+
     /// Decodes, detects and groups one frame file's bytes, and builds its
     /// record. `clock` gives the record's time and measures the
     /// processing milliseconds: it is called once at the start and once at
@@ -112,11 +120,19 @@ impl Detector {
             frame.width(),
             frame.height(),
             self.version(),
+            &self.hash,
             (end - start) * 1e3,
             &result.objects,
         );
         Ok(Detection { record, result })
     }
+}
+
+/// A model's identity beside its version: the first 12 hex digits of the
+/// SHA-256 of its file's bytes (`Model::to_json`, which is deterministic).
+/// Two models that both say "version 1" but differ in anything differ here.
+pub fn model_hash(model: &Model) -> String {
+    sha256_hex(model.to_json().as_bytes())[..12].to_string()
 }
 
 /// Groups a raw detection mask (from any evaluator) into the frame's
@@ -140,6 +156,7 @@ impl FrameRecord {
         width: usize,
         height: usize,
         model_version: u64,
+        model_hash: &str,
         millis: f64,
         objects: &[Object],
     ) -> FrameRecord {
@@ -150,6 +167,7 @@ impl FrameRecord {
             width: width as u32,
             height: height as u32,
             model_version,
+            model_hash: model_hash.to_string(),
             millis: (millis * 1000.0).round() / 1000.0,
             objects: objects.iter().map(ObjectRecord::from_object).collect(),
         }
