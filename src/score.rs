@@ -179,7 +179,7 @@ pub fn score_frames(
     per_frame: bool,
     progress: &mut dyn FnMut(usize, usize),
 ) -> Result<Report> {
-    if let Some(f) = frames.iter().find(|f| !f.frame.same_size(&f.mask)) {
+    if let Some(f) = frames.iter().find(|f| !f.sizes_agree()) {
         return Err(Error::new(ErrorKind::MaskSizeMismatch {
             width: f.frame.width(),
             height: f.frame.height(),
@@ -195,11 +195,7 @@ pub fn score_frames(
     };
     for (k, f) in frames.iter().enumerate() {
         progress(k, frames.len());
-        let r = detector.detect(&f.frame, &mut scratch);
-        let s = Scores {
-            pixel: pixel_confusion(&r.mask, &f.mask),
-            object: object_confusion(&r.objects, &truth_objects(&f.mask)),
-        };
+        let s = score_frame(detector, f, &mut scratch);
         report.total.add(&s);
         if per_frame {
             report.per_frame.push(FrameScores {
@@ -210,6 +206,33 @@ pub fn score_frames(
     }
     progress(frames.len(), frames.len());
     Ok(report)
+}
+
+/// One labelled frame's scores. Pixels of unknown label are taken out of
+/// both the detection and the truth before anything is counted: the
+/// detection's remaining pixels are grouped again with the detector's
+/// settings, so a detection inside a "don't know" region is neither right
+/// nor wrong, and such pixels are not counted as true negatives either.
+pub fn score_frame(detector: &Detector, f: &LabelledFrame, scratch: &mut Scratch) -> Scores {
+    let r = detector.detect(&f.frame, scratch);
+    let Some(unknown) = f.unknown.as_ref().filter(|u| u.count_set() > 0) else {
+        return Scores {
+            pixel: pixel_confusion(&r.mask, &f.mask),
+            object: object_confusion(&r.objects, &truth_objects(&f.mask)),
+        };
+    };
+    let detected = r.mask.and_not(unknown);
+    let truth = f.mask.and_not(unknown);
+    let tree = &detector.model().tree;
+    let objects = group::group(&detected, detector.settings().grouping, |x, y| {
+        tree.score_at(&f.frame, x, y)
+    });
+    let mut pixel = pixel_confusion(&detected, &truth);
+    pixel.tn -= unknown.count_set();
+    Scores {
+        pixel,
+        object: object_confusion(&objects, &truth_objects(&truth)),
+    }
 }
 
 #[cfg(test)]
@@ -323,6 +346,34 @@ mod tests {
             BitFrame::from_ascii(frame),
             BitFrame::from_ascii(mask),
         )
+    }
+
+    #[test]
+    fn unknown_pixels_are_neither_right_nor_wrong() {
+        // The lone pixel at (4, 3) is a false alarm, unless its label is
+        // unknown: then it counts for nothing, not even as a true negative.
+        let mut f = labelled(
+            "a",
+            "##....\n##....\n......\n....#.\n",
+            "##....\n##....\n......\n......\n",
+        );
+        let d = ink_detector(1);
+        let mut scratch = Scratch::default();
+        let plain = score_frame(&d, &f, &mut scratch);
+        assert_eq!((plain.object.tp, plain.object.fp), (1, 1));
+        f.unknown = Some(BitFrame::from_ascii("......\n......\n......\n...##.\n"));
+        let s = score_frame(&d, &f, &mut scratch);
+        assert_eq!((s.object.tp, s.object.fp, s.object.fn_), (1, 0, 0));
+        assert_eq!(
+            (s.pixel.tp, s.pixel.fp, s.pixel.fn_, s.pixel.tn),
+            (4, 0, 0, 18)
+        );
+        // An unknown region over a missed defect: no false negative either.
+        f.frame = BitFrame::from_ascii("......\n......\n......\n......\n");
+        f.unknown = Some(BitFrame::from_ascii("##....\n##....\n......\n......\n"));
+        let s = score_frame(&d, &f, &mut scratch);
+        assert_eq!((s.object.tp, s.object.fp, s.object.fn_), (0, 0, 0));
+        assert_eq!(s.pixel.tn, 20);
     }
 
     #[test]

@@ -529,7 +529,7 @@ fn scan_skips_masks_named_by_a_glob() {
     assert_eq!(r.stdout.lines().count(), files.len() - masks);
     assert!(!r.stdout.contains(".mask.pbm"), "a mask was scanned");
     assert!(
-        r.stderr.contains(&format!("skipped {masks} mask file(s)")),
+        r.stderr.contains(&format!("skipped {masks} label file(s)")),
         "{}",
         r.stderr
     );

@@ -46,19 +46,21 @@ pub fn run(a: ScanArgs) -> Result<i32> {
     let (masks, frames): (Vec<&PathBuf>, Vec<&PathBuf>) = a.frames.iter().partition(|p| {
         p.file_name()
             .and_then(|n| n.to_str())
-            .is_some_and(|n| n.ends_with(data::MASK_SUFFIX))
+            .is_some_and(data::is_label_plane)
     });
     if !masks.is_empty() {
         eprintln!(
-            "burlwatch: skipped {} mask file(s) (names ending in {}), which label frames and are not frames",
+            "burlwatch: skipped {} label file(s) (names ending in {} or {}), which label frames and are not frames",
             masks.len(),
-            data::MASK_SUFFIX
+            data::MASK_SUFFIX,
+            data::UNKNOWN_SUFFIX
         );
     }
     anyhow::ensure!(
         !frames.is_empty(),
-        "no frame to scan: every file given is a mask ({})",
-        data::MASK_SUFFIX
+        "no frame to scan: every file given is a mask ({}) or an unknown-pixel plane ({})",
+        data::MASK_SUFFIX,
+        data::UNKNOWN_SUFFIX
     );
     let mut failed = 0;
     for path in frames.iter().copied() {

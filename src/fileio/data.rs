@@ -1,8 +1,11 @@
 //! Labelled data folders and frame files: the library's only file access.
 //!
 //! A data folder holds frames `NAME.pbm` or `NAME.png` and their masks
-//! `NAME.mask.pbm` (set = target pixel). Files whose names start with a dot
-//! and files of other types are ignored; subfolders are not read.
+//! `NAME.mask.pbm` (set = target pixel), and, optionally, an unknown-pixel
+//! plane `NAME.unknown.pbm` (set = label not known: left out of training
+//! and scoring; the daemon writes one for a correction that says "don't
+//! know here"). Files whose names start with a dot and files of other
+//! types are ignored; subfolders are not read.
 //!
 //! Design decision: one bad file never stops the rest. Reading a folder
 //! returns the good pairs *and* one error per bad file or pair (naming the
@@ -20,6 +23,14 @@ use crate::frame::{BitFrame, LabelledFrame};
 
 /// Suffix of mask files.
 pub const MASK_SUFFIX: &str = ".mask.pbm";
+/// Suffix of the optional unknown-pixel planes.
+pub const UNKNOWN_SUFFIX: &str = ".unknown.pbm";
+
+/// Whether a file name is a label plane (a mask or an unknown-pixel
+/// plane) rather than a frame.
+pub fn is_label_plane(name: &str) -> bool {
+    name.ends_with(MASK_SUFFIX) || name.ends_with(UNKNOWN_SUFFIX)
+}
 
 /// Largest file read, in bytes, for the given limits: a plain PBM of the
 /// largest frame with one separator per pixel, plus room for comments.
@@ -75,6 +86,7 @@ pub fn read_frame_file(
 enum Role {
     Frame(String),
     Mask(String),
+    Unknown(String),
     /// A mask in a format masks may not use.
     BadMask(String),
     Other,
@@ -86,6 +98,9 @@ fn role(name: &str) -> Role {
     }
     if let Some(stem) = name.strip_suffix(MASK_SUFFIX) {
         return Role::Mask(stem.to_string());
+    }
+    if let Some(stem) = name.strip_suffix(UNKNOWN_SUFFIX) {
+        return Role::Unknown(stem.to_string());
     }
     if let Some(stem) = name.strip_suffix(".mask.png") {
         return Role::BadMask(stem.to_string());
@@ -113,6 +128,8 @@ pub struct Pair {
     pub name: String,
     pub frame: PathBuf,
     pub mask: PathBuf,
+    /// The unknown-pixel plane, when there is one.
+    pub unknown: Option<PathBuf>,
 }
 
 /// Lists the frame/mask pairs of a data folder without decoding them, and
@@ -121,6 +138,7 @@ pub fn list_pairs(dir: &Path) -> Result<(Vec<Pair>, Vec<Error>)> {
     let rd = fs::read_dir(dir).map_err(|e| Error::from(e).with_path(dir))?;
     let mut frames: BTreeMap<String, Vec<PathBuf>> = BTreeMap::new();
     let mut masks: BTreeMap<String, PathBuf> = BTreeMap::new();
+    let mut unknowns: BTreeMap<String, PathBuf> = BTreeMap::new();
     let mut problems = Vec::new();
     for entry in rd {
         let entry = entry.map_err(|e| Error::from(e).with_path(dir))?;
@@ -139,6 +157,9 @@ pub fn list_pairs(dir: &Path) -> Result<(Vec<Pair>, Vec<Error>)> {
             Role::Frame(stem) => frames.entry(stem).or_default().push(path.clone()),
             Role::Mask(stem) => {
                 masks.insert(stem, path.clone());
+            }
+            Role::Unknown(stem) => {
+                unknowns.insert(stem, path.clone());
             }
             Role::BadMask(stem) => problems.push(
                 Error::new(ErrorKind::Data(format!(
@@ -168,6 +189,7 @@ pub fn list_pairs(dir: &Path) -> Result<(Vec<Pair>, Vec<Error>)> {
         }
         match mask {
             Some(m) => pairs.push(Pair {
+                unknown: unknowns.remove(&stem),
                 name: stem,
                 frame: paths[0].clone(),
                 mask: m,
@@ -186,6 +208,14 @@ pub fn list_pairs(dir: &Path) -> Result<(Vec<Pair>, Vec<Error>)> {
                 "mask without a frame: no {stem}.pbm or {stem}.png beside it"
             )))
             .with_path(&m),
+        );
+    }
+    for (stem, u) in unknowns {
+        problems.push(
+            Error::new(ErrorKind::Data(format!(
+                "unknown-pixel plane without a labelled frame: no {stem}.pbm with {stem}{MASK_SUFFIX} beside it"
+            )))
+            .with_path(&u),
         );
     }
     Ok((pairs, problems))
@@ -207,6 +237,7 @@ pub fn read_folder(
             name,
             frame: fpath,
             mask: mpath,
+            unknown: upath,
         },
     ) in pairs.into_iter().enumerate()
     {
@@ -249,14 +280,40 @@ pub fn read_folder(
             );
             continue;
         }
-        frames.push(LabelledFrame::new(name, frame, mask));
+        let unknown = match upath.map(|u| (read_mask(&u, limits), u)) {
+            None => None,
+            Some((Err(e), _)) => {
+                problems.push(e);
+                continue;
+            }
+            Some((Ok(u), upath)) if !frame.same_size(&u) => {
+                problems.push(
+                    Error::new(ErrorKind::Data(format!(
+                        "unknown-pixel plane is {}x{} but its frame is {}x{}",
+                        u.width(),
+                        u.height(),
+                        frame.width(),
+                        frame.height()
+                    )))
+                    .with_path(&upath),
+                );
+                continue;
+            }
+            Some((Ok(u), _)) => Some(u),
+        };
+        frames.push(LabelledFrame {
+            unknown,
+            ..LabelledFrame::new(name, frame, mask)
+        });
     }
     progress(total, total);
     problems.sort_by_key(|e| e.path().map(Path::to_path_buf));
     Ok(Folder { frames, problems })
 }
 
-/// Writes a labelled frame as `NAME.pbm` and `NAME.mask.pbm` in `dir`.
+/// Writes a labelled frame as `NAME.pbm` and `NAME.mask.pbm` in `dir`
+/// (plain writes: for generated data; the daemon's labels are written
+/// durably by its own code).
 pub fn write_pair(dir: &Path, name: &str, frame: &BitFrame, mask: &BitFrame) -> Result<()> {
     let fp = dir.join(format!("{name}.pbm"));
     fs::write(&fp, codec::encode_pbm(frame)).map_err(|e| Error::from(e).with_path(&fp))?;

@@ -291,7 +291,7 @@ pub fn train(
         return Err(Error::training("no labelled frames"));
     }
     for f in frames {
-        if !f.frame.same_size(&f.mask) {
+        if !f.sizes_agree() {
             return Err(Error::new(crate::error::ErrorKind::MaskSizeMismatch {
                 width: f.frame.width(),
                 height: f.frame.height(),
@@ -311,7 +311,7 @@ pub fn train(
                 done: stored,
                 total: total_store,
             });
-            store.add_frame(&frames[i].frame, &frames[i].mask)?;
+            store.add_labelled(&frames[i])?;
             stored += 1;
         }
         progress(Stage::Store {
@@ -363,6 +363,7 @@ pub fn train(
                 params.window,
                 &frames[i].frame,
                 &frames[i].mask,
+                frames[i].unknown.as_ref(),
             )
         })
         .collect();
@@ -408,7 +409,7 @@ pub fn train(
         set_pixels += f.frame.count_set();
         pixels += f.frame.len() as u64;
         detected += walker::detect(&tree, threshold, &f.frame).count_set();
-        objects += score::truth_objects(&f.mask).len() as u64;
+        objects += score::truth_objects(&f.truth()).len() as u64;
     }
     let share = |a: u64, b: u64| if b == 0 { 0.0 } else { a as f64 / b as f64 };
     let mut overridden = Vec::new();

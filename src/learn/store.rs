@@ -29,7 +29,7 @@
 use rustc_hash::FxHashMap;
 
 use crate::error::{Error, Result};
-use crate::frame::BitFrame;
+use crate::frame::{BitFrame, LabelledFrame};
 use crate::window::{self, Window};
 
 /// The first bytes of a label store file.
@@ -141,6 +141,93 @@ impl LabelStore {
         self.totals[0] += frame.len() as u64 - t;
         self.frames += 1;
         Ok(())
+    }
+
+    /// Adds every pixel of a labelled frame whose label is known (pixels
+    /// set in its `unknown` plane are left out).
+    pub fn add_labelled(&mut self, f: &LabelledFrame) -> Result<()> {
+        let Some(unknown) = &f.unknown else {
+            return self.add_frame(&f.frame, &f.mask);
+        };
+        let counts = self.frame_counts(f, unknown)?;
+        let overflow = || Error::bad_store("pixel counts overflow 64 bits");
+        let added = counts
+            .values()
+            .fold([0u64; 2], |a, c| [a[0] + c[0], a[1] + c[1]]);
+        let totals = [
+            self.totals[0].checked_add(added[0]).ok_or_else(overflow)?,
+            self.totals[1].checked_add(added[1]).ok_or_else(overflow)?,
+        ];
+        for (p, c) in counts {
+            let e = self.map.entry(p).or_insert([0, 0]);
+            e[0] += c[0];
+            e[1] += c[1];
+        }
+        self.totals = totals;
+        self.frames += 1;
+        Ok(())
+    }
+
+    /// Takes out exactly what [`LabelStore::add_labelled`] put in for `f`
+    /// (a correction replaced by a later one). Fails, and changes nothing,
+    /// when the store does not hold those counts.
+    pub fn remove_labelled(&mut self, f: &LabelledFrame) -> Result<()> {
+        let none = BitFrame::new(f.frame.width(), f.frame.height());
+        let counts = self.frame_counts(f, f.unknown.as_ref().unwrap_or(&none))?;
+        let missing = || Error::bad_store(format!("does not hold the labels of {}", f.name));
+        let mut totals = self.totals;
+        for (p, c) in &counts {
+            let e = self.map.get(p).ok_or_else(missing)?;
+            if e[0] < c[0] || e[1] < c[1] {
+                return Err(missing());
+            }
+            totals[0] = totals[0].checked_sub(c[0]).ok_or_else(missing)?;
+            totals[1] = totals[1].checked_sub(c[1]).ok_or_else(missing)?;
+        }
+        if self.frames == 0 {
+            return Err(missing());
+        }
+        for (p, c) in counts {
+            let e = self.map.get_mut(&p).expect("checked above");
+            e[0] -= c[0];
+            e[1] -= c[1];
+            if *e == [0, 0] {
+                self.map.remove(&p);
+            }
+        }
+        self.totals = totals;
+        self.frames -= 1;
+        Ok(())
+    }
+
+    /// The counts one labelled frame contributes, its unknown pixels left
+    /// out.
+    fn frame_counts(
+        &self,
+        f: &LabelledFrame,
+        unknown: &BitFrame,
+    ) -> Result<FxHashMap<u128, Counts>> {
+        if !f.sizes_agree() || !f.frame.same_size(unknown) {
+            return Err(crate::error::ErrorKind::MaskSizeMismatch {
+                width: f.frame.width(),
+                height: f.frame.height(),
+                mask_width: f.mask.width(),
+                mask_height: f.mask.height(),
+            }
+            .into());
+        }
+        let mut counts: FxHashMap<u128, Counts> = FxHashMap::default();
+        window::for_each_row(&f.frame, self.window, |y, pats| {
+            let (mrow, urow) = (f.mask.row(y), unknown.row(y));
+            for (x, &p) in pats.iter().enumerate() {
+                if (urow[x / 64] >> (x % 64)) & 1 == 1 {
+                    continue;
+                }
+                let target = (mrow[x / 64] >> (x % 64)) & 1;
+                counts.entry(p).or_insert([0, 0])[target as usize] += 1;
+            }
+        });
+        Ok(counts)
     }
 
     /// Adds all counts of another store of the same window size.
@@ -282,6 +369,40 @@ mod tests {
             .iter()
             .fold([0, 0], |a, (_, c)| [a[0] + c[0], a[1] + c[1]]);
         assert_eq!(sum, s.totals());
+    }
+
+    #[test]
+    fn unknown_pixels_are_left_out_and_removal_undoes_an_addition() {
+        let f = BitFrame::from_fn(20, 9, |x, y| (x + y) % 3 == 0);
+        let m = BitFrame::from_fn(20, 9, |x, y| x > 10 && y < 3);
+        // A 4x3 unknown block over 3 target and 9 clear pixels.
+        let u = BitFrame::from_fn(20, 9, |x, y| (9..13).contains(&x) && y >= 1 && y < 4);
+        let lf = LabelledFrame {
+            unknown: Some(u),
+            ..LabelledFrame::new("a", f.clone(), m.clone())
+        };
+        let mut s = sample();
+        let before = s.clone();
+        s.add_labelled(&lf).unwrap();
+        // 27 targets of which 4 unknown (x 11..=12, y 1..=2); 180 - 12 known.
+        assert_eq!(s.totals(), [153 + (168 - 23), 27 + 23]);
+        assert_eq!(s.frames(), 2);
+        s.remove_labelled(&lf).unwrap();
+        assert_eq!(s, before);
+        // Removing what the store does not hold fails and changes nothing.
+        let other = LabelledFrame::new("b", f.not(), m);
+        assert!(s.remove_labelled(&other).is_err());
+        assert_eq!(s, before);
+        let mut all = sample();
+        all.remove_labelled(&LabelledFrame::new("a", f.clone(), sample_mask()))
+            .unwrap();
+        assert_eq!(all.totals(), [0, 0]);
+        assert_eq!(all.unique(), 0);
+        assert_eq!(all.frames(), 0);
+    }
+
+    fn sample_mask() -> BitFrame {
+        BitFrame::from_fn(20, 9, |x, y| x > 10 && y < 3)
     }
 
     #[test]

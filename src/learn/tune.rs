@@ -39,12 +39,23 @@ pub struct HoldoutFrame {
     height: usize,
     /// Grown-tree leaf of every pixel, row-major.
     leaf: Vec<u32>,
+    /// The target pixels whose label is known.
     truth_mask: BitFrame,
     truth: Vec<Object>,
+    /// Pixels of unknown label: never counted, never detected.
+    unknown: Option<BitFrame>,
 }
 
 impl HoldoutFrame {
-    pub fn new(tree: &GrownTree, win: Window, frame: &BitFrame, mask: &BitFrame) -> HoldoutFrame {
+    /// Prepares a held-out frame; pixels set in `unknown` are left out, as
+    /// if they were neither detected nor targets.
+    pub fn new(
+        tree: &GrownTree,
+        win: Window,
+        frame: &BitFrame,
+        mask: &BitFrame,
+        unknown: Option<&BitFrame>,
+    ) -> HoldoutFrame {
         let mut leaf = vec![0u32; frame.len()];
         let w = frame.width();
         window::for_each_row(frame, win, |y, pats| {
@@ -52,13 +63,27 @@ impl HoldoutFrame {
                 leaf[y * w + x] = tree.leaf_of(p) as u32;
             }
         });
+        let truth_mask = match unknown {
+            Some(u) => mask.and_not(u),
+            None => mask.clone(),
+        };
         HoldoutFrame {
             width: w,
             height: frame.height(),
             leaf,
-            truth_mask: mask.clone(),
-            truth: score::truth_objects(mask),
+            truth: score::truth_objects(&truth_mask),
+            truth_mask,
+            unknown: unknown.filter(|u| u.count_set() > 0).cloned(),
         }
+    }
+
+    fn is_unknown(&self, x: usize, y: usize) -> bool {
+        self.unknown.as_ref().is_some_and(|u| u.get(x, y))
+    }
+
+    /// Pixels whose label is known.
+    fn known_pixels(&self) -> u64 {
+        self.truth_mask.len() as u64 - self.unknown.as_ref().map_or(0, |u| u.count_set())
     }
 }
 
@@ -155,6 +180,9 @@ fn try_alpha(
         for y in 0..f.height {
             let trow = f.truth_mask.row(y);
             for x in 0..f.width {
+                if f.is_unknown(x, y) {
+                    continue;
+                }
                 let t = (trow[x / 64] >> (x % 64)) & 1;
                 hist[eff[f.leaf[y * f.width + x] as usize] as usize][t as usize] += 1;
             }
@@ -232,7 +260,8 @@ fn try_alpha(
                 .enumerate()
                 .filter_map(|(i, &l)| {
                     let s = scores[eff[l as usize] as usize];
-                    (s >= lowest).then_some((i as u32, s))
+                    let known = || !f.is_unknown(i % f.width, i / f.width);
+                    (s >= lowest && known()).then_some((i as u32, s))
                 })
                 .collect()
         })
@@ -261,10 +290,7 @@ fn try_alpha(
         let detected: u64 = masks.iter().map(BitFrame::count_set).sum();
         let dense = detected > MAX_DETECTED_RATIO * truth_total.max(1) + 1000;
         let mds: &[u32] = if dense { &mds[..1] } else { &mds };
-        let pixel_all = frames
-            .iter()
-            .map(|f| f.truth_mask.len() as u64)
-            .sum::<u64>();
+        let pixel_all = frames.iter().map(HoldoutFrame::known_pixels).sum::<u64>();
         for &md in mds {
             // Objects (all sizes) and, per object, its area and how many of
             // its pixels are targets: enough to score every min_area.
