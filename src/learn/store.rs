@@ -376,7 +376,7 @@ mod tests {
         let f = BitFrame::from_fn(20, 9, |x, y| (x + y) % 3 == 0);
         let m = BitFrame::from_fn(20, 9, |x, y| x > 10 && y < 3);
         // A 4x3 unknown block over 3 target and 9 clear pixels.
-        let u = BitFrame::from_fn(20, 9, |x, y| (9..13).contains(&x) && y >= 1 && y < 4);
+        let u = BitFrame::from_fn(20, 9, |x, y| (9..13).contains(&x) && (1..4).contains(&y));
         let lf = LabelledFrame {
             unknown: Some(u),
             ..LabelledFrame::new("a", f.clone(), m.clone())
