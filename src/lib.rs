@@ -29,6 +29,8 @@
 //! - [`learn`]: the label store, greedy induction, cost-complexity pruning,
 //!   holdout tuning; builds a [`model::Model`].
 //! - [`synth`]: the seeded loom-frame generator for demo and test data.
+//! - [`correct`]: the operator's correction file and the labelled frame it
+//!   makes.
 //! - [`config`]: the TOML configuration file, parsed then resolved
 //!   (parsing is pure; [`config::load`] is its one file read).
 //! - [`fileio`]: labelled data folders and durable file operations.
@@ -43,6 +45,7 @@
 
 pub mod codec;
 pub mod config;
+pub mod correct;
 pub mod daemon;
 pub mod detect;
 pub mod error;

@@ -182,6 +182,54 @@ pub struct LiveConfig {
     pub rescan_seconds: f64,
     /// `[archive]`.
     pub retention: Retention,
+    /// `[retrain]`.
+    pub retrain: RetrainSettings,
+}
+
+/// Resolved `[retrain]` (see `config/burlwatch.toml` for each key).
+#[derive(Clone, Debug, PartialEq)]
+pub struct RetrainSettings {
+    pub enabled: bool,
+    pub check_every: std::time::Duration,
+    pub min_new_labels: u64,
+    pub min_line_labels: u64,
+    pub quiet_hours: Option<QuietHours>,
+    pub gate_share: f64,
+    pub margin: f64,
+    pub tolerance: f64,
+    pub older_lines: bool,
+    pub budget: std::time::Duration,
+}
+
+/// A daily span of local time, start inclusive, end exclusive, in minutes
+/// after midnight; it wraps midnight when `start > end`.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub struct QuietHours {
+    pub start: u32,
+    pub end: u32,
+}
+
+impl QuietHours {
+    /// Parses "HH:MM-HH:MM".
+    pub fn parse(s: &str) -> Option<QuietHours> {
+        let minutes = |t: &str| -> Option<u32> {
+            let (h, m) = t.trim().split_once(':')?;
+            let (h, m): (u32, u32) = (h.parse().ok()?, m.parse().ok()?);
+            (h < 24 && m < 60 && t.trim().len() == 5).then_some(h * 60 + m)
+        };
+        let (a, b) = s.split_once('-')?;
+        let (start, end) = (minutes(a)?, minutes(b)?);
+        (start != end).then_some(QuietHours { start, end })
+    }
+
+    /// Whether `minute` (after local midnight) falls inside.
+    pub fn contains(&self, minute: u32) -> bool {
+        if self.start < self.end {
+            (self.start..self.end).contains(&minute)
+        } else {
+            minute >= self.start || minute < self.end
+        }
+    }
 }
 
 /// The resolved configuration.
@@ -223,6 +271,29 @@ mod tests {
             c.live.seed_data.as_deref(),
             Some(Path::new("demo-frames/train"))
         );
+    }
+
+    #[test]
+    fn quiet_hours_wrap_midnight() {
+        let q = QuietHours::parse("22:00-06:30").unwrap();
+        assert!(q.contains(22 * 60) && q.contains(0) && q.contains(6 * 60 + 29));
+        assert!(!q.contains(6 * 60 + 30) && !q.contains(12 * 60));
+        let d = QuietHours::parse("12:00-13:00").unwrap();
+        assert!(d.contains(12 * 60) && !d.contains(13 * 60) && !d.contains(11 * 60));
+        for bad in [
+            "",
+            "12:00",
+            "25:00-01:00",
+            "1:00-2:00",
+            "12:00-12:00",
+            "ab:cd-01:00",
+        ] {
+            assert!(QuietHours::parse(bad).is_none(), "{bad}");
+        }
+        let e = from_str("[retrain]\nquiet_hours = \"late\"\n").unwrap_err();
+        assert!(e.to_string().contains("retrain.quiet_hours"), "{e}");
+        let e = from_str("[retrain]\ngate_share = 0.95\n").unwrap_err();
+        assert!(e.to_string().contains("retrain.gate_share"), "{e}");
     }
 
     #[test]

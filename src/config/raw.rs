@@ -7,7 +7,10 @@ use std::path::PathBuf;
 
 use serde::Deserialize;
 
-use super::{Config, Folders, LiveConfig, LogSettings, Retention, StartConfig, SyncPolicy, LEVELS};
+use super::{
+    Config, Folders, LiveConfig, LogSettings, QuietHours, Retention, RetrainSettings, StartConfig,
+    SyncPolicy, LEVELS,
+};
 use crate::codec::DecodeLimits;
 use crate::error::{Error, Result};
 use crate::learn::{ClassWeight, Criterion, TrainParams};
@@ -140,6 +143,41 @@ pub struct RawArchive {
     pub keep_bytes: Option<u64>,
 }
 
+/// `[retrain]`: when the daemon grows a challenger model from the
+/// operator's corrections, and what it must do to be put in service.
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawRetrain {
+    /// Scheduled retraining on or off (default true); `burlwatch retrain`
+    /// works either way.
+    pub enabled: Option<bool>,
+    /// How often the daemon checks whether to retrain, minutes (default 60).
+    pub check_minutes: Option<f64>,
+    /// Labelled frames added since the running model was trained that make
+    /// a scheduled retrain worth it (default 5).
+    pub min_new_labels: Option<u64>,
+    /// Labelled frames of the line now running needed before any retrain
+    /// (default 8).
+    pub min_line_labels: Option<u64>,
+    /// "HH:MM-HH:MM", local time: no scheduled retrain starts then
+    /// (default: none). May wrap midnight ("22:00-06:00").
+    pub quiet_hours: Option<String>,
+    /// Share of labelled frames held out for the gate, chosen by content
+    /// hash (default 0.3).
+    pub gate_share: Option<f64>,
+    /// Object F1 a challenger must gain over the running model on the
+    /// line's held-out frames (default 0; ties keep the running model).
+    pub margin: Option<f64>,
+    /// Object F1 a challenger may lose on older lines' held-out frames
+    /// when no changeover happened since the running model went in
+    /// service (default 0.05).
+    pub tolerance: Option<f64>,
+    /// Train on older lines' labels too (default false).
+    pub older_lines: Option<bool>,
+    /// Seconds a retrain may take before it is abandoned (default 600).
+    pub budget_seconds: Option<f64>,
+}
+
 /// The file as written.
 #[derive(Debug, Default, Deserialize)]
 #[serde(deny_unknown_fields)]
@@ -158,6 +196,8 @@ pub struct RawConfig {
     pub log: RawLog,
     #[serde(default)]
     pub archive: RawArchive,
+    #[serde(default)]
+    pub retrain: RawRetrain,
 }
 
 fn invalid(key: &str, msg: impl std::fmt::Display) -> Error {
@@ -393,6 +433,7 @@ impl RawConfig {
                 format!("{level:?} is not one of {}", LEVELS.join(", ")),
             ));
         }
+        let retrain = resolve_retrain(self.retrain)?;
         let a = self.archive;
         let overrides = Overrides {
             threshold: det.threshold,
@@ -426,6 +467,7 @@ impl RawConfig {
                 },
                 training,
                 rescan_seconds,
+                retrain,
                 retention: Retention {
                     keep_days: a.keep_days.unwrap_or(30),
                     keep_bytes: a.keep_bytes.unwrap_or(10 << 30),
@@ -433,6 +475,66 @@ impl RawConfig {
             },
         })
     }
+}
+
+/// Checks `[retrain]` and fills its defaults.
+fn resolve_retrain(r: RawRetrain) -> Result<RetrainSettings> {
+    let unit = |key: &str, v: f64| -> Result<f64> {
+        if (0.0..=1.0).contains(&v) {
+            Ok(v)
+        } else {
+            Err(invalid(key, format!("{v} is outside [0, 1]")))
+        }
+    };
+    let check_minutes = r.check_minutes.unwrap_or(60.0);
+    if !(0.001..=10_080.0).contains(&check_minutes) {
+        return Err(invalid(
+            "retrain.check_minutes",
+            format!("{check_minutes} is outside 0.001..=10080 (a week)"),
+        ));
+    }
+    let min_line_labels = r.min_line_labels.unwrap_or(8);
+    if !(2..=1_000_000).contains(&min_line_labels) {
+        return Err(invalid(
+            "retrain.min_line_labels",
+            format!("{min_line_labels} is outside 2..=1000000"),
+        ));
+    }
+    let gate_share = r.gate_share.unwrap_or(0.3);
+    if !(0.05..=0.9).contains(&gate_share) {
+        return Err(invalid(
+            "retrain.gate_share",
+            format!("{gate_share} is outside 0.05..=0.9"),
+        ));
+    }
+    let budget_seconds = r.budget_seconds.unwrap_or(600.0);
+    if !(1.0..=86_400.0).contains(&budget_seconds) {
+        return Err(invalid(
+            "retrain.budget_seconds",
+            format!("{budget_seconds} is outside 1..=86400"),
+        ));
+    }
+    let quiet_hours = match r.quiet_hours.as_deref() {
+        None | Some("") => None,
+        Some(q) => Some(QuietHours::parse(q).ok_or_else(|| {
+            invalid(
+                "retrain.quiet_hours",
+                format!("{q:?} is not \"HH:MM-HH:MM\""),
+            )
+        })?),
+    };
+    Ok(RetrainSettings {
+        enabled: r.enabled.unwrap_or(true),
+        check_every: std::time::Duration::from_secs_f64(check_minutes * 60.0),
+        min_new_labels: r.min_new_labels.unwrap_or(5).max(1),
+        min_line_labels,
+        quiet_hours,
+        gate_share,
+        margin: unit("retrain.margin", r.margin.unwrap_or(0.0))?,
+        tolerance: unit("retrain.tolerance", r.tolerance.unwrap_or(0.05))?,
+        older_lines: r.older_lines.unwrap_or(false),
+        budget: std::time::Duration::from_secs_f64(budget_seconds),
+    })
 }
 
 #[cfg(test)]

@@ -41,10 +41,18 @@
 //! monitors and the status endpoint's metrics are [`sink::RecordSink`]s.
 
 pub mod checks;
+pub mod corrections;
 pub mod detlog;
+pub mod events;
 pub mod faults;
 pub mod files;
 pub mod intake;
+pub mod labels;
+mod learner;
+pub mod learning;
+pub mod registry;
+pub mod requests;
+pub mod retrain;
 pub mod sink;
 pub mod start;
 mod worker;
@@ -66,6 +74,7 @@ pub use sink::{Counter, Finished, RecordSink, Summary};
 pub use worker::Running;
 
 use intake::{Intake, WatchEvent};
+use learner::{FromLearner, Learner, ToLearner};
 use worker::Job;
 use writer::{FromWriter, Writer};
 
@@ -169,7 +178,9 @@ pub fn run_with(
     }
     start.folders = start::make_folders(&start.folders)?;
     let _lock = files::StateLock::acquire(&start.folders.state)?;
-    let model = start::load_or_train(&start.folders, &live)?;
+    let (model, origin, trained_on) = start::load_or_train(&start.folders, &live)?;
+    let learning = learning::Learning::open(&start.folders, &live, model.tree.window())?;
+    let (model, _) = learning.in_service(model, origin, trained_on)?;
     let detector = start::detector(model, &live)?;
     info!(
         version = detector.version(),
@@ -182,6 +193,15 @@ pub fn run_with(
         "inbox",
         &start.folders.inbox,
         live.formats.clone(),
+        Duration::from_millis(start.settle_millis),
+        Duration::from_secs_f64(live.rescan_seconds),
+        start.events,
+        now,
+    )?;
+    let corrections = Intake::open(
+        "corrections folder",
+        &start.folders.corrections,
+        vec!["toml".into()],
         Duration::from_millis(start.settle_millis),
         Duration::from_secs_f64(live.rescan_seconds),
         start.events,
@@ -239,6 +259,13 @@ pub fn run_with(
         .name("burlwatch-writer".into())
         .spawn(move || writer.run(res_rx, flush_rx))
         .map_err(Error::from)?;
+    let (to_learner, learner_rx) = unbounded::<ToLearner>();
+    let (learner_tx, from_learner) = unbounded::<FromLearner>();
+    let learner = Learner::new(learning, running.clone(), learner_tx);
+    let learner = thread::Builder::new()
+        .name("burlwatch-learner".into())
+        .spawn(move || learner.run(learner_rx))
+        .map_err(Error::from)?;
 
     let period = Duration::from_millis(start.settle_millis.clamp(20, 100));
     let ticks = hooks
@@ -250,6 +277,9 @@ pub fn run_with(
         start,
         running,
         inbox,
+        corrections,
+        to_learner,
+        from_learner,
         work_tx,
         flush_tx,
         from_writer: out_rx,
@@ -277,6 +307,7 @@ pub fn run_with(
     for t in threads {
         let _ = t.join();
     }
+    let _ = learner.join();
     let writer_ok = writer.join().is_ok();
     if workers_lost {
         return Err(Error::daemon(
@@ -322,7 +353,11 @@ fn prune(start: &StartConfig, live: &LiveConfig, now: SystemTime) {
 #[derive(Debug)]
 enum Event {
     Watch(WatchEvent),
+    CorrectionWatch(WatchEvent),
     Writer(FromWriter),
+    Learner(FromLearner),
+    /// The learner's thread is gone.
+    LearnerGone,
     /// The writer's thread is gone.
     WriterGone,
     Control(Control),
@@ -338,6 +373,9 @@ struct MainLoop {
     start: StartConfig,
     running: Arc<ArcSwap<Running>>,
     inbox: Intake,
+    corrections: Intake,
+    to_learner: Sender<ToLearner>,
+    from_learner: Receiver<FromLearner>,
     work_tx: Sender<Job>,
     flush_tx: Sender<()>,
     from_writer: Receiver<FromWriter>,
@@ -369,6 +407,10 @@ impl MainLoop {
         loop {
             if !self.stopping {
                 self.inbox.poll(self.clock.now());
+                self.corrections.poll(self.clock.now());
+                while let Some(path) = self.corrections.next_ready() {
+                    let _ = self.to_learner.send(ToLearner::Correction(path));
+                }
             }
             self.hand_out();
             if (self.stopping && self.unfinished == 0) || self.workers_lost || self.writer_lost {
@@ -376,11 +418,20 @@ impl MainLoop {
             }
             match self.next_event() {
                 Event::Watch(ev) => self.inbox.on_watch(ev, self.clock.now()),
+                Event::CorrectionWatch(ev) => self.corrections.on_watch(ev, self.clock.now()),
                 Event::Writer(FromWriter::Taken) => self.in_flight -= 1,
                 Event::Writer(FromWriter::Done(path)) => {
                     self.unfinished -= 1;
                     self.inbox.finished(&path);
                     self.last_progress = self.clock.now();
+                }
+                Event::Learner(FromLearner::CorrectionDone(path)) => {
+                    self.corrections.finished(&path)
+                }
+                Event::Learner(FromLearner::InService(model)) => self.put_in_service(*model),
+                Event::LearnerGone => {
+                    error!("the learner stopped; corrections and retraining wait for a restart");
+                    self.from_learner = crossbeam_channel::never();
                 }
                 Event::WriterGone => {
                     error!("the detection log writer stopped");
@@ -409,6 +460,8 @@ impl MainLoop {
     fn next_event(&self) -> Event {
         select! {
             recv(self.inbox.events()) -> ev => Event::Watch(ev),
+            recv(self.corrections.events()) -> ev => Event::CorrectionWatch(ev),
+            recv(self.from_learner) -> m => m.map_or(Event::LearnerGone, Event::Learner),
             recv(self.from_writer) -> m => m.map_or(Event::WriterGone, Event::Writer),
             recv(self.control) -> c => c.map_or(Event::ControlGone, Event::Control),
             recv(self.ticks) -> t => t.map_or(Event::TicksGone, |_| Event::Tick),
@@ -454,6 +507,7 @@ impl MainLoop {
     fn tick(&mut self, status: &mut dyn FnMut(Status)) {
         let now = self.clock.now();
         self.inbox.tick(now);
+        self.corrections.tick(now);
         if self.unfinished == 0 || now.duration_since(self.last_progress) < self.stall {
             status(Status::Alive);
         }
@@ -474,6 +528,23 @@ impl MainLoop {
                 "in the last {seconds} s"
             );
             status(Status::Summary { last, seconds });
+        }
+    }
+
+    /// Swaps a model the learner put in `state/model.json` into service:
+    /// frames in flight finish with the detector they started with.
+    fn put_in_service(&mut self, model: crate::model::Model) {
+        let live = self.running.load().live.clone();
+        match start::detector(model, &live) {
+            Ok(detector) => {
+                info!(
+                    version = detector.version(),
+                    hash = detector.hash(),
+                    "model in service"
+                );
+                self.running.store(Arc::new(Running { detector, live }));
+            }
+            Err(e) => error!("cannot put the new model in service: {e}; keeping the running one"),
         }
     }
 

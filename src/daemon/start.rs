@@ -7,7 +7,7 @@ use std::path::PathBuf;
 
 use tracing::info;
 
-use super::files;
+use super::{files, registry};
 use crate::config::{Folders, LiveConfig};
 use crate::detect::Detector;
 use crate::error::{Error, ErrorKind, Result};
@@ -44,32 +44,62 @@ pub fn detector(model: Model, live: &LiveConfig) -> Result<Detector> {
 }
 
 /// The model in service: the state folder's, or, on a fresh box, one
-/// trained from `training.seed_data` and stored there as version 1.
-pub fn load_or_train(folders: &Folders, live: &LiveConfig) -> Result<Model> {
+/// trained from `training.seed_data` and stored there as version 1; with
+/// where it came from and what it was trained on, for the registry. The
+/// seed frames the gate holds out (by content hash) are left out of
+/// training, so a later retrain's gate judges both models on frames
+/// neither saw.
+pub fn load_or_train(
+    folders: &Folders,
+    live: &LiveConfig,
+) -> Result<(Model, registry::Origin, registry::TrainedOn)> {
     let path = model_path(folders);
     if path.exists() {
-        return load_model(folders, live);
+        return Ok((
+            load_model(folders, live)?,
+            registry::Origin::Adopted,
+            registry::TrainedOn {
+                line: 1,
+                ..Default::default()
+            },
+        ));
     }
-    let seed = live.seed_data.as_ref().ok_or_else(|| {
-        Error::new(ErrorKind::Data(format!(
+    if live.seed_data.is_none() {
+        return Err(Error::new(ErrorKind::Data(format!(
             "no model at {} and no training.seed_data to train one from",
             path.display()
-        )))
-    })?;
-    info!(seed = %seed.display(), "no model yet: training one from the seed data");
-    let folder = crate::fileio::data::read_folder(seed, &live.limits, &mut |_, _| {})?;
-    if let Some(p) = folder.problems.first() {
-        return Err(Error::new(ErrorKind::Data(format!(
-            "seed data has {} bad file(s), first: {p}",
-            folder.problems.len()
         ))));
     }
-    let mut m = learn::train(&folder.frames, &live.training, &mut |_| {})?;
+    let seed = live.seed_data.as_ref().expect("checked");
+    info!(seed = %seed.display(), "no model yet: training one from the seed data");
+    if !seed.is_dir() {
+        return Err(Error::new(ErrorKind::Data(format!(
+            "training.seed_data {} is not a folder",
+            seed.display()
+        ))));
+    }
+    let frames: Vec<_> = super::retrain::seed_frames(live)?
+        .into_iter()
+        .filter(|(_, role)| *role == super::labels::Role::Train)
+        .map(|(f, _)| f)
+        .collect();
+    let mut m = learn::train(&frames, &live.training, &mut |_| {})?;
     m.model_version = 1;
     files::write_atomic(&path, m.to_json().as_bytes())
         .map_err(|e| Error::from(e).with_path(&path))?;
     info!(path = %path.display(), leaves = m.tree.leaves(), "stored model version 1");
-    load_model(folders, live)
+    let trained_on = registry::TrainedOn {
+        line: 1,
+        frames: frames.len() as u64,
+        pixels: frames.iter().map(|f| f.known_pixels()).sum(),
+        names: frames.iter().map(|f| f.name.clone()).collect(),
+        labels_generation: 0,
+    };
+    Ok((
+        load_model(folders, live)?,
+        registry::Origin::Seed,
+        trained_on,
+    ))
 }
 
 /// Creates the folders the daemon writes to and returns them made

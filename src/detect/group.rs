@@ -301,6 +301,26 @@ pub fn objects_of(
         .collect()
 }
 
+/// The pixels of object `id` (1-based) of a mask every component of which
+/// is an object (a detection's kept mask): components numbered as
+/// [`label`] numbers them, so ids match the objects [`group`] gave for
+/// that mask. `None` when there is no such object.
+pub fn component_pixels(mask: &BitFrame, merge_distance: u32, id: u32) -> Option<BitFrame> {
+    let (runs, comp, n) = label(mask, merge_distance);
+    if id == 0 || id as usize > n {
+        return None;
+    }
+    let mut out = BitFrame::new(mask.width(), mask.height());
+    for (r, &c) in runs.iter().zip(&comp) {
+        if c + 1 == id {
+            for x in r.x0..=r.x1 {
+                out.set(x as usize, r.y as usize, true);
+            }
+        }
+    }
+    Some(out)
+}
+
 /// The mask of the components of at least `min_area` pixels.
 fn kept_of(runs: &[Run], comp: &[u32], n: usize, min_area: u32, w: usize, h: usize) -> BitFrame {
     let mut area = vec![0u64; n];

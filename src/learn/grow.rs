@@ -179,6 +179,17 @@ fn best_split(
 
 /// Grows a tree over `entries` (reordered in place).
 pub fn grow(entries: &mut [(u128, Counts)], n_features: usize, p: &GrowParams) -> GrownTree {
+    grow_until(entries, n_features, p, &|| false).expect("never stopped")
+}
+
+/// [`grow`], asking `stop` before each split; `None` when it said stop
+/// (a time budget ran out).
+pub fn grow_until(
+    entries: &mut [(u128, Counts)],
+    n_features: usize,
+    p: &GrowParams,
+    stop: &dyn Fn() -> bool,
+) -> Option<GrownTree> {
     assert!(n_features <= 128);
     let root_counts = total(entries);
     let root_weight = {
@@ -204,7 +215,12 @@ pub fn grow(entries: &mut [(u128, Counts)], n_features: usize, p: &GrowParams) -
         hi: entries.len(),
         hist: root_hist,
     }];
+    let mut splits = 0u32;
     while let Some(job) = stack.pop() {
+        splits = splits.wrapping_add(1);
+        if splits % 64 == 0 && stop() {
+            return None;
+        }
         let node = &nodes[job.id];
         if node.depth >= p.max_depth || nodes.len() + 2 > p.max_nodes {
             continue;
@@ -265,7 +281,7 @@ pub fn grow(entries: &mut [(u128, Counts)], n_features: usize, p: &GrowParams) -
             hist: clear_hist,
         });
     }
-    GrownTree { nodes, n_features }
+    Some(GrownTree { nodes, n_features })
 }
 
 #[cfg(test)]

@@ -286,6 +286,22 @@ pub fn train(
     params: &TrainParams,
     progress: &mut dyn FnMut(Stage),
 ) -> Result<Model> {
+    train_with(frames, params, progress, &|| false)
+}
+
+/// The error [`train_with`] returns when `stop` said stop.
+pub const STOPPED: &str = "stopped before it finished (its time budget ran out)";
+
+/// [`train`], asking `stop` between stages and while growing: when it
+/// says stop, training is abandoned with a training error ([`STOPPED`]).
+/// The daemon's retraining passes its time budget here.
+pub fn train_with(
+    frames: &[LabelledFrame],
+    params: &TrainParams,
+    progress: &mut dyn FnMut(Stage),
+    stop: &dyn Fn() -> bool,
+) -> Result<Model> {
+    let stopped = || Error::training(STOPPED);
     params.validate()?;
     if frames.is_empty() {
         return Err(Error::training("no labelled frames"));
@@ -337,7 +353,8 @@ pub fn train(
             weights,
             max_nodes: params.max_nodes,
         };
-        let tree = grow::grow(&mut entries, params.window.features(), &gp);
+        let tree = grow::grow_until(&mut entries, params.window.features(), &gp, stop)
+            .ok_or_else(stopped)?;
         progress(Stage::Prune);
         let pruning = prune::prune_sequence(&tree, params.criterion, weights);
         Ok(Grown {
@@ -349,6 +366,9 @@ pub fn train(
         })
     };
     let first = grow_on(&grow_idx, progress)?;
+    if stop() {
+        return Err(stopped());
+    }
     progress(Stage::Tune);
     let fixed = tune::Fixed {
         threshold: params.threshold,

@@ -1,0 +1,417 @@
+//! Applying the operator's correction files: each one found in the
+//! corrections folder is checked against the archive and the detection
+//! log, turned into a labelled frame ([`crate::correct`]), added to the
+//! labels ([`super::labels::LabelSet::put`]), and moved to
+//! `corrections/applied/`; one that cannot be applied moves to
+//! `corrections/rejected/` with `NAME.reason.txt` beside it, and nothing
+//! else changes. A mask file a correction names moves with it.
+//!
+//! [`prepare`] does every check and builds the labels without writing
+//! anything: `burlwatch mark` runs it before it writes a correction, so
+//! what `mark` accepts the daemon applies.
+//!
+//! Exactly once: the labels' index remembers the SHA-256 of the correction
+//! each labelled frame came from, so a correction met again after a crash
+//! between the index write and the move is only moved.
+
+use std::fs;
+use std::io::{BufRead, BufReader};
+use std::path::{Path, PathBuf};
+
+use tracing::{info, warn};
+
+use super::labels::{line_at, read_lines, role_key, role_of, Label, Source};
+use super::learning::Learning;
+use crate::codec;
+use crate::config::{Folders, LiveConfig};
+use crate::correct::{check_name, Correction};
+use crate::detect::compile::Scratch;
+use crate::detect::Detector;
+use crate::error::{Error, ErrorKind, Result};
+use crate::fileio::durable::{move_into, read_bounded, write_atomic};
+use crate::frame::LabelledFrame;
+use crate::record::{sha256_hex, FrameRecord};
+
+/// Largest correction file read.
+pub const MAX_CORRECTION_BYTES: u64 = 1 << 20;
+/// Where applied and refused corrections go, inside the corrections folder.
+pub const APPLIED: &str = "applied";
+pub const REJECTED: &str = "rejected";
+
+fn bad(msg: impl Into<String>) -> Error {
+    Error::new(ErrorKind::Correction(msg.into()))
+}
+
+/// A checked correction and the labelled frame it makes.
+#[derive(Debug)]
+pub struct Prepared {
+    pub correction: Correction,
+    pub record: FrameRecord,
+    pub labelled: LabelledFrame,
+    /// The mask file the correction names, resolved beside it.
+    pub mask_file: Option<PathBuf>,
+}
+
+/// The record of `frame` with `sha256` in the detection log, newest file
+/// first. Each file is read through once, line by line; only lines holding
+/// the hash are parsed.
+pub fn find_record(logs: &Path, frame: &str, sha256: &str) -> Result<Option<FrameRecord>> {
+    let mut files: Vec<PathBuf> = match fs::read_dir(logs) {
+        Ok(rd) => rd
+            .flatten()
+            .map(|e| e.path())
+            .filter(|p| {
+                p.file_name()
+                    .and_then(|n| n.to_str())
+                    .is_some_and(|n| n.starts_with("detections") && n.ends_with(".jsonl"))
+            })
+            .collect(),
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(None),
+        Err(e) => return Err(Error::from(e).with_path(logs)),
+    };
+    // `detections.jsonl` is the newest; rotated names sort by time.
+    files.sort();
+    let mut found = None;
+    let order: Vec<&PathBuf> = {
+        let mut v: Vec<&PathBuf> = files.iter().collect();
+        if let Some(cur) = v.iter().position(|p| p.ends_with("detections.jsonl")) {
+            let c = v.remove(cur);
+            v.push(c);
+        }
+        v.reverse();
+        v
+    };
+    for path in order {
+        let file = fs::File::open(path).map_err(|e| Error::from(e).with_path(path))?;
+        let mut line = String::new();
+        let mut reader = BufReader::with_capacity(1 << 16, file);
+        loop {
+            line.clear();
+            match reader.read_line(&mut line) {
+                Ok(0) => break,
+                Ok(_) => {}
+                Err(e) if e.kind() == std::io::ErrorKind::InvalidData => continue,
+                Err(e) => return Err(Error::from(e).with_path(path)),
+            }
+            if !line.contains(sha256) {
+                continue;
+            }
+            if let Ok(r) = serde_json::from_str::<FrameRecord>(line.trim_end()) {
+                if r.frame == frame && r.sha256 == sha256 {
+                    // The latest record of the frame wins.
+                    found = Some(r);
+                }
+            }
+        }
+        if found.is_some() {
+            return Ok(found);
+        }
+    }
+    Ok(None)
+}
+
+/// The archived file of `frame` whose bytes hash to `sha256`: the archive
+/// keeps a second frame of the same name as `STEM-2.EXT`, `STEM-3.EXT`, ...
+pub fn find_archived(
+    archive: &Path,
+    frame: &str,
+    sha256: &str,
+    live: &LiveConfig,
+) -> Result<(PathBuf, Vec<u8>)> {
+    let (stem, ext) = match frame.rsplit_once('.') {
+        Some((s, e)) if !s.is_empty() => (s, format!(".{e}")),
+        _ => (frame, String::new()),
+    };
+    let mut seen_other = false;
+    for k in 1u64.. {
+        let name = if k == 1 {
+            frame.to_string()
+        } else {
+            format!("{stem}-{k}{ext}")
+        };
+        let path = archive.join(&name);
+        let meta = match fs::symlink_metadata(&path) {
+            Ok(m) => m,
+            Err(_) => break,
+        };
+        if !meta.file_type().is_file() {
+            continue;
+        }
+        let read = read_bounded(
+            &path,
+            crate::fileio::data::max_file_bytes(&live.limits),
+            &|| "a frame".into(),
+        )
+        .map_err(|(e, _)| e)?;
+        if sha256_hex(&read.bytes) == sha256 {
+            return Ok((path, read.bytes));
+        }
+        seen_other = true;
+    }
+    Err(bad(if seen_other {
+        format!(
+            "frame {frame} in the archive is not the version logged (its content hash differs from {sha256})"
+        )
+    } else {
+        format!("frame {frame} is no longer in the archive (archive retention may have deleted it)")
+    }))
+}
+
+/// The detector of the model that made `record`: the running one when it
+/// is that model, else the registry's.
+fn record_detector(
+    record: &FrameRecord,
+    running: Option<&Detector>,
+    learning: &Learning,
+    live: &LiveConfig,
+) -> Result<Detector> {
+    if let Some(d) = running {
+        if d.version() == record.model_version
+            && (record.model_hash.is_empty() || d.hash() == record.model_hash)
+        {
+            return super::start::detector(d.model().clone(), live);
+        }
+    }
+    let entries = learning.registry.entries()?;
+    let entry = entries
+        .iter()
+        .filter(|e| e.version == record.model_version)
+        .find(|e| record.model_hash.is_empty() || e.hash == record.model_hash)
+        .ok_or_else(|| {
+            bad(format!(
+                "the model that made this record (version {} {}) is not in the registry; \
+                 say the truth with `only` regions or a `mask` instead",
+                record.model_version, record.model_hash
+            ))
+        })?;
+    super::start::detector(learning.registry.model(entry)?, live)
+}
+
+/// Checks a correction's text against the frame it names and builds its
+/// labelled frame, writing nothing. `dir` is the folder a mask file it
+/// names lies in.
+pub fn prepare(
+    text: &[u8],
+    dir: &Path,
+    folders: &Folders,
+    live: &LiveConfig,
+    learning: &Learning,
+    running: Option<&Detector>,
+) -> Result<Prepared> {
+    let text = std::str::from_utf8(text).map_err(|_| bad("the file is not UTF-8 text"))?;
+    let c = Correction::parse(text)?;
+    c.check_statements()?;
+    check_name(&c.frame)?;
+    let Some(record) = find_record(&folders.logs, &c.frame, &c.sha256)? else {
+        if folders.rejected.join(&c.frame).exists() {
+            return Err(bad(format!(
+                "frame {} was rejected (see {}), so it has no detection to correct",
+                c.frame,
+                folders
+                    .rejected
+                    .join(format!("{}.reason.txt", c.frame))
+                    .display()
+            )));
+        }
+        return Err(bad(format!(
+            "no record of frame {} with sha256 {} in the detection log",
+            c.frame, c.sha256
+        )));
+    };
+    c.check_record(&record)?;
+    let (_, bytes) = find_archived(&folders.archive, &c.frame, &c.sha256, live)?;
+    let frame = codec::decode(&bytes, &live.limits)?;
+    let detected = if c.needs_detection() {
+        let d = record_detector(&record, running, learning, live)?;
+        let r = d.detect(&frame, &mut Scratch::default());
+        let boxes = |v: &[crate::record::ObjectRecord]| -> Vec<[u32; 4]> {
+            v.iter().map(|o| o.bbox).collect()
+        };
+        let now: Vec<[u32; 4]> = r
+            .objects
+            .iter()
+            .map(|o| [o.bbox.x0, o.bbox.y0, o.bbox.x1, o.bbox.y1])
+            .collect();
+        if now != boxes(&record.objects) {
+            return Err(bad(format!(
+                "the model of the record (version {}) no longer finds the objects the record lists \
+                 (detection settings changed since?); say the truth with `only` regions or a `mask` instead",
+                record.model_version
+            )));
+        }
+        Some((r.mask, d.settings().grouping.merge_distance))
+    } else {
+        None
+    };
+    let (mask_file, truth) = match &c.mask {
+        Some(m) => {
+            check_name(m).map_err(|e| bad(format!("mask: {}", e.kind())))?;
+            let p = dir.join(m);
+            let t = crate::fileio::data::read_mask(&p, &live.limits)?;
+            if !t.same_size(&frame) {
+                return Err(bad(format!(
+                    "mask {m} is {}x{} but frame {} is {}x{}",
+                    t.width(),
+                    t.height(),
+                    c.frame,
+                    frame.width(),
+                    frame.height()
+                )));
+            }
+            (Some(p), Some(t))
+        }
+        None => (None, None),
+    };
+    let labelled = c.labels(
+        &frame,
+        detected.as_ref().map(|d| &d.0),
+        detected.as_ref().map_or(0, |d| d.1),
+        truth.as_ref(),
+    )?;
+    Ok(Prepared {
+        correction: c,
+        record,
+        labelled,
+        mask_file,
+    })
+}
+
+/// What became of one correction file.
+#[derive(Debug)]
+pub enum Applied {
+    /// Added to the labels (or found already added) and moved.
+    Applied(Label),
+    /// Moved to `rejected/` with this reason.
+    Rejected(String),
+    /// Gone before it was read, or not readable for a passing reason.
+    Gone,
+}
+
+/// Applies one correction file (see the module docs).
+pub fn apply(
+    path: &Path,
+    learning: &mut Learning,
+    live: &LiveConfig,
+    running: Option<&Detector>,
+) -> Applied {
+    let name = path
+        .file_name()
+        .map(|n| n.to_string_lossy().into_owned())
+        .unwrap_or_default();
+    let dir = path.parent().unwrap_or(Path::new(".")).to_path_buf();
+    let bytes = match read_bounded(path, MAX_CORRECTION_BYTES, &|| "a correction".into()) {
+        Ok(b) => b.bytes,
+        Err((e, _)) => {
+            return match e.kind() {
+                ErrorKind::Io(io) if io.kind() == std::io::ErrorKind::NotFound => Applied::Gone,
+                _ => reject(path, &dir, None, &format!("{name}: {}", e.kind())),
+            }
+        }
+    };
+    let hash = sha256_hex(&bytes);
+    if learning.labels.applied(&hash) {
+        let label = learning
+            .labels
+            .labels()
+            .iter()
+            .find(|l| l.source.sha256 == hash)
+            .cloned()
+            .expect("applied");
+        let mask = Correction::parse(std::str::from_utf8(&bytes).unwrap_or(""))
+            .ok()
+            .and_then(|c| c.mask)
+            .map(|m| dir.join(m));
+        move_done(path, &dir, mask.as_deref(), APPLIED);
+        return Applied::Applied(label);
+    }
+    let folders = learning.folders.clone();
+    let prepared = match prepare(&bytes, &dir, &folders, live, learning, running) {
+        Ok(p) => p,
+        Err(e) => {
+            let mask = Correction::parse(std::str::from_utf8(&bytes).unwrap_or(""))
+                .ok()
+                .and_then(|c| c.mask)
+                .filter(|m| check_name(m).is_ok())
+                .map(|m| dir.join(m));
+            return reject(
+                path,
+                &dir,
+                mask.as_deref(),
+                &format!("{name}: {}", e.kind()),
+            );
+        }
+    };
+    let lines = match read_lines(&folders.state) {
+        Ok(l) => l,
+        Err(e) => return reject(path, &dir, None, &format!("{name}: {e}")),
+    };
+    let label = Label {
+        frame: prepared.record.frame.clone(),
+        sha256: prepared.record.sha256.clone(),
+        stem: String::new(),
+        line: line_at(&lines, &prepared.record.time),
+        role: role_of(&role_key(&prepared.labelled.frame), live.retrain.gate_share),
+        targets: false,
+        pixels: 0,
+        generation: 0,
+        time: crate::record::rfc3339(std::time::SystemTime::now()),
+        source: Source {
+            file: name.clone(),
+            sha256: hash,
+            by: prepared.correction.by.clone(),
+        },
+    };
+    match learning.labels.put(&prepared.labelled, label) {
+        Ok(label) => {
+            info!(correction = %name, frame = %label.frame, line = label.line, role = ?label.role, "correction applied");
+            move_done(path, &dir, prepared.mask_file.as_deref(), APPLIED);
+            Applied::Applied(label)
+        }
+        // The labels could not be written (a full disk...): the file stays
+        // for the next listing.
+        Err(e) => {
+            warn!(correction = %name, "cannot store the labels: {e}; the correction stays");
+            Applied::Gone
+        }
+    }
+}
+
+/// Moves a correction (and its mask file) into `dir/sub`.
+fn move_done(path: &Path, dir: &Path, mask: Option<&Path>, sub: &str) -> Option<PathBuf> {
+    let to = dir.join(sub);
+    if let Err(e) = fs::create_dir_all(&to) {
+        warn!(folder = %to.display(), "cannot create: {e}");
+        return None;
+    }
+    if let Some(m) = mask.filter(|m| m.is_file()) {
+        if let Err(e) = move_into(m, &to) {
+            warn!(file = %m.display(), "cannot move: {e}");
+        }
+    }
+    match move_into(path, &to) {
+        Ok(p) => Some(p),
+        Err(e) => {
+            warn!(file = %path.display(), "cannot move: {e}");
+            None
+        }
+    }
+}
+
+fn reject(path: &Path, dir: &Path, mask: Option<&Path>, reason: &str) -> Applied {
+    warn!("correction rejected: {reason}");
+    if let Some(target) = move_done(path, dir, mask, REJECTED) {
+        let name = target
+            .file_name()
+            .map(|n| n.to_string_lossy().into_owned())
+            .unwrap_or_default();
+        let text = format!(
+            "{}\n{reason}\n",
+            crate::record::rfc3339(std::time::SystemTime::now())
+        );
+        let rpath = dir.join(REJECTED).join(format!("{name}.reason.txt"));
+        if let Err(e) = write_atomic(&rpath, text.as_bytes()) {
+            warn!(file = %rpath.display(), "cannot write: {e}");
+        }
+    }
+    Applied::Rejected(reason.to_string())
+}

@@ -1,0 +1,101 @@
+//! The events log: `events.jsonl` in the logs folder, one JSON line per
+//! decision about the models and the labels: a retrain's gate decision
+//! (taken or refused, with both models' scores and the reason), a model
+//! put in service by hand, a changeover, a model registered at start.
+//!
+//! Each line is appended with one `write` and synced before the call
+//! returns; a reader passes over a torn last line. The log is never
+//! rewritten.
+
+use std::fs::OpenOptions;
+use std::io::Write;
+use std::path::{Path, PathBuf};
+
+use serde::{Deserialize, Serialize};
+
+use super::registry::GateScores;
+use crate::error::{Error, Result};
+
+/// The events log's file name in the logs folder.
+pub const FILE: &str = "events.jsonl";
+
+/// One line of the events log.
+#[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
+pub struct Event {
+    /// RFC 3339 UTC.
+    pub time: String,
+    /// "retrain", "use", "changeover", "registered".
+    pub event: String,
+    /// Who asked: "schedule", "operator", "start".
+    pub by: String,
+    /// "in-service", "refused", "kept", "recorded".
+    pub decision: String,
+    pub reason: String,
+    /// The model in service before, and the one decided about.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub running: Option<ModelRef>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub model: Option<ModelRef>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub gate: Option<GateScores>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub line: Option<u64>,
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub note: Option<String>,
+}
+
+/// A model named by version and hash.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct ModelRef {
+    pub version: u64,
+    pub hash: String,
+}
+
+/// The events log of one logs folder.
+#[derive(Clone, Debug)]
+pub struct EventsLog {
+    path: PathBuf,
+}
+
+impl EventsLog {
+    pub fn new(logs: &Path) -> EventsLog {
+        EventsLog {
+            path: logs.join(FILE),
+        }
+    }
+
+    pub fn path(&self) -> &Path {
+        &self.path
+    }
+
+    /// Appends one event and syncs it.
+    pub fn append(&self, mut event: Event) -> Result<()> {
+        if event.time.is_empty() {
+            event.time = crate::record::rfc3339(std::time::SystemTime::now());
+        }
+        let mut line = serde_json::to_string(&event).expect("event serialises");
+        line.push('\n');
+        let err = |e: std::io::Error| Error::from(e).with_path(&self.path);
+        let mut f = OpenOptions::new()
+            .create(true)
+            .append(true)
+            .open(&self.path)
+            .map_err(err)?;
+        f.write_all(line.as_bytes()).map_err(err)?;
+        f.sync_data().map_err(err)
+    }
+
+    /// Every event that parses, oldest first (a torn or foreign line is
+    /// passed over).
+    pub fn read(&self) -> Result<Vec<Event>> {
+        let text = match std::fs::read_to_string(&self.path) {
+            Ok(t) => t,
+            Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(Vec::new()),
+            Err(e) => return Err(Error::from(e).with_path(&self.path)),
+        };
+        Ok(text
+            .lines()
+            .filter_map(|l| serde_json::from_str(l).ok())
+            .collect())
+    }
+}

@@ -1,0 +1,331 @@
+//! The learner thread: owns the state folder's learning side
+//! ([`Learning`]) while the daemon runs. It applies the correction files
+//! the main loop hands it, answers the commands' requests, checks the
+//! retraining schedule, and runs a retrain on a job thread of its own at
+//! low priority with a time budget, so neither detection nor correction
+//! intake waits for training. A model to put in service is sent to the
+//! main loop, which swaps it in; `state/model.json` is already the new
+//! model by then.
+
+use std::path::PathBuf;
+use std::sync::atomic::{AtomicBool, Ordering};
+use std::sync::Arc;
+use std::thread;
+use std::time::{Duration, Instant};
+
+use arc_swap::ArcSwap;
+use crossbeam_channel::{bounded, select, Receiver, Sender};
+use tracing::{error, info, warn};
+
+use super::corrections;
+use super::learning::Learning;
+use super::requests::{self, Answer, Ask, Request};
+use super::retrain::{self, Challenge, Plan};
+use super::worker::Running;
+use crate::model::Model;
+
+/// What the main loop tells the learner.
+#[derive(Debug)]
+pub(super) enum ToLearner {
+    /// A correction file is ready to be read.
+    Correction(PathBuf),
+}
+
+/// What the learner tells the main loop.
+#[derive(Debug)]
+pub(super) enum FromLearner {
+    /// A correction handed over is finished (applied, rejected or left).
+    CorrectionDone(PathBuf),
+    /// Put this model in service (already in `state/model.json`).
+    InService(Box<Model>),
+}
+
+/// A retrain running on its job thread.
+struct Job {
+    done: Receiver<(Plan, crate::error::Result<Challenge>, Box<Model>)>,
+    stop: Arc<AtomicBool>,
+    by: String,
+    /// Requests to answer when it ends.
+    waiting: Vec<PathBuf>,
+    thread: thread::JoinHandle<()>,
+}
+
+/// The learner's state.
+pub(super) struct Learner {
+    learning: Learning,
+    running: Arc<ArcSwap<Running>>,
+    out: Sender<FromLearner>,
+    job: Option<Job>,
+    next_check: Instant,
+    /// The label generation of the last retrain tried, so a refused one is
+    /// not tried again with the same labels.
+    last_tried: Option<u64>,
+}
+
+/// Lowers the calling thread's scheduling priority (Linux: the nice value
+/// is per thread).
+fn lower_priority() {
+    // SAFETY: setpriority on this thread's id; no memory involved.
+    unsafe {
+        let tid = libc::syscall(libc::SYS_gettid) as libc::id_t;
+        libc::setpriority(libc::PRIO_PROCESS, tid, 10);
+    }
+}
+
+/// Gives freed heap memory back to the system (glibc keeps it otherwise).
+fn trim_heap() {
+    #[cfg(all(target_os = "linux", target_env = "gnu"))]
+    // SAFETY: malloc_trim only releases free memory of the allocator.
+    unsafe {
+        libc::malloc_trim(0);
+    }
+}
+
+impl Learner {
+    pub fn new(
+        learning: Learning,
+        running: Arc<ArcSwap<Running>>,
+        out: Sender<FromLearner>,
+    ) -> Learner {
+        let every = running.load().live.retrain.check_every;
+        Learner {
+            learning,
+            running,
+            out,
+            job: None,
+            next_check: Instant::now() + every,
+            last_tried: None,
+        }
+    }
+
+    /// Runs until `from_main` closes; a retrain still running is stopped.
+    pub fn run(mut self, from_main: Receiver<ToLearner>) {
+        let tick = crossbeam_channel::tick(Duration::from_millis(200));
+        loop {
+            let done = self.job.as_ref().map(|j| j.done.clone());
+            let done = done.unwrap_or_else(crossbeam_channel::never);
+            select! {
+                recv(from_main) -> m => match m {
+                    Ok(ToLearner::Correction(path)) => self.correction(path),
+                    Err(_) => break,
+                },
+                recv(done) -> r => {
+                    if let Ok((plan, result, running)) = r {
+                        self.finish_job(plan, result, &running);
+                    }
+                }
+                recv(tick) -> _ => {
+                    self.requests();
+                    self.schedule();
+                }
+            }
+        }
+        if let Some(job) = self.job.take() {
+            job.stop.store(true, Ordering::Relaxed);
+            let _ = job.thread.join();
+        }
+    }
+
+    fn correction(&mut self, path: PathBuf) {
+        let run = self.running.load_full();
+        let _ = corrections::apply(&path, &mut self.learning, &run.live, Some(&run.detector));
+        let _ = self.out.send(FromLearner::CorrectionDone(path));
+    }
+
+    fn requests(&mut self) {
+        for (path, req) in requests::pending(&self.learning.folders.state) {
+            match req {
+                Err(why) => requests::answer(
+                    &path,
+                    &Answer {
+                        ok: false,
+                        message: format!("cannot read the request: {why}"),
+                    },
+                ),
+                Ok(r) => self.request(path, r),
+            }
+        }
+    }
+
+    fn request(&mut self, path: PathBuf, r: Request) {
+        let reply = |ok: bool, message: String| requests::answer(&path, &Answer { ok, message });
+        match r.ask {
+            Ask::Changeover { note } => match self.learning.changeover(note, &r.by) {
+                Ok(line) => {
+                    info!(line = line.line, "changeover recorded");
+                    reply(
+                        true,
+                        format!(
+                            "line {} runs from now; the running model keeps running until a retrained one passes the gate",
+                            line.line
+                        ),
+                    )
+                }
+                Err(e) => reply(false, e.to_string()),
+            },
+            Ask::Use { version } => {
+                let running = self.running.load_full();
+                match self
+                    .learning
+                    .use_version(version, Some(running.detector.model()), &r.by)
+                {
+                    Ok(m) => {
+                        let hash = crate::detect::model_hash(&m);
+                        let _ = self.out.send(FromLearner::InService(Box::new(m)));
+                        reply(true, format!("version {version} ({hash}) is in service"))
+                    }
+                    Err(e) => reply(false, e.to_string()),
+                }
+            }
+            Ask::Retrain => {
+                if let Some(job) = &mut self.job {
+                    // Answered with that retrain's decision.
+                    job.waiting.push(path);
+                    return;
+                }
+                match self.start_job(&r.by) {
+                    Ok(()) => self.job.as_mut().expect("started").waiting.push(path),
+                    Err(why) => reply(false, format!("no retrain: {why}")),
+                }
+            }
+        }
+    }
+
+    /// Starts a scheduled retrain when it is due and worth it.
+    fn schedule(&mut self) {
+        let now = Instant::now();
+        if now < self.next_check {
+            return;
+        }
+        let run = self.running.load_full();
+        let rt = &run.live.retrain;
+        self.next_check = now + rt.check_every;
+        if !rt.enabled || self.job.is_some() {
+            return;
+        }
+        if let Some(q) = rt.quiet_hours {
+            if q.contains(local_minute()) {
+                return;
+            }
+        }
+        let Ok(entry) = self.learning.entry_of(run.detector.model()) else {
+            return;
+        };
+        let new = self.learning.new_labels(&entry);
+        if new < rt.min_new_labels || self.last_tried == Some(self.learning.labels.generation()) {
+            return;
+        }
+        match self.start_job("schedule") {
+            Ok(()) => info!(new_labels = new, "scheduled retrain started"),
+            Err(why) => info!("scheduled retrain not started: {why}"),
+        }
+    }
+
+    /// Plans a retrain and starts its job thread; or says why not.
+    fn start_job(&mut self, by: &str) -> std::result::Result<(), String> {
+        let run = self.running.load_full();
+        let plan = match retrain::plan(
+            &self.learning.folders.state,
+            &self.learning.labels,
+            &run.live,
+        ) {
+            Ok(Ok(p)) => p,
+            Ok(Err(why)) => return Err(why),
+            Err(e) => return Err(e.to_string()),
+        };
+        let entry = self
+            .learning
+            .entry_of(run.detector.model())
+            .map_err(|e| e.to_string())?;
+        let changeover = self
+            .learning
+            .changeover_since(&entry)
+            .map_err(|e| e.to_string())?;
+        self.last_tried = Some(plan.generation);
+        let stop = Arc::new(AtomicBool::new(false));
+        let (tx, rx) = bounded(1);
+        let model = Box::new(run.detector.model().clone());
+        let live = run.live.clone();
+        let flag = stop.clone();
+        let thread = thread::Builder::new()
+            .name("burlwatch-retrain".into())
+            .spawn(move || {
+                lower_priority();
+                let deadline = Instant::now() + live.retrain.budget;
+                let halt = || flag.load(Ordering::Relaxed) || Instant::now() >= deadline;
+                let result = retrain::challenge(&plan, &model, &live, changeover, &halt);
+                trim_heap();
+                let _ = tx.send((plan, result, model));
+            })
+            .map_err(|e| e.to_string())?;
+        self.job = Some(Job {
+            done: rx,
+            stop,
+            by: by.to_string(),
+            waiting: Vec::new(),
+            thread,
+        });
+        Ok(())
+    }
+
+    fn finish_job(&mut self, plan: Plan, result: crate::error::Result<Challenge>, running: &Model) {
+        let job = self.job.take().expect("a job ended");
+        let _ = job.thread.join();
+        trim_heap();
+        let (ok, message) = match result {
+            Err(e) => {
+                error!("retrain failed: {e}");
+                (false, format!("retrain failed: {e}"))
+            }
+            Ok(ch) => {
+                let reason = ch.reason.clone();
+                match self.learning.decide(&plan, ch, running, &job.by) {
+                    Ok(Some(m)) => {
+                        let msg = format!(
+                            "version {} ({}) is in service: {reason}",
+                            m.model_version,
+                            crate::detect::model_hash(&m)
+                        );
+                        info!("{msg}");
+                        let _ = self.out.send(FromLearner::InService(Box::new(m)));
+                        (true, msg)
+                    }
+                    Ok(None) => {
+                        let msg = format!("the running model stays: {reason}");
+                        info!("{msg}");
+                        (true, msg)
+                    }
+                    Err(e) => {
+                        error!("cannot record the retrain's decision: {e}");
+                        (false, format!("cannot record the decision: {e}"))
+                    }
+                }
+            }
+        };
+        for path in job.waiting {
+            requests::answer(
+                &path,
+                &Answer {
+                    ok,
+                    message: message.clone(),
+                },
+            );
+        }
+        if !ok {
+            warn!("{message}");
+        }
+    }
+}
+
+/// Minutes after local midnight now.
+fn local_minute() -> u32 {
+    // SAFETY: localtime_r writes into the struct we pass; time() reads the clock.
+    unsafe {
+        let t = libc::time(std::ptr::null_mut());
+        let mut tm: libc::tm = std::mem::zeroed();
+        if libc::localtime_r(&t, &mut tm).is_null() {
+            return 0;
+        }
+        (tm.tm_hour * 60 + tm.tm_min) as u32
+    }
+}

@@ -1,0 +1,234 @@
+//! The learning loop's state-folder side: the registry, the labels, the
+//! lines and the events log together, and the operations on them that the
+//! daemon's learner thread and the offline commands (`retrain`,
+//! `changeover`, `models use` with no daemon running) share. Whoever holds
+//! the state lock holds the one `Learning` of a state folder.
+
+use std::path::Path;
+
+use tracing::info;
+
+use super::events::{Event, EventsLog, ModelRef};
+use super::labels::{self, LabelSet, Line};
+use super::registry::{self, Entry, Origin, Registry, TrainedOn};
+use super::retrain::{Challenge, Plan};
+use crate::config::{Folders, LiveConfig};
+use crate::detect::model_hash;
+use crate::error::{Error, ErrorKind, Result};
+use crate::model::Model;
+
+/// The state folder's learning side, held by the holder of the lock.
+#[derive(Debug)]
+pub struct Learning {
+    pub folders: Folders,
+    pub registry: Registry,
+    pub labels: LabelSet,
+    pub events: EventsLog,
+}
+
+/// A model reference for the events log.
+pub fn model_ref(m: &Model) -> ModelRef {
+    ModelRef {
+        version: m.model_version,
+        hash: model_hash(m),
+    }
+}
+
+impl Learning {
+    /// Opens the registry, labels and events log of `folders` (absolute,
+    /// existing), for a model of `window`.
+    pub fn open(
+        folders: &Folders,
+        live: &LiveConfig,
+        window: crate::window::Window,
+    ) -> Result<Learning> {
+        Ok(Learning {
+            folders: folders.clone(),
+            registry: Registry::open(&folders.state)?,
+            labels: LabelSet::open(&folders.state, window, &live.limits)?,
+            events: EventsLog::new(&folders.logs),
+        })
+    }
+
+    fn state(&self) -> &Path {
+        &self.folders.state
+    }
+
+    /// Registers the model in service if it is not yet (see
+    /// [`registry::register_in_service`]), with an event when it is new.
+    pub fn in_service(
+        &self,
+        model: Model,
+        origin: Origin,
+        trained_on: TrainedOn,
+    ) -> Result<(Model, Entry)> {
+        let known = self
+            .registry
+            .find(model.model_version, &model_hash(&model))?
+            .is_some();
+        let (model, entry) =
+            registry::register_in_service(self.state(), &self.registry, model, origin, trained_on)?;
+        if !known {
+            self.events.append(Event {
+                event: "registered".into(),
+                by: "start".into(),
+                decision: "in-service".into(),
+                reason: entry.reason.clone(),
+                model: Some(model_ref(&model)),
+                line: Some(entry.trained_on.line),
+                ..Event::default()
+            })?;
+            info!(version = entry.version, hash = %entry.hash, "model registered");
+        }
+        Ok((model, entry))
+    }
+
+    /// The entry of the model in service (registered by `in_service`).
+    pub fn entry_of(&self, model: &Model) -> Result<Entry> {
+        self.registry
+            .find(model.model_version, &model_hash(model))?
+            .ok_or_else(|| {
+                Error::new(ErrorKind::Data(format!(
+                    "the model in service (version {}) is not in the registry",
+                    model.model_version
+                )))
+                .with_path(self.state().join(registry::DIR))
+            })
+    }
+
+    /// Labelled frames added since `model` was trained.
+    pub fn new_labels(&self, entry: &Entry) -> u64 {
+        self.labels
+            .labels()
+            .iter()
+            .filter(|l| l.generation > entry.trained_on.labels_generation)
+            .count() as u64
+    }
+
+    /// Whether a changeover happened since `entry`'s model was trained:
+    /// it was trained for an older line than the one now running.
+    pub fn changeover_since(&self, entry: &Entry) -> Result<bool> {
+        let lines = labels::read_lines(self.state())?;
+        Ok(lines.last().map_or(1, |l| l.line) > entry.trained_on.line)
+    }
+
+    /// Registers a retrain's challenger, puts it in service when it passed
+    /// the gate, and writes the decision to the events log. Returns the
+    /// model now to run when it changed.
+    pub fn decide(
+        &mut self,
+        plan: &Plan,
+        ch: Challenge,
+        running: &Model,
+        by: &str,
+    ) -> Result<Option<Model>> {
+        let running_entry = self.entry_of(running)?;
+        let mut event = Event {
+            event: "retrain".into(),
+            by: by.into(),
+            running: Some(model_ref(running)),
+            gate: Some(ch.gate.clone()),
+            line: Some(plan.line),
+            reason: ch.reason.clone(),
+            ..Event::default()
+        };
+        let Ok(mut model) = ch.model else {
+            event.decision = "kept".into();
+            self.events.append(event)?;
+            return Ok(None);
+        };
+        model.model_version = self.registry.next_version(Some(running.model_version))?;
+        let names = plan.train.iter().map(|f| f.name.clone()).collect();
+        let entry = self.registry.add(
+            &model,
+            Entry {
+                version: 0,
+                hash: String::new(),
+                parent: Some(running_entry.version),
+                time: crate::record::rfc3339(std::time::SystemTime::now()),
+                origin: Origin::Retrain,
+                trained_on: TrainedOn {
+                    line: plan.line,
+                    frames: plan.train.len() as u64,
+                    pixels: ch.pixels,
+                    names,
+                    labels_generation: plan.generation,
+                },
+                passed: ch.passed,
+                reason: ch.reason.clone(),
+                gate: Some(ch.gate.clone()),
+            },
+        )?;
+        event.model = Some(ModelRef {
+            version: entry.version,
+            hash: entry.hash.clone(),
+        });
+        if ch.passed {
+            registry::put_in_service(self.state(), &model)?;
+            event.decision = "in-service".into();
+            self.events.append(event)?;
+            Ok(Some(model))
+        } else {
+            event.decision = "refused".into();
+            self.events.append(event)?;
+            Ok(None)
+        }
+    }
+
+    /// Puts registered `version` in service by hand (an earlier or a
+    /// refused model). Returns it.
+    pub fn use_version(
+        &mut self,
+        version: u64,
+        running: Option<&Model>,
+        by: &str,
+    ) -> Result<Model> {
+        let entry = self.registry.entry(version)?.ok_or_else(|| {
+            let known: Vec<String> = self
+                .registry
+                .entries()
+                .unwrap_or_default()
+                .iter()
+                .map(|e| e.version.to_string())
+                .collect();
+            Error::new(ErrorKind::Data(format!(
+                "no model version {version} in the registry (versions: {})",
+                if known.is_empty() {
+                    "none".into()
+                } else {
+                    known.join(", ")
+                }
+            )))
+        })?;
+        let model = self.registry.model(&entry)?;
+        registry::put_in_service(self.state(), &model)?;
+        self.events.append(Event {
+            event: "use".into(),
+            by: by.into(),
+            decision: "in-service".into(),
+            reason: format!("version {version} put in service by hand"),
+            running: running.map(model_ref),
+            model: Some(model_ref(&model)),
+            line: Some(entry.trained_on.line),
+            ..Event::default()
+        })?;
+        Ok(model)
+    }
+
+    /// Records a changeover, with an event.
+    pub fn changeover(&mut self, note: Option<String>, by: &str) -> Result<Line> {
+        let now = crate::record::rfc3339(std::time::SystemTime::now());
+        let line = labels::changeover(self.state(), &now, note.clone())?;
+        self.events.append(Event {
+            time: now,
+            event: "changeover".into(),
+            by: by.into(),
+            decision: "recorded".into(),
+            reason: format!("line {} runs from now; the running model keeps running until a retrained one passes the gate", line.line),
+            line: Some(line.line),
+            note,
+            ..Event::default()
+        })?;
+        Ok(line)
+    }
+}

@@ -1,0 +1,256 @@
+//! Retraining: which labelled frames a challenger is grown on and judged
+//! on ([`plan`]), growing it and scoring it against the model in service
+//! ([`challenge`], pure computation, run on a background thread at low
+//! priority with a time budget), and the decision ([`Learning::decide`]):
+//! registered either way, put in service only if it passed the gate,
+//! one line in the events log either way.
+//!
+//! The gate: both models are scored, with the detection settings of the
+//! live configuration, on the held-out frames of the line now running
+//! (role [`Role::Gate`]: chosen by content hash, never trained on by either,
+//! since every model the daemon trains leaves them out). The challenger
+//! goes in service only if its object F1 there is at least the running
+//! model's plus `retrain.margin`, and higher (a tie keeps the running
+//! model); and, unless a changeover happened since the running model went
+//! in service, if it loses at most `retrain.tolerance` on the older lines'
+//! held-out frames.
+//!
+//! Which labels: those of the line now running (the seed data counts as
+//! line 1's), and, with `retrain.older_lines`, older lines' training
+//! frames too. "Enough" is `retrain.min_line_labels` labelled frames of the
+//! line, at least one held out with a defect and one to train on with a
+//! defect.
+
+use std::path::Path;
+
+use crate::config::LiveConfig;
+use crate::error::{Error, ErrorKind, Result};
+use crate::frame::LabelledFrame;
+use crate::learn;
+use crate::model::Model;
+use crate::score;
+
+use super::labels::{self, role_key, role_of, LabelSet, Role};
+use super::registry::GateScores;
+
+/// What a retrain will train on and be judged on.
+#[derive(Debug)]
+pub struct Plan {
+    /// The line now running.
+    pub line: u64,
+    pub train: Vec<LabelledFrame>,
+    /// Held-out frames of the line now running.
+    pub gate: Vec<LabelledFrame>,
+    /// Held-out frames of older lines.
+    pub older_gate: Vec<LabelledFrame>,
+    /// The label set's generation the plan was made at.
+    pub generation: u64,
+}
+
+/// The seed data's frames with their roles (line 1's first labels); an
+/// empty list without seed data.
+pub fn seed_frames(live: &LiveConfig) -> Result<Vec<(LabelledFrame, Role)>> {
+    let Some(seed) = &live.seed_data else {
+        return Ok(Vec::new());
+    };
+    if !seed.is_dir() {
+        return Ok(Vec::new());
+    }
+    let folder = crate::fileio::data::read_folder(seed, &live.limits, &mut |_, _| {})?;
+    if let Some(p) = folder.problems.first() {
+        return Err(Error::new(ErrorKind::Data(format!(
+            "seed data has {} bad file(s), first: {p}",
+            folder.problems.len()
+        ))));
+    }
+    Ok(folder
+        .frames
+        .into_iter()
+        .map(|mut f| {
+            let role = role_of(&role_key(&f.frame), live.retrain.gate_share);
+            f.name = format!("seed:{}", f.name);
+            (f, role)
+        })
+        .collect())
+}
+
+/// The frames a retrain of the line now running would use, or why there
+/// are not enough yet.
+pub fn plan(
+    state: &Path,
+    labels: &LabelSet,
+    live: &LiveConfig,
+) -> Result<std::result::Result<Plan, String>> {
+    let lines = labels::read_lines(state)?;
+    let line = lines.last().map_or(1, |l| l.line);
+    let older: Vec<u64> = lines.iter().map(|l| l.line).filter(|&l| l < line).collect();
+    let mut train = labels.frames(&[line], Role::Train)?;
+    let mut gate = labels.frames(&[line], Role::Gate)?;
+    let mut older_gate = labels.frames(&older, Role::Gate)?;
+    if live.retrain.older_lines {
+        train.extend(labels.frames(&older, Role::Train)?);
+    }
+    let seed = seed_frames(live)?;
+    for (f, role) in seed {
+        match (role, line == 1) {
+            (Role::Gate, true) => gate.push(f),
+            (Role::Train, true) => train.push(f),
+            (Role::Gate, false) => older_gate.push(f),
+            (Role::Train, false) if live.retrain.older_lines => train.push(f),
+            (Role::Train, false) => {}
+        }
+    }
+    let on_line = (gate.len() + train.len()) as u64
+        - if live.retrain.older_lines && line > 1 {
+            train.iter().filter(|f| !is_line(labels, f, line)).count() as u64
+        } else {
+            0
+        };
+    let has_targets = |v: &[LabelledFrame]| v.iter().any(|f| f.truth().count_set() > 0);
+    let why = if on_line < live.retrain.min_line_labels {
+        Some(format!(
+            "line {line} has {on_line} labelled frame(s); retrain.min_line_labels is {}",
+            live.retrain.min_line_labels
+        ))
+    } else if !has_targets(&gate) {
+        Some(format!(
+            "no held-out frame of line {line} has a defect to judge a model on (label more frames with defects)"
+        ))
+    } else if !has_targets(&train) {
+        Some(format!(
+            "no training frame of line {line} has a defect (label more frames with defects)"
+        ))
+    } else {
+        None
+    };
+    Ok(match why {
+        Some(w) => Err(w),
+        None => Ok(Plan {
+            line,
+            train,
+            gate,
+            older_gate,
+            generation: labels.generation(),
+        }),
+    })
+}
+
+/// Whether `f` is a labelled frame of `line` in the label set (seed frames
+/// are line 1's).
+fn is_line(labels: &LabelSet, f: &LabelledFrame, line: u64) -> bool {
+    match f.name.strip_prefix("seed:") {
+        Some(_) => line == 1,
+        None => labels.get(&f.name).is_some_and(|l| l.line == line),
+    }
+}
+
+/// A grown challenger and how it fared at the gate.
+#[derive(Debug)]
+pub struct Challenge {
+    /// The challenger (its version not yet set), or why none was grown.
+    pub model: std::result::Result<Model, String>,
+    pub gate: GateScores,
+    pub passed: bool,
+    pub reason: String,
+    /// Labelled pixels it was grown on.
+    pub pixels: u64,
+}
+
+/// Object F1 of `model` (under the live overrides) on `frames`.
+fn object_f1(model: &Model, live: &LiveConfig, frames: &[LabelledFrame]) -> Result<f64> {
+    let detector = super::start::detector(model.clone(), live)?;
+    let r = score::score_frames(&detector, frames, false, &mut |_, _| {})?;
+    Ok(r.total.object.f1())
+}
+
+/// Grows a challenger on the plan's training frames and judges it against
+/// `running` at the gate (see the module docs). `stop` is asked while
+/// growing (the time budget). `changeover_since` says whether a changeover
+/// happened since `running` went in service.
+pub fn challenge(
+    plan: &Plan,
+    running: &Model,
+    live: &LiveConfig,
+    changeover_since: bool,
+    stop: &dyn Fn() -> bool,
+) -> Result<Challenge> {
+    let running_f1 = object_f1(running, live, &plan.gate)?;
+    let running_older = if plan.older_gate.is_empty() {
+        None
+    } else {
+        Some(object_f1(running, live, &plan.older_gate)?)
+    };
+    let mut gate = GateScores {
+        line: plan.line,
+        frames: plan.gate.len() as u64,
+        f1: 0.0,
+        running_f1,
+        older_frames: plan.older_gate.len() as u64,
+        older_f1: None,
+        running_older_f1: running_older,
+    };
+    let pixels = plan.train.iter().map(|f| f.known_pixels()).sum();
+    let mut params = live.training.clone();
+    params.window = running.tree.window();
+    if let Some(w) = live.window {
+        params.window = w;
+    }
+    let model = match learn::train_with(&plan.train, &params, &mut |_| {}, stop) {
+        Ok(m) => m,
+        Err(e) => {
+            return Ok(Challenge {
+                reason: format!("no challenger: {}", e.kind()),
+                model: Err(e.kind().to_string()),
+                gate,
+                passed: false,
+                pixels,
+            })
+        }
+    };
+    gate.f1 = object_f1(&model, live, &plan.gate)?;
+    if !plan.older_gate.is_empty() {
+        gate.older_f1 = Some(object_f1(&model, live, &plan.older_gate)?);
+    }
+    let m = live.retrain.margin;
+    let (passed, reason) = if gate.f1 <= running_f1 {
+        (
+            false,
+            format!(
+                "object F1 {:.3} on line {}'s {} held-out frame(s) is not above the running model's {:.3}",
+                gate.f1, plan.line, gate.frames, running_f1
+            ),
+        )
+    } else if gate.f1 < running_f1 + m {
+        (
+            false,
+            format!(
+                "object F1 {:.3} on line {}'s held-out frames gains less than retrain.margin {m} over the running model's {:.3}",
+                gate.f1, plan.line, running_f1
+            ),
+        )
+    } else {
+        match (gate.older_f1, running_older, changeover_since) {
+            (Some(new), Some(old), false) if new < old - live.retrain.tolerance => (
+                false,
+                format!(
+                    "object F1 {new:.3} on older lines' {} held-out frame(s) loses more than retrain.tolerance {} against the running model's {old:.3}",
+                    gate.older_frames, live.retrain.tolerance
+                ),
+            ),
+            _ => (
+                true,
+                format!(
+                    "object F1 {:.3} on line {}'s {} held-out frame(s) beats the running model's {:.3}",
+                    gate.f1, plan.line, gate.frames, running_f1
+                ),
+            ),
+        }
+    };
+    Ok(Challenge {
+        model: Ok(model),
+        gate,
+        passed,
+        reason,
+        pixels,
+    })
+}
