@@ -5,11 +5,15 @@
 //!
 //! - offline: `train`, `scan`, `eval`, `rules`, `generate`, `bench`;
 //! - the daemon: `run` (with `notify` for systemd), `check`, `demo`;
+//! - the learning loop: `mark` (a correction file), `changeover`,
+//!   `retrain`, `models`; `state` is how they reach a running daemon
+//!   (request files) or, with none, take the state lock themselves;
 //! - `progress`: the progress bar the long offline commands draw.
 //!
 //! Exit codes: 0 success; 1 the command failed; 2 the command line was
 //! wrong (the argument parser's usage error); 3 it finished, but some input
-//! files were bad (each named on stderr) and were passed over.
+//! files were bad (each named on stderr) and were passed over; 4 a running
+//! daemon did not answer a request in time (it stays, to be carried out).
 
 /// `println!` that ends the program quietly when stdout is closed early
 /// (`burlwatch rules ... | head`) and reports other write errors.
@@ -26,15 +30,20 @@ macro_rules! out {
 }
 
 mod bench;
+mod changeover;
 mod check;
 mod demo;
 mod eval;
 mod generate;
+mod mark;
+mod models;
 mod notify;
 mod progress;
+mod retrain;
 mod rules;
 mod run;
 mod scan;
+mod state;
 mod train;
 
 use std::path::{Path, PathBuf};
@@ -81,6 +90,14 @@ enum Command {
     Check(check::CheckArgs),
     /// Show the daemon at work on the demo frames, in a temporary folder.
     Demo(demo::DemoArgs),
+    /// Write a correction file: where detection on an archived frame was wrong.
+    Mark(mark::MarkArgs),
+    /// Record that the line now runs something new (a new fabric).
+    Changeover(changeover::ChangeoverArgs),
+    /// Grow a challenger model from the labels now and put it through the gate.
+    Retrain(retrain::RetrainArgs),
+    /// List, show or put in service the registered models.
+    Models(models::ModelsArgs),
 }
 
 /// Frame decoding options shared by the commands that read frames.
@@ -183,6 +200,10 @@ pub fn run(args: Args) -> Result<i32> {
         Command::Run(a) => run::run(a),
         Command::Check(a) => check::run(a),
         Command::Demo(a) => demo::run(a),
+        Command::Mark(a) => mark::run(a),
+        Command::Changeover(a) => changeover::run(a),
+        Command::Retrain(a) => retrain::run(a),
+        Command::Models(a) => models::run(a),
     }
 }
 

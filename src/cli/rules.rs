@@ -21,12 +21,19 @@ pub struct RulesArgs {
 
 pub fn run(a: RulesArgs) -> Result<i32> {
     let m = load_model(&a.model)?;
-    let rules = rules::list(&m.tree, m.threshold);
     if a.json {
+        let rules = rules::list(&m.tree, m.threshold);
         let file: Vec<RuleJson> = rules.iter().map(RuleJson::from).collect();
         out!("{}", serde_json::to_string_pretty(&file)?);
         return Ok(0);
     }
+    print(&m)?;
+    Ok(0)
+}
+
+/// Prints a model's rules as text (also `models show`).
+pub(super) fn print(m: &burlwatch::model::Model) -> Result<()> {
+    let rules = rules::list(&m.tree, m.threshold);
     let w = m.tree.window();
     out!(
         "model version {}: {} rules over a {}x{} window; pixel (dx,dy) is relative to the centre, +x right, +y down",
@@ -59,5 +66,5 @@ pub fn run(a: RulesArgs) -> Result<i32> {
             if r.detects { " => DETECT" } else { "" }
         );
     }
-    Ok(0)
+    Ok(())
 }

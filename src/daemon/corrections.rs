@@ -20,8 +20,9 @@ use std::path::{Path, PathBuf};
 
 use tracing::{info, warn};
 
-use super::labels::{line_at, read_lines, role_key, role_of, Label, Source};
+use super::labels::{read_lines, role_key, role_of, Label, Source};
 use super::learning::Learning;
+use super::registry::Registry;
 use crate::codec;
 use crate::config::{Folders, LiveConfig};
 use crate::correct::{check_name, Correction};
@@ -52,10 +53,15 @@ pub struct Prepared {
     pub mask_file: Option<PathBuf>,
 }
 
-/// The record of `frame` with `sha256` in the detection log, newest file
-/// first. Each file is read through once, line by line; only lines holding
-/// the hash are parsed.
-pub fn find_record(logs: &Path, frame: &str, sha256: &str) -> Result<Option<FrameRecord>> {
+/// The record of `frame` with `sha256` (any hash when `None`) in the
+/// detection log: the latest such record of the newest file holding one.
+/// Each file is read through once, line by line; only lines holding the
+/// hash (or the name) are parsed.
+pub fn find_record(logs: &Path, frame: &str, sha256: Option<&str>) -> Result<Option<FrameRecord>> {
+    let needle = match sha256 {
+        Some(h) => h.to_string(),
+        None => serde_json::to_string(frame).expect("a string serialises"),
+    };
     let mut files: Vec<PathBuf> = match fs::read_dir(logs) {
         Ok(rd) => rd
             .flatten()
@@ -93,11 +99,11 @@ pub fn find_record(logs: &Path, frame: &str, sha256: &str) -> Result<Option<Fram
                 Err(e) if e.kind() == std::io::ErrorKind::InvalidData => continue,
                 Err(e) => return Err(Error::from(e).with_path(path)),
             }
-            if !line.contains(sha256) {
+            if !line.contains(&needle) {
                 continue;
             }
             if let Ok(r) = serde_json::from_str::<FrameRecord>(line.trim_end()) {
-                if r.frame == frame && r.sha256 == sha256 {
+                if r.frame == frame && sha256.is_none_or(|h| r.sha256 == h) {
                     // The latest record of the frame wins.
                     found = Some(r);
                 }
@@ -162,7 +168,7 @@ pub fn find_archived(
 fn record_detector(
     record: &FrameRecord,
     running: Option<&Detector>,
-    learning: &Learning,
+    registry: &Registry,
     live: &LiveConfig,
 ) -> Result<Detector> {
     if let Some(d) = running {
@@ -172,7 +178,7 @@ fn record_detector(
             return super::start::detector(d.model().clone(), live);
         }
     }
-    let entries = learning.registry.entries()?;
+    let entries = registry.entries()?;
     let entry = entries
         .iter()
         .filter(|e| e.version == record.model_version)
@@ -184,7 +190,7 @@ fn record_detector(
                 record.model_version, record.model_hash
             ))
         })?;
-    super::start::detector(learning.registry.model(entry)?, live)
+    super::start::detector(registry.model(entry)?, live)
 }
 
 /// Checks a correction's text against the frame it names and builds its
@@ -195,14 +201,14 @@ pub fn prepare(
     dir: &Path,
     folders: &Folders,
     live: &LiveConfig,
-    learning: &Learning,
+    registry: &Registry,
     running: Option<&Detector>,
 ) -> Result<Prepared> {
     let text = std::str::from_utf8(text).map_err(|_| bad("the file is not UTF-8 text"))?;
     let c = Correction::parse(text)?;
     c.check_statements()?;
     check_name(&c.frame)?;
-    let Some(record) = find_record(&folders.logs, &c.frame, &c.sha256)? else {
+    let Some(record) = find_record(&folders.logs, &c.frame, Some(&c.sha256))? else {
         if folders.rejected.join(&c.frame).exists() {
             return Err(bad(format!(
                 "frame {} was rejected (see {}), so it has no detection to correct",
@@ -222,7 +228,7 @@ pub fn prepare(
     let (_, bytes) = find_archived(&folders.archive, &c.frame, &c.sha256, live)?;
     let frame = codec::decode(&bytes, &live.limits)?;
     let detected = if c.needs_detection() {
-        let d = record_detector(&record, running, learning, live)?;
+        let d = record_detector(&record, running, registry, live)?;
         let r = d.detect(&frame, &mut Scratch::default());
         let boxes = |v: &[crate::record::ObjectRecord]| -> Vec<[u32; 4]> {
             v.iter().map(|o| o.bbox).collect()
@@ -325,7 +331,7 @@ pub fn apply(
         return Applied::Applied(label);
     }
     let folders = learning.folders.clone();
-    let prepared = match prepare(&bytes, &dir, &folders, live, learning, running) {
+    let prepared = match prepare(&bytes, &dir, &folders, live, &learning.registry, running) {
         Ok(p) => p,
         Err(e) => {
             let mask = Correction::parse(std::str::from_utf8(&bytes).unwrap_or(""))
@@ -349,7 +355,10 @@ pub fn apply(
         frame: prepared.record.frame.clone(),
         sha256: prepared.record.sha256.clone(),
         stem: String::new(),
-        line: line_at(&lines, &prepared.record.time),
+        // The line a label belongs to is the one running when it was
+        // applied: the operator records a changeover when the new fabric
+        // shows, often after its first frames were detected.
+        line: lines.last().map_or(1, |l| l.line),
         role: role_of(&role_key(&prepared.labelled.frame), live.retrain.gate_share),
         targets: false,
         pixels: 0,

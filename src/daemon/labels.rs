@@ -26,7 +26,10 @@
 //! come later and whichever correction of it is the latest.
 //!
 //! `state/lines.json` lists the changeovers; the first line starts at the
-//! beginning of time and its labels include the seed data.
+//! beginning of time and its labels include the seed data. A label belongs
+//! to the line running when its correction was applied (the operator
+//! records a changeover when the new fabric shows, often after its first
+//! frames were detected).
 
 use std::collections::BTreeMap;
 use std::fs;
@@ -165,17 +168,6 @@ pub fn changeover(state: &Path, now: &str, note: Option<String>) -> Result<Line>
     let text = serde_json::to_string_pretty(&lines).expect("lines serialise") + "\n";
     write_atomic(&path, text.as_bytes()).map_err(|e| Error::from(e).with_path(&path))?;
     Ok(line)
-}
-
-/// The line that ran at `time` (RFC 3339 UTC, as records and changeovers
-/// write it, so the text order is the time order).
-pub fn line_at(lines: &[Line], time: &str) -> u64 {
-    lines
-        .iter()
-        .filter(|l| l.since.as_str() <= time)
-        .map(|l| l.line)
-        .max()
-        .unwrap_or(1)
 }
 
 /// The labels of one state folder.
@@ -483,7 +475,7 @@ mod tests {
     fn lf(name: &str, k: usize) -> LabelledFrame {
         LabelledFrame::new(
             name,
-            BitFrame::from_fn(24, 16, |x, y| (x * 3 + y * 5 + k) % 7 == 0),
+            BitFrame::from_fn(24, 16, |x, y| (x * 3 + y * 5 + k).is_multiple_of(7)),
             BitFrame::from_fn(24, 16, |x, y| x > 10 + k && y < 4),
         )
     }
@@ -530,7 +522,7 @@ mod tests {
     }
 
     #[test]
-    fn roles_follow_the_hash_and_lines_the_time() {
+    fn roles_follow_the_hash_and_changeovers_start_lines() {
         assert_eq!(role_of("0000000000000000ff", 0.3), Role::Gate);
         // 0x4c.. / 2^64 is 0.297; 0x4d.. is 0.301.
         assert_eq!(role_of("4c00000000000000", 0.3), Role::Gate);
@@ -541,7 +533,7 @@ mod tests {
         let l = changeover(d.path(), "2026-12-02T10:00:00.000Z", Some("denim".into())).unwrap();
         assert_eq!(l.line, 2);
         let lines = read_lines(d.path()).unwrap();
-        assert_eq!(line_at(&lines, "2026-12-02T09:59:59.999Z"), 1);
-        assert_eq!(line_at(&lines, "2026-12-02T10:00:00.000Z"), 2);
+        assert_eq!(lines.len(), 2);
+        assert_eq!(lines[1].note.as_deref(), Some("denim"));
     }
 }

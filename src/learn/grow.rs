@@ -218,7 +218,7 @@ pub fn grow_until(
     let mut splits = 0u32;
     while let Some(job) = stack.pop() {
         splits = splits.wrapping_add(1);
-        if splits % 64 == 0 && stop() {
+        if splits.is_multiple_of(64) && stop() {
             return None;
         }
         let node = &nodes[job.id];
