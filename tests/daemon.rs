@@ -126,6 +126,11 @@ impl Setup {
         let mut files: Vec<PathBuf> = std::fs::read_dir(&logs)
             .map(|d| d.filter_map(|e| e.ok()).map(|e| e.path()).collect())
             .unwrap_or_default();
+        // The events log lives beside the detection log.
+        files.retain(|p| {
+            p.file_name()
+                .is_some_and(|n| n.to_string_lossy().starts_with("detections"))
+        });
         files.sort_by_key(|p| (p.ends_with("detections.jsonl"), p.clone()));
         let mut out = Vec::new();
         for f in files {

@@ -103,11 +103,16 @@ impl Box_ {
         }
     }
 
-    /// Every record in every log file.
+    /// Every record in every detection log file (the events log beside
+    /// them is not one).
     fn records(&self) -> Vec<FrameRecord> {
         let mut out = Vec::new();
         for e in std::fs::read_dir(self.dir.join("logs")).unwrap() {
-            let text = std::fs::read_to_string(e.unwrap().path()).unwrap();
+            let path = e.unwrap().path();
+            if !path.to_string_lossy().contains("detections") {
+                continue;
+            }
+            let text = std::fs::read_to_string(path).unwrap();
             for line in text.lines() {
                 out.push(serde_json::from_str(line).unwrap());
             }

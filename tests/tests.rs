@@ -10,7 +10,9 @@
 //! - `daemon`: `burlwatch run` end to end: bursts, slow writers, bad files,
 //!   kills, signals, lost events;
 //! - `inprocess`: the daemon driven in-process, with the clock, ticks,
-//!   control channel and disk faults in the test's hands.
+//!   control channel and disk faults in the test's hands;
+//! - `learning`: corrections, changeovers, retraining behind the gate and
+//!   the model registry, through the real binary, with kills.
 
 mod util;
 
@@ -18,6 +20,7 @@ mod cli;
 mod compiled;
 mod daemon;
 mod inprocess;
+mod learning;
 mod properties;
 mod reference_images;
 mod reference_learning;

@@ -242,6 +242,13 @@ impl Learner {
             .changeover_since(&entry)
             .map_err(|e| e.to_string())?;
         self.last_tried = Some(plan.generation);
+        info!(
+            by,
+            line = plan.line,
+            train = plan.train.len(),
+            held_out = plan.gate.len(),
+            "retrain started"
+        );
         let stop = Arc::new(AtomicBool::new(false));
         let (tx, rx) = bounded(1);
         let model = Box::new(run.detector.model().clone());

@@ -1,0 +1,764 @@
+//! The learning loop end to end, through the real binary: the operator's
+//! corrections (`mark`, files dropped by hand), changeovers, retraining
+//! behind the gate, the registry (`models`), and kills in the middle.
+//!
+//! Quality is measured on frames of a coarser weave (`LoomParams::
+//! alternate`) than the seed data (`standard`): the committed
+//! `demo-frames/drifted` set is too close to the seed weave to show a
+//! retrain's gain (the seed model already scores object F1 0.79 on it), so
+//! the scripted session uses a harder setting of our own generator.
+//!
+//! These tests wait by polling with generous deadlines; they never assert
+//! on how long anything took.
+
+use std::collections::HashSet;
+use std::path::PathBuf;
+use std::process::{Child, Command, Stdio};
+use std::time::{Duration, Instant};
+
+use burlwatch::codec;
+use burlwatch::config;
+use burlwatch::daemon::labels::LabelSet;
+use burlwatch::daemon::registry::Registry;
+use burlwatch::daemon::start;
+use burlwatch::frame::LabelledFrame;
+use burlwatch::learn::store::LabelStore;
+use burlwatch::record::FrameRecord;
+use burlwatch::synth::{self, LoomParams};
+
+use crate::util::{burlwatch, Dir, Run};
+
+/// Frame side of these tests: small enough for quick training in the test
+/// profile, large enough for several defects per frame.
+const SIDE: usize = 128;
+
+fn params(base: LoomParams) -> LoomParams {
+    LoomParams {
+        width: SIDE,
+        height: SIDE,
+        ..base
+    }
+}
+
+/// `(name, frame PBM bytes, mask)` of `count` generated frames.
+fn generated(
+    p: &LoomParams,
+    seed: u64,
+    count: usize,
+    prefix: &str,
+) -> Vec<(String, Vec<u8>, LabelledFrame)> {
+    synth::generate_set(p, seed, count)
+        .into_iter()
+        .enumerate()
+        .map(|(i, g)| {
+            let name = format!("{prefix}-{i:04}.pbm");
+            let bytes = codec::encode_pbm(&g.frame);
+            (
+                name.clone(),
+                bytes,
+                LabelledFrame::new(name, g.frame, g.mask),
+            )
+        })
+        .collect()
+}
+
+/// A box: folders, seed data of the standard weave, a configuration.
+struct Box_ {
+    dir: Dir,
+}
+
+impl Box_ {
+    fn new(extra: &str) -> Box_ {
+        let dir = Dir::new();
+        let b = Box_ { dir };
+        let seed = b.dir.join("seed");
+        std::fs::create_dir_all(&seed).unwrap();
+        for (name, _, lf) in generated(&params(LoomParams::standard()), 1, 40, "seed") {
+            let stem = name.trim_end_matches(".pbm");
+            burlwatch::fileio::data::write_pair(&seed, stem, &lf.frame, &lf.mask).unwrap();
+        }
+        let d = b.dir.path();
+        let text = format!(
+            "[folders]\ninbox = {:?}\narchive = {:?}\nrejected = {:?}\ncorrections = {:?}\n\
+             state = {:?}\nlogs = {:?}\n[training]\nseed_data = {:?}\n\
+             [watch]\nsettle_millis = 50\nrescan_seconds = 0.2\n[log]\nsummary_seconds = 0\n\
+             [retrain]\ncheck_minutes = 600\nmin_line_labels = 6\n{extra}",
+            d.join("inbox"),
+            d.join("archive"),
+            d.join("rejected"),
+            d.join("corrections"),
+            d.join("state"),
+            d.join("logs"),
+            seed,
+        );
+        std::fs::write(b.config(), text).unwrap();
+        b
+    }
+
+    fn config(&self) -> PathBuf {
+        self.dir.join("burlwatch.toml")
+    }
+
+    fn cfg(&self) -> config::Config {
+        config::load(&self.config()).unwrap()
+    }
+
+    fn run(&self, args: &[&str]) -> Run {
+        let mut v: Vec<&str> = args.to_vec();
+        let cfg = self.config();
+        let c = cfg.to_str().unwrap();
+        v.insert(1, c);
+        v.insert(1, "--config");
+        burlwatch(self.dir.path(), &v)
+    }
+
+    fn start(&self) -> Child {
+        let before = self.stderr().matches("watching").count();
+        let err = std::fs::OpenOptions::new()
+            .create(true)
+            .append(true)
+            .open(self.dir.join("daemon.stderr"))
+            .unwrap();
+        let child = Command::new(env!("CARGO_BIN_EXE_burlwatch"))
+            .args(["run", "--config"])
+            .arg(self.config())
+            .current_dir(self.dir.path())
+            .env_remove("RUST_LOG")
+            .env_remove("NOTIFY_SOCKET")
+            .stdin(Stdio::null())
+            .stdout(Stdio::null())
+            .stderr(err)
+            .spawn()
+            .expect("start the daemon");
+        wait_for("the daemon to start", 180, || {
+            self.stderr().matches("watching").count() > before
+        });
+        child
+    }
+
+    fn stderr(&self) -> String {
+        std::fs::read_to_string(self.dir.join("daemon.stderr")).unwrap_or_default()
+    }
+
+    fn drop_frame(&self, name: &str, bytes: &[u8]) {
+        let inbox = self.dir.join("inbox");
+        let tmp = inbox.join(format!(".{name}.tmp"));
+        std::fs::write(&tmp, bytes).unwrap();
+        std::fs::rename(&tmp, inbox.join(name)).unwrap();
+    }
+
+    fn records(&self) -> Vec<FrameRecord> {
+        let text =
+            std::fs::read_to_string(self.dir.join("logs/detections.jsonl")).unwrap_or_default();
+        text.lines()
+            .map(|l| serde_json::from_str(l).unwrap())
+            .collect()
+    }
+
+    fn feed(&self, frames: &[(String, Vec<u8>, LabelledFrame)]) {
+        let before = self.records().len();
+        for (n, b, _) in frames {
+            self.drop_frame(n, b);
+        }
+        wait_for("the frames to be logged", 120, || {
+            self.records().len() >= before + frames.len()
+        });
+    }
+
+    fn names_in(&self, folder: &str) -> HashSet<String> {
+        std::fs::read_dir(self.dir.join(folder))
+            .map(|d| {
+                d.filter_map(|e| e.ok())
+                    .map(|e| e.file_name().to_string_lossy().into_owned())
+                    .filter(|n| !n.starts_with('.'))
+                    .collect()
+            })
+            .unwrap_or_default()
+    }
+
+    fn applied(&self) -> usize {
+        self.names_in("corrections/applied")
+            .iter()
+            .filter(|n| n.ends_with(".toml"))
+            .count()
+    }
+
+    fn rejected(&self) -> usize {
+        self.names_in("corrections/rejected")
+            .iter()
+            .filter(|n| n.ends_with(".toml"))
+            .count()
+    }
+
+    /// Writes a mask file for `mark --mask`.
+    fn mask_file(&self, lf: &LabelledFrame) -> PathBuf {
+        let p = self
+            .dir
+            .join(&format!("masks/{}", lf.name.replace(".pbm", ".mask.pbm")));
+        std::fs::create_dir_all(p.parent().unwrap()).unwrap();
+        std::fs::write(&p, codec::encode_pbm(&lf.mask)).unwrap();
+        p
+    }
+
+    fn events(&self) -> Vec<serde_json::Value> {
+        std::fs::read_to_string(self.dir.join("logs/events.jsonl"))
+            .unwrap_or_default()
+            .lines()
+            .map(|l| serde_json::from_str(l).unwrap())
+            .collect()
+    }
+
+    fn state(&self) -> PathBuf {
+        self.dir.join("state")
+    }
+}
+
+fn wait_for(what: &str, secs: u64, mut cond: impl FnMut() -> bool) {
+    let deadline = Instant::now() + Duration::from_secs(secs);
+    while !cond() {
+        assert!(Instant::now() < deadline, "timed out waiting for {what}");
+        std::thread::sleep(Duration::from_millis(20));
+    }
+}
+
+fn stop(mut child: Child) {
+    // SAFETY: sends a signal to a child process we started.
+    unsafe { libc::kill(child.id() as i32, libc::SIGTERM) };
+    let deadline = Instant::now() + Duration::from_secs(60);
+    loop {
+        if let Some(s) = child.try_wait().unwrap() {
+            assert_eq!(s.code(), Some(0), "the daemon's exit status");
+            return;
+        }
+        assert!(Instant::now() < deadline, "the daemon did not stop");
+        std::thread::sleep(Duration::from_millis(20));
+    }
+}
+
+fn kill9(mut child: Child) {
+    child.kill().unwrap();
+    let _ = child.wait();
+}
+
+/// Object F1 of a registered model version on labelled frames, under the
+/// box's configuration.
+fn object_f1(b: &Box_, version: u64, frames: &[LabelledFrame]) -> f64 {
+    let reg = Registry::read_only(&b.state());
+    let entry = reg.entry(version).unwrap().expect("registered");
+    let d = start::detector(reg.model(&entry).unwrap(), &b.cfg().live).unwrap();
+    burlwatch::score::score_frames(&d, frames, false, &mut |_, _| {})
+        .unwrap()
+        .total
+        .object
+        .f1()
+}
+
+fn in_service(b: &Box_) -> (u64, String) {
+    let m = burlwatch::fileio::models::read_model(&b.state().join("model.json")).unwrap();
+    (m.model_version, burlwatch::detect::model_hash(&m))
+}
+
+/// Every labelled frame of the state folder's labels counted once: each
+/// line's store equals the one built afresh from the labels' files.
+fn labels_consistent(b: &Box_) -> usize {
+    let cfg = b.cfg();
+    let set = LabelSet::open(&b.state(), cfg.live.training.window, &cfg.live.limits).unwrap();
+    let names: HashSet<&str> = set.labels().iter().map(|l| l.frame.as_str()).collect();
+    assert_eq!(names.len(), set.labels().len(), "a frame labelled twice");
+    let mut lines: Vec<u64> = set.labels().iter().map(|l| l.line).collect();
+    lines.sort();
+    lines.dedup();
+    for line in lines {
+        let mut want = LabelStore::new(cfg.live.training.window);
+        for f in set
+            .frames(&[line], burlwatch::daemon::labels::Role::Train)
+            .unwrap()
+        {
+            want.add_labelled(&f).unwrap();
+        }
+        if want.frames() > 0 {
+            assert_eq!(set.store(line), Some(&want), "line {line}'s store");
+        }
+    }
+    set.labels().len()
+}
+
+/// The scripted operator session: a seed model, a changeover to a coarser
+/// weave it cannot read, half the new frames marked with their true masks,
+/// a retrain, and the new model in service.
+#[test]
+fn an_operator_session_retrains_the_box_onto_a_new_weave() {
+    let b = Box_::new("");
+    let d = b.start();
+    let new_weave = generated(&params(LoomParams::alternate()), 5, 20, "coarse");
+    b.feed(&new_weave);
+    let r = b.run(&["changeover", "--note", "coarse weave"]);
+    assert_eq!(r.code, 0, "{}{}", r.stdout, r.stderr);
+    assert!(r.stdout.contains("line 2 runs from now"), "{}", r.stdout);
+    let (marked, other): (Vec<_>, Vec<_>) =
+        new_weave.iter().enumerate().partition(|(i, _)| i % 2 == 0);
+    for (_, (name, _, lf)) in &marked {
+        let mask = b.mask_file(lf);
+        let r = b.run(&["mark", name, "--mask", mask.to_str().unwrap()]);
+        assert_eq!(r.code, 0, "{}{}", r.stdout, r.stderr);
+    }
+    wait_for("the corrections to be applied", 60, || {
+        b.applied() == marked.len()
+    });
+    assert_eq!(labels_consistent(&b), marked.len());
+    let r = b.run(&["retrain"]);
+    assert_eq!(r.code, 0, "{}{}", r.stdout, r.stderr);
+    assert!(
+        r.stdout.contains("version 2") && r.stdout.contains("is in service"),
+        "{}",
+        r.stdout
+    );
+    wait_for("the new model in service", 30, || {
+        b.stderr().contains("model in service")
+    });
+    let (version, hash) = in_service(&b);
+    assert_eq!(version, 2);
+    // Scored on the half nobody labelled. Measured when this test was
+    // written: the seed model 0.02, the retrained one 0.41 (object F1).
+    let truth: Vec<LabelledFrame> = other.iter().map(|(_, (_, _, lf))| lf.clone()).collect();
+    let (old, new) = (object_f1(&b, 1, &truth), object_f1(&b, 2, &truth));
+    eprintln!("object F1 on the unlabelled half: seed model {old:.3}, retrained {new:.3}");
+    assert!(new > old + 0.25, "retrained {new:.3} vs seed {old:.3}");
+    // Records from now on carry the new model's version and hash.
+    b.feed(&generated(&params(LoomParams::alternate()), 6, 3, "after"));
+    let last = b.records().pop().unwrap();
+    assert_eq!((last.model_version, last.model_hash.clone()), (2, hash));
+    // The registry and the events log say what happened.
+    let r = b.run(&["models", "--json"]);
+    let list: Vec<serde_json::Value> = serde_json::from_str(&r.stdout).unwrap();
+    assert_eq!(list.len(), 2);
+    assert_eq!(list[1]["in_service"], true);
+    assert_eq!(list[1]["parent"], 1);
+    assert_eq!(list[1]["trained_on"]["line"], 2);
+    let ev = b.events();
+    let retrain = ev
+        .iter()
+        .find(|e| e["event"] == "retrain")
+        .expect("a retrain event");
+    assert_eq!(retrain["decision"], "in-service");
+    assert_eq!(retrain["by"], "operator");
+    assert!(
+        retrain["gate"]["f1"].as_f64().unwrap() > retrain["gate"]["running_f1"].as_f64().unwrap()
+    );
+    assert!(ev
+        .iter()
+        .any(|e| e["event"] == "changeover" && e["note"] == "coarse weave"));
+    let r = b.run(&["models", "show", "2"]);
+    assert!(
+        r.stdout.contains("in service") && r.stdout.contains("rule"),
+        "{}",
+        r.stdout
+    );
+    stop(d);
+}
+
+/// Real defects marked as false alarms: the challenger learns to miss
+/// them, the gate refuses it, and the running model stays.
+#[test]
+fn a_wrong_batch_of_corrections_is_refused_by_the_gate() {
+    let b = Box_::new("");
+    let d = b.start();
+    let same = generated(&params(LoomParams::standard()), 7, 16, "std");
+    b.feed(&same);
+    let records = b.records();
+    let mut marked = 0;
+    for r in records.iter().filter(|r| !r.objects.is_empty()) {
+        let mut args = vec!["mark".to_string(), r.frame.clone(), "--wrong".to_string()];
+        args.extend(r.objects.iter().map(|o| o.id.to_string()));
+        let a: Vec<&str> = args.iter().map(String::as_str).collect();
+        let out = b.run(&a);
+        assert_eq!(out.code, 0, "{}{}", out.stdout, out.stderr);
+        marked += 1;
+    }
+    assert!(marked >= 6, "{marked} frames with objects");
+    wait_for("the corrections to be applied", 60, || {
+        b.applied() == marked
+    });
+    let r = b.run(&["retrain"]);
+    assert_eq!(r.code, 0, "{}{}", r.stdout, r.stderr);
+    assert!(r.stdout.contains("the running model stays"), "{}", r.stdout);
+    assert_eq!(in_service(&b).0, 1);
+    let ev = b.events();
+    let e = ev.iter().find(|e| e["event"] == "retrain").unwrap();
+    assert_eq!(e["decision"], "refused", "{e}");
+    assert!(e["reason"].as_str().unwrap().contains("not above"), "{e}");
+    // The refused model is kept in the registry, and can be put in
+    // service by hand (the events log says the operator asked).
+    let r = b.run(&["models"]);
+    assert!(r.stdout.contains("refused"), "{}", r.stdout);
+    let r = b.run(&["models", "use", "2"]);
+    assert_eq!(r.code, 0, "{}{}", r.stdout, r.stderr);
+    wait_for("version 2 in service", 30, || in_service(&b).0 == 2);
+    let ev = b.events();
+    let used = ev.iter().find(|e| e["event"] == "use").unwrap();
+    assert_eq!(used["by"], "operator");
+    stop(d);
+}
+
+/// Writes a correction file by hand into the corrections folder.
+fn drop_correction(b: &Box_, name: &str, text: &str) {
+    let dir = b.dir.join("corrections");
+    std::fs::create_dir_all(&dir).unwrap();
+    let tmp = dir.join(format!(".{name}.tmp"));
+    std::fs::write(&tmp, text).unwrap();
+    std::fs::rename(&tmp, dir.join(name)).unwrap();
+}
+
+/// Every kind of bad correction is moved to `rejected/` with its reason;
+/// the labels do not change; `mark` refuses the same with the same words.
+#[test]
+fn bad_corrections_are_rejected_with_their_reason_and_change_nothing() {
+    let b = Box_::new("");
+    let d = b.start();
+    let frames = generated(&params(LoomParams::standard()), 9, 4, "std");
+    b.feed(&frames);
+    let recs = b.records();
+    let r0 = recs
+        .iter()
+        .find(|r| !r.objects.is_empty())
+        .expect("a frame with objects");
+    let head = |frame: &str, sha: &str| format!("frame = {frame:?}\nsha256 = {sha:?}\n");
+    // A frame that is rejected (not a frame at all).
+    b.drop_frame("broken.pbm", b"P4 not a frame");
+    wait_for("the bad frame rejected", 30, || {
+        b.names_in("rejected").contains("broken.pbm")
+    });
+    // A frame archived and then gone.
+    let gone = &recs[1];
+    std::fs::remove_file(b.dir.join("archive").join(&gone.frame)).unwrap();
+    // A wrong-size mask beside its correction.
+    std::fs::write(
+        b.dir.join("corrections/small.truth.pbm"),
+        codec::encode_pbm(&burlwatch::BitFrame::new(8, 8)),
+    )
+    .unwrap();
+    let sha0 = &r0.sha256;
+    let cases: Vec<(&str, String, &str)> = vec![
+        (
+            "path.toml",
+            format!("{}right = true\n", head("../std-0000.pbm", sha0)),
+            "is a path",
+        ),
+        (
+            "abs.toml",
+            format!("{}right = true\n", head("/etc/passwd", sha0)),
+            "is a path",
+        ),
+        (
+            "id.toml",
+            format!("{}wrong = [999]\n", head(&r0.frame, sha0)),
+            "no object 999",
+        ),
+        (
+            "box.toml",
+            format!("{}missed = [[100, 100, 500, 120]]\n", head(&r0.frame, sha0)),
+            "not inside",
+        ),
+        (
+            "gone.toml",
+            format!("{}right = true\n", head(&gone.frame, &gone.sha256)),
+            "no longer in the archive",
+        ),
+        (
+            "hash.toml",
+            format!("{}right = true\n", head(&r0.frame, &"0".repeat(64))),
+            "no record",
+        ),
+        (
+            "toml.toml",
+            "frame = \"x.pbm\"\nsha256 = [".to_string(),
+            "invalid correction",
+        ),
+        (
+            "size.toml",
+            format!("{}mask = \"small.truth.pbm\"\n", head(&r0.frame, sha0)),
+            "8x8",
+        ),
+        (
+            "rej.toml",
+            format!("{}right = true\n", head("broken.pbm", &"1".repeat(64))),
+            "was rejected",
+        ),
+        ("nothing.toml", head(&r0.frame, sha0), "says nothing"),
+    ];
+    for (name, text, _) in &cases {
+        drop_correction(&b, name, text);
+    }
+    // The reason file is written just after the move.
+    wait_for("every bad correction rejected", 60, || {
+        b.names_in("corrections/rejected")
+            .iter()
+            .filter(|n| n.ends_with(".toml.reason.txt"))
+            .count()
+            == cases.len()
+    });
+    for (name, _, want) in &cases {
+        let reason = std::fs::read_to_string(
+            b.dir
+                .join(&format!("corrections/rejected/{name}.reason.txt")),
+        )
+        .unwrap();
+        assert!(
+            reason.contains(want) && reason.contains(name),
+            "{name}: want {want:?} in {reason:?}"
+        );
+    }
+    // The wrong-size mask went with its correction.
+    assert!(b
+        .names_in("corrections/rejected")
+        .contains("small.truth.pbm"));
+    assert_eq!(b.applied(), 0);
+    assert_eq!(labels_consistent(&b), 0);
+    // mark says the same before writing anything.
+    let r = b.run(&["mark", &r0.frame, "--wrong", "999"]);
+    assert_ne!(r.code, 0);
+    assert!(r.stderr.contains("no object 999"), "{}", r.stderr);
+    let r = b.run(&["mark", "../x.pbm", "--right"]);
+    assert!(
+        r.code != 0 && r.stderr.contains("is a path"),
+        "{}",
+        r.stderr
+    );
+    let r = b.run(&["mark", &gone.frame, "--right"]);
+    assert!(
+        r.code != 0 && r.stderr.contains("no longer in the archive"),
+        "{}",
+        r.stderr
+    );
+    let r = b.run(&["mark", "broken.pbm", "--right"]);
+    assert!(
+        r.code != 0 && r.stderr.contains("was rejected"),
+        "{}",
+        r.stderr
+    );
+    let r = b.run(&["mark", &r0.frame, "--missed", "0,0,999,2"]);
+    assert!(
+        r.code != 0 && r.stderr.contains("not inside"),
+        "{}",
+        r.stderr
+    );
+    assert!(b
+        .names_in("corrections")
+        .iter()
+        .all(|n| !n.ends_with(".toml")));
+    // A good one still goes through, and a second correction of the same
+    // frame replaces the first.
+    let r = b.run(&["mark", &r0.frame, "--right"]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    wait_for("the correction applied", 30, || b.applied() == 1);
+    let r = b.run(&["mark", &r0.frame, "--only", "0,0,3,3"]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    wait_for("the second correction applied", 30, || b.applied() == 2);
+    assert_eq!(labels_consistent(&b), 1);
+    stop(d);
+}
+
+/// `models use` while frames stream: every frame logged once, each with the
+/// model in service when it was detected (versions switch once, in order).
+#[test]
+fn switching_models_while_frames_stream_logs_every_frame_once() {
+    let b = Box_::new("");
+    let d = b.start();
+    // A second model to switch to: retrain on the seed line with its own
+    // labels ("right" on a few frames), whatever the gate says.
+    let first = generated(&params(LoomParams::standard()), 11, 8, "a");
+    b.feed(&first);
+    for r in b.records() {
+        let out = b.run(&["mark", &r.frame, "--right"]);
+        assert_eq!(out.code, 0, "{}", out.stderr);
+    }
+    wait_for("the corrections applied", 60, || b.applied() == 8);
+    let r = b.run(&["retrain"]);
+    assert_eq!(r.code, 0, "{}{}", r.stdout, r.stderr);
+    let reg = Registry::read_only(&b.state());
+    assert_eq!(reg.entries().unwrap().len(), 2);
+    let target = if in_service(&b).0 == 2 { 1 } else { 2 };
+    let before = b.records().len();
+    let stream = generated(&params(LoomParams::standard()), 12, 60, "s");
+    let feeder = {
+        let inbox = b.dir.join("inbox");
+        let stream = stream.clone();
+        std::thread::spawn(move || {
+            for (n, bytes, _) in &stream {
+                let tmp = inbox.join(format!(".{n}.tmp"));
+                std::fs::write(&tmp, bytes).unwrap();
+                std::fs::rename(&tmp, inbox.join(n)).unwrap();
+                std::thread::sleep(Duration::from_millis(10));
+            }
+        })
+    };
+    std::thread::sleep(Duration::from_millis(200));
+    let r = b.run(&["models", "use", &target.to_string()]);
+    assert_eq!(r.code, 0, "{}{}", r.stdout, r.stderr);
+    feeder.join().unwrap();
+    wait_for("the stream logged", 120, || {
+        b.records().len() >= before + stream.len()
+    });
+    let recs = &b.records()[before..];
+    let names: Vec<&str> = recs.iter().map(|r| r.frame.as_str()).collect();
+    let unique: HashSet<&str> = names.iter().copied().collect();
+    assert_eq!(names.len(), stream.len());
+    assert_eq!(unique.len(), stream.len(), "a frame logged twice");
+    // The versions switch once, from the old model to the target.
+    let versions: Vec<u64> = recs.iter().map(|r| r.model_version).collect();
+    let switches = versions.windows(2).filter(|w| w[0] != w[1]).count();
+    assert!(switches <= 1, "{versions:?}");
+    assert_eq!(*versions.last().unwrap(), target);
+    let hashes: HashSet<(u64, &str)> = recs
+        .iter()
+        .map(|r| (r.model_version, r.model_hash.as_str()))
+        .collect();
+    for (v, h) in hashes {
+        assert!(
+            reg.find(v, h).unwrap().is_some(),
+            "record of unregistered model {v} {h}"
+        );
+    }
+    stop(d);
+}
+
+/// kill -9 while corrections are applied, while a retrain runs and right
+/// after a switch is asked for: after each restart the labels, their stores
+/// and the registry agree, no correction is lost or counted twice, and the
+/// daemon runs a registered model.
+#[test]
+fn kills_during_intake_training_and_switching_leave_the_state_consistent() {
+    let b = Box_::new("");
+    let d = b.start();
+    let frames = generated(&params(LoomParams::alternate()), 21, 24, "k");
+    b.feed(&frames);
+    let changed = b.run(&["changeover"]);
+    assert_eq!(changed.code, 0);
+    // Corrections dropped by hand, all at once, each with its true mask.
+    let recs = b.records();
+    for (r, (_, _, lf)) in recs.iter().zip(&frames) {
+        let mask = format!("{}.truth.pbm", r.frame);
+        std::fs::write(
+            b.dir.join("corrections").join(&mask),
+            codec::encode_pbm(&lf.mask),
+        )
+        .unwrap();
+        let text = format!(
+            "frame = {:?}\nsha256 = {:?}\nmask = {mask:?}\n",
+            r.frame, r.sha256
+        );
+        drop_correction(&b, &format!("{}.toml", r.frame), &text);
+    }
+    // Killed while they are being applied.
+    wait_for("some corrections applied", 60, || b.applied() >= 3);
+    kill9(d);
+    let check = |b: &Box_| {
+        let labelled = labels_consistent(b);
+        let left = b
+            .names_in("corrections")
+            .iter()
+            .filter(|n| n.ends_with(".toml"))
+            .count();
+        assert_eq!(b.rejected(), 0);
+        (labelled, left)
+    };
+    let (labelled, left) = check(&b);
+    assert!(
+        labelled + left >= recs.len(),
+        "{labelled} labelled + {left} waiting"
+    );
+    let d = b.start();
+    wait_for("every correction applied", 60, || b.applied() == recs.len());
+    assert_eq!(check(&b).0, recs.len());
+    // Killed while a retrain runs.
+    let req = burlwatch::daemon::requests::send(
+        &b.state(),
+        &burlwatch::daemon::requests::Request {
+            ask: burlwatch::daemon::requests::Ask::Retrain,
+            by: "operator".into(),
+        },
+    )
+    .unwrap();
+    wait_for("the retrain to start", 30, || {
+        b.stderr().contains("retrain started")
+    });
+    assert!(req.exists(), "answered only when the retrain ends");
+    kill9(d);
+    let reg = Registry::read_only(&b.state());
+    for e in reg.entries().unwrap() {
+        reg.model(&e).unwrap();
+    }
+    let serving = in_service(&b);
+    assert!(reg.find(serving.0, &serving.1).unwrap().is_some());
+    // Restarted, retrained to the end, then killed right after a switch
+    // back to version 1 is asked for.
+    let d = b.start();
+    let r = b.run(&["retrain"]);
+    assert_eq!(r.code, 0, "{}{}", r.stdout, r.stderr);
+    let req = burlwatch::daemon::requests::send(
+        &b.state(),
+        &burlwatch::daemon::requests::Request {
+            ask: burlwatch::daemon::requests::Ask::Use { version: 1 },
+            by: "operator".into(),
+        },
+    )
+    .unwrap();
+    wait_for("the switch to be taken", 30, || !req.exists());
+    kill9(d);
+    let serving = in_service(&b);
+    assert!(Registry::read_only(&b.state())
+        .find(serving.0, &serving.1)
+        .unwrap()
+        .is_some());
+    let d = b.start();
+    b.feed(&generated(&params(LoomParams::alternate()), 22, 2, "end"));
+    let last = b.records().pop().unwrap();
+    assert_eq!((last.model_version, last.model_hash), in_service(&b));
+    assert_eq!(check(&b).0, recs.len());
+    stop(d);
+}
+
+/// The retrain's events and decisions need a running daemon only to be
+/// reached: with none, `retrain`, `changeover` and `models use` take the
+/// state lock and do the work themselves.
+#[test]
+fn the_learning_commands_work_without_a_daemon() {
+    let b = Box_::new("");
+    let d = b.start();
+    b.feed(&generated(&params(LoomParams::standard()), 13, 3, "o"));
+    stop(d);
+    // Line 1's labels are the seed data: the challenger grown from them is
+    // the seed model itself (training is deterministic), and a tie keeps
+    // the running model.
+    let r = b.run(&["retrain"]);
+    assert_eq!(r.code, 0, "{}{}", r.stdout, r.stderr);
+    assert!(
+        r.stdout.contains("the running model stays") && r.stdout.contains("not above"),
+        "{}",
+        r.stdout
+    );
+    assert_eq!(in_service(&b).0, 1);
+    // After a changeover, line 2 has no labels yet.
+    let r = b.run(&["changeover"]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let r = b.run(&["retrain"]);
+    assert_eq!(r.code, 1, "{}{}", r.stdout, r.stderr);
+    assert!(
+        r.stdout.contains("no retrain: line 2 has 0"),
+        "{}",
+        r.stdout
+    );
+    let r = b.run(&["changeover", "--note", "plain"]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert!(r.stdout.contains("line 3"), "{}", r.stdout);
+    let r = b.run(&["models", "use", "7"]);
+    assert_ne!(r.code, 0);
+    assert!(
+        r.stderr.contains("no model version 7") && r.stderr.contains("versions: 1"),
+        "{}",
+        r.stderr
+    );
+    let r = b.run(&["models", "use", "1"]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert_eq!(b.events().iter().filter(|e| e["event"] == "use").count(), 1);
+}
