@@ -123,6 +123,13 @@ impl Learning {
         by: &str,
     ) -> Result<Option<Model>> {
         let running_entry = self.entry_of(running)?;
+        for u in &ch.stores {
+            if let Err(e) = self.labels.commit_store(u) {
+                tracing::warn!(
+                    "cannot record the updated label store: {e}; it is rebuilt next time"
+                );
+            }
+        }
         let mut event = Event {
             event: "retrain".into(),
             by: by.into(),

@@ -27,10 +27,11 @@ use crate::config::LiveConfig;
 use crate::error::{Error, ErrorKind, Result};
 use crate::frame::LabelledFrame;
 use crate::learn;
+use crate::learn::store::LabelStore;
 use crate::model::Model;
 use crate::score;
 
-use super::labels::{self, role_key, role_of, LabelSet, Role};
+use super::labels::{self, role_key, role_of, LabelSet, Role, StoreJob, UpdatedStore};
 use super::registry::GateScores;
 
 /// What a retrain will train on and be judged on.
@@ -39,6 +40,11 @@ pub struct Plan {
     /// The line now running.
     pub line: u64,
     pub train: Vec<LabelledFrame>,
+    /// How to bring the label stores of the lines trained on up to date;
+    /// with `seed`, they hold exactly `train`.
+    pub stores: Vec<StoreJob>,
+    /// The seed frames among `train` (no store holds them).
+    pub seed: Vec<usize>,
     /// Held-out frames of the line now running.
     pub gate: Vec<LabelledFrame>,
     /// Held-out frames of older lines.
@@ -87,16 +93,24 @@ pub fn plan(
     let mut train = labels.frames(&[line], Role::Train)?;
     let mut gate = labels.frames(&[line], Role::Gate)?;
     let mut older_gate = labels.frames(&older, Role::Gate)?;
+    let mut store_lines = vec![line];
     if live.retrain.older_lines {
         train.extend(labels.frames(&older, Role::Train)?);
+        store_lines.extend(&older);
     }
-    let seed = seed_frames(live)?;
-    for (f, role) in seed {
+    let mut seed_idx = Vec::new();
+    for (f, role) in seed_frames(live)? {
         match (role, line == 1) {
             (Role::Gate, true) => gate.push(f),
-            (Role::Train, true) => train.push(f),
             (Role::Gate, false) => older_gate.push(f),
-            (Role::Train, false) if live.retrain.older_lines => train.push(f),
+            (Role::Train, true) => {
+                seed_idx.push(train.len());
+                train.push(f);
+            }
+            (Role::Train, false) if live.retrain.older_lines => {
+                seed_idx.push(train.len());
+                train.push(f);
+            }
             (Role::Train, false) => {}
         }
     }
@@ -127,6 +141,8 @@ pub fn plan(
         Some(w) => Err(w),
         None => Ok(Plan {
             line,
+            stores: store_lines.iter().map(|&l| labels.store_job(l)).collect(),
+            seed: seed_idx,
             train,
             gate,
             older_gate,
@@ -154,6 +170,28 @@ pub struct Challenge {
     pub reason: String,
     /// Labelled pixels it was grown on.
     pub pixels: u64,
+    /// The label stores brought up to date on the way, for
+    /// [`LabelSet::commit_store`].
+    pub stores: Vec<UpdatedStore>,
+}
+
+/// The label stores of the plan brought up to date, and one store of every
+/// training frame (theirs merged, with the seed frames added).
+fn training_store(
+    plan: &Plan,
+    window: crate::window::Window,
+) -> Result<(LabelStore, Vec<UpdatedStore>)> {
+    let mut updated = Vec::new();
+    let mut all = LabelStore::new(window);
+    for job in &plan.stores {
+        let u = job.clone().run()?;
+        all.merge(&u.store)?;
+        updated.push(u);
+    }
+    for &i in &plan.seed {
+        all.add_labelled(&plan.train[i])?;
+    }
+    Ok((all, updated))
 }
 
 /// Object F1 of `model` (under the live overrides) on `frames`.
@@ -195,7 +233,19 @@ pub fn challenge(
     if let Some(w) = live.window {
         params.window = w;
     }
-    let model = match learn::train_with(&plan.train, &params, &mut |_| {}, stop) {
+    // The stores count windows of the model in service's size; training
+    // for another size (detection.window changed) extracts its own.
+    let (grown, stores) = if plan.stores.iter().all(|j| j.window() == params.window) {
+        let (store, stores) = training_store(plan, params.window)?;
+        let grown = learn::train_from_store(&plan.train, store, &params, &mut |_| {}, stop);
+        (grown, stores)
+    } else {
+        (
+            learn::train_with(&plan.train, &params, &mut |_| {}, stop),
+            Vec::new(),
+        )
+    };
+    let model = match grown {
         Ok(m) => m,
         Err(e) => {
             return Ok(Challenge {
@@ -204,6 +254,7 @@ pub fn challenge(
                 gate,
                 passed: false,
                 pixels,
+                stores,
             })
         }
     };
@@ -252,5 +303,6 @@ pub fn challenge(
         passed,
         reason,
         pixels,
+        stores,
     })
 }

@@ -301,6 +301,45 @@ pub fn train_with(
     progress: &mut dyn FnMut(Stage),
     stop: &dyn Fn() -> bool,
 ) -> Result<Model> {
+    train_inner(frames, None, params, progress, stop)
+}
+
+/// [`train_with`] from a label store that already holds every frame of
+/// `frames` (added with [`LabelStore::add_labelled`], in any order): the
+/// frames held out for tuning are taken out of it, and the tree grows from
+/// what is left, so the growing frames' windows are never extracted again.
+/// The same frames give the same model as [`train`].
+pub fn train_from_store(
+    frames: &[LabelledFrame],
+    all: LabelStore,
+    params: &TrainParams,
+    progress: &mut dyn FnMut(Stage),
+    stop: &dyn Fn() -> bool,
+) -> Result<Model> {
+    if all.window() != params.window {
+        return Err(Error::training(format!(
+            "the label store is for a {0}x{0} window, training for {1}x{1}",
+            all.window().size(),
+            params.window.size()
+        )));
+    }
+    if all.frames() != frames.len() as u64 {
+        return Err(Error::training(format!(
+            "the label store holds {} frames, but {} were given",
+            all.frames(),
+            frames.len()
+        )));
+    }
+    train_inner(frames, Some(all), params, progress, stop)
+}
+
+fn train_inner(
+    frames: &[LabelledFrame],
+    mut given: Option<LabelStore>,
+    params: &TrainParams,
+    progress: &mut dyn FnMut(Stage),
+    stop: &dyn Fn() -> bool,
+) -> Result<Model> {
     let stopped = || Error::training(STOPPED);
     params.validate()?;
     if frames.is_empty() {
@@ -320,15 +359,30 @@ pub fn train_with(
     let (grow_idx, hold_idx) = split_holdout(frames, params.holdout);
     let mut stored = 0usize;
     let total_store = grow_idx.len() + if params.refit { hold_idx.len() } else { 0 };
-    let mut grow_on = |idx: &[usize], progress: &mut dyn FnMut(Stage)| -> Result<Grown> {
-        let mut store = LabelStore::new(params.window);
-        for &i in idx {
-            progress(Stage::Store {
-                done: stored,
-                total: total_store,
-            });
-            store.add_labelled(&frames[i])?;
-            stored += 1;
+    // A store given holds every frame: the held-out ones are taken out.
+    if let Some(store) = given.as_mut() {
+        for &i in &hold_idx {
+            store.remove_labelled(&frames[i])?;
+        }
+        stored = grow_idx.len();
+    }
+    let mut grow_on = |idx: &[usize],
+                       given: Option<LabelStore>,
+                       progress: &mut dyn FnMut(Stage)|
+     -> Result<Grown> {
+        let mut store = match given {
+            Some(s) => s,
+            None => LabelStore::new(params.window),
+        };
+        if store.frames() == 0 {
+            for &i in idx {
+                progress(Stage::Store {
+                    done: stored,
+                    total: total_store,
+                });
+                store.add_labelled(&frames[i])?;
+                stored += 1;
+            }
         }
         progress(Stage::Store {
             done: stored,
@@ -365,7 +419,7 @@ pub fn train_with(
             unique,
         })
     };
-    let first = grow_on(&grow_idx, progress)?;
+    let first = grow_on(&grow_idx, given, progress)?;
     if stop() {
         return Err(stopped());
     }
@@ -396,7 +450,7 @@ pub fn train_with(
     let refit = params.refit && choice.is_some();
     let (final_grown, used_idx) = if refit {
         let all: Vec<usize> = (0..frames.len()).collect();
-        (grow_on(&all, progress)?, all)
+        (grow_on(&all, None, progress)?, all)
     } else {
         (first, grow_idx.clone())
     };
@@ -509,6 +563,24 @@ mod tests {
         assert_eq!(grow.len() + hold.len(), 20);
         // No holdout at all.
         assert!(split_holdout(&frames, 0.0).1.is_empty());
+    }
+
+    #[test]
+    fn training_from_a_store_gives_the_same_model() {
+        let frames: Vec<_> = (0..6).map(|i| lf("f", i % 3 != 2, i)).collect();
+        let p = TrainParams {
+            window: Window::new(3).unwrap(),
+            ..TrainParams::default()
+        };
+        let mut all = LabelStore::new(p.window);
+        for f in frames.iter().rev() {
+            all.add_labelled(f).unwrap();
+        }
+        let a = train(&frames, &p, &mut |_| {}).unwrap();
+        let b = train_from_store(&frames, all.clone(), &p, &mut |_| {}, &|| false).unwrap();
+        assert_eq!(a.to_json(), b.to_json());
+        // A store that does not hold the frames given is refused.
+        assert!(train_from_store(&frames[1..], all, &p, &mut |_| {}, &|| false).is_err());
     }
 
     #[test]
