@@ -48,7 +48,7 @@ use serde::{Deserialize, Serialize};
 use crate::codec::{self, DecodeLimits};
 use crate::error::{Error, ErrorKind, Result};
 use crate::fileio::data::{MASK_SUFFIX, UNKNOWN_SUFFIX};
-use crate::fileio::durable::write_atomic;
+use crate::fileio::durable::{write_atomic, write_atomic_with};
 use crate::frame::LabelledFrame;
 use crate::learn::store::LabelStore;
 use crate::window::Window;
@@ -162,7 +162,8 @@ pub struct StoreJob {
 #[derive(Debug)]
 pub struct UpdatedStore {
     pub line: u64,
-    pub store: LabelStore,
+    /// The store itself, until someone takes it.
+    pub store: Option<LabelStore>,
     file: StoreFile,
 }
 
@@ -179,7 +180,8 @@ impl StoreJob {
         let store = self.count()?;
         let file = format!("store-line-{}-g{}.bin", self.line, self.generation);
         let path = self.dir.join(&file);
-        write_atomic(&path, &store.to_bytes()).map_err(|e| Error::from(e).with_path(&path))?;
+        write_atomic_with(&path, &mut |w| store.write_to(w))
+            .map_err(|e| Error::from(e).with_path(&path))?;
         Ok(UpdatedStore {
             line: self.line,
             file: StoreFile {
@@ -188,7 +190,7 @@ impl StoreJob {
                 frames: store.frames(),
                 totals: store.totals(),
             },
-            store,
+            store: Some(store),
         })
     }
 
@@ -508,9 +510,9 @@ impl LabelSet {
     /// `line`'s store brought up to date here and now (the offline
     /// commands and tests; the daemon runs the job on its retrain thread).
     pub fn store(&mut self, line: u64) -> Result<LabelStore> {
-        let updated = self.store_job(line).run()?;
+        let mut updated = self.store_job(line).run()?;
         self.commit_store(&updated)?;
-        Ok(updated.store)
+        Ok(updated.store.take().expect("just counted"))
     }
 }
 

@@ -261,7 +261,6 @@ impl Learner {
                 let deadline = Instant::now() + live.retrain.budget;
                 let halt = || flag.load(Ordering::Relaxed) || Instant::now() >= deadline;
                 let result = retrain::challenge(&plan, &model, &live, changeover, &halt);
-                trim_heap();
                 let _ = tx.send((plan, result, model));
             })
             .map_err(|e| e.to_string())?;
@@ -278,7 +277,6 @@ impl Learner {
     fn finish_job(&mut self, plan: Plan, result: crate::error::Result<Challenge>, running: &Model) {
         let job = self.job.take().expect("a job ended");
         let _ = job.thread.join();
-        trim_heap();
         let (ok, message) = match result {
             Err(e) => {
                 error!("retrain failed: {e}");
@@ -309,6 +307,8 @@ impl Learner {
                 }
             }
         };
+        // Everything the retrain allocated is dropped by now: give it back.
+        trim_heap();
         for path in job.waiting {
             requests::answer(
                 &path,

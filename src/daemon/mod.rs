@@ -6,6 +6,9 @@
 //!   intake.rs                                        Event        worker.rs            writer.rs   │ detlog.rs, files.rs
 //!                          control (stop, reload) ──▶   ▲                                          ▼
 //!                          ticks ──────────────────▶    └────── Taken / Done ◀──────────── sinks (counts, later drift, metrics)
+//! corrections intake ──ready files──▶ main loop ──▶ learner thread ──▶ labels, registry, events (learning.rs)
+//!                       requests/ ──────────────────▶   │  └─▶ retrain job thread (retrain.rs)
+//!                                      main loop ◀──────┘ InService(model): swaps Running
 //! ```
 //!
 //! - [`run`] only wires the parts together: [`start`] (folders, lock,
@@ -33,12 +36,18 @@
 //! status hook, the clock, the ticks and the disk-fault plan are passed in
 //! ([`Hooks`]), so tests drive the daemon in-process.
 //!
-//! Where what comes next goes: the corrections folder is a second
-//! `Intake` (its files become labelled frames for `learn`); the retraining
-//! job is a guarded background thread started from the main loop's ticks,
-//! whose model is put in service by swapping [`Running`]; the model
-//! registry lives in the state folder beside [`files::MODEL`]; drift
-//! monitors and the status endpoint's metrics are [`sink::RecordSink`]s.
+//! The learning loop: the corrections folder is a second `Intake`, whose
+//! ready files go to the learner thread ([`learning::Learning`] inside:
+//! labels, registry, lines, events log). It applies corrections, answers
+//! the commands' requests ([`requests`]), keeps the retraining schedule
+//! and runs each retrain on a job thread of its own ([`retrain`]). A model
+//! it put in `state/model.json` comes back to the main loop, which swaps
+//! [`Running`]: frames in flight finish with the detector they started
+//! with, every later one gets the new one, none is dropped or logged
+//! twice.
+//!
+//! Where what comes next goes: drift monitors and the status endpoint's
+//! metrics are [`sink::RecordSink`]s.
 
 pub mod checks;
 pub mod corrections;

@@ -182,12 +182,18 @@ fn training_store(
     window: crate::window::Window,
 ) -> Result<(LabelStore, Vec<UpdatedStore>)> {
     let mut updated = Vec::new();
-    let mut all = LabelStore::new(window);
+    let mut all: Option<LabelStore> = None;
     for job in &plan.stores {
-        let u = job.clone().run()?;
-        all.merge(&u.store)?;
+        let mut u = job.clone().run()?;
+        let s = u.store.take().expect("just counted");
+        // The first store is taken as it is, the others added to it.
+        match all.as_mut() {
+            None => all = Some(s),
+            Some(a) => a.merge(&s)?,
+        }
         updated.push(u);
     }
+    let mut all = all.unwrap_or_else(|| LabelStore::new(window));
     for &i in &plan.seed {
         all.add_labelled(&plan.train[i])?;
     }

@@ -106,6 +106,15 @@ pub fn read_bounded(
 /// then the folder synced. Creates the folder if missing; removes the
 /// temporary file again when the write fails.
 pub fn write_atomic(path: &Path, bytes: &[u8]) -> io::Result<()> {
+    write_atomic_with(path, &mut |f| f.write_all(bytes))
+}
+
+/// [`write_atomic`] with the content written by `fill` (through a buffer),
+/// for files too large to hold in memory at once.
+pub fn write_atomic_with(
+    path: &Path,
+    fill: &mut dyn FnMut(&mut dyn Write) -> io::Result<()>,
+) -> io::Result<()> {
     let name = path
         .file_name()
         .ok_or_else(|| io::Error::other("not a file path"))?;
@@ -116,8 +125,9 @@ pub fn write_atomic(path: &Path, bytes: &[u8]) -> io::Result<()> {
     fs::create_dir_all(dir)?;
     let tmp = dir.join(format!(".{}.tmp", name.to_string_lossy()));
     let written = (|| {
-        let mut f = File::create(&tmp)?;
-        f.write_all(bytes)?;
+        let mut w = io::BufWriter::with_capacity(1 << 16, File::create(&tmp)?);
+        fill(&mut w)?;
+        let f = w.into_inner().map_err(|e| e.into_error())?;
         f.sync_all()?;
         fs::rename(&tmp, path)
     })();

@@ -127,7 +127,9 @@ impl LabelStore {
             }
             .into());
         }
-        self.map.reserve(frame.len() / 2);
+        // No reserve here: growing by doubling keeps the table at most
+        // twice its entries, where reserving per frame could double it
+        // once more near the end (and hold both tables while it moves).
         window::for_each_row(frame, self.window, |y, pats| {
             let mrow = mask.row(y);
             for (x, &p) in pats.iter().enumerate() {
@@ -262,23 +264,39 @@ impl LabelStore {
 
     /// Serialises to the versioned, checksummed format described above.
     pub fn to_bytes(&self) -> Vec<u8> {
-        let entries = self.entries();
-        let mut out = Vec::with_capacity(HEADER_LEN + entries.len() * ENTRY_LEN + 4);
-        out.extend_from_slice(MAGIC);
-        out.extend_from_slice(&VERSION.to_le_bytes());
-        out.extend_from_slice(&[self.window.size(), 0, 0, 0]);
-        out.extend_from_slice(&self.frames.to_le_bytes());
-        out.extend_from_slice(&(entries.len() as u64).to_le_bytes());
-        out.extend_from_slice(&self.totals[0].to_le_bytes());
-        out.extend_from_slice(&self.totals[1].to_le_bytes());
-        for (p, c) in entries {
-            out.extend_from_slice(&p.to_le_bytes());
-            out.extend_from_slice(&c[0].to_le_bytes());
-            out.extend_from_slice(&c[1].to_le_bytes());
-        }
-        let crc = crc32fast::hash(&out);
-        out.extend_from_slice(&crc.to_le_bytes());
+        let mut out = Vec::with_capacity(HEADER_LEN + self.map.len() * ENTRY_LEN + 4);
+        self.write_to(&mut out).expect("writing to memory");
         out
+    }
+
+    /// Writes the file format to `w` entry by entry (the bytes of
+    /// [`LabelStore::to_bytes`] without holding them all: only the sorted
+    /// patterns are gathered).
+    pub fn write_to(&self, w: &mut dyn std::io::Write) -> std::io::Result<()> {
+        let mut crc = crc32fast::Hasher::new();
+        let mut put = |w: &mut dyn std::io::Write, b: &[u8]| -> std::io::Result<()> {
+            crc.update(b);
+            w.write_all(b)
+        };
+        let mut patterns: Vec<u128> = self.map.keys().copied().collect();
+        patterns.sort_unstable();
+        put(w, MAGIC)?;
+        put(w, &VERSION.to_le_bytes())?;
+        put(w, &[self.window.size(), 0, 0, 0])?;
+        put(w, &self.frames.to_le_bytes())?;
+        put(w, &(patterns.len() as u64).to_le_bytes())?;
+        put(w, &self.totals[0].to_le_bytes())?;
+        put(w, &self.totals[1].to_le_bytes())?;
+        let mut entry = [0u8; ENTRY_LEN];
+        for p in patterns {
+            let c = self.map[&p];
+            entry[..16].copy_from_slice(&p.to_le_bytes());
+            entry[16..24].copy_from_slice(&c[0].to_le_bytes());
+            entry[24..].copy_from_slice(&c[1].to_le_bytes());
+            put(w, &entry)?;
+        }
+        let sum = crc.finalize();
+        w.write_all(&sum.to_le_bytes())
     }
 
     /// Parses and validates a stored label store.
