@@ -395,9 +395,8 @@ fn train_inner(
             ));
         }
         let weights = params.class_weight.weights(totals);
-        let mut entries = store.entries();
+        let mut entries = store.into_entries();
         let unique = entries.len() as u64;
-        drop(store);
         progress(Stage::Grow);
         let gp = GrowParams {
             criterion: params.criterion,

@@ -8,7 +8,8 @@
 //! which labelled data arrives never changes a model.
 //!
 //! Invariants: every entry has a non-zero total; no pattern uses bits past
-//! the window's feature count; the totals equal the sum of the entries.
+//! the window's feature count; the totals equal the sum of the entries;
+//! the sorted entries are distinct and in pattern order.
 //!
 //! File format (little-endian), version 2:
 //! ```text
@@ -41,13 +42,26 @@ const ENTRY_LEN: usize = 32;
 /// Counts of one pattern: index 0 clear pixels, index 1 target pixels.
 pub type Counts = [u64; 2];
 
+/// Patterns added but not yet merged into the sorted entries, at most:
+/// their table stays a few megabytes, whatever the store's size.
+const FRESH_MAX: usize = 1 << 17;
+
 /// Pattern -> class counts for one window size.
+///
+/// Held as entries sorted by pattern (what learning and the file want)
+/// plus a small table of recent additions, merged into the sorted entries
+/// in place whenever it fills: a store of n patterns takes about 32n bytes,
+/// not a hash table's two to four times that, and handing its entries to
+/// the learner ([`LabelStore::into_entries`]) copies nothing.
 #[derive(Clone, Debug)]
 pub struct LabelStore {
     window: Window,
     frames: u64,
     totals: Counts,
-    map: FxHashMap<u128, Counts>,
+    /// Sorted by pattern, distinct, none with zero counts.
+    sorted: Vec<(u128, Counts)>,
+    /// Recent additions (their patterns may also be in `sorted`).
+    fresh: FxHashMap<u128, Counts>,
 }
 
 impl PartialEq for LabelStore {
@@ -55,7 +69,40 @@ impl PartialEq for LabelStore {
         self.window == other.window
             && self.frames == other.frames
             && self.totals == other.totals
-            && self.map == other.map
+            && self.merged().eq(other.merged())
+    }
+}
+
+/// Merges `fresh` into `sorted` in place: counts of known patterns are
+/// added where they stand, new patterns merged in from the back.
+fn settle(sorted: &mut Vec<(u128, Counts)>, fresh: &mut FxHashMap<u128, Counts>) {
+    if fresh.is_empty() {
+        return;
+    }
+    let mut new: Vec<(u128, Counts)> = Vec::with_capacity(fresh.len());
+    for (p, c) in fresh.drain() {
+        match sorted.binary_search_by(|e| e.0.cmp(&p)) {
+            Ok(i) => {
+                sorted[i].1[0] += c[0];
+                sorted[i].1[1] += c[1];
+            }
+            Err(_) => new.push((p, c)),
+        }
+    }
+    new.sort_unstable_by_key(|e| e.0);
+    let old = sorted.len();
+    sorted.reserve_exact(new.len());
+    sorted.resize(old + new.len(), (0, [0, 0]));
+    let (mut i, mut j, mut k) = (old, new.len(), old + new.len());
+    while j > 0 {
+        if i > 0 && sorted[i - 1].0 > new[j - 1].0 {
+            sorted[k - 1] = sorted[i - 1];
+            i -= 1;
+        } else {
+            sorted[k - 1] = new[j - 1];
+            j -= 1;
+        }
+        k -= 1;
     }
 }
 
@@ -65,7 +112,8 @@ impl LabelStore {
             window,
             frames: 0,
             totals: [0, 0],
-            map: FxHashMap::default(),
+            sorted: Vec::new(),
+            fresh: FxHashMap::default(),
         }
     }
 
@@ -83,13 +131,53 @@ impl LabelStore {
         self.totals
     }
 
+    /// Every entry in pattern order, recent additions merged in as they
+    /// are read (nothing is changed).
+    fn merged(&self) -> impl Iterator<Item = (u128, Counts)> + '_ {
+        let mut fresh: Vec<(u128, Counts)> = self.fresh.iter().map(|(&p, &c)| (p, c)).collect();
+        fresh.sort_unstable_by_key(|e| e.0);
+        let mut a = self.sorted.iter().copied().peekable();
+        let mut b = fresh.into_iter().peekable();
+        std::iter::from_fn(move || match (a.peek().copied(), b.peek().copied()) {
+            (Some(x), Some(y)) if x.0 == y.0 => {
+                a.next();
+                b.next();
+                Some((x.0, [x.1[0] + y.1[0], x.1[1] + y.1[1]]))
+            }
+            (Some(x), Some(y)) if x.0 < y.0 => a.next(),
+            (Some(_), Some(_)) | (None, Some(_)) => b.next(),
+            (Some(_), None) => a.next(),
+            (None, None) => None,
+        })
+    }
+
     /// Number of distinct patterns.
     pub fn unique(&self) -> usize {
-        self.map.len()
+        let new = self
+            .fresh
+            .keys()
+            .filter(|p| self.sorted.binary_search_by(|e| e.0.cmp(p)).is_err())
+            .count();
+        self.sorted.len() + new
     }
 
     pub fn get(&self, pattern: u128) -> Option<Counts> {
-        self.map.get(&pattern).copied()
+        let s = self
+            .sorted
+            .binary_search_by(|e| e.0.cmp(&pattern))
+            .ok()
+            .map(|i| self.sorted[i].1);
+        match (s, self.fresh.get(&pattern)) {
+            (Some(a), Some(b)) => Some([a[0] + b[0], a[1] + b[1]]),
+            (a, b) => a.or(b.copied()),
+        }
+    }
+
+    /// Merges recent additions when their table is full.
+    fn settle_if_full(&mut self) {
+        if self.fresh.len() >= FRESH_MAX {
+            settle(&mut self.sorted, &mut self.fresh);
+        }
     }
 
     /// Adds `clear` and `target` observations of one pattern. Fails, and
@@ -102,23 +190,33 @@ impl LabelStore {
             return Err(Error::bad_store("pattern uses bits outside the window"));
         }
         let overflow = || Error::bad_store("pixel counts overflow 64 bits");
+        // No entry exceeds the totals, so totals that do not overflow
+        // mean no entry does.
         let totals = [
             self.totals[0].checked_add(counts[0]).ok_or_else(overflow)?,
             self.totals[1].checked_add(counts[1]).ok_or_else(overflow)?,
         ];
-        let e = self.map.get(&pattern).copied().unwrap_or([0, 0]);
-        let entry = [
-            e[0].checked_add(counts[0]).ok_or_else(overflow)?,
-            e[1].checked_add(counts[1]).ok_or_else(overflow)?,
-        ];
-        self.map.insert(pattern, entry);
+        let e = self.fresh.entry(pattern).or_insert([0, 0]);
+        e[0] += counts[0];
+        e[1] += counts[1];
         self.totals = totals;
+        self.settle_if_full();
         Ok(())
     }
 
     /// Adds every pixel of a frame, labelled by its mask (set = target).
     pub fn add_frame(&mut self, frame: &BitFrame, mask: &BitFrame) -> Result<()> {
-        if !frame.same_size(mask) {
+        self.add_planes(frame, mask, None)
+    }
+
+    /// Adds the pixels of a frame not set in `unknown`, labelled by `mask`.
+    fn add_planes(
+        &mut self,
+        frame: &BitFrame,
+        mask: &BitFrame,
+        unknown: Option<&BitFrame>,
+    ) -> Result<()> {
+        if !frame.same_size(mask) || unknown.is_some_and(|u| !frame.same_size(u)) {
             return Err(crate::error::ErrorKind::MaskSizeMismatch {
                 width: frame.width(),
                 height: frame.height(),
@@ -127,20 +225,34 @@ impl LabelStore {
             }
             .into());
         }
-        // No reserve here: growing by doubling keeps the table at most
-        // twice its entries, where reserving per frame could double it
-        // once more near the end (and hold both tables while it moves).
+        let known = frame.len() as u64 - unknown.map_or(0, |u| u.count_set());
+        let targets = match unknown {
+            Some(u) => mask.and_not(u).count_set(),
+            None => mask.count_set(),
+        };
+        let overflow = || Error::bad_store("pixel counts overflow 64 bits");
+        let totals = [
+            self.totals[0]
+                .checked_add(known - targets)
+                .ok_or_else(overflow)?,
+            self.totals[1].checked_add(targets).ok_or_else(overflow)?,
+        ];
+        let (sorted, fresh) = (&mut self.sorted, &mut self.fresh);
         window::for_each_row(frame, self.window, |y, pats| {
             let mrow = mask.row(y);
+            let urow = unknown.map(|u| u.row(y));
             for (x, &p) in pats.iter().enumerate() {
+                if urow.is_some_and(|r| (r[x / 64] >> (x % 64)) & 1 == 1) {
+                    continue;
+                }
                 let target = (mrow[x / 64] >> (x % 64)) & 1;
-                let e = self.map.entry(p).or_insert([0, 0]);
-                e[target as usize] += 1;
+                fresh.entry(p).or_insert([0, 0])[target as usize] += 1;
+            }
+            if fresh.len() >= FRESH_MAX {
+                settle(sorted, fresh);
             }
         });
-        let t = mask.count_set();
-        self.totals[1] += t;
-        self.totals[0] += frame.len() as u64 - t;
+        self.totals = totals;
         self.frames += 1;
         Ok(())
     }
@@ -148,54 +260,44 @@ impl LabelStore {
     /// Adds every pixel of a labelled frame whose label is known (pixels
     /// set in its `unknown` plane are left out).
     pub fn add_labelled(&mut self, f: &LabelledFrame) -> Result<()> {
-        let Some(unknown) = &f.unknown else {
-            return self.add_frame(&f.frame, &f.mask);
-        };
-        let counts = self.frame_counts(f, unknown)?;
-        let overflow = || Error::bad_store("pixel counts overflow 64 bits");
-        let added = counts
-            .values()
-            .fold([0u64; 2], |a, c| [a[0] + c[0], a[1] + c[1]]);
-        let totals = [
-            self.totals[0].checked_add(added[0]).ok_or_else(overflow)?,
-            self.totals[1].checked_add(added[1]).ok_or_else(overflow)?,
-        ];
-        for (p, c) in counts {
-            let e = self.map.entry(p).or_insert([0, 0]);
-            e[0] += c[0];
-            e[1] += c[1];
-        }
-        self.totals = totals;
-        self.frames += 1;
-        Ok(())
+        self.add_planes(&f.frame, &f.mask, f.unknown.as_ref())
     }
 
     /// Takes out exactly what [`LabelStore::add_labelled`] put in for `f`
-    /// (a correction replaced by a later one). Fails, and changes nothing,
-    /// when the store does not hold those counts.
+    /// (a correction replaced by a later one, a frame held out). Fails,
+    /// and changes nothing, when the store does not hold those counts.
     pub fn remove_labelled(&mut self, f: &LabelledFrame) -> Result<()> {
         let none = BitFrame::new(f.frame.width(), f.frame.height());
         let counts = self.frame_counts(f, f.unknown.as_ref().unwrap_or(&none))?;
         let missing = || Error::bad_store(format!("does not hold the labels of {}", f.name));
+        if self.frames == 0 {
+            return Err(missing());
+        }
+        settle(&mut self.sorted, &mut self.fresh);
+        let mut at = Vec::with_capacity(counts.len());
         let mut totals = self.totals;
         for (p, c) in &counts {
-            let e = self.map.get(p).ok_or_else(missing)?;
+            let i = self
+                .sorted
+                .binary_search_by(|e| e.0.cmp(p))
+                .map_err(|_| missing())?;
+            let e = self.sorted[i].1;
             if e[0] < c[0] || e[1] < c[1] {
                 return Err(missing());
             }
             totals[0] = totals[0].checked_sub(c[0]).ok_or_else(missing)?;
             totals[1] = totals[1].checked_sub(c[1]).ok_or_else(missing)?;
+            at.push((i, *c));
         }
-        if self.frames == 0 {
-            return Err(missing());
-        }
-        for (p, c) in counts {
-            let e = self.map.get_mut(&p).expect("checked above");
+        let mut emptied = false;
+        for (i, c) in at {
+            let e = &mut self.sorted[i].1;
             e[0] -= c[0];
             e[1] -= c[1];
-            if *e == [0, 0] {
-                self.map.remove(&p);
-            }
+            emptied |= *e == [0, 0];
+        }
+        if emptied {
+            self.sorted.retain(|e| e.1 != [0, 0]);
         }
         self.totals = totals;
         self.frames -= 1;
@@ -248,7 +350,7 @@ impl LabelStore {
                 return Err(Error::bad_store("pixel counts overflow 64 bits"));
             }
         }
-        for (&p, &c) in &other.map {
+        for (p, c) in other.merged() {
             self.add(p, c)?;
         }
         self.frames = self.frames.saturating_add(other.frames);
@@ -257,39 +359,40 @@ impl LabelStore {
 
     /// Entries sorted by pattern: the deterministic order learning uses.
     pub fn entries(&self) -> Vec<(u128, Counts)> {
-        let mut v: Vec<(u128, Counts)> = self.map.iter().map(|(&p, &c)| (p, c)).collect();
-        v.sort_unstable_by_key(|e| e.0);
-        v
+        self.merged().collect()
     }
 
-    /// Serialises to the versioned, checksummed format described above.
+    /// The entries sorted by pattern, taken out of the store without a
+    /// copy.
+    pub fn into_entries(mut self) -> Vec<(u128, Counts)> {
+        settle(&mut self.sorted, &mut self.fresh);
+        self.sorted
+    }
+
+    /// The file bytes (see the module docs).
     pub fn to_bytes(&self) -> Vec<u8> {
-        let mut out = Vec::with_capacity(HEADER_LEN + self.map.len() * ENTRY_LEN + 4);
+        let mut out = Vec::with_capacity(HEADER_LEN + self.sorted.len() * ENTRY_LEN + 4);
         self.write_to(&mut out).expect("writing to memory");
         out
     }
 
     /// Writes the file format to `w` entry by entry (the bytes of
-    /// [`LabelStore::to_bytes`] without holding them all: only the sorted
-    /// patterns are gathered).
+    /// [`LabelStore::to_bytes`] without holding them all).
     pub fn write_to(&self, w: &mut dyn std::io::Write) -> std::io::Result<()> {
         let mut crc = crc32fast::Hasher::new();
         let mut put = |w: &mut dyn std::io::Write, b: &[u8]| -> std::io::Result<()> {
             crc.update(b);
             w.write_all(b)
         };
-        let mut patterns: Vec<u128> = self.map.keys().copied().collect();
-        patterns.sort_unstable();
         put(w, MAGIC)?;
         put(w, &VERSION.to_le_bytes())?;
         put(w, &[self.window.size(), 0, 0, 0])?;
         put(w, &self.frames.to_le_bytes())?;
-        put(w, &(patterns.len() as u64).to_le_bytes())?;
+        put(w, &(self.unique() as u64).to_le_bytes())?;
         put(w, &self.totals[0].to_le_bytes())?;
         put(w, &self.totals[1].to_le_bytes())?;
         let mut entry = [0u8; ENTRY_LEN];
-        for p in patterns {
-            let c = self.map[&p];
+        for (p, c) in self.merged() {
             entry[..16].copy_from_slice(&p.to_le_bytes());
             entry[16..24].copy_from_slice(&c[0].to_le_bytes());
             entry[24..].copy_from_slice(&c[1].to_le_bytes());
@@ -333,7 +436,8 @@ impl LabelStore {
             return Err(Error::bad_store("checksum mismatch: the file is damaged"));
         }
         let mut store = LabelStore::new(window);
-        store.map.reserve(n as usize);
+        store.sorted.reserve_exact(n as usize);
+        let mut sum = [0u64; 2];
         let mut prev: Option<u128> = None;
         for i in 0..n as usize {
             let at = HEADER_LEN + i * ENTRY_LEN;
@@ -351,10 +455,14 @@ impl LabelStore {
                 return Err(Error::bad_store(format!("entry {i} has no pixels")));
             }
             prev = Some(p);
-            store.add(p, c).map_err(|_| {
-                Error::bad_store(format!("entry {i}: pixel counts overflow 64 bits"))
-            })?;
+            let overflow = || Error::bad_store(format!("entry {i}: pixel counts overflow 64 bits"));
+            sum = [
+                sum[0].checked_add(c[0]).ok_or_else(overflow)?,
+                sum[1].checked_add(c[1]).ok_or_else(overflow)?,
+            ];
+            store.sorted.push((p, c));
         }
+        store.totals = sum;
         if store.totals != totals {
             return Err(Error::bad_store(format!(
                 "entries add up to {:?} pixels but the header says {:?}",
@@ -421,6 +529,33 @@ mod tests {
 
     fn sample_mask() -> BitFrame {
         BitFrame::from_fn(20, 9, |x, y| x > 10 && y < 3)
+    }
+
+    #[test]
+    fn the_sorted_entries_and_recent_additions_agree_with_a_plain_map() {
+        // Enough patterns to merge the recent additions several times.
+        let mut s = LabelStore::new(Window::new(11).unwrap());
+        let mut plain = std::collections::BTreeMap::new();
+        let mut x: u64 = 0x2545_f491_4f6c_dd1d;
+        for i in 0..(3 * FRESH_MAX + 1000) as u64 {
+            // xorshift64 (Marsaglia 2003), a few repeats on purpose.
+            x ^= x << 13;
+            x ^= x >> 7;
+            x ^= x << 17;
+            let p = (x % (2 * FRESH_MAX as u64)) as u128;
+            let c = [i % 3, (i % 5 == 0) as u64];
+            s.add(p, c).unwrap();
+            let e = plain.entry(p).or_insert([0u64, 0]);
+            e[0] += c[0];
+            e[1] += c[1];
+        }
+        plain.retain(|_, c| *c != [0, 0]);
+        let want: Vec<(u128, Counts)> = plain.into_iter().collect();
+        assert_eq!(s.unique(), want.len());
+        assert_eq!(s.entries(), want);
+        assert_eq!(LabelStore::from_bytes(&s.to_bytes()).unwrap(), s);
+        assert_eq!(s.get(want[7].0), Some(want[7].1));
+        assert_eq!(s.clone().into_entries(), want);
     }
 
     #[test]
