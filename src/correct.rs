@@ -602,6 +602,16 @@ mod tests {
     }
 
     #[test]
+    fn the_commented_sample_in_config_is_a_valid_correction() {
+        let c = Correction::parse(include_str!("../config/correction-example.toml")).unwrap();
+        c.check_statements().unwrap();
+        assert_eq!(c.wrong, [3, 7]);
+        assert_eq!(c.missed.len(), 2);
+        assert!(matches!(c.missed[1], Region::Ellipse { rx, .. } if rx == 6.0));
+        assert_eq!(c.unknown.len(), 1);
+    }
+
+    #[test]
     fn names_are_names_never_paths() {
         for bad_name in [
             "../x.pbm",

@@ -438,7 +438,35 @@ fn bad_corrections_are_rejected_with_their_reason_and_change_nothing() {
         codec::encode_pbm(&burlwatch::BitFrame::new(8, 8)),
     )
     .unwrap();
+    // An archived frame changed since it was logged.
+    let changed = recs
+        .iter()
+        .find(|r| r.frame != r0.frame && r.frame != gone.frame)
+        .expect("a third frame");
+    std::fs::write(
+        b.dir.join("archive").join(&changed.frame),
+        codec::encode_pbm(&burlwatch::BitFrame::new(SIDE, SIDE)),
+    )
+    .unwrap();
+    // A mask that is a symbolic link, and a correction that is one.
+    std::fs::write(
+        b.dir.join("elsewhere.pbm"),
+        codec::encode_pbm(&burlwatch::BitFrame::new(SIDE, SIDE)),
+    )
+    .unwrap();
+    std::os::unix::fs::symlink(
+        b.dir.join("elsewhere.pbm"),
+        b.dir.join("corrections/linked.truth.pbm"),
+    )
+    .unwrap();
     let sha0 = &r0.sha256;
+    std::fs::write(
+        b.dir.join("real.toml"),
+        format!("{}right = true\n", head(&r0.frame, sha0)),
+    )
+    .unwrap();
+    std::os::unix::fs::symlink(b.dir.join("real.toml"), b.dir.join("corrections/link.toml"))
+        .unwrap();
     let cases: Vec<(&str, String, &str)> = vec![
         (
             "path.toml",
@@ -486,6 +514,16 @@ fn bad_corrections_are_rejected_with_their_reason_and_change_nothing() {
             "was rejected",
         ),
         ("nothing.toml", head(&r0.frame, sha0), "says nothing"),
+        (
+            "changed.toml",
+            format!("{}right = true\n", head(&changed.frame, &changed.sha256)),
+            "not the version logged",
+        ),
+        (
+            "linkmask.toml",
+            format!("{}mask = \"linked.truth.pbm\"\n", head(&r0.frame, sha0)),
+            "symbolic link",
+        ),
     ];
     for (name, text, _) in &cases {
         drop_correction(&b, name, text);
@@ -496,8 +534,11 @@ fn bad_corrections_are_rejected_with_their_reason_and_change_nothing() {
             .iter()
             .filter(|n| n.ends_with(".toml.reason.txt"))
             .count()
-            == cases.len()
+            == cases.len() + 1
     });
+    let reason =
+        std::fs::read_to_string(b.dir.join("corrections/rejected/link.toml.reason.txt")).unwrap();
+    assert!(reason.contains("symbolic link"), "{reason}");
     for (name, _, want) in &cases {
         let reason = std::fs::read_to_string(
             b.dir

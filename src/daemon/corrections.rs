@@ -253,6 +253,20 @@ pub fn prepare(
         Some(m) => {
             check_name(m).map_err(|e| bad(format!("mask: {}", e.kind())))?;
             let p = dir.join(m);
+            match fs::symlink_metadata(&p) {
+                Ok(meta) if meta.file_type().is_file() => {}
+                Ok(_) => {
+                    return Err(bad(format!(
+                        "mask {m} is a symbolic link or not a plain file; copy the mask itself beside the correction"
+                    )))
+                }
+                Err(_) => {
+                    return Err(bad(format!(
+                        "mask {m} is not beside the correction in {}",
+                        dir.display()
+                    )))
+                }
+            }
             let t = crate::fileio::data::read_mask(&p, &live.limits)?;
             if !t.same_size(&frame) {
                 return Err(bad(format!(
@@ -383,6 +397,30 @@ pub fn apply(
             Applied::Gone
         }
     }
+}
+
+/// Refuses the correction files in `dir` that are symbolic links (the
+/// intake passes over them, as over every link): each moves to
+/// `rejected/` with its reason. Returns how many.
+pub fn reject_links(dir: &Path) -> usize {
+    let Ok(rd) = fs::read_dir(dir) else {
+        return 0;
+    };
+    let mut n = 0;
+    for e in rd.flatten() {
+        let name = e.file_name().to_string_lossy().into_owned();
+        let wanted = super::intake::is_frame_name(&name, &["toml".to_string()]);
+        if wanted && e.file_type().is_ok_and(|t| t.is_symlink()) {
+            reject(
+                &e.path(),
+                dir,
+                None,
+                &format!("{name}: is a symbolic link; a correction must be a plain file in the corrections folder"),
+            );
+            n += 1;
+        }
+    }
+    n
 }
 
 /// Moves a correction (and its mask file) into `dir/sub`.

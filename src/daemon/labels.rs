@@ -48,7 +48,7 @@ use serde::{Deserialize, Serialize};
 use crate::codec::{self, DecodeLimits};
 use crate::error::{Error, ErrorKind, Result};
 use crate::fileio::data::{MASK_SUFFIX, UNKNOWN_SUFFIX};
-use crate::fileio::durable::{write_atomic, write_atomic_with};
+use crate::fileio::durable::{write_atomic, write_atomic_paced};
 use crate::frame::LabelledFrame;
 use crate::learn::store::LabelStore;
 use crate::window::Window;
@@ -177,10 +177,27 @@ impl StoreJob {
     /// or of another window: then every frame is put in), applies the
     /// changes, and writes the result under a new name.
     pub fn run(self) -> Result<UpdatedStore> {
-        let store = self.count()?;
+        let (store, from_file) = self.counted()?;
+        // Nothing changed and the file was good: keep it.
+        if let (Some(b), true) = (&self.base, from_file) {
+            let same = self.take_out.is_empty()
+                && self.put_in.is_empty()
+                && b.holds == self.holds
+                && store.frames() == b.frames
+                && store.totals() == b.totals;
+            if same {
+                return Ok(UpdatedStore {
+                    line: self.line,
+                    file: b.clone(),
+                    store: Some(store),
+                });
+            }
+        }
         let file = format!("store-line-{}-g{}.bin", self.line, self.generation);
         let path = self.dir.join(&file);
-        write_atomic_with(&path, &mut |w| store.write_to(w))
+        // Synced every 4 MiB as it is written, so the detection log's
+        // syncs meanwhile wait for little.
+        write_atomic_paced(&path, 4 << 20, &mut |w| store.write_to(w))
             .map_err(|e| Error::from(e).with_path(&path))?;
         Ok(UpdatedStore {
             line: self.line,
@@ -197,11 +214,20 @@ impl StoreJob {
     /// The up-to-date store, computed from the store file and the changes
     /// without writing anything.
     pub fn count(&self) -> Result<LabelStore> {
+        Ok(self.counted()?.0)
+    }
+
+    /// The store, and whether it was read from the store file.
+    fn counted(&self) -> Result<(LabelStore, bool)> {
         let loaded = self.base.as_ref().and_then(|b| {
-            let s = LabelStore::from_bytes(&fs::read(self.dir.join(&b.file)).ok()?).ok()?;
+            let f = fs::File::open(self.dir.join(&b.file)).ok()?;
+            let len = f.metadata().ok()?.len();
+            let mut r = std::io::BufReader::with_capacity(1 << 16, f);
+            let s = LabelStore::read_from(&mut r, len).ok()?;
             (s.window() == self.window && s.frames() == b.frames && s.totals() == b.totals)
                 .then_some(s)
         });
+        let from_file = loaded.is_some();
         let (mut store, to_add) = match loaded {
             Some(mut s) => {
                 for l in &self.take_out {
@@ -215,7 +241,7 @@ impl StoreJob {
         for stem in &to_add {
             store.add_labelled(&read_stem(&self.dir, &self.limits, stem, stem)?)?;
         }
-        Ok(store)
+        Ok((store, from_file))
     }
 }
 /// One changeover: from `since` (RFC 3339 UTC) line `line` runs.

@@ -62,13 +62,37 @@ pub(super) struct Learner {
     last_tried: Option<u64>,
 }
 
-/// Lowers the calling thread's scheduling priority (Linux: the nice value
-/// is per thread).
+/// Lowers the calling thread's CPU and disk priority (Linux: both are per
+/// thread, and threads it starts inherit them): nice 10, and the idle I/O
+/// class, which schedulers that know classes serve only when no one else
+/// waits for the disk.
 fn lower_priority() {
-    // SAFETY: setpriority on this thread's id; no memory involved.
+    const IOPRIO_WHO_PROCESS: libc::c_long = 1;
+    const IOPRIO_CLASS_IDLE: libc::c_long = 3;
+    const IOPRIO_CLASS_SHIFT: libc::c_long = 13;
+    // SAFETY: setpriority and ioprio_set on this thread's id; no memory
+    // involved. Failures (a scheduler without classes) change nothing.
     unsafe {
-        let tid = libc::syscall(libc::SYS_gettid) as libc::id_t;
-        libc::setpriority(libc::PRIO_PROCESS, tid, 10);
+        let tid = libc::syscall(libc::SYS_gettid);
+        libc::setpriority(libc::PRIO_PROCESS, tid as libc::id_t, 10);
+        libc::syscall(
+            libc::SYS_ioprio_set,
+            IOPRIO_WHO_PROCESS,
+            tid,
+            IOPRIO_CLASS_IDLE << IOPRIO_CLASS_SHIFT,
+        );
+    }
+}
+
+/// Makes the allocator map large blocks (1 MiB and more) on their own
+/// and give them back as soon as they are freed, rather than raising that
+/// bound after the first large free and keeping later ones in its heaps:
+/// a retrain's store and tree then leave nothing behind.
+pub(super) fn map_large_blocks() {
+    #[cfg(all(target_os = "linux", target_env = "gnu"))]
+    // SAFETY: mallopt sets an allocator parameter; no memory involved.
+    unsafe {
+        libc::mallopt(libc::M_MMAP_THRESHOLD, 1 << 20);
     }
 }
 
@@ -117,6 +141,7 @@ impl Learner {
                 recv(tick) -> _ => {
                     self.requests();
                     self.schedule();
+                    corrections::reject_links(&self.learning.folders.corrections);
                 }
             }
         }

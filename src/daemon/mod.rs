@@ -182,6 +182,7 @@ pub fn run_with(
     hooks: Hooks,
 ) -> Result<Summary> {
     let Config { mut start, live } = cfg;
+    learner::map_large_blocks();
     if let Some(bad) = checks::folders(&start.folders).into_iter().find(|f| !f.ok) {
         return Err(Error::daemon(format!("{}: {}", bad.what, bad.detail)));
     }

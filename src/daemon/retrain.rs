@@ -312,3 +312,62 @@ pub fn challenge(
         stores,
     })
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::synth::{self, LoomParams};
+
+    fn frames(seed: u64, n: usize) -> Vec<LabelledFrame> {
+        let p = LoomParams {
+            width: 64,
+            height: 64,
+            ..LoomParams::standard()
+        };
+        synth::generate_set(&p, seed, n)
+            .into_iter()
+            .enumerate()
+            .map(|(i, g)| LabelledFrame::new(format!("seed:f{i}"), g.frame, g.mask))
+            .collect()
+    }
+
+    fn plan(train: Vec<LabelledFrame>, gate: Vec<LabelledFrame>) -> Plan {
+        Plan {
+            line: 1,
+            seed: (0..train.len()).collect(),
+            train,
+            stores: Vec::new(),
+            gate,
+            older_gate: Vec::new(),
+            generation: 0,
+        }
+    }
+
+    #[test]
+    fn a_retrain_over_its_budget_is_abandoned_and_ties_keep_the_running_model() {
+        let live = crate::config::Config::default().live;
+        let params = learn::TrainParams {
+            window: crate::window::Window::new(5).unwrap(),
+            ..live.training.clone()
+        };
+        let train = frames(1, 8);
+        let running = learn::train(&train, &params, &mut |_| {}).unwrap();
+        // Over budget: no challenger, nothing passes.
+        let p = plan(frames(2, 8), frames(3, 4));
+        let ch = challenge(&p, &running, &live, false, &|| true).unwrap();
+        assert!(ch.model.is_err() && !ch.passed, "{}", ch.reason);
+        assert!(ch.reason.contains("time budget"), "{}", ch.reason);
+        // The same frames grow the same model: a tie, which keeps it.
+        let p = plan(train, frames(3, 4));
+        let ch = challenge(&p, &running, &live, false, &|| false).unwrap();
+        let grown = ch.model.as_ref().unwrap();
+        assert_eq!(grown.tree, running.tree);
+        assert!(
+            !ch.passed && ch.reason.contains("not above"),
+            "{}",
+            ch.reason
+        );
+        assert_eq!(ch.gate.f1, ch.gate.running_f1);
+        assert_eq!(ch.gate.frames, 4);
+    }
+}

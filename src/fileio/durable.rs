@@ -138,6 +138,68 @@ pub fn write_atomic_with(
     sync_dir(dir)
 }
 
+/// [`write_atomic_with`], syncing the data every `sync_every` bytes as it
+/// goes: a large file written next to a log that syncs often (the
+/// detection log) never leaves more than that much for the log's next
+/// sync to wait behind.
+pub fn write_atomic_paced(
+    path: &Path,
+    sync_every: u64,
+    fill: &mut dyn FnMut(&mut dyn Write) -> io::Result<()>,
+) -> io::Result<()> {
+    struct Paced<'a> {
+        file: &'a mut dyn Write,
+        sync: &'a mut dyn FnMut() -> io::Result<()>,
+        since: u64,
+        every: u64,
+    }
+    impl Write for Paced<'_> {
+        fn write(&mut self, b: &[u8]) -> io::Result<usize> {
+            let n = self.file.write(b)?;
+            self.since += n as u64;
+            if self.since >= self.every {
+                self.file.flush()?;
+                (self.sync)()?;
+                self.since = 0;
+            }
+            Ok(n)
+        }
+        fn flush(&mut self) -> io::Result<()> {
+            self.file.flush()
+        }
+    }
+    let name = path
+        .file_name()
+        .ok_or_else(|| io::Error::other("not a file path"))?;
+    let dir = match path.parent() {
+        Some(p) if !p.as_os_str().is_empty() => p,
+        _ => Path::new("."),
+    };
+    fs::create_dir_all(dir)?;
+    let tmp = dir.join(format!(".{}.tmp", name.to_string_lossy()));
+    let written = (|| {
+        let file = File::create(&tmp)?;
+        let syncer = file.try_clone()?;
+        let mut sync = || syncer.sync_data();
+        let mut w = io::BufWriter::with_capacity(1 << 16, file);
+        let mut paced = Paced {
+            file: &mut w,
+            sync: &mut sync,
+            since: 0,
+            every: sync_every.max(1 << 16),
+        };
+        fill(&mut paced)?;
+        let f = w.into_inner().map_err(|e| e.into_error())?;
+        f.sync_all()?;
+        fs::rename(&tmp, path)
+    })();
+    if let Err(e) = written {
+        let _ = fs::remove_file(&tmp);
+        return Err(e);
+    }
+    sync_dir(dir)
+}
+
 /// Syncs a folder, so a file created or renamed in it survives a crash.
 pub fn sync_dir(dir: &Path) -> io::Result<()> {
     File::open(dir)?.sync_all()

@@ -42,17 +42,19 @@ const ENTRY_LEN: usize = 32;
 /// Counts of one pattern: index 0 clear pixels, index 1 target pixels.
 pub type Counts = [u64; 2];
 
-/// Patterns added but not yet merged into the sorted entries, at most:
-/// their table stays a few megabytes, whatever the store's size.
+/// Patterns added but not yet merged into the sorted entries: at least
+/// this many may wait (a few megabytes), and up to a quarter of the sorted
+/// entries.
 const FRESH_MAX: usize = 1 << 17;
 
 /// Pattern -> class counts for one window size.
 ///
 /// Held as entries sorted by pattern (what learning and the file want)
-/// plus a small table of recent additions, merged into the sorted entries
-/// in place whenever it fills: a store of n patterns takes about 32n bytes,
-/// not a hash table's two to four times that, and handing its entries to
-/// the learner ([`LabelStore::into_entries`]) copies nothing.
+/// plus a table of recent additions (at most a quarter of their number),
+/// merged into the sorted entries in place whenever it fills: a store of n
+/// patterns takes about 32n bytes plus the table, where a hash table of
+/// them all takes two to four times 32n, and handing its entries to the
+/// learner ([`LabelStore::into_entries`]) copies nothing.
 #[derive(Clone, Debug)]
 pub struct LabelStore {
     window: Window,
@@ -74,22 +76,27 @@ impl PartialEq for LabelStore {
 }
 
 /// Merges `fresh` into `sorted` in place: counts of known patterns are
-/// added where they stand, new patterns merged in from the back.
+/// added where they stand (found by walking both in order), new patterns
+/// merged in from the back. O(sorted + fresh log fresh).
 fn settle(sorted: &mut Vec<(u128, Counts)>, fresh: &mut FxHashMap<u128, Counts>) {
     if fresh.is_empty() {
         return;
     }
-    let mut new: Vec<(u128, Counts)> = Vec::with_capacity(fresh.len());
-    for (p, c) in fresh.drain() {
-        match sorted.binary_search_by(|e| e.0.cmp(&p)) {
-            Ok(i) => {
-                sorted[i].1[0] += c[0];
-                sorted[i].1[1] += c[1];
-            }
-            Err(_) => new.push((p, c)),
+    let mut add: Vec<(u128, Counts)> = fresh.drain().collect();
+    add.sort_unstable_by_key(|e| e.0);
+    let mut new: Vec<(u128, Counts)> = Vec::new();
+    let mut i = 0;
+    for (p, c) in add {
+        while i < sorted.len() && sorted[i].0 < p {
+            i += 1;
+        }
+        if i < sorted.len() && sorted[i].0 == p {
+            sorted[i].1[0] += c[0];
+            sorted[i].1[1] += c[1];
+        } else {
+            new.push((p, c));
         }
     }
-    new.sort_unstable_by_key(|e| e.0);
     let old = sorted.len();
     sorted.reserve_exact(new.len());
     sorted.resize(old + new.len(), (0, [0, 0]));
@@ -104,6 +111,14 @@ fn settle(sorted: &mut Vec<(u128, Counts)>, fresh: &mut FxHashMap<u128, Counts>)
         }
         k -= 1;
     }
+}
+
+/// Whether the recent additions should be merged now: past
+/// [`FRESH_MAX`] and a quarter of the sorted entries, so merges come
+/// geometrically less often as the store grows (building a store stays
+/// near linear) while the table stays small beside the entries.
+fn fresh_full(sorted: &[(u128, Counts)], fresh: &FxHashMap<u128, Counts>) -> bool {
+    fresh.len() >= FRESH_MAX.max(sorted.len() / 4)
 }
 
 impl LabelStore {
@@ -175,7 +190,7 @@ impl LabelStore {
 
     /// Merges recent additions when their table is full.
     fn settle_if_full(&mut self) {
-        if self.fresh.len() >= FRESH_MAX {
+        if fresh_full(&self.sorted, &self.fresh) {
             settle(&mut self.sorted, &mut self.fresh);
         }
     }
@@ -248,7 +263,7 @@ impl LabelStore {
                 let target = (mrow[x / 64] >> (x % 64)) & 1;
                 fresh.entry(p).or_insert([0, 0])[target as usize] += 1;
             }
-            if fresh.len() >= FRESH_MAX {
+            if fresh_full(sorted, fresh) {
                 settle(sorted, fresh);
             }
         });
@@ -404,63 +419,95 @@ impl LabelStore {
 
     /// Parses and validates a stored label store.
     pub fn from_bytes(bytes: &[u8]) -> Result<LabelStore> {
-        if bytes.len() < HEADER_LEN + 4 || &bytes[..8] != MAGIC {
+        LabelStore::read_from(&mut &bytes[..], bytes.len() as u64)
+    }
+
+    /// Reads a stored label store of `len` bytes from `r`, entry by entry
+    /// (only the entries are held, never the file's bytes). The entry count
+    /// is checked against `len` before anything is allocated; the checksum
+    /// is checked at the end, and a damaged file is reported as such rather
+    /// than by the first odd entry the damage made.
+    pub fn read_from(r: &mut dyn std::io::Read, len: u64) -> Result<LabelStore> {
+        let io = |e: std::io::Error| Error::bad_store(format!("cannot be read: {e}"));
+        let mut head = [0u8; HEADER_LEN];
+        if len < (HEADER_LEN + 4) as u64 {
             return Err(Error::bad_store(
                 "not a burlwatch label store (bad magic or too short)",
             ));
         }
-        let u32_at = |i: usize| u32::from_le_bytes(bytes[i..i + 4].try_into().unwrap());
-        let u64_at = |i: usize| u64::from_le_bytes(bytes[i..i + 8].try_into().unwrap());
-        let version = u32_at(8);
+        r.read_exact(&mut head).map_err(io)?;
+        if &head[..8] != MAGIC {
+            return Err(Error::bad_store(
+                "not a burlwatch label store (bad magic or too short)",
+            ));
+        }
+        let u32_at = |b: &[u8], i: usize| u32::from_le_bytes(b[i..i + 4].try_into().unwrap());
+        let u64_at = |b: &[u8], i: usize| u64::from_le_bytes(b[i..i + 8].try_into().unwrap());
+        let version = u32_at(&head, 8);
         if version != VERSION {
             return Err(Error::bad_store(format!(
                 "format version {version} is not known (this build reads {VERSION})"
             )));
         }
-        let window = Window::new(bytes[12]).ok_or_else(|| {
-            Error::bad_store(format!("window size {} is not 3, 5, 7, 9 or 11", bytes[12]))
+        let window = Window::new(head[12]).ok_or_else(|| {
+            Error::bad_store(format!("window size {} is not 3, 5, 7, 9 or 11", head[12]))
         })?;
-        let frames = u64_at(16);
-        let n = u64_at(24);
-        let totals = [u64_at(32), u64_at(40)];
+        let frames = u64_at(&head, 16);
+        let n = u64_at(&head, 24);
+        let totals = [u64_at(&head, 32), u64_at(&head, 40)];
         let expected = (n as u128) * ENTRY_LEN as u128 + (HEADER_LEN + 4) as u128;
-        if expected != bytes.len() as u128 {
+        if expected != len as u128 {
             return Err(Error::bad_store(format!(
-                "header says {n} entries, which needs {expected} bytes, but the file has {}",
-                bytes.len()
+                "header says {n} entries, which needs {expected} bytes, but the file has {len}"
             )));
         }
-        let body = &bytes[..bytes.len() - 4];
-        let crc = u32_at(bytes.len() - 4);
-        if crc32fast::hash(body) != crc {
-            return Err(Error::bad_store("checksum mismatch: the file is damaged"));
-        }
+        let mut crc = crc32fast::Hasher::new();
+        crc.update(&head);
         let mut store = LabelStore::new(window);
         store.sorted.reserve_exact(n as usize);
         let mut sum = [0u64; 2];
         let mut prev: Option<u128> = None;
-        for i in 0..n as usize {
-            let at = HEADER_LEN + i * ENTRY_LEN;
-            let p = u128::from_le_bytes(bytes[at..at + 16].try_into().unwrap());
-            let c = [u64_at(at + 16), u64_at(at + 24)];
-            if window.features() < 128 && p >> window.features() != 0 {
-                return Err(Error::bad_store(format!(
-                    "entry {i} uses bits outside the window"
-                )));
+        let mut first_bad: Option<String> = None;
+        let mut chunk = vec![0u8; ENTRY_LEN * 4096];
+        let mut i = 0usize;
+        while i < n as usize {
+            let k = (n as usize - i).min(4096);
+            let buf = &mut chunk[..k * ENTRY_LEN];
+            r.read_exact(buf).map_err(io)?;
+            crc.update(buf);
+            for e in buf.chunks_exact(ENTRY_LEN) {
+                let p = u128::from_le_bytes(e[..16].try_into().unwrap());
+                let c = [u64_at(e, 16), u64_at(e, 24)];
+                let bad = if window.features() < 128 && p >> window.features() != 0 {
+                    Some(format!("entry {i} uses bits outside the window"))
+                } else if prev.is_some_and(|q| q >= p) {
+                    Some(format!("entry {i} is out of order"))
+                } else if c[0] == 0 && c[1] == 0 {
+                    Some(format!("entry {i} has no pixels"))
+                } else {
+                    match (sum[0].checked_add(c[0]), sum[1].checked_add(c[1])) {
+                        (Some(a), Some(b)) => {
+                            sum = [a, b];
+                            None
+                        }
+                        _ => Some(format!("entry {i}: pixel counts overflow 64 bits")),
+                    }
+                };
+                if bad.is_some() && first_bad.is_none() {
+                    first_bad = bad;
+                }
+                prev = Some(p);
+                store.sorted.push((p, c));
+                i += 1;
             }
-            if prev.is_some_and(|q| q >= p) {
-                return Err(Error::bad_store(format!("entry {i} is out of order")));
-            }
-            if c[0] == 0 && c[1] == 0 {
-                return Err(Error::bad_store(format!("entry {i} has no pixels")));
-            }
-            prev = Some(p);
-            let overflow = || Error::bad_store(format!("entry {i}: pixel counts overflow 64 bits"));
-            sum = [
-                sum[0].checked_add(c[0]).ok_or_else(overflow)?,
-                sum[1].checked_add(c[1]).ok_or_else(overflow)?,
-            ];
-            store.sorted.push((p, c));
+        }
+        let mut tail = [0u8; 4];
+        r.read_exact(&mut tail).map_err(io)?;
+        if crc.finalize() != u32::from_le_bytes(tail) {
+            return Err(Error::bad_store("checksum mismatch: the file is damaged"));
+        }
+        if let Some(b) = first_bad {
+            return Err(Error::bad_store(b));
         }
         store.totals = sum;
         if store.totals != totals {
