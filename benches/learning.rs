@@ -14,13 +14,17 @@
 //!    to back (requested one after the other): p50 and p99 of each;
 //! 3. the daemon's resident memory before the first retrain and after the
 //!    last;
-//! 4. retraining from those labels, gate included, in-process as the
+//! 4. the peak resident memory of the offline `burlwatch retrain` on the
+//!    same state folder (the whole process: reading labels, training, gate);
+//! 5. retraining from those labels, gate included, in-process as the
 //!    daemon's job thread runs it (`retrain::plan` + `retrain::challenge`):
-//!    median of 3;
-//! 5. the peak resident memory of the offline `burlwatch retrain` on the
-//!    same state folder (the whole process: reading labels, training, gate).
+//!    median of 3.
 //!
-//! The feeder and watcher share the 2 cores with the daemon.
+//! First of all, a daemon on a fresh box trains its first model from the
+//! seed data: its peak resident memory and what it keeps afterwards.
+//!
+//! The feeder and watcher share the 2 cores with the daemon. With
+//! `BURLWATCH_BENCH_KEEP` set, the folders are left for a look.
 
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
@@ -200,6 +204,7 @@ fn main() {
         std::fs::create_dir_all(root.join(d)).unwrap();
     }
     let limits = DecodeLimits::default();
+    first_model(repo, &root);
     let seed = burlwatch::fileio::data::read_folder(
         &repo.join("demo-frames/train"),
         &limits,
@@ -318,6 +323,21 @@ fn main() {
     );
     stop(d);
 
+    // Peak memory of the offline retrain command, measured before this
+    // process grows: a child's peak counts its parent's pages until it
+    // runs the new program.
+    let (ok, peak) = peak_of(
+        Command::new(env!("CARGO_BIN_EXE_burlwatch"))
+            .args(["retrain", "--config"])
+            .arg(b.config())
+            .stdout(Stdio::null())
+            .stderr(Stdio::null()),
+    );
+    assert!(ok, "offline retrain failed");
+    println!(
+        "offline `burlwatch retrain` on the same labels: peak resident memory {:.1} MB (the whole process)",
+        peak as f64 / 1024.0
+    );
     // Retraining in-process, as the job thread runs it.
     let config = burlwatch::config::load(&b.config()).unwrap();
     let state = root.join("state");
@@ -347,26 +367,73 @@ fn main() {
         secs.iter().map(|s| format!("{s:.2}")).collect::<Vec<_>>().join(", ")
     );
 
-    // Peak memory of the offline retrain command.
-    let (ok, peak) = peak_of(
-        Command::new(env!("CARGO_BIN_EXE_burlwatch"))
-            .args(["retrain", "--config"])
-            .arg(b.config())
-            .stdout(Stdio::null())
-            .stderr(Stdio::null()),
-    );
-    assert!(ok, "offline retrain failed");
+    if std::env::var_os("BURLWATCH_BENCH_KEEP").is_some() {
+        println!("folders kept in {}", root.display());
+    } else {
+        let _ = std::fs::remove_dir_all(&root);
+    }
+}
+
+/// A daemon on a fresh box trains its first model from the 120 frames of
+/// `demo-frames/train`: its peak resident memory (from `wait4` after it
+/// stops) and its resident memory once it watches.
+fn first_model(repo: &Path, root: &Path) {
+    let dir = root.join("first");
+    std::fs::create_dir_all(&dir).unwrap();
+    let cfg = dir.join("burlwatch.toml");
+    std::fs::write(
+        &cfg,
+        format!(
+            "[folders]\ninbox = {:?}\narchive = {:?}\nrejected = {:?}\ncorrections = {:?}\nstate = {:?}\nlogs = {:?}\n\
+             [training]\nseed_data = {:?}\n[log]\nsummary_seconds = 0\n",
+            dir.join("inbox"),
+            dir.join("archive"),
+            dir.join("rejected"),
+            dir.join("corrections"),
+            dir.join("state"),
+            dir.join("logs"),
+            repo.join("demo-frames/train"),
+        ),
+    )
+    .unwrap();
+    let err = dir.join("stderr");
+    let child = Command::new(env!("CARGO_BIN_EXE_burlwatch"))
+        .args(["run", "--config"])
+        .arg(&cfg)
+        .env_remove("RUST_LOG")
+        .stdout(Stdio::null())
+        .stderr(std::fs::File::create(&err).unwrap())
+        .spawn()
+        .unwrap();
+    let deadline = Instant::now() + Duration::from_secs(300);
+    while !std::fs::read_to_string(&err)
+        .unwrap_or_default()
+        .contains("watching")
+    {
+        assert!(Instant::now() < deadline, "daemon did not start");
+        std::thread::sleep(Duration::from_millis(20));
+    }
+    std::thread::sleep(Duration::from_millis(500));
+    let after = rss_kib(child.id());
+    // SAFETY: signals our own child.
+    unsafe { libc::kill(child.id() as i32, libc::SIGTERM) };
+    let (_, peak) = wait_peak(child);
     println!(
-        "offline `burlwatch retrain` on the same labels: peak resident memory {:.1} MB (the whole process)",
-        peak as f64 / 1024.0
+        "a daemon training its first model from demo-frames/train (120 frames): peak resident memory {:.1} MB, {:.1} MB once it watches",
+        peak as f64 / 1024.0,
+        after as f64 / 1024.0
     );
-    let _ = std::fs::remove_dir_all(&root);
 }
 
 /// Runs a command to its end; whether it succeeded and its peak resident
 /// size in KiB (from `wait4`'s resource usage of that one child).
 fn peak_of(cmd: &mut Command) -> (bool, u64) {
-    let child = cmd.spawn().unwrap();
+    wait_peak(cmd.spawn().unwrap())
+}
+
+/// Waits for a child; whether it succeeded and its peak resident size in
+/// KiB.
+fn wait_peak(child: Child) -> (bool, u64) {
     let pid = child.id() as libc::pid_t;
     // SAFETY: waits for our own child and fills the structs we pass; the
     // `Child` is forgotten so it is not waited for twice.

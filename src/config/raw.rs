@@ -172,7 +172,9 @@ pub struct RawRetrain {
     /// when no changeover happened since the running model went in
     /// service (default 0.05).
     pub tolerance: Option<f64>,
-    /// Train on older lines' labels too (default false).
+    /// Train on older lines' labels (and the seed data) too, not only the
+    /// line now running (default true: measured to help until a line has
+    /// several dozen labelled frames; see README).
     pub older_lines: Option<bool>,
     /// Seconds a retrain may take before it is abandoned (default 600).
     pub budget_seconds: Option<f64>,
@@ -532,7 +534,7 @@ fn resolve_retrain(r: RawRetrain) -> Result<RetrainSettings> {
         gate_share,
         margin: unit("retrain.margin", r.margin.unwrap_or(0.0))?,
         tolerance: unit("retrain.tolerance", r.tolerance.unwrap_or(0.05))?,
-        older_lines: r.older_lines.unwrap_or(false),
+        older_lines: r.older_lines.unwrap_or(true),
         budget: std::time::Duration::from_secs_f64(budget_seconds),
     })
 }

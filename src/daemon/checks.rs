@@ -153,6 +153,44 @@ pub fn lock(cfg: &Config) -> Finding {
 pub fn all(cfg: &Config) -> Vec<Finding> {
     let mut out = folders(&cfg.start.folders);
     out.push(model(cfg));
+    out.push(learning(cfg));
     out.push(lock(cfg));
     out
+}
+
+/// The learning loop's state: registered models, the line running, its
+/// labels (read only; a state folder with none yet is fine).
+pub fn learning(cfg: &Config) -> Finding {
+    let state = &cfg.start.folders.state;
+    let models = super::registry::Registry::read_only(state).entries();
+    let lines = super::labels::read_lines(state);
+    let labels = super::labels::read_labels(state);
+    match (models, lines, labels) {
+        (Ok(models), Ok(lines), Ok(labels)) => {
+            let line = lines.last().map_or(1, |l| l.line);
+            let on_line: Vec<_> = labels.iter().filter(|l| l.line == line).collect();
+            let held = on_line
+                .iter()
+                .filter(|l| l.role == super::labels::Role::Gate)
+                .count();
+            Finding::new(
+                "learning",
+                true,
+                format!(
+                    "{} registered model(s); line {line} runs{}, with {} labelled frame(s) ({held} held out for the gate); {} labelled in all",
+                    models.len(),
+                    lines
+                        .last()
+                        .filter(|l| !l.since.is_empty())
+                        .map(|l| format!(" since {}", l.since))
+                        .unwrap_or_default(),
+                    on_line.len(),
+                    labels.len()
+                ),
+            )
+        }
+        (Err(e), _, _) | (_, Err(e), _) | (_, _, Err(e)) => {
+            Finding::new("learning", false, e.to_string())
+        }
+    }
 }

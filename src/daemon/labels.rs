@@ -287,6 +287,22 @@ pub fn changeover(state: &Path, now: &str, note: Option<String>) -> Result<Line>
     Ok(line)
 }
 
+/// The labels of a state folder, read without touching anything (for
+/// `check` while a daemon owns the folder): every label, in the order
+/// applied; none when there is no index yet.
+pub fn read_labels(state: &Path) -> Result<Vec<Label>> {
+    let path = state.join(DIR).join(INDEX);
+    match fs::read_to_string(&path) {
+        Ok(t) => serde_json::from_str::<Index>(&t)
+            .map(|i| i.labels)
+            .map_err(|e| {
+                Error::new(ErrorKind::Data(format!("not a label index: {e}"))).with_path(&path)
+            }),
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => Ok(Vec::new()),
+        Err(e) => Err(Error::from(e).with_path(&path)),
+    }
+}
+
 /// Reads one labelled frame's files by stem; `name` becomes its name.
 fn read_stem(dir: &Path, limits: &DecodeLimits, stem: &str, name: &str) -> Result<LabelledFrame> {
     let p = |suffix: &str| dir.join(format!("{stem}{suffix}"));
