@@ -12,8 +12,8 @@
 //! 2. latency from a frame's rename into the inbox to its durable record at
 //!    a steady 50 frames/s, without a retrain and while retrains run back
 //!    to back (requested one after the other): p50 and p99 of each;
-//! 3. the daemon's resident memory before the first retrain and after the
-//!    last;
+//! 3. the daemon's resident memory before and after those retrains (once
+//!    a first retrain has put a model of the new weave in service);
 //! 4. the peak resident memory of the offline `burlwatch retrain` on the
 //!    same state folder (the whole process: reading labels, training, gate);
 //! 5. retraining from those labels, gate included, in-process as the
@@ -21,7 +21,9 @@
 //!    median of 3.
 //!
 //! First of all, a daemon on a fresh box trains its first model from the
-//! seed data: its peak resident memory and what it keeps afterwards.
+//! seed data: its peak resident memory and what it keeps afterwards. Last,
+//! how many labelled frames a new weave needs, and whether the old weave's
+//! labels help (`retrain.older_lines`).
 //!
 //! The feeder and watcher share the 2 cores with the daemon. With
 //! `BURLWATCH_BENCH_KEEP` set, the folders are left for a look.
@@ -274,6 +276,20 @@ fn main() {
         .map(|g| codec::encode_pbm(&g.frame))
         .collect();
     let mut quiet = feed_50(&b, &frames, "q", 1000, &|| true);
+    // One retrain first: it puts a model of the new weave in service (a
+    // larger tree than the seed model's), so the memory compared below is
+    // that of retrains alone.
+    let first = burlwatch::daemon::requests::send(
+        &root.join("state"),
+        &burlwatch::daemon::requests::Request {
+            ask: burlwatch::daemon::requests::Ask::Retrain,
+            by: "bench".into(),
+        },
+    )
+    .unwrap();
+    let answer = burlwatch::daemon::requests::wait(&first, Duration::from_secs(600)).unwrap();
+    println!("first retrain: {}", answer.message);
+    std::thread::sleep(Duration::from_secs(1));
     let rss_before = rss_kib(d.id());
     let mut busy = Vec::new();
     let mut retrains = 0;
@@ -286,7 +302,7 @@ fn main() {
             },
         )
         .unwrap();
-        let r = req.clone();
+        let ans = burlwatch::daemon::requests::answer_path(&req);
         let started = b.stderr().matches("retrain started").count();
         let deadline = Instant::now() + Duration::from_secs(30);
         while b.stderr().matches("retrain started").count() == started {
@@ -298,7 +314,7 @@ fn main() {
             &frames,
             &format!("b{retrains}"),
             100_000,
-            &|| r.exists(),
+            &|| !ans.exists(),
         ));
         burlwatch::daemon::requests::wait(&req, Duration::from_secs(600));
         retrains += 1;
@@ -316,7 +332,7 @@ fn main() {
         busy.len()
     );
     println!(
-        "daemon resident memory: {:.1} MB before the first retrain, {:.1} MB after the last ({:+.1}%)",
+        "daemon resident memory with the new model in service: {:.1} MB before these retrains, {:.1} MB after the last ({:+.1}%)",
         rss_before as f64 / 1024.0,
         rss_after as f64 / 1024.0,
         (rss_after as f64 / rss_before as f64 - 1.0) * 100.0
@@ -341,7 +357,7 @@ fn main() {
     // Retraining in-process, as the job thread runs it.
     let config = burlwatch::config::load(&b.config()).unwrap();
     let state = root.join("state");
-    let labels =
+    let mut labels =
         burlwatch::daemon::labels::LabelSet::open(&state, config.live.training.window, &limits)
             .unwrap();
     let running = burlwatch::fileio::models::read_model(&state.join("model.json")).unwrap();
@@ -350,7 +366,7 @@ fn main() {
     let mut reason = String::new();
     for _ in 0..3 {
         let t = Instant::now();
-        let plan = burlwatch::daemon::retrain::plan(&state, &labels, &config.live)
+        let plan = burlwatch::daemon::retrain::plan(&state, &mut labels, &config.live)
             .unwrap()
             .unwrap();
         let ch =
@@ -367,10 +383,70 @@ fn main() {
         secs.iter().map(|s| format!("{s:.2}")).collect::<Vec<_>>().join(", ")
     );
 
+    labels_needed(&seed.frames, repo);
     if std::env::var_os("BURLWATCH_BENCH_KEEP").is_some() {
         println!("folders kept in {}", root.display());
     } else {
         let _ = std::fs::remove_dir_all(&root);
+    }
+}
+
+/// How many labelled frames a new weave needs, and whether the old
+/// weave's labels help: models trained (with the defaults) on the first n
+/// of 64 labelled `alternate` frames alone, and on those plus the 120
+/// `demo-frames/train` frames of the standard weave, scored (object F1) on
+/// 30 other `alternate` frames and on `demo-frames/test`.
+fn labels_needed(seed: &[burlwatch::frame::LabelledFrame], repo: &Path) {
+    use burlwatch::frame::LabelledFrame;
+    let limits = DecodeLimits::default();
+    let labelled = |set: Vec<synth::LoomFrame>, tag: &str| -> Vec<LabelledFrame> {
+        set.into_iter()
+            .enumerate()
+            .map(|(i, g)| LabelledFrame::new(format!("{tag}-{i}"), g.frame, g.mask))
+            .collect()
+    };
+    let pool = labelled(
+        synth::generate_set(&LoomParams::alternate(), 41, 64),
+        "pool",
+    );
+    let test_new = labelled(
+        synth::generate_set(&LoomParams::alternate(), 42, 30),
+        "test",
+    );
+    let test_old = burlwatch::fileio::data::read_folder(
+        &repo.join("demo-frames/test"),
+        &limits,
+        &mut |_, _| {},
+    )
+    .unwrap()
+    .frames;
+    let f1 = |m: &burlwatch::model::Model, frames: &[LabelledFrame]| {
+        let d = burlwatch::detect::Detector::new(m.clone(), m.settings());
+        burlwatch::score::score_frames(&d, frames, false, &mut |_, _| {})
+            .unwrap()
+            .total
+            .object
+            .f1()
+    };
+    let p = TrainParams::default();
+    let old = learn::train(seed, &p, &mut |_| {}).unwrap();
+    println!(
+        "labels on a new weave (object F1 on 30 new-weave / 30 old-weave test frames): seed model {:.2} / {:.2}",
+        f1(&old, &test_new),
+        f1(&old, &test_old)
+    );
+    for n in [8, 16, 32, 64] {
+        let new_only = learn::train(&pool[..n], &p, &mut |_| {}).unwrap();
+        let mut both: Vec<LabelledFrame> = seed.to_vec();
+        both.extend(pool[..n].iter().cloned());
+        let with_old = learn::train(&both, &p, &mut |_| {}).unwrap();
+        println!(
+            "  {n:>2} new-weave frames: alone {:.2} / {:.2}; with the old weave's 120 {:.2} / {:.2}",
+            f1(&new_only, &test_new),
+            f1(&new_only, &test_old),
+            f1(&with_old, &test_new),
+            f1(&with_old, &test_old)
+        );
     }
 }
 
@@ -432,19 +508,27 @@ fn peak_of(cmd: &mut Command) -> (bool, u64) {
 }
 
 /// Waits for a child; whether it succeeded and its peak resident size in
-/// KiB.
-fn wait_peak(child: Child) -> (bool, u64) {
-    let pid = child.id() as libc::pid_t;
-    // SAFETY: waits for our own child and fills the structs we pass; the
-    // `Child` is forgotten so it is not waited for twice.
-    unsafe {
-        let mut status = 0;
-        let mut u: libc::rusage = std::mem::zeroed();
-        libc::wait4(pid, &mut status, 0, &mut u);
-        std::mem::forget(child);
-        (
-            libc::WIFEXITED(status) && libc::WEXITSTATUS(status) == 0,
-            u.ru_maxrss as u64,
-        )
+/// KiB, read from its own high-water mark (`VmHWM`, which starts afresh
+/// when it runs the new program) every few milliseconds until it ends.
+/// (`wait4`'s peak would count the pages it shared with this process
+/// between fork and exec.)
+fn wait_peak(mut child: Child) -> (bool, u64) {
+    let path = format!("/proc/{}/status", child.id());
+    let mut peak = 0u64;
+    loop {
+        if let Ok(s) = std::fs::read_to_string(&path) {
+            if let Some(v) = s
+                .lines()
+                .find(|l| l.starts_with("VmHWM:"))
+                .and_then(|l| l.split_whitespace().nth(1))
+                .and_then(|v| v.parse::<u64>().ok())
+            {
+                peak = peak.max(v);
+            }
+        }
+        if let Some(st) = child.try_wait().unwrap() {
+            return (st.success(), peak);
+        }
+        std::thread::sleep(Duration::from_millis(2));
     }
 }

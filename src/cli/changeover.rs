@@ -25,7 +25,7 @@ pub struct ChangeoverArgs {
 
 pub fn run(a: ChangeoverArgs) -> Result<i32> {
     let cfg = load_config(&a.config)?;
-    match hold(&cfg)? {
+    match hold(&cfg, false)? {
         Holder::Daemon(pid) => ask(
             &cfg,
             &pid,

@@ -133,7 +133,9 @@ pub fn run(a: MarkArgs) -> Result<i32> {
     let prepared = match checked {
         Ok(p) => p,
         Err(e) => {
-            if let Some(m) = &written_mask {
+            if a.dry_run {
+                let _ = std::fs::remove_dir_all(&check_dir);
+            } else if let Some(m) = &written_mask {
                 let _ = std::fs::remove_file(m);
             }
             bail!("{e}");
@@ -141,9 +143,7 @@ pub fn run(a: MarkArgs) -> Result<i32> {
     };
     let targets = prepared.labelled.truth().count_set();
     if a.dry_run {
-        if let Some(m) = &written_mask {
-            let _ = std::fs::remove_file(m);
-        }
+        let _ = std::fs::remove_dir_all(&check_dir);
         out!("{text}");
         eprintln!(
             "burlwatch: checked; {targets} defect pixel(s) in the labels; nothing written (--dry-run)"

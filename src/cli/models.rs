@@ -11,7 +11,6 @@ use clap::Subcommand;
 
 use burlwatch::daemon::registry::{Entry, Registry};
 use burlwatch::daemon::requests::{Ask, Request};
-use burlwatch::daemon::start;
 use burlwatch::detect::model_hash;
 
 use super::load_config;
@@ -164,7 +163,7 @@ pub fn run(a: ModelsArgs) -> Result<i32> {
             super::rules::print(&m)?;
             Ok(0)
         }
-        Action::Use { version } => match hold(&cfg)? {
+        Action::Use { version } => match hold(&cfg, true)? {
             Holder::Daemon(pid) => ask(
                 &cfg,
                 &pid,
@@ -182,10 +181,8 @@ pub fn run(a: ModelsArgs) -> Result<i32> {
                     ..
                 } = *held;
                 let m = learning
-                    .use_version(version, Some(&running), "operator")
+                    .use_version(version, running.as_ref(), "operator", &cfg.live)
                     .map_err(|e| anyhow!("{e}"))?;
-                // Check it runs under this configuration.
-                start::detector(m.clone(), &cfg.live).map_err(|e| anyhow!("{e}"))?;
                 out!("version {version} ({}) is in service", model_hash(&m));
                 Ok(0)
             }

@@ -22,7 +22,7 @@ pub struct RetrainArgs {
 
 pub fn run(a: RetrainArgs) -> Result<i32> {
     let cfg = load_config(&a.config)?;
-    match hold(&cfg)? {
+    match hold(&cfg, true)? {
         Holder::Daemon(pid) => {
             let wait = cfg.live.retrain.budget + Duration::from_secs(60);
             ask(
@@ -42,8 +42,9 @@ pub fn run(a: RetrainArgs) -> Result<i32> {
                 cfg,
                 ..
             } = *held;
+            let running = running.expect("loaded");
             let live = &cfg.live;
-            let plan = match retrain::plan(&cfg.start.folders.state, &learning.labels, live)
+            let plan = match retrain::plan(&cfg.start.folders.state, &mut learning.labels, live)
                 .map_err(|e| anyhow!("{e}"))?
             {
                 Ok(p) => p,

@@ -18,7 +18,8 @@ use burlwatch::model::Model;
 pub struct Held {
     _lock: StateLock,
     pub learning: Learning,
-    pub running: Model,
+    /// The model in service (`None` when the command needs none).
+    pub running: Option<Model>,
     pub cfg: Config,
 }
 
@@ -30,35 +31,46 @@ pub enum Holder {
     Daemon(String),
 }
 
-/// Takes the state lock, or finds the daemon that holds it.
-pub fn hold(cfg: &Config) -> Result<Holder> {
+/// Takes the state lock, or finds the daemon that holds it. Another
+/// command holding it is waited for (up to a minute), never asked.
+/// `needs_model`: load (or, on a fresh box, train) the model in service.
+pub fn hold(cfg: &Config, needs_model: bool) -> Result<Holder> {
     let folders = start::make_folders(&cfg.start.folders).map_err(|e| anyhow!("{e}"))?;
-    if let Some(pid) = files::daemon_running(&folders.state) {
-        return Ok(Holder::Daemon(pid));
-    }
-    let lock = match StateLock::acquire(&folders.state) {
-        Ok(l) => l,
-        // A daemon started in between: ask it.
-        Err(_) => {
-            return Ok(Holder::Daemon(
-                files::daemon_running(&folders.state).unwrap_or_default(),
-            ))
+    let deadline = std::time::Instant::now() + Duration::from_secs(60);
+    let lock = loop {
+        match files::daemon_running(&folders.state) {
+            Some(holder) if holder.ends_with(files::COMMAND_MARK) => {}
+            Some(pid) => return Ok(Holder::Daemon(pid)),
+            None => {}
+        }
+        match StateLock::acquire_for_command(&folders.state) {
+            Ok(l) => break l,
+            Err(e) if std::time::Instant::now() >= deadline => return Err(anyhow!("{e}")),
+            // A daemon or another command took it in between: look again.
+            Err(_) => std::thread::sleep(Duration::from_millis(100)),
         }
     };
     let live = &cfg.live;
-    let (model, origin, trained_on) =
-        start::load_or_train(&folders, live).map_err(|e| anyhow!("{e}"))?;
-    let learning =
-        Learning::open(&folders, live, model.tree.window()).map_err(|e| anyhow!("{e}"))?;
-    let (model, _) = learning
-        .in_service(model, origin, trained_on)
-        .map_err(|e| anyhow!("{e}"))?;
+    let (learning, running) = if needs_model {
+        let (model, origin, trained_on) =
+            start::load_or_train(&folders, live).map_err(|e| anyhow!("{e}"))?;
+        let learning =
+            Learning::open(&folders, live, model.tree.window()).map_err(|e| anyhow!("{e}"))?;
+        let (model, _) = learning
+            .in_service(model, origin, trained_on)
+            .map_err(|e| anyhow!("{e}"))?;
+        (learning, Some(model))
+    } else {
+        let window = live.window.unwrap_or(live.training.window);
+        let learning = Learning::open(&folders, live, window).map_err(|e| anyhow!("{e}"))?;
+        (learning, None)
+    };
     let mut cfg = cfg.clone();
     cfg.start.folders = folders;
     Ok(Holder::Here(Box::new(Held {
         _lock: lock,
         learning,
-        running: model,
+        running,
         cfg,
     })))
 }

@@ -128,21 +128,29 @@ pub fn find_archived(
         Some((s, e)) if !s.is_empty() => (s, format!(".{e}")),
         _ => (frame, String::new()),
     };
+    // The archive keeps a second frame of a name as STEM-2.EXT, ...: every
+    // such file is looked at (retention may have deleted the first).
+    let of_frame = |name: &str| -> bool {
+        name == frame
+            || name
+                .strip_prefix(stem)
+                .and_then(|r| r.strip_prefix('-'))
+                .and_then(|r| r.strip_suffix(ext.as_str()))
+                .is_some_and(|k| !k.is_empty() && k.bytes().all(|b| b.is_ascii_digit()))
+    };
+    let mut names: Vec<String> = match fs::read_dir(archive) {
+        Ok(rd) => rd
+            .flatten()
+            .filter(|e| e.file_type().is_ok_and(|t| t.is_file()))
+            .map(|e| e.file_name().to_string_lossy().into_owned())
+            .filter(|n| of_frame(n))
+            .collect(),
+        Err(e) => return Err(Error::from(e).with_path(archive)),
+    };
+    names.sort();
     let mut seen_other = false;
-    for k in 1u64.. {
-        let name = if k == 1 {
-            frame.to_string()
-        } else {
-            format!("{stem}-{k}{ext}")
-        };
+    for name in names {
         let path = archive.join(&name);
-        let meta = match fs::symlink_metadata(&path) {
-            Ok(m) => m,
-            Err(_) => break,
-        };
-        if !meta.file_type().is_file() {
-            continue;
-        }
         let read = read_bounded(
             &path,
             crate::fileio::data::max_file_bytes(&live.limits),
@@ -347,6 +355,12 @@ pub fn apply(
     let folders = learning.folders.clone();
     let prepared = match prepare(&bytes, &dir, &folders, live, &learning.registry, running) {
         Ok(p) => p,
+        // A passing failure (the log or archive could not be read): the
+        // correction stays for the next listing.
+        Err(e) if matches!(e.kind(), ErrorKind::Io(_)) => {
+            warn!(correction = %name, "cannot check it now: {e}; it stays and is read again");
+            return Applied::Gone;
+        }
         Err(e) => {
             let mask = Correction::parse(std::str::from_utf8(&bytes).unwrap_or(""))
                 .ok()
@@ -363,7 +377,10 @@ pub fn apply(
     };
     let lines = match read_lines(&folders.state) {
         Ok(l) => l,
-        Err(e) => return reject(path, &dir, None, &format!("{name}: {e}")),
+        Err(e) => {
+            warn!(correction = %name, "cannot read the lines: {e}; the correction stays");
+            return Applied::Gone;
+        }
     };
     let label = Label {
         frame: prepared.record.frame.clone(),

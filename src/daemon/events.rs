@@ -4,8 +4,8 @@
 //! put in service by hand, a changeover, a model registered at start.
 //!
 //! Each line is appended with one `write` and synced before the call
-//! returns; a reader passes over a torn last line. The log is never
-//! rewritten.
+//! returns; a reader passes over a torn line, and the next append ends it
+//! first. The log is never rewritten.
 
 use std::fs::OpenOptions;
 use std::io::Write;
@@ -42,6 +42,10 @@ pub struct Event {
     pub line: Option<u64>,
     #[serde(skip_serializing_if = "Option::is_none")]
     pub note: Option<String>,
+    /// The label set's generation the decision was taken at (retrain,
+    /// use): the schedule counts new labels from the latest.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub generation: Option<u64>,
 }
 
 /// A model named by version and hash.
@@ -78,9 +82,20 @@ impl EventsLog {
         let err = |e: std::io::Error| Error::from(e).with_path(&self.path);
         let mut f = OpenOptions::new()
             .create(true)
+            .read(true)
             .append(true)
             .open(&self.path)
             .map_err(err)?;
+        // A line a crash cut off is ended first, so it stays one bad line
+        // (passed over by readers) and this one is whole.
+        let len = f.metadata().map_err(err)?.len();
+        if len > 0 {
+            let mut last = [0u8; 1];
+            std::os::unix::fs::FileExt::read_exact_at(&f, &mut last, len - 1).map_err(err)?;
+            if last[0] != b'\n' {
+                line.insert(0, '\n');
+            }
+        }
         f.write_all(line.as_bytes()).map_err(err)?;
         f.sync_data().map_err(err)
     }
@@ -97,5 +112,33 @@ impl EventsLog {
             .lines()
             .filter_map(|l| serde_json::from_str(l).ok())
             .collect())
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_torn_last_line_is_ended_and_passed_over() {
+        let d = tempfile::tempdir().unwrap();
+        let log = EventsLog::new(d.path());
+        log.append(Event {
+            event: "changeover".into(),
+            ..Event::default()
+        })
+        .unwrap();
+        // A crash cut the next line short.
+        let mut f = OpenOptions::new().append(true).open(log.path()).unwrap();
+        f.write_all(b"{\"time\":\"2026").unwrap();
+        log.append(Event {
+            event: "use".into(),
+            ..Event::default()
+        })
+        .unwrap();
+        let events: Vec<String> = log.read().unwrap().into_iter().map(|e| e.event).collect();
+        assert_eq!(events, ["changeover", "use"]);
+        let text = std::fs::read_to_string(log.path()).unwrap();
+        assert_eq!(text.lines().count(), 3);
     }
 }

@@ -26,8 +26,24 @@ pub struct StateLock {
     _file: File,
 }
 
+/// What a command that holds the state lock writes after its process id
+/// (a daemon writes its id alone).
+pub const COMMAND_MARK: &str = "command";
+
 impl StateLock {
+    /// The lock for a daemon.
     pub fn acquire(state: &Path) -> Result<StateLock> {
+        StateLock::acquire_as(state, None)
+    }
+
+    /// The lock for a command that works on the state folder while no
+    /// daemon runs (`retrain`, `changeover`, `models use`): the lock file
+    /// says so, so another command waits rather than asking a daemon.
+    pub fn acquire_for_command(state: &Path) -> Result<StateLock> {
+        StateLock::acquire_as(state, Some(COMMAND_MARK))
+    }
+
+    fn acquire_as(state: &Path, mark: Option<&str>) -> Result<StateLock> {
         let path = state.join(LOCK);
         let mut file = OpenOptions::new()
             .read(true)
@@ -40,15 +56,29 @@ impl StateLock {
         let rc = unsafe { libc::flock(file.as_raw_fd(), libc::LOCK_EX | libc::LOCK_NB) };
         if rc != 0 {
             let holder = fs::read_to_string(&path).unwrap_or_default();
-            return Err(Error::daemon(format!(
-                "another burlwatch daemon (process {}) is running on these folders; \
-                 stop it first, or give this one its own state folder",
-                holder.trim()
-            ))
-            .with_path(&path));
+            let holder = holder.trim();
+            let msg = match holder.strip_suffix(COMMAND_MARK) {
+                Some(pid) => format!(
+                    "a burlwatch command (process {}) is working on these folders; \
+                     try again when it ends",
+                    pid.trim()
+                ),
+                None => format!(
+                    "another burlwatch daemon (process {holder}) is running on these folders; \
+                     stop it first, or give this one its own state folder"
+                ),
+            };
+            return Err(Error::daemon(msg).with_path(&path));
         }
         let _ = file.set_len(0);
-        let _ = write!(file, "{}", std::process::id());
+        match mark {
+            Some(m) => {
+                let _ = write!(file, "{} {m}", std::process::id());
+            }
+            None => {
+                let _ = write!(file, "{}", std::process::id());
+            }
+        }
         Ok(StateLock { _file: file })
     }
 }

@@ -227,14 +227,18 @@ impl StoreJob {
             (s.window() == self.window && s.frames() == b.frames && s.totals() == b.totals)
                 .then_some(s)
         });
+        // Taking out what a label added needs its files; when one cannot be
+        // read, the store is built afresh from the labels it should hold.
+        let loaded = loaded.and_then(|mut s| {
+            for l in &self.take_out {
+                let f = read_stem(&self.dir, &self.limits, &l.stem, &l.frame).ok()?;
+                s.remove_labelled(&f).ok()?;
+            }
+            Some(s)
+        });
         let from_file = loaded.is_some();
         let (mut store, to_add) = match loaded {
-            Some(mut s) => {
-                for l in &self.take_out {
-                    s.remove_labelled(&read_stem(&self.dir, &self.limits, &l.stem, &l.frame)?)?;
-                }
-                (s, self.put_in.iter().map(|l| l.stem.clone()).collect())
-            }
+            Some(s) => (s, self.put_in.iter().map(|l| l.stem.clone()).collect()),
             // Start afresh: every frame the store should hold.
             None => (LabelStore::new(self.window), self.holds.clone()),
         };
@@ -305,6 +309,13 @@ pub fn read_labels(state: &Path) -> Result<Vec<Label>> {
 
 /// Reads one labelled frame's files by stem; `name` becomes its name.
 fn read_stem(dir: &Path, limits: &DecodeLimits, stem: &str, name: &str) -> Result<LabelledFrame> {
+    // A label replaced since it was named has its files hidden.
+    let hidden = format!(".{}", stem.trim_start_matches('.'));
+    let stem = if dir.join(format!("{stem}.pbm")).exists() {
+        stem
+    } else {
+        hidden.as_str()
+    };
     let p = |suffix: &str| dir.join(format!("{stem}{suffix}"));
     let frame = crate::fileio::data::read_frame(&p(".pbm"), limits)?;
     let mask = crate::fileio::data::read_mask(&p(MASK_SUFFIX), limits)?;
@@ -334,6 +345,11 @@ pub struct LabelSet {
     index: Index,
     window: Window,
     limits: DecodeLimits,
+    /// Store jobs handed out and not yet committed or released, by line:
+    /// the store file each will write and the stems it reads are kept,
+    /// and a label it counts that is replaced meanwhile is kept (hidden)
+    /// as replaced.
+    jobs: BTreeMap<u64, (String, Vec<String>)>,
 }
 
 impl LabelSet {
@@ -355,18 +371,74 @@ impl LabelSet {
             index,
             window,
             limits: limits.clone(),
+            jobs: BTreeMap::new(),
         };
+        set.repair_replaced();
         set.remove_strays();
         Ok(set)
+    }
+
+    /// The labels of `state` for reading only: nothing is created, moved or
+    /// removed (for looking at a folder a daemon owns).
+    pub fn read_only(state: &Path, window: Window, limits: &DecodeLimits) -> Result<LabelSet> {
+        let dir = state.join(DIR);
+        let ipath = dir.join(INDEX);
+        let index: Index = match fs::read_to_string(&ipath) {
+            Ok(t) => serde_json::from_str(&t).map_err(|e| {
+                Error::new(ErrorKind::Data(format!("not a label index: {e}"))).with_path(&ipath)
+            })?,
+            Err(e) if e.kind() == std::io::ErrorKind::NotFound => Index::default(),
+            Err(e) => return Err(Error::from(e).with_path(&ipath)),
+        };
+        Ok(LabelSet {
+            dir,
+            index,
+            window,
+            limits: limits.clone(),
+            jobs: BTreeMap::new(),
+        })
+    }
+
+    /// A replaced label's files are hidden (a dot before the stem, so a
+    /// data-folder reader passes over them) just after the index says so;
+    /// a crash between the two is finished here.
+    fn repair_replaced(&self) {
+        for l in &self.index.replaced {
+            let Some(visible) = l.stem.strip_prefix('.') else {
+                continue;
+            };
+            for suffix in [".pbm", MASK_SUFFIX, UNKNOWN_SUFFIX] {
+                let from = self.dir.join(format!("{visible}{suffix}"));
+                let to = self.dir.join(format!("{}{suffix}", l.stem));
+                if from.exists() && !to.exists() {
+                    let _ = fs::rename(&from, &to);
+                }
+            }
+        }
     }
 
     /// Removes files in the folder that the index does not name.
     fn remove_strays(&self) {
         let mut keep: std::collections::HashSet<String> = [INDEX.to_string()].into();
-        for l in self.index.labels.iter().chain(&self.index.replaced) {
-            keep.insert(format!("{}.pbm", l.stem));
-            keep.insert(format!("{}{MASK_SUFFIX}", l.stem));
-            keep.insert(format!("{}{UNKNOWN_SUFFIX}", l.stem));
+        let mut stems: Vec<&str> = self
+            .index
+            .labels
+            .iter()
+            .chain(&self.index.replaced)
+            .map(|l| l.stem.as_str())
+            .collect();
+        for (file, holds) in self.jobs.values() {
+            keep.insert(file.clone());
+            keep.insert(format!(".{file}.tmp"));
+            stems.extend(holds.iter().map(String::as_str));
+        }
+        for stem in stems {
+            // A stem's files, visible or hidden (replaced).
+            let visible = stem.trim_start_matches('.');
+            for suffix in [".pbm", MASK_SUFFIX, UNKNOWN_SUFFIX] {
+                keep.insert(format!("{visible}{suffix}"));
+                keep.insert(format!(".{visible}{suffix}"));
+            }
         }
         for s in self.index.stores.values() {
             keep.insert(s.file.clone());
@@ -403,9 +475,20 @@ impl LabelSet {
         &self.dir
     }
 
-    /// The label of `frame`, if it has one.
-    pub fn get(&self, frame: &str) -> Option<&Label> {
-        self.index.labels.iter().find(|l| l.frame == frame)
+    /// The label of the archived frame with this name and record hash.
+    pub fn get(&self, frame: &str, sha256: &str) -> Option<&Label> {
+        self.index
+            .labels
+            .iter()
+            .find(|l| l.frame == frame && l.sha256 == sha256)
+    }
+
+    /// Whether a store counts `stem` (committed, or a job handed out).
+    fn held(&self, stem: &str) -> bool {
+        let visible = stem.trim_start_matches('.');
+        let same = |h: &String| h.trim_start_matches('.') == visible;
+        self.index.stores.values().any(|s| s.holds.iter().any(same))
+            || self.jobs.values().any(|(_, holds)| holds.iter().any(same))
     }
 
     /// Whether the correction with these bytes' hash was applied.
@@ -444,19 +527,22 @@ impl LabelSet {
             write(p(UNKNOWN_SUFFIX), codec::encode_pbm(u))?;
         }
         let before = self.index.clone();
+        // The same archived frame (name and content): replaced. Another
+        // frame that reused the name is another label.
         let old = self
             .index
             .labels
             .iter()
-            .position(|l| l.frame == label.frame);
+            .position(|l| l.frame == label.frame && l.sha256 == label.sha256);
+        let mut hide = None;
         if let Some(i) = old {
-            let gone = self.index.labels.remove(i);
-            let counted = self
-                .index
-                .stores
-                .values()
-                .any(|s| s.holds.contains(&gone.stem));
-            if counted {
+            let mut gone = self.index.labels.remove(i);
+            // A store still counts it: its files stay (hidden) until the
+            // store is brought up to date.
+            if self.held(&gone.stem) {
+                let visible = gone.stem.clone();
+                gone.stem = format!(".{visible}");
+                hide = Some(visible);
                 self.index.replaced.push(gone);
             }
         }
@@ -466,6 +552,14 @@ impl LabelSet {
             self.index = before;
             self.remove_strays();
             return Err(e);
+        }
+        if let Some(visible) = hide {
+            for suffix in [".pbm", MASK_SUFFIX, UNKNOWN_SUFFIX] {
+                let from = self.dir.join(format!("{visible}{suffix}"));
+                if from.exists() {
+                    let _ = fs::rename(&from, self.dir.join(format!(".{visible}{suffix}")));
+                }
+            }
         }
         self.remove_strays();
         Ok(label)
@@ -483,7 +577,9 @@ impl LabelSet {
 
     /// What bringing `line`'s store up to date with its training frames
     /// takes (nothing is read or written here).
-    pub fn store_job(&self, line: u64) -> StoreJob {
+    /// Its files and the labels it counts are kept until
+    /// [`LabelSet::commit_store`] or [`LabelSet::release_jobs`].
+    pub fn store_job(&mut self, line: u64) -> StoreJob {
         let base = self.index.stores.get(&line).cloned();
         let want: Vec<&Label> = self
             .index
@@ -498,9 +594,13 @@ impl LabelSet {
                 .labels
                 .iter()
                 .chain(&self.index.replaced)
-                .find(|l| &l.stem == stem)
+                .find(|l| l.stem.trim_start_matches('.') == stem.trim_start_matches('.'))
                 .cloned()
         };
+        let file = format!("store-line-{line}-g{}.bin", self.index.generation);
+        let mut kept: Vec<String> = holds.clone();
+        kept.extend(had.iter().cloned());
+        self.jobs.insert(line, (file, kept));
         StoreJob {
             dir: self.dir.clone(),
             line,
@@ -526,27 +626,46 @@ impl LabelSet {
     /// replaced frames no store counts any more, go).
     pub fn commit_store(&mut self, updated: &UpdatedStore) -> Result<()> {
         let before = self.index.clone();
-        self.index.stores.insert(updated.line, updated.file.clone());
-        let counted: std::collections::HashSet<&String> = self
-            .index
-            .stores
-            .values()
-            .flat_map(|s| s.holds.iter())
-            .collect();
-        let replaced: Vec<Label> = self
-            .index
-            .replaced
-            .iter()
-            .filter(|l| counted.contains(&l.stem))
-            .cloned()
-            .collect();
-        self.index.replaced = replaced;
+        let mut file = updated.file.clone();
+        // A label the job counted that was replaced meanwhile is counted
+        // under its hidden stem now.
+        for h in file.holds.iter_mut() {
+            let current = self.index.labels.iter().any(|l| &l.stem == h);
+            let hidden = format!(".{}", h.trim_start_matches('.'));
+            if !current && self.index.replaced.iter().any(|l| l.stem == hidden) {
+                *h = hidden;
+            }
+        }
+        self.index.stores.insert(updated.line, file);
+        self.jobs.remove(&updated.line);
+        self.forget_uncounted();
         if let Err(e) = self.write_index() {
             self.index = before;
             return Err(e);
         }
         self.remove_strays();
         Ok(())
+    }
+
+    /// Store jobs that will not be committed (a retrain that failed or was
+    /// stopped): their files are no longer kept.
+    pub fn release_jobs(&mut self) {
+        self.jobs.clear();
+        let before = self.index.replaced.len();
+        self.forget_uncounted();
+        if self.index.replaced.len() != before {
+            let _ = self.write_index();
+        }
+        self.remove_strays();
+    }
+
+    /// Replaced labels no store counts any more are forgotten.
+    fn forget_uncounted(&mut self) {
+        let replaced = std::mem::take(&mut self.index.replaced);
+        self.index.replaced = replaced
+            .into_iter()
+            .filter(|l| self.held(&l.stem))
+            .collect();
     }
 
     /// `line`'s store brought up to date here and now (the offline
@@ -634,6 +753,41 @@ mod tests {
         fs::write(rebuilt.dir().join("a-g99.pbm"), b"P1 1 1 0").unwrap();
         let _ = LabelSet::open(d.path(), w, &limits).unwrap();
         assert!(!d.path().join(DIR).join("a-g99.pbm").exists());
+    }
+
+    #[test]
+    fn a_label_replaced_while_its_store_is_brought_up_to_date_is_counted_once() {
+        let d = tempfile::tempdir().unwrap();
+        let w = Window::new(3).unwrap();
+        let limits = DecodeLimits::default();
+        let mut set = LabelSet::open(d.path(), w, &limits).unwrap();
+        set.put(&lf("a.pbm", 1), label("a.pbm", 1, Role::Train, "c1"))
+            .unwrap();
+        set.put(&lf("b.pbm", 2), label("b.pbm", 1, Role::Train, "c2"))
+            .unwrap();
+        // A retrain's job counts a and b; a is corrected again meanwhile.
+        let updated = set.store_job(1).run().unwrap();
+        set.put(&lf("a.pbm", 5), label("a.pbm", 1, Role::Train, "c3"))
+            .unwrap();
+        assert!(
+            set.dir().join(&updated.file.file).exists(),
+            "the job's store kept"
+        );
+        set.commit_store(&updated).unwrap();
+        // The next store takes the old a out and puts the new one in.
+        let mut want = LabelStore::new(w);
+        want.add_labelled(&lf("a.pbm", 5)).unwrap();
+        want.add_labelled(&lf("b.pbm", 2)).unwrap();
+        assert_eq!(set.store(1).unwrap(), want);
+        assert!(set.index.replaced.is_empty());
+        // Meanwhile and after, a data-folder reader sees the labels now in
+        // force only.
+        let folder = crate::fileio::data::read_folder(set.dir(), &limits, &mut |_, _| {}).unwrap();
+        assert_eq!(folder.frames.len(), 2);
+        // A job that is let go keeps nothing.
+        let _ = set.store_job(1);
+        set.release_jobs();
+        assert!(set.jobs.is_empty());
     }
 
     #[test]

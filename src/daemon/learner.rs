@@ -57,8 +57,8 @@ pub(super) struct Learner {
     out: Sender<FromLearner>,
     job: Option<Job>,
     next_check: Instant,
-    /// The label generation of the last retrain tried, so a refused one is
-    /// not tried again with the same labels.
+    /// The label generation of the last retrain tried (or model put in
+    /// service by hand): the schedule counts new labels from there.
     last_tried: Option<u64>,
 }
 
@@ -112,13 +112,21 @@ impl Learner {
         out: Sender<FromLearner>,
     ) -> Learner {
         let every = running.load().live.retrain.check_every;
+        let last_tried = learning.last_decided_generation();
+        let interrupted = requests::answer_interrupted(&learning.folders.state);
+        if interrupted > 0 {
+            warn!(
+                interrupted,
+                "requests interrupted by the last stop were answered as such"
+            );
+        }
         Learner {
             learning,
             running,
             out,
             job: None,
             next_check: Instant::now() + every,
-            last_tried: None,
+            last_tried,
         }
     }
 
@@ -167,7 +175,11 @@ impl Learner {
                         message: format!("cannot read the request: {why}"),
                     },
                 ),
-                Ok(r) => self.request(path, r),
+                Ok(r) => {
+                    if let Some(claimed) = requests::claim(&path) {
+                        self.request(claimed, r);
+                    }
+                }
             }
         }
     }
@@ -190,11 +202,15 @@ impl Learner {
             },
             Ask::Use { version } => {
                 let running = self.running.load_full();
-                match self
-                    .learning
-                    .use_version(version, Some(running.detector.model()), &r.by)
-                {
+                match self.learning.use_version(
+                    version,
+                    Some(running.detector.model()),
+                    &r.by,
+                    &running.live,
+                ) {
                     Ok(m) => {
+                        // The schedule waits for labels newer than this choice.
+                        self.last_tried = Some(self.learning.labels.generation());
                         let hash = crate::detect::model_hash(&m);
                         let _ = self.out.send(FromLearner::InService(Box::new(m)));
                         reply(true, format!("version {version} ({hash}) is in service"))
@@ -236,8 +252,10 @@ impl Learner {
         let Ok(entry) = self.learning.entry_of(run.detector.model()) else {
             return;
         };
-        let new = self.learning.new_labels(&entry);
-        if new < rt.min_new_labels || self.last_tried == Some(self.learning.labels.generation()) {
+        let new = self
+            .learning
+            .new_labels(&entry, self.last_tried.unwrap_or(0));
+        if new < rt.min_new_labels {
             return;
         }
         match self.start_job("schedule") {
@@ -251,7 +269,7 @@ impl Learner {
         let run = self.running.load_full();
         let plan = match retrain::plan(
             &self.learning.folders.state,
-            &self.learning.labels,
+            &mut self.learning.labels,
             &run.live,
         ) {
             Ok(Ok(p)) => p,
@@ -299,6 +317,34 @@ impl Learner {
         Ok(())
     }
 
+    /// Why a retrain's outcome no longer applies, if it does not: the
+    /// model in service or the line changed since it started.
+    fn superseded(&self, plan: &Plan, started_with: &Model) -> Option<String> {
+        // `model.json`, which the learner itself writes before the main
+        // loop swaps: the truth even before the swap.
+        let path = self.learning.folders.state.join(super::files::MODEL);
+        if let Ok(now) = crate::fileio::models::read_model(&path) {
+            if now.model_version != started_with.model_version
+                || crate::detect::model_hash(&now) != crate::detect::model_hash(started_with)
+            {
+                return Some(format!(
+                    "version {} went in service while it was trained",
+                    now.model_version
+                ));
+            }
+        }
+        let line = super::labels::read_lines(&self.learning.folders.state)
+            .ok()
+            .and_then(|l| l.last().map(|l| l.line))
+            .unwrap_or(plan.line);
+        (line != plan.line).then(|| {
+            format!(
+                "a changeover to line {line} came while it was trained for line {}",
+                plan.line
+            )
+        })
+    }
+
     fn finish_job(&mut self, plan: Plan, result: crate::error::Result<Challenge>, running: &Model) {
         let job = self.job.take().expect("a job ended");
         let _ = job.thread.join();
@@ -307,7 +353,14 @@ impl Learner {
                 error!("retrain failed: {e}");
                 (false, format!("retrain failed: {e}"))
             }
-            Ok(ch) => {
+            Ok(mut ch) => {
+                // The operator put another model in service, or recorded a
+                // changeover, while this one grew: it was judged against a
+                // model or for a line no longer current, so it is refused.
+                if let Some(why) = self.superseded(&plan, running) {
+                    ch.passed = false;
+                    ch.reason = format!("superseded: {why}; {}", ch.reason);
+                }
                 let reason = ch.reason.clone();
                 match self.learning.decide(&plan, ch, running, &job.by) {
                     Ok(Some(m)) => {
@@ -332,6 +385,8 @@ impl Learner {
                 }
             }
         };
+        // Store jobs the decision did not commit (a failed retrain) let go.
+        self.learning.labels.release_jobs();
         // Everything the retrain allocated is dropped by now: give it back.
         trim_heap();
         for path in job.waiting {

@@ -68,7 +68,9 @@ impl Learning {
             .is_some();
         let (model, entry) =
             registry::register_in_service(self.state(), &self.registry, model, origin, trained_on)?;
-        if !known {
+        if known {
+            self.reconcile(&model)?;
+        } else {
             self.events.append(Event {
                 event: "registered".into(),
                 by: "start".into(),
@@ -81,6 +83,33 @@ impl Learning {
             info!(version = entry.version, hash = %entry.hash, "model registered");
         }
         Ok((model, entry))
+    }
+
+    /// Writes the events a crash kept from being written: a model put in
+    /// service (`model.json` switched) whose decision is not in the log.
+    fn reconcile(&self, model: &Model) -> Result<()> {
+        let events = self.events.read()?;
+        let now = model_ref(model);
+        let last = events
+            .iter()
+            .rev()
+            .find(|e| e.decision == "in-service")
+            .and_then(|e| e.model.clone());
+        if last.as_ref().is_some_and(|m| *m != now) {
+            self.events.append(Event {
+                event: "recovered".into(),
+                by: "start".into(),
+                decision: "in-service".into(),
+                reason: format!(
+                    "version {} was put in service just before the daemon stopped, and its decision was not logged",
+                    now.version
+                ),
+                model: Some(now),
+                running: last,
+                ..Event::default()
+            })?;
+        }
+        Ok(())
     }
 
     /// The entry of the model in service (registered by `in_service`).
@@ -96,13 +125,29 @@ impl Learning {
             })
     }
 
-    /// Labelled frames added since `model` was trained.
-    pub fn new_labels(&self, entry: &Entry) -> u64 {
+    /// Labelled frames added since `entry`'s model was trained and since
+    /// label generation `since` (the last retrain tried, or the last model
+    /// put in service by hand).
+    pub fn new_labels(&self, entry: &Entry, since: u64) -> u64 {
+        let from = entry.trained_on.labels_generation.max(since);
         self.labels
             .labels()
             .iter()
-            .filter(|l| l.generation > entry.trained_on.labels_generation)
+            .filter(|l| l.generation > from)
             .count() as u64
+    }
+
+    /// The label generation of the latest retrain tried or model put in
+    /// service by hand, from the events log (so a restart does not retry
+    /// what was tried).
+    pub fn last_decided_generation(&self) -> Option<u64> {
+        self.events
+            .read()
+            .ok()?
+            .iter()
+            .filter(|e| e.event == "retrain" || e.event == "use")
+            .filter_map(|e| e.generation)
+            .max()
     }
 
     /// Whether a changeover happened since `entry`'s model was trained:
@@ -137,6 +182,7 @@ impl Learning {
             gate: Some(ch.gate.clone()),
             line: Some(plan.line),
             reason: ch.reason.clone(),
+            generation: Some(plan.generation),
             ..Event::default()
         };
         let Ok(mut model) = ch.model else {
@@ -189,6 +235,7 @@ impl Learning {
         version: u64,
         running: Option<&Model>,
         by: &str,
+        live: &LiveConfig,
     ) -> Result<Model> {
         let entry = self.registry.entry(version)?.ok_or_else(|| {
             let known: Vec<String> = self
@@ -208,6 +255,17 @@ impl Learning {
             )))
         })?;
         let model = self.registry.model(&entry)?;
+        // It must run under this configuration before anything changes.
+        if let Some(w) = live.window {
+            if model.tree.window() != w {
+                return Err(Error::new(ErrorKind::BadModel(format!(
+                    "version {version} uses a {0}x{0} window but detection.window is {1}",
+                    model.tree.window().size(),
+                    w.size()
+                ))));
+            }
+        }
+        super::start::detector(model.clone(), live)?;
         registry::put_in_service(self.state(), &model)?;
         self.events.append(Event {
             event: "use".into(),
@@ -217,6 +275,7 @@ impl Learning {
             running: running.map(model_ref),
             model: Some(model_ref(&model)),
             line: Some(entry.trained_on.line),
+            generation: Some(self.labels.generation()),
             ..Event::default()
         })?;
         Ok(model)

@@ -5,10 +5,14 @@
 //!
 //! A request is written atomically under a name of its own (time, process
 //! id and a counter), so two commands racing each leave a whole file and
-//! neither overwrites the other; the daemon takes them in name order,
-//! one at a time, writes `NAME.answer.json` atomically and then removes
-//! the request. A request left by a command that gave up waiting is still
-//! carried out; its answer is removed after a day.
+//! neither overwrites the other; the daemon takes them in name order, one
+//! at a time. It claims a request (renames it to `NAME.taken`) before it
+//! acts, writes `NAME.answer.json` atomically when done, and removes the
+//! claim: a request is carried out at most once. One claimed but not
+//! answered when the daemon stopped (a crash) is answered at the next
+//! start as interrupted, so its command can look and ask again. A request
+//! left by a command that gave up waiting is still carried out; answers
+//! nobody took are removed after a day.
 
 use std::fs;
 use std::path::{Path, PathBuf};
@@ -23,6 +27,7 @@ use crate::fileio::durable::write_atomic;
 /// The requests' folder inside the state folder.
 pub const DIR: &str = "requests";
 const ANSWER: &str = ".answer.json";
+const TAKEN: &str = ".taken";
 
 /// What a command asks of the daemon.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
@@ -73,9 +78,11 @@ pub fn send(state: &Path, request: &Request) -> Result<PathBuf> {
     Ok(path)
 }
 
-fn answer_path(request: &Path) -> PathBuf {
+/// Where the answer to `request` will be.
+pub fn answer_path(request: &Path) -> PathBuf {
     let name = request.file_name().unwrap_or_default().to_string_lossy();
-    let stem = name.strip_suffix(".json").unwrap_or(&name);
+    let name = name.strip_suffix(TAKEN).unwrap_or(&name);
+    let stem = name.strip_suffix(".json").unwrap_or(name);
     request.with_file_name(format!("{stem}{ANSWER}"))
 }
 
@@ -96,6 +103,43 @@ pub fn wait(request: &Path, timeout: Duration) -> Option<Answer> {
         }
         std::thread::sleep(Duration::from_millis(50));
     }
+}
+
+/// Claims a request before acting on it: `None` when it is gone (taken
+/// already).
+pub fn claim(request: &Path) -> Option<PathBuf> {
+    let name = request.file_name()?.to_string_lossy().into_owned();
+    let taken = request.with_file_name(format!("{name}{TAKEN}"));
+    std::fs::rename(request, &taken).ok()?;
+    let _ = crate::fileio::durable::sync_dir(request.parent()?);
+    Some(taken)
+}
+
+/// Requests claimed but never answered (the daemon stopped while acting on
+/// them): each is answered as interrupted and removed.
+pub fn answer_interrupted(state: &Path) -> usize {
+    let dir = state.join(DIR);
+    let Ok(rd) = fs::read_dir(&dir) else {
+        return 0;
+    };
+    let mut n = 0;
+    for e in rd.flatten() {
+        let name = e.file_name().to_string_lossy().into_owned();
+        if let Some(orig) = name.strip_suffix(TAKEN) {
+            answer(
+                &e.path(),
+                &Answer {
+                    ok: false,
+                    message: "interrupted: the daemon stopped while carrying this out; \
+                              see `burlwatch models` and the events log, then ask again if needed"
+                        .into(),
+                },
+            );
+            let _ = orig;
+            n += 1;
+        }
+    }
+    n
 }
 
 /// The requests waiting, oldest first: `(path, request or why it cannot
@@ -133,8 +177,7 @@ pub fn pending(state: &Path) -> Vec<(PathBuf, std::result::Result<Request, Strin
     out
 }
 
-/// Answers a request and removes it (the answer first, so a crash between
-/// the two carries the request out again rather than losing its answer).
+/// Answers a request (or its claim) and removes it.
 pub fn answer(request: &Path, answer: &Answer) {
     let text = serde_json::to_string(answer).expect("answer serialises");
     let _ = write_atomic(&answer_path(request), text.as_bytes());

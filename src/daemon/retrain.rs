@@ -84,7 +84,7 @@ pub fn seed_frames(live: &LiveConfig) -> Result<Vec<(LabelledFrame, Role)>> {
 /// are not enough yet.
 pub fn plan(
     state: &Path,
-    labels: &LabelSet,
+    labels: &mut LabelSet,
     live: &LiveConfig,
 ) -> Result<std::result::Result<Plan, String>> {
     let lines = labels::read_lines(state)?;
@@ -114,12 +114,16 @@ pub fn plan(
             (Role::Train, false) => {}
         }
     }
-    let on_line = (gate.len() + train.len()) as u64
-        - if live.retrain.older_lines && line > 1 {
-            train.iter().filter(|f| !is_line(labels, f, line)).count() as u64
-        } else {
-            0
-        };
+    let seed_count = if line == 1 {
+        train
+            .iter()
+            .chain(&gate)
+            .filter(|f| f.name.starts_with("seed:"))
+            .count()
+    } else {
+        0
+    };
+    let on_line = (labels.labels().iter().filter(|l| l.line == line).count() + seed_count) as u64;
     let has_targets = |v: &[LabelledFrame]| v.iter().any(|f| f.truth().count_set() > 0);
     let why = if on_line < live.retrain.min_line_labels {
         Some(format!(
@@ -149,15 +153,6 @@ pub fn plan(
             generation: labels.generation(),
         }),
     })
-}
-
-/// Whether `f` is a labelled frame of `line` in the label set (seed frames
-/// are line 1's).
-fn is_line(labels: &LabelSet, f: &LabelledFrame, line: u64) -> bool {
-    match f.name.strip_prefix("seed:") {
-        Some(_) => line == 1,
-        None => labels.get(&f.name).is_some_and(|l| l.line == line),
-    }
 }
 
 /// A grown challenger and how it fared at the gate.
