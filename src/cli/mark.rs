@@ -23,6 +23,10 @@ pub struct MarkArgs {
     config: PathBuf,
     /// The archived frame's file name, as in its log record.
     frame: String,
+    /// Which record of that name (its `sha256`), when the name was used
+    /// for more than one frame; default: the latest record.
+    #[arg(long)]
+    sha256: Option<String>,
     /// The detection is right as it stands.
     #[arg(long)]
     right: bool,
@@ -62,7 +66,7 @@ pub fn run(a: MarkArgs) -> Result<i32> {
     let cfg = load_config(&a.config)?;
     let folders = cfg.start.folders.absolute()?;
     check_name(&a.frame).map_err(|e| anyhow!("{e}"))?;
-    let record = find_record(&folders.logs, &a.frame, None)
+    let record = find_record(&folders.logs, &a.frame, a.sha256.as_deref())
         .map_err(|e| anyhow!("{e}"))?
         .ok_or_else(|| {
             if folders.rejected.join(&a.frame).exists() {

@@ -169,14 +169,15 @@ pub struct RawRetrain {
     /// line's held-out frames (default 0; ties keep the running model).
     pub margin: Option<f64>,
     /// Object F1 a challenger may lose on older lines' held-out frames
-    /// when no changeover happened since the running model went in
-    /// service (default 0.05).
+    /// when the running model was trained for the line now running (no
+    /// changeover since it was trained) (default 0.05).
     pub tolerance: Option<f64>,
     /// Train on older lines' labels (and the seed data) too, not only the
     /// line now running (default true: measured to help until a line has
     /// several dozen labelled frames; see README).
     pub older_lines: Option<bool>,
-    /// Seconds a retrain may take before it is abandoned (default 600).
+    /// Seconds a retrain's tree may grow before the retrain is abandoned
+    /// (default 600).
     pub budget_seconds: Option<f64>,
 }
 

@@ -1,7 +1,8 @@
 //! Retraining: which labelled frames a challenger is grown on and judged
 //! on ([`plan`]), growing it and scoring it against the model in service
 //! ([`challenge`], pure computation, run on a background thread at low
-//! priority with a time budget), and the decision ([`Learning::decide`]):
+//! priority with a time budget), and the decision
+//! ([`super::learning::Learning::decide`]):
 //! registered either way, put in service only if it passed the gate,
 //! one line in the events log either way.
 //!
@@ -11,13 +12,13 @@
 //! since every model the daemon trains leaves them out). The challenger
 //! goes in service only if its object F1 there is at least the running
 //! model's plus `retrain.margin`, and higher (a tie keeps the running
-//! model); and, unless a changeover happened since the running model went
-//! in service, if it loses at most `retrain.tolerance` on the older lines'
-//! held-out frames.
+//! model); and, when the running model was trained for the line now
+//! running (no changeover since it was trained), if it loses at most
+//! `retrain.tolerance` on the older lines' held-out frames.
 //!
 //! Which labels: those of the line now running (the seed data counts as
-//! line 1's), and, with `retrain.older_lines`, older lines' training
-//! frames too. "Enough" is `retrain.min_line_labels` labelled frames of the
+//! line 1's), and, with `retrain.older_lines` (the default), older lines'
+//! training frames and the seed data too. "Enough" is `retrain.min_line_labels` labelled frames of the
 //! line, at least one held out with a defect and one to train on with a
 //! defect.
 
@@ -204,8 +205,8 @@ fn object_f1(model: &Model, live: &LiveConfig, frames: &[LabelledFrame]) -> Resu
 
 /// Grows a challenger on the plan's training frames and judges it against
 /// `running` at the gate (see the module docs). `stop` is asked while
-/// growing (the time budget). `changeover_since` says whether a changeover
-/// happened since `running` went in service.
+/// growing (the time budget). `changeover_since` says whether `running`
+/// was trained for an older line than the one now running.
 pub fn challenge(
     plan: &Plan,
     running: &Model,
