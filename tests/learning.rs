@@ -371,6 +371,65 @@ fn an_operator_session_retrains_the_box_onto_a_new_weave() {
     stop(d);
 }
 
+/// The operator session on the committed demo frames: the daemon trains
+/// its first model from `demo-frames/train`, detects `demo-frames/drifted`
+/// (a finer, noisier weave), a changeover is recorded, half the drifted
+/// frames are marked with their masks, and the retrained model goes in
+/// service and does better on the other half.
+#[test]
+fn the_demo_session_on_the_drifted_frames_goes_through_the_gate() {
+    let b = Box_::new("");
+    // The committed seed data, as a fresh box's configuration has it.
+    let text = std::fs::read_to_string(b.config()).unwrap();
+    let demo = crate::util::repo().join("demo-frames");
+    let text = text.replace(
+        &format!("seed_data = {:?}", b.dir.join("seed")),
+        &format!("seed_data = {:?}", demo.join("train")),
+    );
+    std::fs::write(b.config(), text).unwrap();
+    let d = b.start();
+    let folder = burlwatch::fileio::data::read_folder(
+        &demo.join("drifted"),
+        &burlwatch::codec::DecodeLimits::default(),
+        &mut |_, _| {},
+    )
+    .unwrap();
+    let drifted: Vec<(String, Vec<u8>, LabelledFrame)> = folder
+        .frames
+        .into_iter()
+        .map(|f| {
+            let name = format!("{}.pbm", f.name);
+            let bytes = std::fs::read(demo.join("drifted").join(&name)).unwrap();
+            (name.clone(), bytes, LabelledFrame { name, ..f })
+        })
+        .collect();
+    assert_eq!(drifted.len(), 20);
+    b.feed(&drifted);
+    assert_eq!(b.run(&["changeover", "--note", "drifted"]).code, 0);
+    let (marked, other): (Vec<_>, Vec<_>) =
+        drifted.iter().enumerate().partition(|(i, _)| i % 2 == 0);
+    for (_, (name, _, lf)) in &marked {
+        let mask = b.mask_file(lf);
+        let r = b.run(&["mark", name, "--mask", mask.to_str().unwrap()]);
+        assert_eq!(r.code, 0, "{}{}", r.stdout, r.stderr);
+    }
+    wait_for("the corrections to be applied", 60, || b.applied() == 10);
+    let r = b.run(&["retrain"]);
+    assert_eq!(r.code, 0, "{}{}", r.stdout, r.stderr);
+    assert!(r.stdout.contains("is in service"), "{}", r.stdout);
+    assert_eq!(in_service(&b).0, 2);
+    // Measured when this test was written: the seed model 0.71, the
+    // retrained one 0.79 (object F1 on the 10 drifted frames nobody
+    // marked). The drifted weave is close enough to the seed weave that
+    // the seed model already does well; the coarser weave of the session
+    // above shows a larger gain.
+    let truth: Vec<LabelledFrame> = other.iter().map(|(_, (_, _, lf))| lf.clone()).collect();
+    let (old, new) = (object_f1(&b, 1, &truth), object_f1(&b, 2, &truth));
+    eprintln!("demo drifted, unlabelled half: seed model {old:.3}, retrained {new:.3}");
+    assert!(new > old + 0.05, "retrained {new:.3} vs seed {old:.3}");
+    stop(d);
+}
+
 /// Real defects marked as false alarms: the challenger learns to miss
 /// them, the gate refuses it, and the running model stays.
 #[test]
