@@ -85,11 +85,38 @@ impl Learning {
         Ok((model, entry))
     }
 
-    /// Writes the events a crash kept from being written: a model put in
+    /// Writes the events a crash kept from being written: a registered
+    /// model no event names (the daemon stopped between the registry entry
+    /// and its decision: it was not put in service), and a model put in
     /// service (`model.json` switched) whose decision is not in the log.
     fn reconcile(&self, model: &Model) -> Result<()> {
         let events = self.events.read()?;
         let now = model_ref(model);
+        let named = |v: u64, h: &str| {
+            events.iter().any(|e| {
+                [&e.model, &e.running]
+                    .iter()
+                    .any(|m| m.as_ref().is_some_and(|m| m.version == v && m.hash == h))
+            })
+        };
+        for e in self.registry.entries()? {
+            if !named(e.version, &e.hash) && !(e.version == now.version && e.hash == now.hash) {
+                self.events.append(Event {
+                    event: "recovered".into(),
+                    by: "start".into(),
+                    decision: "refused".into(),
+                    reason: format!(
+                        "version {} was registered but the daemon stopped before its decision; it was not put in service",
+                        e.version
+                    ),
+                    model: Some(ModelRef {
+                        version: e.version,
+                        hash: e.hash.clone(),
+                    }),
+                    ..Event::default()
+                })?;
+            }
+        }
         let last = events
             .iter()
             .rev()
@@ -256,15 +283,7 @@ impl Learning {
         })?;
         let model = self.registry.model(&entry)?;
         // It must run under this configuration before anything changes.
-        if let Some(w) = live.window {
-            if model.tree.window() != w {
-                return Err(Error::new(ErrorKind::BadModel(format!(
-                    "version {version} uses a {0}x{0} window but detection.window is {1}",
-                    model.tree.window().size(),
-                    w.size()
-                ))));
-            }
-        }
+        super::start::check_window(&model, live)?;
         super::start::detector(model.clone(), live)?;
         registry::put_in_service(self.state(), &model)?;
         self.events.append(Event {
@@ -296,5 +315,89 @@ impl Learning {
             ..Event::default()
         })?;
         Ok(line)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn learning(d: &Path) -> (Learning, LiveConfig) {
+        let mut cfg = crate::config::Config::default();
+        for (sub, f) in [
+            ("inbox", &mut cfg.start.folders.inbox),
+            ("archive", &mut cfg.start.folders.archive),
+            ("rejected", &mut cfg.start.folders.rejected),
+            ("corrections", &mut cfg.start.folders.corrections),
+            ("state", &mut cfg.start.folders.state),
+            ("logs", &mut cfg.start.folders.logs),
+        ] {
+            *f = d.join(sub);
+            std::fs::create_dir_all(&*f).unwrap();
+        }
+        let model = model();
+        let l = Learning::open(&cfg.start.folders, &cfg.live, model.tree.window()).unwrap();
+        (l, cfg.live)
+    }
+
+    fn model() -> Model {
+        Model::from_json(include_str!("../../tests/data/model-v2.json")).unwrap()
+    }
+
+    #[test]
+    fn decisions_a_crash_kept_out_of_the_events_log_are_recorded_at_start() {
+        let d = tempfile::tempdir().unwrap();
+        let (l, _) = learning(d.path());
+        let (v1, _) = l
+            .in_service(model(), Origin::Adopted, TrainedOn::default())
+            .unwrap();
+        // A retrain registered version 2, then the daemon stopped before
+        // its decision was logged.
+        let mut m2 = model();
+        m2.threshold = (m2.threshold + 0.01).min(1.0);
+        m2.model_version = 2;
+        let e2 = l
+            .registry
+            .add(
+                &m2,
+                Entry {
+                    version: 0,
+                    hash: String::new(),
+                    parent: Some(1),
+                    time: String::new(),
+                    origin: Origin::Retrain,
+                    trained_on: TrainedOn::default(),
+                    passed: true,
+                    reason: String::new(),
+                    gate: None,
+                },
+            )
+            .unwrap();
+        l.in_service(v1.clone(), Origin::Adopted, TrainedOn::default())
+            .unwrap();
+        let ev = l.events.read().unwrap();
+        let last = ev.last().unwrap();
+        assert_eq!(
+            (last.event.as_str(), last.decision.as_str()),
+            ("recovered", "refused")
+        );
+        assert_eq!(last.model.as_ref().unwrap().version, e2.version);
+        // Then it went in service (model.json switched) and again the
+        // decision was not logged.
+        registry::put_in_service(&l.folders.state, &m2).unwrap();
+        l.in_service(m2.clone(), Origin::Adopted, TrainedOn::default())
+            .unwrap();
+        let ev = l.events.read().unwrap();
+        let last = ev.last().unwrap();
+        assert_eq!(
+            (last.event.as_str(), last.decision.as_str()),
+            ("recovered", "in-service")
+        );
+        assert_eq!(last.model, Some(model_ref(&m2)));
+        // Nothing more to record on the next start.
+        let before = ev.len();
+        l.in_service(m2, Origin::Adopted, TrainedOn::default())
+            .unwrap();
+        assert_eq!(l.events.read().unwrap().len(), before);
     }
 }

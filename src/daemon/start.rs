@@ -24,17 +24,20 @@ pub fn model_path(folders: &Folders) -> PathBuf {
 pub fn load_model(folders: &Folders, live: &LiveConfig) -> Result<Model> {
     let path = model_path(folders);
     let m = crate::fileio::models::read_model(&path)?;
-    if let Some(w) = live.window {
-        if m.tree.window() != w {
-            return Err(Error::new(ErrorKind::BadModel(format!(
-                "the model uses a {0}x{0} window but detection.window is {1}",
-                m.tree.window().size(),
-                w.size()
-            )))
-            .with_path(&path));
-        }
-    }
+    check_window(&m, live).map_err(|e| e.with_path(&path))?;
     Ok(m)
+}
+
+/// Whether a model has the window `detection.window` asks for, if any.
+pub fn check_window(m: &Model, live: &LiveConfig) -> Result<()> {
+    match live.window {
+        Some(w) if m.tree.window() != w => Err(Error::new(ErrorKind::BadModel(format!(
+            "the model uses a {0}x{0} window but detection.window is {1}",
+            m.tree.window().size(),
+            w.size()
+        )))),
+        _ => Ok(()),
+    }
 }
 
 /// The detector for a model under the live configuration's overrides.

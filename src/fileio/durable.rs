@@ -115,27 +115,7 @@ pub fn write_atomic_with(
     path: &Path,
     fill: &mut dyn FnMut(&mut dyn Write) -> io::Result<()>,
 ) -> io::Result<()> {
-    let name = path
-        .file_name()
-        .ok_or_else(|| io::Error::other("not a file path"))?;
-    let dir = match path.parent() {
-        Some(p) if !p.as_os_str().is_empty() => p,
-        _ => Path::new("."),
-    };
-    fs::create_dir_all(dir)?;
-    let tmp = dir.join(format!(".{}.tmp", name.to_string_lossy()));
-    let written = (|| {
-        let mut w = io::BufWriter::with_capacity(1 << 16, File::create(&tmp)?);
-        fill(&mut w)?;
-        let f = w.into_inner().map_err(|e| e.into_error())?;
-        f.sync_all()?;
-        fs::rename(&tmp, path)
-    })();
-    if let Err(e) = written {
-        let _ = fs::remove_file(&tmp);
-        return Err(e);
-    }
-    sync_dir(dir)
+    write_atomic_paced(path, u64::MAX, fill)
 }
 
 /// [`write_atomic_with`], syncing the data every `sync_every` bytes as it
