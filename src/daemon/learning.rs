@@ -100,7 +100,8 @@ impl Learning {
             })
         };
         for e in self.registry.entries()? {
-            if !named(e.version, &e.hash) && !(e.version == now.version && e.hash == now.hash) {
+            let serving = e.version == now.version && e.hash == now.hash;
+            if !serving && !named(e.version, &e.hash) {
                 self.events.append(Event {
                     event: "recovered".into(),
                     by: "start".into(),
