@@ -22,11 +22,11 @@
 
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
-use std::sync::atomic::{AtomicUsize, Ordering};
-use std::sync::{Arc, Mutex};
+use std::sync::atomic::Ordering;
 use std::time::{Duration, Instant};
 
-use notify::{RecursiveMode, Watcher};
+mod support;
+use support::{percentile, rss_kib, Arrivals};
 
 use burlwatch::codec::DecodeLimits;
 use burlwatch::learn::{self, TrainParams};
@@ -82,66 +82,6 @@ fn start(model: &str, extra: &str, tag: &str) -> Box_ {
     Box_ { root, child }
 }
 
-/// Counts frames arriving in the archive and notes when each arrived.
-struct Arrivals {
-    count: Arc<AtomicUsize>,
-    times: Arc<Mutex<Vec<(String, Instant)>>>,
-    _watcher: notify::RecommendedWatcher,
-}
-
-fn watch_archive(dir: &Path) -> Arrivals {
-    let count = Arc::new(AtomicUsize::new(0));
-    let times = Arc::new(Mutex::new(Vec::new()));
-    let (c, t) = (count.clone(), times.clone());
-    let mut w = notify::recommended_watcher(move |ev: notify::Result<notify::Event>| {
-        let now = Instant::now();
-        if let Ok(ev) = ev {
-            use notify::event::{CreateKind, ModifyKind, RenameMode};
-            if matches!(
-                ev.kind,
-                notify::EventKind::Create(CreateKind::File | CreateKind::Any)
-                    | notify::EventKind::Modify(ModifyKind::Name(RenameMode::To))
-            ) {
-                for p in ev.paths {
-                    let n = p.file_name().unwrap().to_string_lossy().into_owned();
-                    t.lock().unwrap().push((n, now));
-                    c.fetch_add(1, Ordering::Relaxed);
-                }
-            }
-        }
-    })
-    .unwrap();
-    w.watch(dir, RecursiveMode::NonRecursive).unwrap();
-    Arrivals {
-        count,
-        times,
-        _watcher: w,
-    }
-}
-
-fn wait_count(c: &AtomicUsize, n: usize, secs: u64) {
-    let deadline = Instant::now() + Duration::from_secs(secs);
-    while c.load(Ordering::Relaxed) < n {
-        assert!(
-            Instant::now() < deadline,
-            "only {} of {n} frames archived",
-            c.load(Ordering::Relaxed)
-        );
-        std::thread::sleep(Duration::from_millis(2));
-    }
-}
-
-fn rss_kib(child: &Child) -> u64 {
-    let s = std::fs::read_to_string(format!("/proc/{}/status", child.id())).unwrap();
-    let l = s.lines().find(|l| l.starts_with("VmRSS:")).unwrap();
-    l.split_whitespace().nth(1).unwrap().parse().unwrap()
-}
-
-fn percentile(v: &mut [f64], q: f64) -> f64 {
-    v.sort_by(f64::total_cmp);
-    v[((v.len() - 1) as f64 * q).round() as usize]
-}
-
 fn main() {
     let repo = Path::new(env!("CARGO_MANIFEST_DIR"));
     let folder = burlwatch::fileio::data::read_folder(
@@ -180,13 +120,13 @@ fn main() {
             )
             .unwrap();
         }
-        let arrivals = watch_archive(&b.root.join("archive"));
+        let arrivals = Arrivals::watch(&b.root.join("archive"));
         let t0 = Instant::now();
         for i in 0..n {
             let name = format!("f{i:06}.pbm");
             std::fs::rename(stage.join(&name), b.root.join("inbox").join(&name)).unwrap();
         }
-        wait_count(&arrivals.count, n, 600);
+        arrivals.wait_count(n, 600);
         let last = arrivals
             .times
             .lock()
@@ -209,7 +149,7 @@ fn main() {
         ("sync batched", "[log]\nsync = \"batch\"\n"),
     ] {
         let b = start(&model, extra, "lat");
-        let arrivals = watch_archive(&b.root.join("archive"));
+        let arrivals = Arrivals::watch(&b.root.join("archive"));
         let stage = b.root.join("stage");
         std::fs::create_dir_all(&stage).unwrap();
         let count = 1000;
@@ -224,7 +164,7 @@ fn main() {
             std::fs::rename(stage.join(&name), b.root.join("inbox").join(&name)).unwrap();
             sent.push((name, at));
         }
-        wait_count(&arrivals.count, count, 60);
+        arrivals.wait_count(count, 60);
         let times: std::collections::HashMap<String, Instant> =
             arrivals.times.lock().unwrap().iter().cloned().collect();
         let mut lat: Vec<f64> = sent
@@ -240,8 +180,8 @@ fn main() {
 
     // 3. Resident memory over 20,000 frames.
     let b = start(&model, "[log]\nsync = \"batch\"\n", "mem");
-    let arrivals = watch_archive(&b.root.join("archive"));
-    let start_rss = rss_kib(&b.child);
+    let arrivals = Arrivals::watch(&b.root.join("archive"));
+    let start_rss = rss_kib(b.child.id());
     let mut at = Vec::new();
     let stage = b.root.join("stage");
     std::fs::create_dir_all(&stage).unwrap();
@@ -254,8 +194,8 @@ fn main() {
         std::fs::write(stage.join(&name), &frames[i % frames.len()]).unwrap();
         std::fs::rename(stage.join(&name), b.root.join("inbox").join(&name)).unwrap();
         if (i + 1) % 5_000 == 0 {
-            wait_count(&arrivals.count, i + 1, 120);
-            at.push(rss_kib(&b.child));
+            arrivals.wait_count(i + 1, 120);
+            at.push(rss_kib(b.child.id()));
         }
     }
     println!(

@@ -30,80 +30,16 @@
 
 use std::path::{Path, PathBuf};
 use std::process::{Child, Command, Stdio};
-use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
-use notify::{RecursiveMode, Watcher};
+mod support;
+use support::{percentile, rss_kib, Arrivals};
 
 use burlwatch::codec::{self, DecodeLimits};
 use burlwatch::learn::{self, TrainParams};
 use burlwatch::synth::{self, LoomParams};
 
 const NEW_FRAMES: usize = 46;
-
-fn rss_kib(pid: u32) -> u64 {
-    let s = std::fs::read_to_string(format!("/proc/{pid}/status")).unwrap();
-    let l = s.lines().find(|l| l.starts_with("VmRSS:")).unwrap();
-    l.split_whitespace().nth(1).unwrap().parse().unwrap()
-}
-
-fn percentile(v: &mut [f64], q: f64) -> f64 {
-    v.sort_by(f64::total_cmp);
-    v[((v.len() - 1) as f64 * q).round() as usize]
-}
-
-/// Notes when each file arrives in a folder.
-struct Arrivals {
-    times: Arc<Mutex<Vec<(String, Instant)>>>,
-    _watcher: notify::RecommendedWatcher,
-}
-
-impl Arrivals {
-    fn watch(dir: &Path) -> Arrivals {
-        std::fs::create_dir_all(dir).unwrap();
-        let times = Arc::new(Mutex::new(Vec::new()));
-        let t = times.clone();
-        let mut w = notify::recommended_watcher(move |ev: notify::Result<notify::Event>| {
-            let now = Instant::now();
-            if let Ok(ev) = ev {
-                use notify::event::{CreateKind, ModifyKind, RenameMode};
-                if matches!(
-                    ev.kind,
-                    notify::EventKind::Create(CreateKind::File | CreateKind::Any)
-                        | notify::EventKind::Modify(ModifyKind::Name(RenameMode::To))
-                ) {
-                    for p in ev.paths {
-                        let n = p.file_name().unwrap().to_string_lossy().into_owned();
-                        t.lock().unwrap().push((n, now));
-                    }
-                }
-            }
-        })
-        .unwrap();
-        w.watch(dir, RecursiveMode::NonRecursive).unwrap();
-        Arrivals { times, _watcher: w }
-    }
-
-    fn get(&self, name: &str) -> Option<Instant> {
-        self.times
-            .lock()
-            .unwrap()
-            .iter()
-            .find(|t| t.0 == name)
-            .map(|t| t.1)
-    }
-
-    fn wait(&self, name: &str, secs: u64) -> Instant {
-        let deadline = Instant::now() + Duration::from_secs(secs);
-        loop {
-            if let Some(t) = self.get(name) {
-                return t;
-            }
-            assert!(Instant::now() < deadline, "{name} did not arrive");
-            std::thread::sleep(Duration::from_millis(1));
-        }
-    }
-}
 
 struct Box_ {
     root: PathBuf,

@@ -6,14 +6,14 @@
 
 use std::collections::{HashMap, HashSet};
 use std::path::PathBuf;
-use std::process::{Child, Command, Stdio};
+use std::process::{Child, Command};
 use std::time::{Duration, Instant};
 
 use burlwatch::codec;
 use burlwatch::record::{sha256_hex, FrameRecord};
 use burlwatch::synth::{self, LoomParams};
 
-use crate::util::{frames, repo, Dir};
+use crate::util::{frames, rename_in, repo, spawn_daemon, wait_for, Dir};
 
 /// A daemon's folders, its configuration and the committed model as its
 /// running model.
@@ -65,22 +65,11 @@ impl Setup {
     }
 
     fn start(&self) -> Child {
-        let err = std::fs::OpenOptions::new()
-            .create(true)
-            .append(true)
-            .open(self.dir.join("daemon.stderr"))
-            .unwrap();
-        Command::new(env!("CARGO_BIN_EXE_burlwatch"))
-            .args(["run", "--config"])
-            .arg(self.config())
-            .current_dir(self.dir.path())
-            .env_remove("RUST_LOG")
-            .env_remove("NOTIFY_SOCKET")
-            .stdin(Stdio::null())
-            .stdout(Stdio::null())
-            .stderr(err)
-            .spawn()
-            .expect("start the daemon")
+        spawn_daemon(
+            &self.config(),
+            self.dir.path(),
+            &self.dir.join("daemon.stderr"),
+        )
     }
 
     /// Starts the daemon and waits until it watches the inbox.
@@ -103,9 +92,7 @@ impl Setup {
     /// Drops a frame into the inbox the preferred way: written under a
     /// temporary name, then renamed.
     fn drop_frame(&self, name: &str, bytes: &[u8]) {
-        let tmp = self.inbox().join(format!(".{name}.tmp"));
-        std::fs::write(&tmp, bytes).unwrap();
-        std::fs::rename(&tmp, self.inbox().join(name)).unwrap();
+        rename_in(&self.inbox(), name, bytes);
     }
 
     fn names_in(&self, folder: &str) -> HashSet<String> {
@@ -145,15 +132,6 @@ impl Setup {
             }
         }
         out
-    }
-}
-
-/// Polls `cond` until it holds or the deadline passes.
-fn wait_for(what: &str, secs: u64, mut cond: impl FnMut() -> bool) {
-    let deadline = Instant::now() + Duration::from_secs(secs);
-    while !cond() {
-        assert!(Instant::now() < deadline, "timed out waiting for {what}");
-        std::thread::sleep(Duration::from_millis(20));
     }
 }
 

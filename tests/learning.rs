@@ -13,7 +13,7 @@
 
 use std::collections::HashSet;
 use std::path::PathBuf;
-use std::process::{Child, Command, Stdio};
+use std::process::Child;
 use std::time::{Duration, Instant};
 
 use burlwatch::codec;
@@ -26,7 +26,7 @@ use burlwatch::learn::store::LabelStore;
 use burlwatch::record::FrameRecord;
 use burlwatch::synth::{self, LoomParams};
 
-use crate::util::{burlwatch, Dir, Run};
+use crate::util::{burlwatch, rename_in, spawn_daemon, wait_for, Dir, Run};
 
 /// Frame side of these tests: small enough for quick training in the test
 /// profile, large enough for several defects per frame.
@@ -120,22 +120,11 @@ impl Box_ {
 
     fn start(&self) -> Child {
         let before = self.stderr().matches("watching").count();
-        let err = std::fs::OpenOptions::new()
-            .create(true)
-            .append(true)
-            .open(self.dir.join("daemon.stderr"))
-            .unwrap();
-        let child = Command::new(env!("CARGO_BIN_EXE_burlwatch"))
-            .args(["run", "--config"])
-            .arg(self.config())
-            .current_dir(self.dir.path())
-            .env_remove("RUST_LOG")
-            .env_remove("NOTIFY_SOCKET")
-            .stdin(Stdio::null())
-            .stdout(Stdio::null())
-            .stderr(err)
-            .spawn()
-            .expect("start the daemon");
+        let child = spawn_daemon(
+            &self.config(),
+            self.dir.path(),
+            &self.dir.join("daemon.stderr"),
+        );
         wait_for("the daemon to start", 180, || {
             self.stderr().matches("watching").count() > before
         });
@@ -147,10 +136,7 @@ impl Box_ {
     }
 
     fn drop_frame(&self, name: &str, bytes: &[u8]) {
-        let inbox = self.dir.join("inbox");
-        let tmp = inbox.join(format!(".{name}.tmp"));
-        std::fs::write(&tmp, bytes).unwrap();
-        std::fs::rename(&tmp, inbox.join(name)).unwrap();
+        rename_in(&self.dir.join("inbox"), name, bytes);
     }
 
     fn records(&self) -> Vec<FrameRecord> {
@@ -216,14 +202,6 @@ impl Box_ {
 
     fn state(&self) -> PathBuf {
         self.dir.join("state")
-    }
-}
-
-fn wait_for(what: &str, secs: u64, mut cond: impl FnMut() -> bool) {
-    let deadline = Instant::now() + Duration::from_secs(secs);
-    while !cond() {
-        assert!(Instant::now() < deadline, "timed out waiting for {what}");
-        std::thread::sleep(Duration::from_millis(20));
     }
 }
 
@@ -477,9 +455,7 @@ fn a_wrong_batch_of_corrections_is_refused_by_the_gate() {
 fn drop_correction(b: &Box_, name: &str, text: &str) {
     let dir = b.dir.join("corrections");
     std::fs::create_dir_all(&dir).unwrap();
-    let tmp = dir.join(format!(".{name}.tmp"));
-    std::fs::write(&tmp, text).unwrap();
-    std::fs::rename(&tmp, dir.join(name)).unwrap();
+    rename_in(&dir, name, text.as_bytes());
 }
 
 /// Every kind of bad correction is moved to `rejected/` with its reason;

@@ -87,3 +87,45 @@ pub fn frames(count: usize, seed: u64) -> Vec<(String, Vec<u8>)> {
         })
         .collect()
 }
+
+/// Polls `cond` until it holds or the deadline passes (the tests never
+/// assert on durations; deadlines are generous).
+pub fn wait_for(what: &str, secs: u64, mut cond: impl FnMut() -> bool) {
+    let deadline = std::time::Instant::now() + std::time::Duration::from_secs(secs);
+    while !cond() {
+        assert!(
+            std::time::Instant::now() < deadline,
+            "timed out waiting for {what}"
+        );
+        std::thread::sleep(std::time::Duration::from_millis(20));
+    }
+}
+
+/// Starts `burlwatch run --config CONFIG` in `cwd`, its stderr appended to
+/// `stderr` (shared by every daemon of a test), with no systemd socket.
+pub fn spawn_daemon(config: &Path, cwd: &Path, stderr: &Path) -> std::process::Child {
+    let err = std::fs::OpenOptions::new()
+        .create(true)
+        .append(true)
+        .open(stderr)
+        .unwrap();
+    Command::new(env!("CARGO_BIN_EXE_burlwatch"))
+        .args(["run", "--config"])
+        .arg(config)
+        .current_dir(cwd)
+        .env_remove("RUST_LOG")
+        .env_remove("NOTIFY_SOCKET")
+        .stdin(std::process::Stdio::null())
+        .stdout(std::process::Stdio::null())
+        .stderr(err)
+        .spawn()
+        .expect("start the daemon")
+}
+
+/// Puts a file into a watched folder the preferred way: written under a
+/// hidden temporary name, then renamed.
+pub fn rename_in(dir: &Path, name: &str, bytes: &[u8]) {
+    let tmp = dir.join(format!(".{name}.tmp"));
+    std::fs::write(&tmp, bytes).unwrap();
+    std::fs::rename(&tmp, dir.join(name)).unwrap();
+}
