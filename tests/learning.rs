@@ -645,6 +645,12 @@ fn bad_corrections_are_rejected_with_their_reason_and_change_nothing() {
     assert_eq!(r.code, 0, "{}", r.stderr);
     wait_for("the second correction applied", 30, || b.applied() == 2);
     assert_eq!(labels_consistent(&b), 1);
+    // A new line with no labels: the running daemon says why it does not
+    // retrain, and keeps running.
+    assert_eq!(b.run(&["changeover"]).code, 0);
+    let r = b.run(&["retrain"]);
+    assert_eq!(r.code, 1, "{}{}", r.stdout, r.stderr);
+    assert!(r.stdout.contains("no retrain: line 2 has 0"), "{}", r.stdout);
     stop(d);
 }
 

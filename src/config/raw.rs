@@ -176,8 +176,8 @@ pub struct RawRetrain {
     /// line now running (default true: measured to help until a line has
     /// several dozen labelled frames; see README).
     pub older_lines: Option<bool>,
-    /// Seconds a retrain's tree may grow before the retrain is abandoned
-    /// (default 600).
+    /// Seconds a retrain may run before it is abandoned, checked while its
+    /// tree grows and between its stages (default 600).
     pub budget_seconds: Option<f64>,
 }
 

@@ -307,6 +307,19 @@ pub fn read_labels(state: &Path) -> Result<Vec<Label>> {
     }
 }
 
+/// Reads labelled frames' files (a replaced label's hidden ones too).
+#[derive(Clone, Debug)]
+pub struct LabelReader {
+    dir: PathBuf,
+    limits: DecodeLimits,
+}
+
+impl LabelReader {
+    pub fn read(&self, l: &Label) -> Result<LabelledFrame> {
+        read_stem(&self.dir, &self.limits, &l.stem, &l.frame)
+    }
+}
+
 /// Reads one labelled frame's files by stem; `name` becomes its name.
 fn read_stem(dir: &Path, limits: &DecodeLimits, stem: &str, name: &str) -> Result<LabelledFrame> {
     // A label replaced since it was named has its files hidden.
@@ -563,6 +576,24 @@ impl LabelSet {
         }
         self.remove_strays();
         Ok(label)
+    }
+
+    /// The labels of `lines` with `role`, in the order applied.
+    pub fn labels_of(&self, lines: &[u64], role: Role) -> Vec<Label> {
+        self.index
+            .labels
+            .iter()
+            .filter(|l| l.role == role && lines.contains(&l.line))
+            .cloned()
+            .collect()
+    }
+
+    /// What reads the labels' files, for use off the owner's thread.
+    pub fn reader(&self) -> LabelReader {
+        LabelReader {
+            dir: self.dir.clone(),
+            limits: self.limits.clone(),
+        }
     }
 
     /// The labelled frames of `lines` with `role`, read from their files.

@@ -42,12 +42,20 @@ pub(super) enum FromLearner {
 
 /// A retrain running on its job thread.
 struct Job {
-    done: Receiver<(Plan, crate::error::Result<Challenge>, Box<Model>)>,
+    done: Receiver<JobEnd>,
     stop: Arc<AtomicBool>,
     by: String,
     /// Requests to answer when it ends.
     waiting: Vec<PathBuf>,
     thread: thread::JoinHandle<()>,
+}
+
+/// How a retrain job ended.
+enum JobEnd {
+    /// Not enough labels yet (why), or the labels could not be read.
+    NoRetrain(String),
+    /// A challenger grown and judged (or why none was).
+    Done(Box<(Plan, crate::error::Result<Challenge>, Model)>),
 }
 
 /// The learner's state.
@@ -141,11 +149,14 @@ impl Learner {
                     Ok(ToLearner::Correction(path)) => self.correction(path),
                     Err(_) => break,
                 },
-                recv(done) -> r => {
-                    if let Ok((plan, result, running)) = r {
-                        self.finish_job(plan, result, &running);
+                recv(done) -> r => match r {
+                    Ok(JobEnd::Done(done)) => {
+                        let (plan, result, running) = *done;
+                        self.finish_job(plan, result, &running)
                     }
-                }
+                    Ok(JobEnd::NoRetrain(why)) => self.no_retrain(&why),
+                    Err(_) => self.no_retrain("the retrain thread stopped"),
+                },
                 recv(tick) -> _ => {
                     self.requests();
                     self.schedule();
@@ -259,23 +270,16 @@ impl Learner {
             return;
         }
         match self.start_job("schedule") {
-            Ok(()) => info!(new_labels = new, "scheduled retrain started"),
-            Err(why) => info!("scheduled retrain not started: {why}"),
+            Ok(()) => info!(new_labels = new, "scheduled retrain: reading the labels"),
+            Err(why) => warn!("scheduled retrain not started: {why}"),
         }
     }
 
-    /// Plans a retrain and starts its job thread; or says why not.
+    /// Starts a retrain's job thread: it reads the labels (what to read is
+    /// decided here from the index, quickly), says if there are not enough,
+    /// or grows and judges a challenger. Errs only when it cannot start.
     fn start_job(&mut self, by: &str) -> std::result::Result<(), String> {
         let run = self.running.load_full();
-        let plan = match retrain::plan(
-            &self.learning.folders.state,
-            &mut self.learning.labels,
-            &run.live,
-        ) {
-            Ok(Ok(p)) => p,
-            Ok(Err(why)) => return Err(why),
-            Err(e) => return Err(e.to_string()),
-        };
         let entry = self
             .learning
             .entry_of(run.detector.model())
@@ -284,29 +288,53 @@ impl Learner {
             .learning
             .changeover_since(&entry)
             .map_err(|e| e.to_string())?;
-        self.last_tried = Some(plan.generation);
-        info!(
-            by,
-            line = plan.line,
-            train = plan.train.len(),
-            held_out = plan.gate.len(),
-            "retrain started"
-        );
+        let planned = retrain::plan_job(
+            &self.learning.folders.state,
+            &mut self.learning.labels,
+            &run.live,
+        )
+        .map_err(|e| e.to_string())?;
+        self.last_tried = Some(planned.generation());
         let stop = Arc::new(AtomicBool::new(false));
         let (tx, rx) = bounded(1);
         let model = Box::new(run.detector.model().clone());
         let live = run.live.clone();
         let flag = stop.clone();
-        let thread = thread::Builder::new()
+        let by_name = by.to_string();
+        let spawned = thread::Builder::new()
             .name("burlwatch-retrain".into())
             .spawn(move || {
                 lower_priority();
                 let deadline = Instant::now() + live.retrain.budget;
                 let halt = || flag.load(Ordering::Relaxed) || Instant::now() >= deadline;
+                let plan = match planned.read(&live) {
+                    Ok(Ok(p)) => p,
+                    Ok(Err(why)) => {
+                        let _ = tx.send(JobEnd::NoRetrain(why));
+                        return;
+                    }
+                    Err(e) => {
+                        let _ = tx.send(JobEnd::NoRetrain(format!("cannot read the labels: {e}")));
+                        return;
+                    }
+                };
+                info!(
+                    by = %by_name,
+                    line = plan.line,
+                    train = plan.train.len(),
+                    held_out = plan.gate.len(),
+                    "retrain started"
+                );
                 let result = retrain::challenge(&plan, &model, &live, changeover, &halt);
-                let _ = tx.send((plan, result, model));
-            })
-            .map_err(|e| e.to_string())?;
+                let _ = tx.send(JobEnd::Done(Box::new((plan, result, *model))));
+            });
+        let thread = match spawned {
+            Ok(t) => t,
+            Err(e) => {
+                self.learning.labels.release_jobs();
+                return Err(e.to_string());
+            }
+        };
         self.job = Some(Job {
             done: rx,
             stop,
@@ -315,6 +343,25 @@ impl Learner {
             thread,
         });
         Ok(())
+    }
+
+    /// A retrain job found nothing to do: its store jobs are let go and
+    /// whoever asked is told why.
+    fn no_retrain(&mut self, why: &str) {
+        if let Some(job) = self.job.take() {
+            let _ = job.thread.join();
+            info!("no retrain: {why}");
+            for path in job.waiting {
+                requests::answer(
+                    &path,
+                    &Answer {
+                        ok: false,
+                        message: format!("no retrain: {why}"),
+                    },
+                );
+            }
+        }
+        self.learning.labels.release_jobs();
     }
 
     /// Why a retrain's outcome no longer applies, if it does not: the

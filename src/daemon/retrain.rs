@@ -81,79 +81,129 @@ pub fn seed_frames(live: &LiveConfig) -> Result<Vec<(LabelledFrame, Role)>> {
         .collect())
 }
 
+/// What a retrain of the line now running will read, decided from the
+/// label index alone (quick, on the thread that owns the labels; the store
+/// jobs it hands out keep their files until committed or released). Its
+/// [`PlanJob::read`] reads the frames, anywhere.
+#[derive(Debug)]
+pub struct PlanJob {
+    line: u64,
+    train: Vec<super::labels::Label>,
+    gate: Vec<super::labels::Label>,
+    older_gate: Vec<super::labels::Label>,
+    stores: Vec<StoreJob>,
+    /// Labels on the line now running.
+    on_line: u64,
+    generation: u64,
+    reader: super::labels::LabelReader,
+}
+
+/// Decides what a retrain will read (see [`PlanJob`]).
+pub fn plan_job(state: &Path, labels: &mut LabelSet, live: &LiveConfig) -> Result<PlanJob> {
+    let lines = labels::read_lines(state)?;
+    let line = lines.last().map_or(1, |l| l.line);
+    let older: Vec<u64> = lines.iter().map(|l| l.line).filter(|&l| l < line).collect();
+    let mut train = labels.labels_of(&[line], Role::Train);
+    let mut store_lines = vec![line];
+    if live.retrain.older_lines {
+        train.extend(labels.labels_of(&older, Role::Train));
+        store_lines.extend(&older);
+    }
+    Ok(PlanJob {
+        line,
+        train,
+        gate: labels.labels_of(&[line], Role::Gate),
+        older_gate: labels.labels_of(&older, Role::Gate),
+        on_line: labels.labels().iter().filter(|l| l.line == line).count() as u64,
+        stores: store_lines.iter().map(|&l| labels.store_job(l)).collect(),
+        generation: labels.generation(),
+        reader: labels.reader(),
+    })
+}
+
+impl PlanJob {
+    /// Reads the frames (and the seed data) and says whether there are
+    /// enough: the plan, or why not.
+    pub fn read(self, live: &LiveConfig) -> Result<std::result::Result<Plan, String>> {
+        let line = self.line;
+        let read = |ls: &[super::labels::Label]| -> Result<Vec<LabelledFrame>> {
+            ls.iter().map(|l| self.reader.read(l)).collect()
+        };
+        let mut train = read(&self.train)?;
+        let mut gate = read(&self.gate)?;
+        let mut older_gate = read(&self.older_gate)?;
+        let mut seed_idx = Vec::new();
+        let mut on_line = self.on_line;
+        for (f, role) in seed_frames(live)? {
+            if line == 1 {
+                on_line += 1;
+            }
+            match (role, line == 1) {
+                (Role::Gate, true) => gate.push(f),
+                (Role::Gate, false) => older_gate.push(f),
+                (Role::Train, true) => {
+                    seed_idx.push(train.len());
+                    train.push(f);
+                }
+                (Role::Train, false) if live.retrain.older_lines => {
+                    seed_idx.push(train.len());
+                    train.push(f);
+                }
+                (Role::Train, false) => {}
+            }
+        }
+        let has_targets = |v: &[LabelledFrame]| v.iter().any(|f| f.truth().count_set() > 0);
+        let why = if on_line < live.retrain.min_line_labels {
+            Some(format!(
+                "line {line} has {on_line} labelled frame(s); retrain.min_line_labels is {}",
+                live.retrain.min_line_labels
+            ))
+        } else if !has_targets(&gate) {
+            Some(format!(
+                "no held-out frame of line {line} has a defect to judge a model on (label more frames with defects)"
+            ))
+        } else if !has_targets(&train) {
+            Some(format!(
+                "no training frame of line {line} has a defect (label more frames with defects)"
+            ))
+        } else {
+            None
+        };
+        Ok(match why {
+            Some(w) => Err(w),
+            None => Ok(Plan {
+                line,
+                stores: self.stores,
+                seed: seed_idx,
+                train,
+                gate,
+                older_gate,
+                generation: self.generation,
+            }),
+        })
+    }
+
+    /// The label generation it was decided at.
+    pub fn generation(&self) -> u64 {
+        self.generation
+    }
+}
+
 /// The frames a retrain of the line now running would use, or why there
-/// are not enough yet.
+/// are not enough yet: [`plan_job`] and [`PlanJob::read`] in one go (the
+/// offline command; the daemon reads on its retrain thread). When there
+/// are not enough, the store jobs are let go.
 pub fn plan(
     state: &Path,
     labels: &mut LabelSet,
     live: &LiveConfig,
 ) -> Result<std::result::Result<Plan, String>> {
-    let lines = labels::read_lines(state)?;
-    let line = lines.last().map_or(1, |l| l.line);
-    let older: Vec<u64> = lines.iter().map(|l| l.line).filter(|&l| l < line).collect();
-    let mut train = labels.frames(&[line], Role::Train)?;
-    let mut gate = labels.frames(&[line], Role::Gate)?;
-    let mut older_gate = labels.frames(&older, Role::Gate)?;
-    let mut store_lines = vec![line];
-    if live.retrain.older_lines {
-        train.extend(labels.frames(&older, Role::Train)?);
-        store_lines.extend(&older);
+    let job = plan_job(state, labels, live)?;
+    let planned = job.read(live);
+    if !matches!(planned, Ok(Ok(_))) {
+        labels.release_jobs();
     }
-    let mut seed_idx = Vec::new();
-    for (f, role) in seed_frames(live)? {
-        match (role, line == 1) {
-            (Role::Gate, true) => gate.push(f),
-            (Role::Gate, false) => older_gate.push(f),
-            (Role::Train, true) => {
-                seed_idx.push(train.len());
-                train.push(f);
-            }
-            (Role::Train, false) if live.retrain.older_lines => {
-                seed_idx.push(train.len());
-                train.push(f);
-            }
-            (Role::Train, false) => {}
-        }
-    }
-    let seed_count = if line == 1 {
-        train
-            .iter()
-            .chain(&gate)
-            .filter(|f| f.name.starts_with("seed:"))
-            .count()
-    } else {
-        0
-    };
-    let on_line = (labels.labels().iter().filter(|l| l.line == line).count() + seed_count) as u64;
-    let has_targets = |v: &[LabelledFrame]| v.iter().any(|f| f.truth().count_set() > 0);
-    let why = if on_line < live.retrain.min_line_labels {
-        Some(format!(
-            "line {line} has {on_line} labelled frame(s); retrain.min_line_labels is {}",
-            live.retrain.min_line_labels
-        ))
-    } else if !has_targets(&gate) {
-        Some(format!(
-            "no held-out frame of line {line} has a defect to judge a model on (label more frames with defects)"
-        ))
-    } else if !has_targets(&train) {
-        Some(format!(
-            "no training frame of line {line} has a defect (label more frames with defects)"
-        ))
-    } else {
-        None
-    };
-    Ok(match why {
-        Some(w) => Err(w),
-        None => Ok(Plan {
-            line,
-            stores: store_lines.iter().map(|&l| labels.store_job(l)).collect(),
-            seed: seed_idx,
-            train,
-            gate,
-            older_gate,
-            generation: labels.generation(),
-        }),
-    })
+    planned
 }
 
 /// A grown challenger and how it fared at the gate.
@@ -239,7 +289,12 @@ pub fn challenge(
     // for another size (detection.window changed) extracts its own.
     let (grown, stores) = if plan.stores.iter().all(|j| j.window() == params.window) {
         let (store, stores) = training_store(plan, params.window)?;
-        let grown = learn::train_from_store(&plan.train, store, &params, &mut |_| {}, stop);
+        // The store is written either way: the next retrain starts from it.
+        let grown = if stop() {
+            Err(crate::error::Error::training(learn::STOPPED))
+        } else {
+            learn::train_from_store(&plan.train, store, &params, &mut |_| {}, stop)
+        };
         (grown, stores)
     } else {
         (

@@ -292,8 +292,9 @@ pub fn train(
 /// The error [`train_with`] returns when `stop` said stop.
 pub const STOPPED: &str = "stopped before it finished (its time budget ran out)";
 
-/// [`train`], asking `stop` between stages and while growing: when it
-/// says stop, training is abandoned with a training error ([`STOPPED`]).
+/// [`train`], asking `stop` between stages (after growing and after
+/// tuning) and while growing: when it says stop, training is abandoned
+/// with a training error ([`STOPPED`]).
 /// The daemon's retraining passes its time budget here.
 pub fn train_with(
     frames: &[LabelledFrame],
@@ -446,6 +447,9 @@ fn train_inner(
         tune::choose(&first.tree, &first.pruning, first.weights, &holdout, &fixed)
     };
     drop(holdout);
+    if stop() {
+        return Err(stopped());
+    }
     let refit = params.refit && choice.is_some();
     let (final_grown, used_idx) = if refit {
         let all: Vec<usize> = (0..frames.len()).collect();
