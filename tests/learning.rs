@@ -307,6 +307,8 @@ fn an_operator_session_retrains_the_box_onto_a_new_weave() {
     wait_for("the new model in service", 30, || {
         b.stderr().contains("model in service")
     });
+    // The line's store, now written, agrees with its labels.
+    assert_eq!(labels_consistent(&b), marked.len());
     let (version, hash) = in_service(&b);
     assert_eq!(version, 2);
     // Scored on the half nobody labelled. Measured when this test was
@@ -650,7 +652,11 @@ fn bad_corrections_are_rejected_with_their_reason_and_change_nothing() {
     assert_eq!(b.run(&["changeover"]).code, 0);
     let r = b.run(&["retrain"]);
     assert_eq!(r.code, 1, "{}{}", r.stdout, r.stderr);
-    assert!(r.stdout.contains("no retrain: line 2 has 0"), "{}", r.stdout);
+    assert!(
+        r.stdout.contains("no retrain: line 2 has 0"),
+        "{}",
+        r.stdout
+    );
     stop(d);
 }
 
