@@ -26,6 +26,8 @@
 //!   record), the reference walker, the compiled evaluator, grouping.
 //! - [`score`]: pixel and object precision/recall/F1 (IoU >= 0.5 matching),
 //!   and a detector scored over labelled frames.
+//! - [`drift`]: drift statistics (PSI, Jensen-Shannon, 2x2 pattern
+//!   histograms, Page-Hinkley, DDM) for the monitors.
 //! - [`learn`]: the label store, greedy induction, cost-complexity pruning,
 //!   holdout tuning; builds a [`model::Model`].
 //! - [`synth`]: the seeded loom-frame generator for demo and test data.
@@ -48,6 +50,7 @@ pub mod config;
 pub mod correct;
 pub mod daemon;
 pub mod detect;
+pub mod drift;
 pub mod error;
 pub mod fileio;
 pub mod frame;

@@ -2,6 +2,8 @@
 //!
 //! - `reference_learning`: impurity, gain and the learner against published
 //!   worked examples and the `smartcore` reference tree;
+//! - `reference_drift`: the drift statistics against `scipy` and `river`
+//!   (a fixture made once by `tests/reference/drift_reference.py`);
 //! - `reference_images`: PBM decoding and grouping against the Netpbm
 //!   specification, the `image` crate's decoder and `imageproc`;
 //! - `properties`: property tests of the invariants;
@@ -22,5 +24,6 @@ mod daemon;
 mod inprocess;
 mod learning;
 mod properties;
+mod reference_drift;
 mod reference_images;
 mod reference_learning;

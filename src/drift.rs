@@ -1,0 +1,418 @@
+//! Drift statistics: how far recent frames, detections and the operator's
+//! corrections have moved from what the model was trained on. Pure: numbers
+//! and bit frames in, numbers out; the daemon's monitors (which keep
+//! windows, thresholds and alert states) are built on these.
+//!
+//! - [`psi`]: the Population Stability Index of two binned distributions,
+//!   `sum (a - e) ln(a / e)`;
+//! - [`js_divergence`]: the Jensen-Shannon divergence, base 2 (0 to 1);
+//! - [`smoothed`]: bin counts to shares with an additive pseudo-count per
+//!   bin ([`SMOOTHING`]), so an empty bin never gives a zero share, and
+//!   neither statistic an infinity;
+//! - [`pattern_histogram`]: how often each 2x2 pixel pattern occurs in a
+//!   frame (16 bins), a few word operations per row: a cheap fingerprint of
+//!   the fabric and the camera;
+//! - [`PageHinkley`]: the Page-Hinkley test (Page, 1954) for a rise or fall
+//!   in the mean of a stream (objects or detected pixels per frame);
+//! - [`Ddm`]: the Drift Detection Method of Gama, Medas, Castillo and
+//!   Rodrigues (2004) on a stream of errors, with its warning and drift
+//!   levels.
+//!
+//! The two detectors follow the published methods with the same parameters
+//! and update rules as the `river` library's implementations, and the tests
+//! check their detection indices against that library on fixed streams
+//! (`tests/reference/drift.json`).
+
+use crate::frame::BitFrame;
+
+/// PSI at which a distribution is watched: common practice in credit
+/// scoring and model monitoring (0.1 to 0.25 "moderate shift"), no single
+/// published source.
+pub const PSI_WATCH: f64 = 0.1;
+/// PSI at which a distribution has moved ("significant shift"): common
+/// practice as above, no single source.
+pub const PSI_ALERT: f64 = 0.25;
+/// The pseudo-count added to every bin before shares are taken (additive
+/// smoothing): 0.5, the Jeffreys prior's, so a bin empty in one
+/// distribution and not in the other counts as rare rather than impossible.
+pub const SMOOTHING: f64 = 0.5;
+
+/// Bin counts to shares with `eps` added to every bin:
+/// `(c_i + eps) / (N + k eps)`. All zero counts give equal shares.
+pub fn smoothed(counts: &[u64], eps: f64) -> Vec<f64> {
+    let total: f64 = counts.iter().map(|&c| c as f64).sum::<f64>() + eps * counts.len() as f64;
+    if total <= 0.0 {
+        return vec![1.0 / counts.len().max(1) as f64; counts.len()];
+    }
+    counts.iter().map(|&c| (c as f64 + eps) / total).collect()
+}
+
+/// The Population Stability Index of `actual` against `expected` (shares
+/// of the same bins, each summing to 1, none zero: see [`smoothed`]):
+/// `sum (a_i - e_i) ln(a_i / e_i)`. Symmetric in its two arguments; 0 for
+/// equal distributions.
+///
+/// # Panics
+/// If the two have different numbers of bins.
+pub fn psi(expected: &[f64], actual: &[f64]) -> f64 {
+    assert_eq!(expected.len(), actual.len(), "histograms of different bins");
+    expected
+        .iter()
+        .zip(actual)
+        .map(|(&e, &a)| (a - e) * (a / e).ln())
+        .sum()
+}
+
+/// The Jensen-Shannon divergence of two distributions (shares of the same
+/// bins), base 2, so between 0 and 1: `(KL(p||m) + KL(q||m)) / 2` with
+/// `m = (p + q) / 2`. Zero shares are fine here (`0 log 0 = 0`).
+///
+/// # Panics
+/// If the two have different numbers of bins.
+pub fn js_divergence(p: &[f64], q: &[f64]) -> f64 {
+    assert_eq!(p.len(), q.len(), "histograms of different bins");
+    let kl = |a: f64, m: f64| if a > 0.0 { a * (a / m).log2() } else { 0.0 };
+    p.iter()
+        .zip(q)
+        .map(|(&a, &b)| {
+            let m = (a + b) / 2.0;
+            (kl(a, m) + kl(b, m)) / 2.0
+        })
+        .sum()
+}
+
+/// How often each 2x2 pattern of pixels occurs in `frame`, over every
+/// position where the 2x2 block fits: bin `top-left + 2 top-right + 4
+/// bottom-left + 8 bottom-right` (set = 1). Counted per row pair with word
+/// operations: for each of the 16 patterns, the positions where all four
+/// pixels match are one AND of four shifted words, and a population count.
+pub fn pattern_histogram(frame: &BitFrame) -> [u64; 16] {
+    let mut h = [0u64; 16];
+    let (w, rows) = (frame.width(), frame.height());
+    if w < 2 || rows < 2 {
+        return h;
+    }
+    let words = frame.stride();
+    for y in 0..rows - 1 {
+        let (top, bottom) = (frame.row(y), frame.row(y + 1));
+        for k in 0..words {
+            // Pixel x and x + 1 of each row, for every x of this word.
+            let next = |r: &[u64]| (r[k] >> 1) | r.get(k + 1).map_or(0, |n| n << 63);
+            let (a, b, c, d) = (top[k], next(top), bottom[k], next(bottom));
+            // Positions x where the block fits (x + 1 < w).
+            let first = k * 64;
+            let valid = if first + 64 < w {
+                !0u64
+            } else if first + 1 >= w {
+                0
+            } else {
+                (1u64 << (w - 1 - first)) - 1
+            };
+            for (pattern, bin) in h.iter_mut().enumerate() {
+                let pick = |bit: usize, v: u64| if pattern >> bit & 1 == 1 { v } else { !v };
+                let m = pick(0, a) & pick(1, b) & pick(2, c) & pick(3, d) & valid;
+                *bin += m.count_ones() as u64;
+            }
+        }
+    }
+    h
+}
+
+/// Which way the mean moved, for [`PageHinkley`].
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum Direction {
+    Up,
+    Down,
+    Both,
+}
+
+/// Parameters of the Page-Hinkley test.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct PageHinkleyParams {
+    /// Values seen before a change can be signalled.
+    pub min_instances: u64,
+    /// The magnitude of change tolerated (`delta`).
+    pub delta: f64,
+    /// The detection threshold (`lambda`).
+    pub threshold: f64,
+    /// Forgetting factor applied to the cumulative sums each step.
+    pub alpha: f64,
+    pub direction: Direction,
+}
+
+impl Default for PageHinkleyParams {
+    /// The defaults of the `river` library (min_instances 30, delta 0.005,
+    /// threshold 50, alpha 1 - 0.0001, both directions).
+    fn default() -> Self {
+        PageHinkleyParams {
+            min_instances: 30,
+            delta: 0.005,
+            threshold: 50.0,
+            alpha: 1.0 - 0.0001,
+            direction: Direction::Both,
+        }
+    }
+}
+
+/// The Page-Hinkley test (Page, 1954): cumulative deviations of each value
+/// from the running mean, less (for a rise) or plus (for a fall) `delta`,
+/// faded by `alpha`; a change when the sum has risen more than `threshold`
+/// above its lowest (or fallen that much below its highest). After a
+/// change it starts afresh.
+#[derive(Clone, Debug)]
+pub struct PageHinkley {
+    params: PageHinkleyParams,
+    n: u64,
+    mean: f64,
+    sum_up: f64,
+    sum_down: f64,
+    min_up: f64,
+    max_down: f64,
+    detected: bool,
+}
+
+impl PageHinkley {
+    pub fn new(params: PageHinkleyParams) -> PageHinkley {
+        let mut p = PageHinkley {
+            params,
+            n: 0,
+            mean: 0.0,
+            sum_up: 0.0,
+            sum_down: 0.0,
+            min_up: 0.0,
+            max_down: 0.0,
+            detected: false,
+        };
+        p.reset();
+        p
+    }
+
+    fn reset(&mut self) {
+        self.n = 0;
+        self.mean = 0.0;
+        self.sum_up = 0.0;
+        self.sum_down = 0.0;
+        self.min_up = f64::INFINITY;
+        // As the reference implementation starts it.
+        self.max_down = -1.0;
+        self.detected = false;
+    }
+
+    /// Takes one value; true when it signals a change.
+    pub fn update(&mut self, x: f64) -> bool {
+        if self.detected {
+            self.reset();
+        }
+        self.n += 1;
+        self.mean += (x - self.mean) / self.n as f64;
+        let dev = x - self.mean;
+        let p = self.params;
+        self.sum_up = p.alpha * self.sum_up + dev - p.delta;
+        self.sum_down = p.alpha * self.sum_down + dev + p.delta;
+        self.min_up = self.min_up.min(self.sum_up);
+        self.max_down = self.max_down.max(self.sum_down);
+        if self.n >= p.min_instances {
+            let up = self.sum_up - self.min_up > p.threshold;
+            let down = self.max_down - self.sum_down > p.threshold;
+            self.detected = match p.direction {
+                Direction::Up => up,
+                Direction::Down => down,
+                Direction::Both => up || down,
+            };
+        }
+        self.detected
+    }
+
+    /// How far the rise and fall statistics are now (`sum - min`, `max -
+    /// sum`), for reporting against the threshold.
+    pub fn statistics(&self) -> (f64, f64) {
+        (
+            (self.sum_up - self.min_up).max(0.0),
+            (self.max_down - self.sum_down).max(0.0),
+        )
+    }
+
+    /// Values seen since the last start.
+    pub fn seen(&self) -> u64 {
+        self.n
+    }
+}
+
+/// Where a [`Ddm`] stands.
+#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+pub enum DdmState {
+    Stable,
+    /// The error rate rose past the warning level.
+    Warning,
+    /// Past the drift level: the detector starts afresh with the next value.
+    Drift,
+}
+
+/// Parameters of the Drift Detection Method.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct DdmParams {
+    /// Values seen before the minimum is tracked and levels are tested.
+    pub warm_start: u64,
+    /// Standard deviations above the minimum for a warning (2 in Gama et
+    /// al., 2004).
+    pub warning: f64,
+    /// ... and for drift (3 in Gama et al., 2004).
+    pub drift: f64,
+}
+
+impl Default for DdmParams {
+    /// Gama et al. (2004): warning at 2, drift at 3 standard deviations;
+    /// 30 values first (as the `river` library).
+    fn default() -> Self {
+        DdmParams {
+            warm_start: 30,
+            warning: 2.0,
+            drift: 3.0,
+        }
+    }
+}
+
+/// The Drift Detection Method (Gama, Medas, Castillo, Rodrigues, 2004):
+/// the error rate `p` and its binomial standard deviation
+/// `s = sqrt(p (1 - p) / n)` are tracked; the lowest `p + s` seen is kept
+/// with its `p` and `s`; a warning when `p + s` passes `p_min + 2 s_min`,
+/// drift when it passes `p_min + 3 s_min`.
+#[derive(Clone, Debug)]
+pub struct Ddm {
+    params: DdmParams,
+    n: u64,
+    p: f64,
+    p_min: f64,
+    s_min: f64,
+    ps_min: f64,
+    state: DdmState,
+}
+
+impl Ddm {
+    pub fn new(params: DdmParams) -> Ddm {
+        Ddm {
+            params,
+            n: 0,
+            p: 0.0,
+            p_min: 0.0,
+            s_min: 0.0,
+            ps_min: f64::INFINITY,
+            state: DdmState::Stable,
+        }
+    }
+
+    /// Takes one outcome (true: an error) and says where the detector
+    /// stands.
+    pub fn update(&mut self, error: bool) -> DdmState {
+        if self.state == DdmState::Drift {
+            *self = Ddm::new(self.params);
+        }
+        self.n += 1;
+        self.p += (error as u8 as f64 - self.p) / self.n as f64;
+        let s = (self.p * (1.0 - self.p) / self.n as f64).sqrt();
+        if self.n > self.params.warm_start {
+            if self.p + s <= self.ps_min {
+                self.p_min = self.p;
+                self.s_min = s;
+                self.ps_min = self.p + s;
+            }
+            self.state = if self.p + s > self.p_min + self.params.drift * self.s_min {
+                DdmState::Drift
+            } else if self.p + s > self.p_min + self.params.warning * self.s_min {
+                DdmState::Warning
+            } else {
+                DdmState::Stable
+            };
+        }
+        self.state
+    }
+
+    /// The error rate since the last start, and how many outcomes.
+    pub fn rate(&self) -> (f64, u64) {
+        (self.p, self.n)
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn psi_worked_by_hand() {
+        // Worked by hand (common practice, no single source): expected
+        // shares 0.25 0.25 0.25 0.25, actual 0.10 0.20 0.30 0.40.
+        // (0.10-0.25) ln(0.4)   = -0.15 x -0.916291 = 0.137444
+        // (0.20-0.25) ln(0.8)   = -0.05 x -0.223144 = 0.011157
+        // (0.30-0.25) ln(1.2)   =  0.05 x  0.182322 = 0.009116
+        // (0.40-0.25) ln(1.6)   =  0.15 x  0.470004 = 0.070501
+        // sum                                       = 0.228218
+        let e = [0.25; 4];
+        let a = [0.10, 0.20, 0.30, 0.40];
+        assert!((psi(&e, &a) - 0.228218).abs() < 1e-6, "{}", psi(&e, &a));
+        assert!((psi(&a, &e) - psi(&e, &a)).abs() < 1e-12);
+        assert_eq!(psi(&e, &e), 0.0);
+        // Empty bins: smoothing keeps the index finite.
+        let s = smoothed(&[10, 0, 0, 10], SMOOTHING);
+        assert!((s.iter().sum::<f64>() - 1.0).abs() < 1e-12);
+        assert!((s[1] - 0.5 / 22.0).abs() < 1e-12);
+        let t = smoothed(&[0, 10, 10, 0], SMOOTHING);
+        assert!(psi(&s, &t).is_finite() && psi(&s, &t) > PSI_ALERT);
+        assert_eq!(smoothed(&[0, 0], 0.0), [0.5, 0.5]);
+    }
+
+    #[test]
+    fn js_bounds() {
+        // Disjoint distributions are 1 bit apart; equal ones 0.
+        assert!((js_divergence(&[1.0, 0.0], &[0.0, 1.0]) - 1.0).abs() < 1e-12);
+        assert_eq!(js_divergence(&[0.3, 0.7], &[0.3, 0.7]), 0.0);
+    }
+
+    /// The plain count, pixel by pixel.
+    fn histogram_by_pixels(f: &BitFrame) -> [u64; 16] {
+        let mut h = [0u64; 16];
+        for y in 0..f.height().saturating_sub(1) {
+            for x in 0..f.width().saturating_sub(1) {
+                let b = f.get(x, y) as usize
+                    | (f.get(x + 1, y) as usize) << 1
+                    | (f.get(x, y + 1) as usize) << 2
+                    | (f.get(x + 1, y + 1) as usize) << 3;
+                h[b] += 1;
+            }
+        }
+        h
+    }
+
+    #[test]
+    fn pattern_histogram_matches_the_pixel_by_pixel_count() {
+        for (w, h) in [
+            (1, 5),
+            (2, 2),
+            (63, 3),
+            (64, 4),
+            (65, 5),
+            (130, 7),
+            (200, 9),
+        ] {
+            let f = BitFrame::from_fn(w, h, |x, y| (x * 7 + y * 13 + x * y) % 5 < 2);
+            let got = pattern_histogram(&f);
+            assert_eq!(got, histogram_by_pixels(&f), "{w}x{h}");
+            let blocks = (w.saturating_sub(1) * h.saturating_sub(1)) as u64;
+            assert_eq!(got.iter().sum::<u64>(), blocks);
+        }
+    }
+
+    #[test]
+    fn ddm_warns_then_drifts_when_errors_rise() {
+        let mut d = Ddm::new(DdmParams::default());
+        let mut states = Vec::new();
+        for i in 0..400u64 {
+            // 10% errors, then 60%.
+            let error = if i < 200 { i % 10 == 0 } else { i % 10 < 6 };
+            states.push(d.update(error));
+        }
+        let warn = states.iter().position(|s| *s == DdmState::Warning).unwrap();
+        let drift = states.iter().position(|s| *s == DdmState::Drift).unwrap();
+        assert!(warn >= 200 && warn < drift, "warning {warn}, drift {drift}");
+        assert!(states[..200].iter().all(|s| *s == DdmState::Stable));
+    }
+}
