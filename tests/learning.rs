@@ -687,9 +687,7 @@ fn switching_models_while_frames_stream_logs_every_frame_once() {
         let stream = stream.clone();
         std::thread::spawn(move || {
             for (n, bytes, _) in &stream {
-                let tmp = inbox.join(format!(".{n}.tmp"));
-                std::fs::write(&tmp, bytes).unwrap();
-                std::fs::rename(&tmp, inbox.join(n)).unwrap();
+                rename_in(&inbox, n, bytes);
                 std::thread::sleep(Duration::from_millis(10));
             }
         })

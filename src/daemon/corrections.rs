@@ -151,12 +151,7 @@ pub fn find_archived(
     let mut seen_other = false;
     for name in names {
         let path = archive.join(&name);
-        let read = read_bounded(
-            &path,
-            crate::fileio::data::max_file_bytes(&live.limits),
-            &|| "a frame".into(),
-        )
-        .map_err(|(e, _)| e)?;
+        let read = crate::fileio::data::read_frame_file(&path, &live.limits).map_err(|(e, _)| e)?;
         if sha256_hex(&read.bytes) == sha256 {
             return Ok((path, read.bytes));
         }
@@ -171,21 +166,19 @@ pub fn find_archived(
     }))
 }
 
-/// The detector of the model that made `record`: the running one when it
-/// is that model, else the registry's.
+/// Whether `d` runs the model that made `record`.
+fn made(d: &Detector, record: &FrameRecord) -> bool {
+    d.version() == record.model_version
+        && (record.model_hash.is_empty() || d.hash() == record.model_hash)
+}
+
+/// The detector of the model that made `record`, from the registry (when
+/// it is not the one running).
 fn record_detector(
     record: &FrameRecord,
-    running: Option<&Detector>,
     registry: &Registry,
     live: &LiveConfig,
 ) -> Result<Detector> {
-    if let Some(d) = running {
-        if d.version() == record.model_version
-            && (record.model_hash.is_empty() || d.hash() == record.model_hash)
-        {
-            return super::start::detector(d.model().clone(), live);
-        }
-    }
     let entries = registry.entries()?;
     let entry = entries
         .iter()
@@ -236,7 +229,15 @@ pub fn prepare(
     let (_, bytes) = find_archived(&folders.archive, &c.frame, &c.sha256, live)?;
     let frame = codec::decode(&bytes, &live.limits)?;
     let detected = if c.needs_detection() {
-        let d = record_detector(&record, running, registry, live)?;
+        // The running detector when it made the record (no compiling).
+        let compiled;
+        let d = match running.filter(|d| made(d, &record)) {
+            Some(d) => d,
+            None => {
+                compiled = record_detector(&record, registry, live)?;
+                &compiled
+            }
+        };
         let r = d.detect(&frame, &mut Scratch::default());
         let boxes = |v: &[crate::record::ObjectRecord]| -> Vec<[u32; 4]> {
             v.iter().map(|o| o.bbox).collect()
@@ -337,18 +338,13 @@ pub fn apply(
         }
     };
     let hash = sha256_hex(&bytes);
-    if learning.labels.applied(&hash) {
-        let label = learning
-            .labels
-            .labels()
-            .iter()
-            .find(|l| l.source.sha256 == hash)
-            .cloned()
-            .expect("applied");
-        let mask = Correction::parse(std::str::from_utf8(&bytes).unwrap_or(""))
-            .ok()
-            .and_then(|c| c.mask)
-            .map(|m| dir.join(m));
+    // The mask file a correction names goes wherever the correction goes.
+    let mask = Correction::parse(std::str::from_utf8(&bytes).unwrap_or(""))
+        .ok()
+        .and_then(|c| c.mask)
+        .filter(|m| check_name(m).is_ok())
+        .map(|m| dir.join(m));
+    if let Some(label) = learning.labels.applied(&hash).cloned() {
         move_done(path, &dir, mask.as_deref(), APPLIED);
         return Applied::Applied(label);
     }
@@ -362,11 +358,6 @@ pub fn apply(
             return Applied::Gone;
         }
         Err(e) => {
-            let mask = Correction::parse(std::str::from_utf8(&bytes).unwrap_or(""))
-                .ok()
-                .and_then(|c| c.mask)
-                .filter(|m| check_name(m).is_ok())
-                .map(|m| dir.join(m));
             return reject(
                 path,
                 &dir,

@@ -291,20 +291,23 @@ pub fn changeover(state: &Path, now: &str, note: Option<String>) -> Result<Line>
     Ok(line)
 }
 
+/// The index of the labels folder `dir` (empty when there is none yet).
+fn read_index(dir: &Path) -> Result<Index> {
+    let path = dir.join(INDEX);
+    match fs::read_to_string(&path) {
+        Ok(t) => serde_json::from_str(&t).map_err(|e| {
+            Error::new(ErrorKind::Data(format!("not a label index: {e}"))).with_path(&path)
+        }),
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => Ok(Index::default()),
+        Err(e) => Err(Error::from(e).with_path(&path)),
+    }
+}
+
 /// The labels of a state folder, read without touching anything (for
 /// `check` while a daemon owns the folder): every label, in the order
 /// applied; none when there is no index yet.
 pub fn read_labels(state: &Path) -> Result<Vec<Label>> {
-    let path = state.join(DIR).join(INDEX);
-    match fs::read_to_string(&path) {
-        Ok(t) => serde_json::from_str::<Index>(&t)
-            .map(|i| i.labels)
-            .map_err(|e| {
-                Error::new(ErrorKind::Data(format!("not a label index: {e}"))).with_path(&path)
-            }),
-        Err(e) if e.kind() == std::io::ErrorKind::NotFound => Ok(Vec::new()),
-        Err(e) => Err(Error::from(e).with_path(&path)),
-    }
+    Ok(read_index(&state.join(DIR))?.labels)
 }
 
 /// Reads labelled frames' files (a replaced label's hidden ones too).
@@ -371,21 +374,7 @@ impl LabelSet {
     pub fn open(state: &Path, window: Window, limits: &DecodeLimits) -> Result<LabelSet> {
         let dir = state.join(DIR);
         fs::create_dir_all(&dir).map_err(|e| Error::from(e).with_path(&dir))?;
-        let ipath = dir.join(INDEX);
-        let index: Index = match fs::read_to_string(&ipath) {
-            Ok(t) => serde_json::from_str(&t).map_err(|e| {
-                Error::new(ErrorKind::Data(format!("not a label index: {e}"))).with_path(&ipath)
-            })?,
-            Err(e) if e.kind() == std::io::ErrorKind::NotFound => Index::default(),
-            Err(e) => return Err(Error::from(e).with_path(&ipath)),
-        };
-        let set = LabelSet {
-            dir,
-            index,
-            window,
-            limits: limits.clone(),
-            jobs: BTreeMap::new(),
-        };
+        let set = LabelSet::read_only(state, window, limits)?;
         set.repair_replaced();
         set.remove_strays();
         Ok(set)
@@ -395,17 +384,9 @@ impl LabelSet {
     /// removed (for looking at a folder a daemon owns).
     pub fn read_only(state: &Path, window: Window, limits: &DecodeLimits) -> Result<LabelSet> {
         let dir = state.join(DIR);
-        let ipath = dir.join(INDEX);
-        let index: Index = match fs::read_to_string(&ipath) {
-            Ok(t) => serde_json::from_str(&t).map_err(|e| {
-                Error::new(ErrorKind::Data(format!("not a label index: {e}"))).with_path(&ipath)
-            })?,
-            Err(e) if e.kind() == std::io::ErrorKind::NotFound => Index::default(),
-            Err(e) => return Err(Error::from(e).with_path(&ipath)),
-        };
         Ok(LabelSet {
+            index: read_index(&dir)?,
             dir,
-            index,
             window,
             limits: limits.clone(),
             jobs: BTreeMap::new(),
@@ -488,14 +469,6 @@ impl LabelSet {
         &self.dir
     }
 
-    /// The label of the archived frame with this name and record hash.
-    pub fn get(&self, frame: &str, sha256: &str) -> Option<&Label> {
-        self.index
-            .labels
-            .iter()
-            .find(|l| l.frame == frame && l.sha256 == sha256)
-    }
-
     /// Whether a store counts `stem` (committed, or a job handed out).
     fn held(&self, stem: &str) -> bool {
         let visible = stem.trim_start_matches('.');
@@ -504,12 +477,13 @@ impl LabelSet {
             || self.jobs.values().any(|(_, holds)| holds.iter().any(same))
     }
 
-    /// Whether the correction with these bytes' hash was applied.
-    pub fn applied(&self, correction_sha256: &str) -> bool {
+    /// The label the correction with these bytes' hash made, if it was
+    /// applied and is still in force.
+    pub fn applied(&self, correction_sha256: &str) -> Option<&Label> {
         self.index
             .labels
             .iter()
-            .any(|l| l.source.sha256 == correction_sha256)
+            .find(|l| l.source.sha256 == correction_sha256)
     }
 
     /// Reads one labelled frame's files.
@@ -762,7 +736,7 @@ mod tests {
         assert_eq!(set.store(1).unwrap(), want);
         assert!(set.index.replaced.is_empty());
         assert_eq!(set.labels().len(), 2);
-        assert!(set.applied("c3") && !set.applied("c1"));
+        assert!(set.applied("c3").is_some() && set.applied("c1").is_none());
         // Only the files the index names are left: two frames' pairs, one
         // store, the index.
         let count = fs::read_dir(set.dir()).unwrap().count();
