@@ -438,6 +438,41 @@ impl Correction {
         Ok(())
     }
 
+    /// The error indicator the error-drift monitor takes from this
+    /// correction of `record`, whose labels are `labelled`: an error when
+    /// the operator reported a wrong object or a missed one, or gave the
+    /// truth (`only`, `mask`) and its objects do not match the record's
+    /// one to one (PASCAL VOC matching at IoU 0.5, `score::object_confusion`);
+    /// no error for `right`, or for `unknown` alone (the detection stands
+    /// elsewhere).
+    pub fn reports_error(&self, record: &FrameRecord, labelled: &LabelledFrame) -> bool {
+        if !self.wrong.is_empty() || !self.missed.is_empty() {
+            return true;
+        }
+        if self.mask.is_none() && self.only.is_empty() {
+            return false;
+        }
+        let detected: Vec<group::Object> = record
+            .objects
+            .iter()
+            .map(|o| group::Object {
+                id: o.id,
+                bbox: group::BBox {
+                    x0: o.bbox[0],
+                    y0: o.bbox[1],
+                    x1: o.bbox[2],
+                    y1: o.bbox[3],
+                },
+                centroid: (o.centroid[0], o.centroid[1]),
+                area: o.area,
+                score: o.score,
+            })
+            .collect();
+        let truth = crate::score::truth_objects(&labelled.truth());
+        let c = crate::score::object_confusion(&detected, &truth);
+        c.fp > 0 || c.fn_ > 0
+    }
+
     /// Whether the labels start from the detection as it stands.
     pub fn needs_detection(&self) -> bool {
         self.mask.is_none() && self.only.is_empty()

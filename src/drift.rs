@@ -26,7 +26,10 @@
 //! check their detection indices against that library on fixed streams
 //! (`tests/reference/drift.json`).
 
+use serde::{Deserialize, Serialize};
+
 use crate::frame::BitFrame;
+use crate::model::{Node, Tree};
 
 /// PSI at which a distribution is watched: common practice in credit
 /// scoring and model monitoring (0.1 to 0.25 "moderate shift"), no single
@@ -90,13 +93,23 @@ pub fn js_divergence(p: &[f64], q: &[f64]) -> f64 {
 /// operations: for each of the 16 patterns, the positions where all four
 /// pixels match are one AND of four shifted words, and a population count.
 pub fn pattern_histogram(frame: &BitFrame) -> [u64; 16] {
+    pattern_histogram_rows(frame, 1, 0)
+}
+
+/// [`pattern_histogram`] over the row pairs whose top row `y` has
+/// `(y + phase) % step == 0`: a 1-in-`step` sample of the rows. The
+/// daemon moves `phase` from frame to frame, so a window of frames covers
+/// every row of a periodic fabric even when `step` divides its period.
+pub fn pattern_histogram_rows(frame: &BitFrame, step: usize, phase: usize) -> [u64; 16] {
     let mut h = [0u64; 16];
     let (w, rows) = (frame.width(), frame.height());
     if w < 2 || rows < 2 {
         return h;
     }
+    let step = step.max(1);
     let words = frame.stride();
-    for y in 0..rows - 1 {
+    let first_row = (step - phase % step) % step;
+    for y in (first_row..rows - 1).step_by(step) {
         let (top, bottom) = (frame.row(y), frame.row(y + 1));
         for k in 0..words {
             // Pixel x and x + 1 of each row, for every x of this word.
@@ -121,8 +134,170 @@ pub fn pattern_histogram(frame: &BitFrame) -> [u64; 16] {
     h
 }
 
+/// Row step of the daemon's 2x2 pattern sample: one row pair in 8, at a
+/// phase that moves with every frame. Measured: the whole-frame count
+/// costs about 5% of the detection step on a 512x512 frame, a 1-in-8
+/// sample well under 1%, and over a window of frames it still counts
+/// millions of positions.
+pub const PATTERN_ROW_STEP: usize = 8;
+
+/// Groups of leaves whose shares of pixels the input monitor compares.
+pub const LEAF_GROUPS: usize = 16;
+
+/// The tree's leaves in [`LEAF_GROUPS`] groups of about equal training
+/// share, and each group's share of the training pixels: where pixels go
+/// in the tree is what the tree's answers rest on, so a fabric or a camera
+/// that sends pixels to other leaves than training did is what matters.
+///
+/// Leaves are taken in falling share (ties by index) and filled into the
+/// groups in turn, a group closing once the shares so far reach its end
+/// (`k / LEAF_GROUPS` of the total for group `k - 1`): a leaf holding more
+/// than one group's worth stays alone, and the groups follow from the
+/// model alone, so its references need no field of their own.
+#[derive(Clone, Debug, PartialEq)]
+pub struct LeafGroups {
+    /// Group of each node (splits: 0, never used).
+    group: Vec<u8>,
+    reference: [f64; LEAF_GROUPS],
+}
+
+impl LeafGroups {
+    pub fn new(tree: &Tree) -> LeafGroups {
+        let mut leaves: Vec<(usize, f64)> = tree
+            .nodes()
+            .iter()
+            .enumerate()
+            .filter_map(|(i, n)| match n {
+                Node::Leaf(l) => Some((i, l.share)),
+                Node::Split { .. } => None,
+            })
+            .collect();
+        leaves.sort_by(|a, b| b.1.total_cmp(&a.1).then(a.0.cmp(&b.0)));
+        let total: f64 = leaves.iter().map(|l| l.1).sum();
+        let mut group = vec![0u8; tree.nodes().len()];
+        let mut reference = [0.0; LEAF_GROUPS];
+        let (mut current, mut so_far) = (0usize, 0.0);
+        for (i, share) in leaves {
+            let end = total * (current + 1) as f64 / LEAF_GROUPS as f64;
+            if so_far >= end && current + 1 < LEAF_GROUPS {
+                current += 1;
+            }
+            group[i] = current as u8;
+            reference[current] += share;
+            so_far += share;
+        }
+        if total > 0.0 {
+            for r in &mut reference {
+                *r /= total;
+            }
+        }
+        LeafGroups { group, reference }
+    }
+
+    /// Each group's share of the training pixels (summing to 1, or all 0
+    /// for a tree that saw no pixels).
+    pub fn reference(&self) -> &[f64; LEAF_GROUPS] {
+        &self.reference
+    }
+
+    /// Walks `samples` pixels of `frame` at positions drawn from `seed`
+    /// (uniform over the frame) and counts the groups their leaves are in.
+    pub fn sample(
+        &self,
+        tree: &Tree,
+        frame: &BitFrame,
+        samples: usize,
+        seed: u64,
+    ) -> [u64; LEAF_GROUPS] {
+        let mut counts = [0u64; LEAF_GROUPS];
+        let (w, h) = (frame.width() as u64, frame.height() as u64);
+        if w == 0 || h == 0 {
+            return counts;
+        }
+        let window = tree.window();
+        let mut state = seed;
+        for _ in 0..samples {
+            let r = splitmix64(&mut state);
+            // The high and low halves of one draw: x and y (the bias of a
+            // modulo of a 32-bit draw by a frame side is below 2^-19).
+            let (x, y) = (((r >> 32) % w) as usize, ((r & 0xffff_ffff) % h) as usize);
+            let leaf = tree.leaf_of(window.pattern_of(frame, x, y));
+            counts[self.group[leaf] as usize] += 1;
+        }
+        counts
+    }
+}
+
+/// SplitMix64 (Steele, Lea and Flood, 2014): a small, fast generator for
+/// the sample positions.
+fn splitmix64(state: &mut u64) -> u64 {
+    *state = state.wrapping_add(0x9e37_79b9_7f4a_7c15);
+    let mut z = *state;
+    z = (z ^ (z >> 30)).wrapping_mul(0xbf58_476d_1ce4_e5b9);
+    z = (z ^ (z >> 27)).wrapping_mul(0x94d0_49bb_1331_11eb);
+    z ^ (z >> 31)
+}
+
+/// PSI and Jensen-Shannon divergence of a window's bin counts against
+/// reference shares. Both sides are smoothed with the same pseudo-count
+/// ([`SMOOTHING`]) at the window's size: the reference's shares are taken
+/// as counts out of the window's total, so an empty bin on either side is
+/// rare, never impossible, and neither value is infinite.
+pub fn compare(reference: &[f64], counts: &[u64]) -> (f64, f64) {
+    assert_eq!(
+        reference.len(),
+        counts.len(),
+        "histograms of different bins"
+    );
+    let n: u64 = counts.iter().sum();
+    let k = counts.len() as f64;
+    let total = n as f64 + SMOOTHING * k;
+    let expected: Vec<f64> = reference
+        .iter()
+        .map(|&r| (r * n as f64 + SMOOTHING) / total)
+        .collect();
+    let actual = smoothed(counts, SMOOTHING);
+    (psi(&expected, &actual), js_divergence(&expected, &actual))
+}
+
+/// Takes a frame's [`FrameStats`]: the 1-in-[`PATTERN_ROW_STEP`] pattern
+/// sample at a phase that moves with `seq` (the frame's place in the
+/// stream), and `samples` pixels' leaf groups at positions drawn from
+/// `seq`.
+pub fn frame_stats(
+    tree: &Tree,
+    groups: &LeafGroups,
+    frame: &BitFrame,
+    detected: u64,
+    seq: u64,
+    samples: usize,
+) -> FrameStats {
+    FrameStats {
+        patterns: pattern_histogram_rows(
+            frame,
+            PATTERN_ROW_STEP,
+            (seq % PATTERN_ROW_STEP as u64) as usize,
+        ),
+        leaves: groups.sample(tree, frame, samples, seq ^ 0x6c6f_6f6d_6672_616d),
+        detected,
+        pixels: (frame.width() * frame.height()) as u64,
+    }
+}
+
+/// What the input monitors take from one frame (a worker computes it
+/// beside detection): its sampled 2x2 pattern counts and leaf groups, and
+/// its detected and total pixels.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Serialize, Deserialize)]
+pub struct FrameStats {
+    pub patterns: [u64; 16],
+    pub leaves: [u64; LEAF_GROUPS],
+    /// Pixels detected (in objects kept).
+    pub detected: u64,
+    pub pixels: u64,
+}
+
 /// Which way the mean moved, for [`PageHinkley`].
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
 pub enum Direction {
     Up,
     Down,
@@ -130,7 +305,7 @@ pub enum Direction {
 }
 
 /// Parameters of the Page-Hinkley test.
-#[derive(Clone, Copy, Debug, PartialEq)]
+#[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
 pub struct PageHinkleyParams {
     /// Values seen before a change can be signalled.
     pub min_instances: u64,
@@ -162,7 +337,7 @@ impl Default for PageHinkleyParams {
 /// faded by `alpha`; a change when the sum has risen more than `threshold`
 /// above its lowest (or fallen that much below its highest). After a
 /// change it starts afresh.
-#[derive(Clone, Debug)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct PageHinkley {
     params: PageHinkleyParams,
     n: u64,
@@ -195,7 +370,9 @@ impl PageHinkley {
         self.mean = 0.0;
         self.sum_up = 0.0;
         self.sum_down = 0.0;
-        self.min_up = f64::INFINITY;
+        // The largest finite number rather than an infinity, so the state
+        // can be saved as JSON; the first value replaces it either way.
+        self.min_up = f64::MAX;
         // As the reference implementation starts it.
         self.max_down = -1.0;
         self.detected = false;
@@ -242,7 +419,7 @@ impl PageHinkley {
 }
 
 /// Where a [`Ddm`] stands.
-#[derive(Clone, Copy, Debug, PartialEq, Eq)]
+#[derive(Clone, Copy, Debug, PartialEq, Eq, Serialize, Deserialize)]
 pub enum DdmState {
     Stable,
     /// The error rate rose past the warning level.
@@ -252,7 +429,7 @@ pub enum DdmState {
 }
 
 /// Parameters of the Drift Detection Method.
-#[derive(Clone, Copy, Debug, PartialEq)]
+#[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
 pub struct DdmParams {
     /// Values seen before the minimum is tracked and levels are tested.
     pub warm_start: u64,
@@ -280,7 +457,7 @@ impl Default for DdmParams {
 /// `s = sqrt(p (1 - p) / n)` are tracked; the lowest `p + s` seen is kept
 /// with its `p` and `s`; a warning when `p + s` passes `p_min + 2 s_min`,
 /// drift when it passes `p_min + 3 s_min`.
-#[derive(Clone, Debug)]
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct Ddm {
     params: DdmParams,
     n: u64,
@@ -299,7 +476,7 @@ impl Ddm {
             p: 0.0,
             p_min: 0.0,
             s_min: 0.0,
-            ps_min: f64::INFINITY,
+            ps_min: f64::MAX,
             state: DdmState::Stable,
         }
     }
@@ -334,11 +511,37 @@ impl Ddm {
     pub fn rate(&self) -> (f64, u64) {
         (self.p, self.n)
     }
+
+    /// How many of its lowest standard deviations `s_min` the rate now
+    /// stands above its lowest: `(p + s - p_min) / s_min`, the number the
+    /// warning (2) and drift (3) levels are for; `None` until the warm
+    /// start is over. (A lowest spread of 0, all outcomes alike so far,
+    /// makes any rise infinitely many: the largest finite number.)
+    pub fn sigmas(&self) -> Option<f64> {
+        if self.n <= self.params.warm_start || self.ps_min == f64::MAX {
+            return None;
+        }
+        let s = (self.p * (1.0 - self.p) / self.n as f64).sqrt();
+        let rise = self.p + s - self.p_min;
+        Some(if self.s_min > 0.0 {
+            rise / self.s_min
+        } else if rise > 0.0 {
+            f64::MAX
+        } else {
+            0.0
+        })
+    }
+
+    /// Where it stands after the last value.
+    pub fn state(&self) -> DdmState {
+        self.state
+    }
 }
 
 /// A monitor's level.
-#[derive(Clone, Copy, Debug, PartialEq, Eq, PartialOrd, Ord)]
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, PartialOrd, Ord, Serialize, Deserialize)]
 pub enum Level {
+    #[default]
     Ok,
     Watch,
     Alert,
@@ -348,7 +551,7 @@ pub enum Level {
 /// statistic reaches its threshold, and lowered only when it falls below
 /// `clear` times that threshold, so a statistic hovering at a threshold
 /// does not flap.
-#[derive(Clone, Copy, Debug, PartialEq)]
+#[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
 pub struct Hysteresis {
     pub watch: f64,
     pub alert: f64,
@@ -397,26 +600,30 @@ impl Hysteresis {
 }
 
 /// The sum of the last `size` frames' histograms, kept as a ring.
-#[derive(Clone, Debug)]
-pub struct HistogramWindow<const N: usize> {
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct HistogramWindow {
     size: usize,
-    ring: std::collections::VecDeque<[u64; N]>,
-    sum: [u64; N],
+    ring: std::collections::VecDeque<Vec<u64>>,
+    sum: Vec<u64>,
 }
 
-impl<const N: usize> HistogramWindow<N> {
-    /// A window of `size` frames (at least 1).
-    pub fn new(size: usize) -> Self {
+impl HistogramWindow {
+    /// A window of `size` frames (at least 1) of `bins` bins.
+    pub fn new(size: usize, bins: usize) -> Self {
         HistogramWindow {
             size: size.max(1),
             ring: std::collections::VecDeque::with_capacity(size.max(1)),
-            sum: [0; N],
+            sum: vec![0; bins],
         }
     }
 
     /// Adds one frame's histogram, dropping the oldest when full.
-    pub fn push(&mut self, h: [u64; N]) {
-        if self.ring.len() == self.size {
+    ///
+    /// # Panics
+    /// If `h` has another number of bins.
+    pub fn push(&mut self, h: &[u64]) {
+        assert_eq!(h.len(), self.sum.len(), "histograms of different bins");
+        if self.ring.len() >= self.size {
             let old = self.ring.pop_front().expect("full");
             for (s, o) in self.sum.iter_mut().zip(old) {
                 *s -= o;
@@ -425,11 +632,11 @@ impl<const N: usize> HistogramWindow<N> {
         for (s, v) in self.sum.iter_mut().zip(h) {
             *s += v;
         }
-        self.ring.push_back(h);
+        self.ring.push_back(h.to_vec());
     }
 
     /// The summed counts of the frames in the window.
-    pub fn sum(&self) -> &[u64; N] {
+    pub fn sum(&self) -> &[u64] {
         &self.sum
     }
 
@@ -444,13 +651,18 @@ impl<const N: usize> HistogramWindow<N> {
 
     /// Whether it holds `size` frames.
     pub fn is_full(&self) -> bool {
-        self.ring.len() == self.size
+        self.ring.len() >= self.size
+    }
+
+    /// The window's size in frames.
+    pub fn size(&self) -> usize {
+        self.size
     }
 
     /// Empties it (a new model's references start a new window).
     pub fn clear(&mut self) {
         self.ring.clear();
-        self.sum = [0; N];
+        self.sum.iter_mut().for_each(|s| *s = 0);
     }
 }
 
@@ -544,14 +756,14 @@ mod tests {
 
     #[test]
     fn a_histogram_window_sums_the_last_frames() {
-        let mut w = HistogramWindow::<2>::new(3);
+        let mut w = HistogramWindow::new(3, 2);
         for k in 1..=5u64 {
-            w.push([k, 10 * k]);
+            w.push(&[k, 10 * k]);
         }
         assert!(w.is_full());
         assert_eq!(w.sum(), &[3 + 4 + 5, 30 + 40 + 50]);
         w.clear();
-        assert!(w.is_empty() && w.sum() == &[0, 0]);
+        assert!(w.is_empty() && w.sum() == [0, 0]);
     }
 
     /// The 2x2 pattern histogram over 20 frames tells the loom's weaves
@@ -561,9 +773,9 @@ mod tests {
     fn pattern_psi_separates_a_new_weave_from_the_same_one() {
         use crate::synth::{self, LoomParams};
         let window = |p: &LoomParams, seed: u64| {
-            let mut w = HistogramWindow::<16>::new(20);
+            let mut w = HistogramWindow::new(20, 16);
             for g in synth::generate_set(p, seed, 20) {
-                w.push(pattern_histogram(&g.frame));
+                w.push(&pattern_histogram(&g.frame));
             }
             smoothed(w.sum(), SMOOTHING)
         };

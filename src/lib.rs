@@ -56,6 +56,7 @@ pub mod fileio;
 pub mod frame;
 pub mod learn;
 pub mod model;
+pub mod monitor;
 pub mod record;
 pub mod score;
 pub mod synth;

@@ -24,7 +24,7 @@ impl RecordSink for Report {
     fn finished(&mut self, event: &Finished<'_>) {
         let name = |p: &Path| p.file_name().unwrap().to_string_lossy().into_owned();
         let _ = self.0.send(match event {
-            Finished::Logged(r) => ("logged", r.frame.clone()),
+            Finished::Logged(r, _) => ("logged", r.frame.clone()),
             Finished::AlreadyLogged { frame } => ("already", name(frame)),
             Finished::Rejected { frame, .. } => ("rejected", name(frame)),
             Finished::Left { frame } => ("left", name(frame)),

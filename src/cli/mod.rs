@@ -8,6 +8,7 @@
 //! - the learning loop: `mark` (a correction file), `changeover`,
 //!   `retrain`, `models`; `state` is how they reach a running daemon
 //!   (request files) or, with none, take the state lock themselves;
+//! - the drift monitors: `alerts`;
 //! - `progress`: the progress bar the long offline commands draw.
 //!
 //! Exit codes: 0 success; 1 the command failed; 2 the command line was
@@ -29,6 +30,7 @@ macro_rules! out {
     }};
 }
 
+mod alerts;
 mod bench;
 mod changeover;
 mod check;
@@ -98,6 +100,8 @@ enum Command {
     Retrain(retrain::RetrainArgs),
     /// List, show or put in service the registered models.
     Models(models::ModelsArgs),
+    /// Print the drift monitors' recent alerts and their state now.
+    Alerts(alerts::AlertsArgs),
 }
 
 /// Frame decoding options shared by the commands that read frames.
@@ -204,6 +208,7 @@ pub fn run(args: Args) -> Result<i32> {
         Command::Changeover(a) => changeover::run(a),
         Command::Retrain(a) => retrain::run(a),
         Command::Models(a) => models::run(a),
+        Command::Alerts(a) => alerts::run(a),
     }
 }
 

@@ -124,6 +124,19 @@ pub struct StartConfig {
     /// `watch.events`: use the operating system's file events.
     pub events: bool,
     pub log: LogSettings,
+    /// `[drift]`: the monitors' settings; `None` when turned off.
+    pub monitors: Option<crate::monitor::MonitorSettings>,
+    /// `[alerts]`.
+    pub alerts: AlertSettings,
+}
+
+/// Resolved `[alerts]`.
+#[derive(Clone, Debug, PartialEq)]
+pub struct AlertSettings {
+    /// The alert command as an argument vector (empty: none).
+    pub command: Vec<String>,
+    /// How long the command may run before it is killed.
+    pub timeout: std::time::Duration,
 }
 
 impl StartConfig {
@@ -155,6 +168,8 @@ impl StartConfig {
         differs("log.keep_files", self.log.keep_files != new.log.keep_files);
         differs("log.sync", self.log.sync != new.log.sync);
         differs("log.level", self.log.level != new.log.level);
+        differs("drift", self.monitors != new.monitors);
+        differs("alerts", self.alerts != new.alerts);
         differs(
             "log.summary_seconds",
             self.log.summary_seconds != new.log.summary_seconds,
@@ -199,6 +214,9 @@ pub struct RetrainSettings {
     pub tolerance: f64,
     pub older_lines: bool,
     pub budget: std::time::Duration,
+    /// `retrain.on_error_drift`: an error-drift alert brings the next
+    /// check forward.
+    pub on_error_drift: bool,
 }
 
 /// A daily span of local time, start inclusive, end exclusive, in minutes

@@ -8,8 +8,8 @@ use std::path::PathBuf;
 use serde::Deserialize;
 
 use super::{
-    Config, Folders, LiveConfig, LogSettings, QuietHours, Retention, RetrainSettings, StartConfig,
-    SyncPolicy, LEVELS,
+    AlertSettings, Config, Folders, LiveConfig, LogSettings, QuietHours, Retention,
+    RetrainSettings, StartConfig, SyncPolicy, LEVELS,
 };
 use crate::codec::DecodeLimits;
 use crate::error::{Error, Result};
@@ -179,6 +179,53 @@ pub struct RawRetrain {
     /// Seconds a retrain may run before it is abandoned, checked while its
     /// tree grows and between its stages (default 600).
     pub budget_seconds: Option<f64>,
+    /// An error-drift alert brings the next retrain check forward (default
+    /// true).
+    pub on_error_drift: Option<bool>,
+}
+
+/// `[drift]`: the drift monitors (README, "Drift monitors").
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawDrift {
+    /// The monitors on or off (default true).
+    pub enabled: Option<bool>,
+    /// Frames in the input windows and the output monitors' recent mean
+    /// (default 50).
+    pub window_frames: Option<usize>,
+    /// Pixels per frame walked down the tree for the leaf groups (default
+    /// 64).
+    pub leaf_samples: Option<usize>,
+    /// PSI at which an input statistic is watched (default 0.1).
+    pub psi_watch: Option<f64>,
+    /// PSI at which it alerts (default 0.25).
+    pub psi_alert: Option<f64>,
+    /// A raised level is lowered below this fraction of its threshold
+    /// (default 0.8).
+    pub clear_fraction: Option<f64>,
+    /// Frames of a new model that set the output monitors' level (default
+    /// 100).
+    pub warmup_frames: Option<u64>,
+    /// Page-Hinkley delta, in standard deviations (default 0.25).
+    pub output_delta: Option<f64>,
+    /// Page-Hinkley threshold, in standard deviations (default 40).
+    pub output_threshold: Option<f64>,
+    /// Corrections before the error monitor tests its levels (default 30).
+    pub error_warm_start: Option<u64>,
+}
+
+/// `[alerts]`: what happens when a monitor's level changes.
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawAlerts {
+    /// A command run for every alert, as an argument vector (never through
+    /// a shell), with the alert as JSON on its standard input.
+    pub command: Option<Vec<String>>,
+    /// Seconds the command may run before it is killed (default 10).
+    pub timeout_seconds: Option<f64>,
+    /// Least minutes between two announcements of the same raise (default
+    /// 30).
+    pub repeat_minutes: Option<f64>,
 }
 
 /// The file as written.
@@ -201,6 +248,10 @@ pub struct RawConfig {
     pub archive: RawArchive,
     #[serde(default)]
     pub retrain: RawRetrain,
+    #[serde(default)]
+    pub drift: RawDrift,
+    #[serde(default)]
+    pub alerts: RawAlerts,
 }
 
 fn invalid(key: &str, msg: impl std::fmt::Display) -> Error {
@@ -437,6 +488,7 @@ impl RawConfig {
             ));
         }
         let retrain = resolve_retrain(self.retrain)?;
+        let (monitors, alerts) = resolve_drift(self.drift, self.alerts)?;
         let a = self.archive;
         let overrides = Overrides {
             threshold: det.threshold,
@@ -457,6 +509,8 @@ impl RawConfig {
                     level,
                     summary_seconds,
                 },
+                monitors,
+                alerts,
             },
             live: LiveConfig {
                 limits,
@@ -537,7 +591,132 @@ fn resolve_retrain(r: RawRetrain) -> Result<RetrainSettings> {
         tolerance: unit("retrain.tolerance", r.tolerance.unwrap_or(0.05))?,
         older_lines: r.older_lines.unwrap_or(true),
         budget: std::time::Duration::from_secs_f64(budget_seconds),
+        on_error_drift: r.on_error_drift.unwrap_or(true),
     })
+}
+
+/// Checks `[drift]` and `[alerts]` and fills their defaults.
+fn resolve_drift(
+    d: RawDrift,
+    a: RawAlerts,
+) -> Result<(Option<crate::monitor::MonitorSettings>, AlertSettings)> {
+    let within = |key: &str, v: f64, lo: f64, hi: f64| -> Result<f64> {
+        if v.is_finite() && (lo..=hi).contains(&v) {
+            Ok(v)
+        } else {
+            Err(invalid(key, format!("{v} is outside {lo}..={hi}")))
+        }
+    };
+    let base = crate::monitor::MonitorSettings::default();
+    let window = d.window_frames.unwrap_or(base.window);
+    if !(5..=100_000).contains(&window) {
+        return Err(invalid(
+            "drift.window_frames",
+            format!("{window} is outside 5..=100000"),
+        ));
+    }
+    let samples = d.leaf_samples.unwrap_or(base.samples);
+    if !(1..=65_536).contains(&samples) {
+        return Err(invalid(
+            "drift.leaf_samples",
+            format!("{samples} is outside 1..=65536"),
+        ));
+    }
+    let psi_watch = within(
+        "drift.psi_watch",
+        d.psi_watch.unwrap_or(base.psi_watch),
+        0.001,
+        10.0,
+    )?;
+    let psi_alert = within(
+        "drift.psi_alert",
+        d.psi_alert.unwrap_or(base.psi_alert),
+        0.001,
+        10.0,
+    )?;
+    if psi_alert <= psi_watch {
+        return Err(invalid(
+            "drift.psi_alert",
+            format!("{psi_alert} must be above drift.psi_watch ({psi_watch})"),
+        ));
+    }
+    let clear = within(
+        "drift.clear_fraction",
+        d.clear_fraction.unwrap_or(base.clear),
+        0.1,
+        1.0,
+    )?;
+    let warmup = d.warmup_frames.unwrap_or(base.warmup);
+    if !(10..=1_000_000).contains(&warmup) {
+        return Err(invalid(
+            "drift.warmup_frames",
+            format!("{warmup} is outside 10..=1000000"),
+        ));
+    }
+    let output_delta = within(
+        "drift.output_delta",
+        d.output_delta.unwrap_or(base.output_delta),
+        0.0,
+        10.0,
+    )?;
+    let output_threshold = within(
+        "drift.output_threshold",
+        d.output_threshold.unwrap_or(base.output_threshold),
+        1.0,
+        10_000.0,
+    )?;
+    let warm_start = d.error_warm_start.unwrap_or(base.ddm.warm_start);
+    if !(5..=100_000).contains(&warm_start) {
+        return Err(invalid(
+            "drift.error_warm_start",
+            format!("{warm_start} is outside 5..=100000"),
+        ));
+    }
+    let timeout = within(
+        "alerts.timeout_seconds",
+        a.timeout_seconds.unwrap_or(10.0),
+        0.1,
+        3600.0,
+    )?;
+    let repeat = within(
+        "alerts.repeat_minutes",
+        a.repeat_minutes.unwrap_or(30.0),
+        0.0,
+        10_080.0,
+    )?;
+    let command = a.command.unwrap_or_default();
+    if command.first().is_some_and(|c| c.is_empty()) {
+        return Err(invalid(
+            "alerts.command",
+            "the program (its first word) is empty",
+        ));
+    }
+    let monitors = d
+        .enabled
+        .unwrap_or(true)
+        .then_some(crate::monitor::MonitorSettings {
+            window,
+            samples,
+            psi_watch,
+            psi_alert,
+            clear,
+            warmup,
+            output_delta,
+            output_threshold,
+            ddm: crate::drift::DdmParams {
+                warm_start,
+                ..base.ddm
+            },
+            repeat_seconds: repeat * 60.0,
+            ..base
+        });
+    Ok((
+        monitors,
+        AlertSettings {
+            command,
+            timeout: std::time::Duration::from_secs_f64(timeout),
+        },
+    ))
 }
 
 #[cfg(test)]

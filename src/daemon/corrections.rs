@@ -310,6 +310,14 @@ pub fn prepare(
 pub enum Applied {
     /// Added to the labels (or found already added) and moved.
     Applied(Label),
+    /// Added to the labels now: with the hash of the model that made the
+    /// record and whether the operator reported an error in it (for the
+    /// error-drift monitor).
+    New {
+        label: Label,
+        model_hash: String,
+        error: bool,
+    },
     /// Moved to `rejected/` with this reason.
     Rejected(String),
     /// Gone before it was read, or not readable for a passing reason.
@@ -396,7 +404,13 @@ pub fn apply(
         Ok(label) => {
             info!(correction = %name, frame = %label.frame, line = label.line, role = ?label.role, "correction applied");
             move_done(path, &dir, prepared.mask_file.as_deref(), APPLIED);
-            Applied::Applied(label)
+            Applied::New {
+                error: prepared
+                    .correction
+                    .reports_error(&prepared.record, &prepared.labelled),
+                model_hash: prepared.record.model_hash.clone(),
+                label,
+            }
         }
         // The labels could not be written (a full disk...): the file stays
         // for the next listing.

@@ -77,27 +77,8 @@ impl EventsLog {
         if event.time.is_empty() {
             event.time = crate::record::rfc3339(std::time::SystemTime::now());
         }
-        let mut line = serde_json::to_string(&event).expect("event serialises");
-        line.push('\n');
-        let err = |e: std::io::Error| Error::from(e).with_path(&self.path);
-        let mut f = OpenOptions::new()
-            .create(true)
-            .read(true)
-            .append(true)
-            .open(&self.path)
-            .map_err(err)?;
-        // A line a crash cut off is ended first, so it stays one bad line
-        // (passed over by readers) and this one is whole.
-        let len = f.metadata().map_err(err)?.len();
-        if len > 0 {
-            let mut last = [0u8; 1];
-            std::os::unix::fs::FileExt::read_exact_at(&f, &mut last, len - 1).map_err(err)?;
-            if last[0] != b'\n' {
-                line.insert(0, '\n');
-            }
-        }
-        f.write_all(line.as_bytes()).map_err(err)?;
-        f.sync_data().map_err(err)
+        let line = serde_json::to_string(&event).expect("event serialises");
+        append_line(&self.path, line)
     }
 
     /// Every event that parses, oldest first (a torn or foreign line is
@@ -113,6 +94,30 @@ impl EventsLog {
             .filter_map(|l| serde_json::from_str(l).ok())
             .collect())
     }
+}
+
+/// Appends one line (a newline is added) to a JSON Lines file with one
+/// `write`, and syncs it. A line a crash cut off is ended first, so it
+/// stays one bad line (passed over by readers) and this one is whole.
+pub fn append_line(path: &Path, mut line: String) -> Result<()> {
+    line.push('\n');
+    let err = |e: std::io::Error| Error::from(e).with_path(path);
+    let mut f = OpenOptions::new()
+        .create(true)
+        .read(true)
+        .append(true)
+        .open(path)
+        .map_err(err)?;
+    let len = f.metadata().map_err(err)?.len();
+    if len > 0 {
+        let mut last = [0u8; 1];
+        std::os::unix::fs::FileExt::read_exact_at(&f, &mut last, len - 1).map_err(err)?;
+        if last[0] != b'\n' {
+            line.insert(0, '\n');
+        }
+    }
+    f.write_all(line.as_bytes()).map_err(err)?;
+    f.sync_data().map_err(err)
 }
 
 #[cfg(test)]

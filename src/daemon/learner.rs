@@ -68,6 +68,8 @@ pub(super) struct Learner {
     /// The label generation of the last retrain tried (or model put in
     /// service by hand): the schedule counts new labels from there.
     last_tried: Option<u64>,
+    /// The drift monitors, for the corrections' error indicators.
+    watch: Option<super::alerts::Watch>,
 }
 
 /// Lowers the calling thread's CPU and disk priority (Linux: both are per
@@ -118,6 +120,7 @@ impl Learner {
         learning: Learning,
         running: Arc<ArcSwap<Running>>,
         out: Sender<FromLearner>,
+        watch: Option<super::alerts::Watch>,
     ) -> Learner {
         let every = running.load().live.retrain.check_every;
         let last_tried = learning.last_decided_generation();
@@ -135,6 +138,7 @@ impl Learner {
             job: None,
             next_check: Instant::now() + every,
             last_tried,
+            watch,
         }
     }
 
@@ -172,7 +176,19 @@ impl Learner {
 
     fn correction(&mut self, path: PathBuf) {
         let run = self.running.load_full();
-        let _ = corrections::apply(&path, &mut self.learning, &run.live, Some(&run.detector));
+        let applied = corrections::apply(&path, &mut self.learning, &run.live, Some(&run.detector));
+        if let (
+            corrections::Applied::New {
+                model_hash, error, ..
+            },
+            Some(watch),
+        ) = (&applied, &self.watch)
+        {
+            if watch.correction(*error, model_hash) && run.live.retrain.on_error_drift {
+                info!("error drift: the next retrain check is now");
+                self.next_check = Instant::now();
+            }
+        }
         let _ = self.out.send(FromLearner::CorrectionDone(path));
     }
 

@@ -49,6 +49,7 @@
 //! Where what comes next goes: drift monitors and the status endpoint's
 //! metrics are [`sink::RecordSink`]s.
 
+pub mod alerts;
 pub mod checks;
 pub mod corrections;
 pub mod detlog;
@@ -231,7 +232,29 @@ pub fn run_with(
     .map_err(|e| Error::from(e).with_path(&start.folders.logs))?;
     prune(&start, &live, hooks.clock.wall());
 
-    let running = Arc::new(ArcSwap::from_pointee(Running { detector, live }));
+    let samples = start.monitors.as_ref().map(|m| m.samples);
+    let monitors = match &start.monitors {
+        Some(settings) => {
+            let model = crate::monitor::ModelRef::of(detector.model(), detector.hash());
+            let monitors = alerts::restore(&start.folders.state, settings, model);
+            Some(alerts::start(
+                monitors,
+                start.alerts.clone(),
+                &start.folders.logs,
+                &start.folders.state,
+                hooks.clock.clone(),
+            )?)
+        }
+        None => {
+            info!("drift monitors are off (drift.enabled = false)");
+            None
+        }
+    };
+    let (watch, monitor_sink, alerts_thread) = match monitors {
+        Some((w, s, t)) => (Some(w), Some(s), Some(t)),
+        None => (None, None, None),
+    };
+    let running = Arc::new(ArcSwap::from_pointee(Running::new(detector, live, samples)));
     let workers = match start.workers {
         0 => thread::available_parallelism().map_or(1, |n| n.get()),
         n => n,
@@ -255,6 +278,9 @@ pub fn run_with(
     let counts = Counter::default();
     let summary_every = Duration::from_secs(start.log.summary_seconds);
     let mut sinks: Vec<Box<dyn RecordSink>> = vec![Box::new(counts.clone())];
+    if let Some(sink) = monitor_sink {
+        sinks.push(Box::new(sink));
+    }
     sinks.extend(hooks.sinks);
     let writer = Writer::new(
         log,
@@ -271,7 +297,7 @@ pub fn run_with(
         .map_err(Error::from)?;
     let (to_learner, learner_rx) = unbounded::<ToLearner>();
     let (learner_tx, from_learner) = unbounded::<FromLearner>();
-    let learner = Learner::new(learning, running.clone(), learner_tx);
+    let learner = Learner::new(learning, running.clone(), learner_tx, watch.clone());
     let learner = thread::Builder::new()
         .name("burlwatch-learner".into())
         .spawn(move || learner.run(learner_rx))
@@ -296,6 +322,7 @@ pub fn run_with(
         control,
         ticks,
         clock: hooks.clock,
+        watch,
         seq: 0,
         in_flight: 0,
         unfinished: 0,
@@ -319,6 +346,11 @@ pub fn run_with(
     }
     let _ = learner.join();
     let writer_ok = writer.join().is_ok();
+    // Every sender is gone now: the alerts thread writes what it was
+    // given (the monitors' last state) and ends.
+    if let Some(t) = alerts_thread {
+        let _ = t.join();
+    }
     if workers_lost {
         return Err(Error::daemon(
             "every detection worker stopped; frames not yet logged are still in the inbox",
@@ -392,6 +424,8 @@ struct MainLoop {
     control: Receiver<Control>,
     ticks: Receiver<Instant>,
     clock: Arc<dyn Clock>,
+    /// The drift monitors (`None` when off).
+    watch: Option<alerts::Watch>,
     queue: usize,
     stall: Duration,
     /// The next job's place in hand-out order.
@@ -552,7 +586,7 @@ impl MainLoop {
                     hash = detector.hash(),
                     "model in service"
                 );
-                self.running.store(Arc::new(Running { detector, live }));
+                self.swap(detector, live);
             }
             Err(e) => error!("cannot put the new model in service: {e}; keeping the running one"),
         }
@@ -601,7 +635,21 @@ impl MainLoop {
             Duration::from_secs_f64(live.rescan_seconds),
             self.clock.now(),
         );
-        self.running.store(Arc::new(Running { detector, live }));
+        self.swap(detector, live);
         (true, restart_needed)
+    }
+
+    /// Puts a detector in service: the monitors take its references first,
+    /// so every frame it detects meets them.
+    fn swap(&mut self, detector: crate::detect::Detector, live: LiveConfig) {
+        if let Some(w) = &self.watch {
+            w.reset(crate::monitor::ModelRef::of(
+                detector.model(),
+                detector.hash(),
+            ));
+        }
+        let samples = self.start.monitors.as_ref().map(|m| m.samples);
+        self.running
+            .store(Arc::new(Running::new(detector, live, samples)));
     }
 }

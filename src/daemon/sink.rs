@@ -10,13 +10,16 @@
 use std::path::Path;
 use std::sync::{Arc, Mutex};
 
+use crate::drift::FrameStats;
 use crate::record::FrameRecord;
 
 /// The fate of one frame handed out.
 #[derive(Debug)]
 pub enum Finished<'a> {
-    /// Its record is durable in the detection log and the frame archived.
-    Logged(&'a FrameRecord),
+    /// Its record is durable in the detection log (the frame is archived
+    /// next), with the frame's input statistics for the drift monitors
+    /// (all zero when they are off).
+    Logged(&'a FrameRecord, &'a FrameStats),
     /// It was found already logged (after a crash) and only archived.
     AlreadyLogged { frame: &'a Path },
     /// It cannot be read as a frame: moved to `rejected/` with the reason.
@@ -29,6 +32,8 @@ pub enum Finished<'a> {
 /// A subscriber to finished frames.
 pub trait RecordSink: Send {
     fn finished(&mut self, event: &Finished<'_>);
+    /// The run is over: no more frames (the writer's last call).
+    fn stopped(&mut self) {}
 }
 
 /// Counts of one run.
@@ -58,7 +63,7 @@ impl Summary {
     /// Counts one finished frame.
     pub fn add(&mut self, event: &Finished<'_>) {
         match event {
-            Finished::Logged(r) => {
+            Finished::Logged(r, _) => {
                 self.logged += 1;
                 self.objects += r.objects.len() as u64;
             }

@@ -15,16 +15,33 @@ use super::files::{self, FileBytes, Stamp};
 use crate::config::LiveConfig;
 use crate::detect::compile::Scratch;
 use crate::detect::Detector;
+use crate::drift::{self, FrameStats, LeafGroups};
 use crate::error::ErrorKind;
 use crate::record::FrameRecord;
 
-/// What the workers use, swapped whole on reload and (later) when a
-/// retrained model is put in service: the detector and the live part of
-/// the configuration it goes with.
+/// What the workers use, swapped whole on reload and when a retrained
+/// model is put in service: the detector, the live part of the
+/// configuration it goes with, and what the input monitors sample.
 #[derive(Debug)]
 pub struct Running {
     pub detector: Detector,
     pub live: LiveConfig,
+    /// The model's leaf groups and the pixels sampled per frame; `None`
+    /// when the monitors are off.
+    pub probe: Option<(LeafGroups, usize)>,
+}
+
+impl Running {
+    /// `samples`: pixels per frame for the leaf groups (`None`: the
+    /// monitors are off, nothing is sampled).
+    pub fn new(detector: Detector, live: LiveConfig, samples: Option<usize>) -> Running {
+        let probe = samples.map(|n| (LeafGroups::new(&detector.model().tree), n));
+        Running {
+            detector,
+            live,
+            probe,
+        }
+    }
 }
 
 /// A frame handed to the workers: its place in hand-out order and path.
@@ -39,7 +56,8 @@ pub(super) struct Job {
 /// it had when read: the reason file goes beside the frame in `rejected/`.
 #[derive(Debug)]
 pub(super) enum Outcome {
-    Record(Box<FrameRecord>, Stamp),
+    /// With the input statistics (zero when the monitors are off).
+    Record(Box<FrameRecord>, Stamp, Box<FrameStats>),
     Reject(String, Option<Stamp>),
     /// The file went away before it was read, or could not be read for a
     /// passing reason: the next listing decides.
@@ -100,7 +118,20 @@ fn detect_one(
         run.detector.process(&name, &bytes, limits, scratch, clock)
     }));
     match result {
-        Ok(Ok(d)) => Outcome::Record(Box::new(d.record), stamp),
+        Ok(Ok(d)) => {
+            let stats = match &run.probe {
+                Some((groups, samples)) => drift::frame_stats(
+                    &run.detector.model().tree,
+                    groups,
+                    &d.frame,
+                    d.result.mask.count_set(),
+                    job.seq,
+                    *samples,
+                ),
+                None => FrameStats::default(),
+            };
+            Outcome::Record(Box::new(d.record), stamp, Box::new(stats))
+        }
         Ok(Err(e)) => Outcome::Reject(format!("{name}: {}", e.kind()), Some(stamp)),
         Err(panic) => {
             *scratch = Scratch::default();

@@ -33,6 +33,7 @@ use super::files::{self, Stamp};
 use super::sink::{Finished, RecordSink};
 use super::worker::{Job, Outcome};
 use crate::config::{Folders, SyncPolicy};
+use crate::drift::FrameStats;
 use crate::record::FrameRecord;
 
 /// What the writer tells the main loop.
@@ -50,6 +51,7 @@ pub(super) enum FromWriter {
 pub(super) struct Pending {
     path: PathBuf,
     record: Box<FrameRecord>,
+    stats: Box<FrameStats>,
     /// The version of the file that was read.
     stamp: Stamp,
     key: Key,
@@ -72,6 +74,15 @@ pub(super) struct Writer {
     faults: Faults,
     out: Sender<FromWriter>,
     sinks: Vec<Box<dyn RecordSink>>,
+}
+
+/// However the writer ends, its subscribers hear that the run is over.
+impl Drop for Writer {
+    fn drop(&mut self) {
+        for sink in &mut self.sinks {
+            sink.stopped();
+        }
+    }
 }
 
 impl Writer {
@@ -185,7 +196,7 @@ impl Writer {
                     }
                 }
             }
-            Outcome::Record(record, stamp) => {
+            Outcome::Record(record, stamp, stats) => {
                 let key = (record.frame.clone(), record.sha256.clone());
                 if self.unmoved.contains(&key) {
                     debug!(frame = %job.path.display(), "already in the log: archiving only");
@@ -201,6 +212,7 @@ impl Writer {
                 let pending = Pending {
                     path: job.path,
                     record,
+                    stats,
                     stamp,
                     key,
                 };
@@ -251,7 +263,7 @@ impl Writer {
     /// the frames are logged when the next listing finds them.
     fn settle(&mut self, settled: Settled<Pending>) {
         for p in settled.durable {
-            self.tell(&Finished::Logged(&p.record));
+            self.tell(&Finished::Logged(&p.record, &p.stats));
             self.unmoved.remember(p.key.clone());
             self.archive_frame(&p.path, &p.key.0, p.stamp, false);
         }

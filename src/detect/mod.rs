@@ -44,6 +44,8 @@ pub struct Detector {
 pub struct Detection {
     pub record: FrameRecord,
     pub result: FrameResult,
+    /// The decoded frame.
+    pub frame: BitFrame,
 }
 
 impl Detector {
@@ -124,7 +126,11 @@ impl Detector {
             (end - start) * 1e3,
             &result.objects,
         );
-        Ok(Detection { record, result })
+        Ok(Detection {
+            record,
+            result,
+            frame,
+        })
     }
 }
 

@@ -481,9 +481,16 @@ fn train_inner(
     let mut detected = 0u64;
     let mut objects = 0u64;
     let mut pixels = 0u64;
+    let mut patterns = [0u64; 16];
     for &i in &used_idx {
         let f = &frames[i];
         set_pixels += f.frame.count_set();
+        for (p, c) in patterns
+            .iter_mut()
+            .zip(crate::drift::pattern_histogram(&f.frame))
+        {
+            *p += c;
+        }
         pixels += f.frame.len() as u64;
         detected += walker::detect(&tree, threshold, &f.frame).count_set();
         objects += score::truth_objects(&f.truth()).len() as u64;
@@ -534,6 +541,10 @@ fn train_inner(
             set_density: share(set_pixels, pixels),
             detected_share: share(detected, pixels),
             objects_per_frame: share(objects, used_idx.len() as u64),
+            patterns: {
+                let n = patterns.iter().sum();
+                patterns.iter().map(|&c| share(c, n)).collect()
+            },
         },
         tree,
     })

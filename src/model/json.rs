@@ -274,6 +274,17 @@ impl ModelFile {
         }
         .validate()
         .map_err(|e| Error::bad_model(e.kind().to_string()))?;
+        let p = &self.reference.patterns;
+        let sum: f64 = p.iter().sum();
+        if !p.is_empty()
+            && (p.len() != 16
+                || !p.iter().all(|v| (0.0..=1.0).contains(v))
+                || (sum - 1.0).abs() > 1e-6 && sum != 0.0)
+        {
+            return Err(Error::bad_model(
+                "reference.patterns must be 16 shares in [0, 1] summing to 1",
+            ));
+        }
         Ok(Model {
             tree,
             threshold: self.threshold,

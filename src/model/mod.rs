@@ -96,6 +96,11 @@ pub struct Reference {
     pub detected_share: f64,
     /// Target objects per training frame.
     pub objects_per_frame: f64,
+    /// Share of each 2x2 pixel pattern in the training frames
+    /// (`drift::pattern_histogram`'s 16 bins); empty in models written
+    /// before the input monitors, whose pattern monitor then stays off.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub patterns: Vec<f64>,
 }
 
 /// A complete model.

@@ -1,0 +1,395 @@
+//! The drift monitors inside the daemon and the alerts they raise.
+//!
+//! ```text
+//! writer thread: Finished::Logged(record, stats) ──▶ MonitorSink ─┐
+//! learner thread: a correction's error indicator ──▶ Watch ───────┤ Monitors (Arc<Mutex>)
+//! main loop: a model put in service ──▶ Watch::reset ─────────────┘      │ alerts, snapshots
+//!                                                                        ▼
+//!                                     alerts thread: logs/alerts.jsonl, the alert command,
+//!                                                    state/monitors.json
+//! ```
+//!
+//! - The monitors' logic is [`crate::monitor`] (pure); here it is fed,
+//!   shared and saved. Frames come through a [`RecordSink`] on the
+//!   writer's thread, so only frames whose records are durable count.
+//! - Every file write and the alert command happen on the alerts thread:
+//!   a slow disk or a hanging command never holds up detection. Alerts
+//!   are appended to `alerts.jsonl` in the logs folder (one synced line
+//!   each) before the command runs.
+//! - The command is an argument vector, run directly (no shell), with the
+//!   alert as one JSON line on its standard input, killed after its
+//!   timeout; a command that fails, hangs or cannot start is logged, and
+//!   nothing else changes.
+//! - The monitors' state is saved to `state/monitors.json` (atomically)
+//!   every [`SAVE_FRAMES`] frames or [`SAVE_SECONDS`], after every alert
+//!   and when the run ends, and read back at start if it belongs to the
+//!   same model and settings: a restart loses at most the frames since the
+//!   last save, and never raises an alert twice.
+
+use std::io::{Read, Write};
+use std::path::{Path, PathBuf};
+use std::process::{Command, Stdio};
+use std::sync::{Arc, Mutex, MutexGuard};
+use std::thread;
+use std::time::{Duration, Instant};
+
+use crossbeam_channel::{Receiver, Sender};
+use serde::{Deserialize, Serialize};
+use tracing::{error, info, warn};
+
+use super::events::append_line;
+use super::sink::{Finished, RecordSink};
+use super::Clock;
+use crate::config::AlertSettings;
+use crate::error::{Error, Result};
+use crate::fileio::durable::write_atomic;
+use crate::monitor::{Alert, ModelRef, MonitorSettings, MonitorState, Monitors};
+
+/// The alerts log's file name in the logs folder.
+pub const FILE: &str = "alerts.jsonl";
+/// The monitors' saved state in the state folder.
+pub const STATE_FILE: &str = "monitors.json";
+const STATE_FORMAT: &str = "burlwatch-monitors";
+const STATE_VERSION: u32 = 1;
+/// The monitors are saved at least this often, in frames...
+pub const SAVE_FRAMES: u64 = 500;
+/// ...and in seconds (when frames come).
+pub const SAVE_SECONDS: u64 = 60;
+
+/// `state/monitors.json`.
+#[derive(Clone, Debug, Serialize, Deserialize)]
+pub struct Saved {
+    pub format: String,
+    pub format_version: u32,
+    /// When it was saved, RFC 3339 UTC.
+    pub saved: String,
+    pub monitors: Monitors,
+}
+
+/// Reads the saved state; `None` when there is none.
+pub fn read_saved(state: &Path) -> Result<Option<Saved>> {
+    let path = state.join(STATE_FILE);
+    let text = match std::fs::read_to_string(&path) {
+        Ok(t) => t,
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(None),
+        Err(e) => return Err(Error::from(e).with_path(&path)),
+    };
+    let saved: Saved = serde_json::from_str(&text).map_err(|e| {
+        Error::daemon(format!(
+            "{}: not a monitors state file: {e}",
+            path.display()
+        ))
+    })?;
+    if saved.format != STATE_FORMAT || saved.format_version != STATE_VERSION {
+        return Err(Error::daemon(format!(
+            "{}: format {:?} version {}, expected {STATE_FORMAT:?} version {STATE_VERSION}",
+            path.display(),
+            saved.format,
+            saved.format_version
+        )));
+    }
+    Ok(Some(saved))
+}
+
+/// The monitors for `model` at start: the saved ones when they are for the
+/// same model and settings, else fresh ones (saying why).
+pub fn restore(state: &Path, settings: &MonitorSettings, model: ModelRef) -> Monitors {
+    match read_saved(state) {
+        Ok(Some(s)) if s.monitors.model() == &model && s.monitors.settings() == settings => {
+            info!(
+                frames = s.monitors.frames(),
+                saved = %s.saved,
+                "drift monitors: state restored"
+            );
+            s.monitors
+        }
+        Ok(Some(s)) => {
+            info!(
+                "drift monitors: the saved state is for model {} ({}) or other settings; starting afresh",
+                s.monitors.model().version,
+                s.monitors.model().hash
+            );
+            Monitors::new(settings.clone(), model)
+        }
+        Ok(None) => Monitors::new(settings.clone(), model),
+        Err(e) => {
+            warn!("drift monitors: {e}; starting afresh");
+            Monitors::new(settings.clone(), model)
+        }
+    }
+}
+
+/// Every alert in the logs folder's alerts log that parses, oldest first
+/// (a torn line is passed over).
+pub fn read_alerts(logs: &Path) -> Result<Vec<Alert>> {
+    let path = logs.join(FILE);
+    let text = match std::fs::read_to_string(&path) {
+        Ok(t) => t,
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(Vec::new()),
+        Err(e) => return Err(Error::from(e).with_path(&path)),
+    };
+    Ok(text
+        .lines()
+        .filter_map(|l| serde_json::from_str(l).ok())
+        .collect())
+}
+
+/// What the alerts thread is asked to do.
+#[derive(Debug)]
+enum ToAlerts {
+    Alert(Box<Alert>),
+    /// Save this state (JSON).
+    Save(String),
+}
+
+/// The monitors shared by the writer's sink, the learner and the main
+/// loop; every change they make is passed to the alerts thread.
+#[derive(Clone)]
+pub struct Watch {
+    monitors: Arc<Mutex<Monitors>>,
+    tx: Sender<ToAlerts>,
+    clock: Arc<dyn Clock>,
+}
+
+impl Watch {
+    fn lock(&self) -> MutexGuard<'_, Monitors> {
+        self.monitors.lock().unwrap_or_else(|p| p.into_inner())
+    }
+
+    fn send(&self, alerts: Vec<Alert>, monitors: &Monitors) {
+        if alerts.is_empty() {
+            return;
+        }
+        for a in alerts {
+            let _ = self.tx.send(ToAlerts::Alert(Box::new(a)));
+        }
+        self.save_now(monitors);
+    }
+
+    fn save_now(&self, monitors: &Monitors) {
+        let saved = Saved {
+            format: STATE_FORMAT.into(),
+            format_version: STATE_VERSION,
+            saved: crate::record::rfc3339(self.clock.wall()),
+            monitors: monitors.clone(),
+        };
+        let json = serde_json::to_string(&saved).expect("monitors serialise");
+        let _ = self.tx.send(ToAlerts::Save(json));
+    }
+
+    /// Takes one correction of a record of `model_hash`; true when it
+    /// raised error drift (the alert level).
+    pub fn correction(&self, error: bool, model_hash: &str) -> bool {
+        let mut m = self.lock();
+        let alerts = m.correction(error, model_hash, self.clock.wall());
+        let drift = alerts
+            .iter()
+            .any(|a| a.monitor == "error" && a.state == "alert");
+        self.send(alerts, &m);
+        drift
+    }
+
+    /// A model was put in service: the monitors start again from its
+    /// references (what was raised is cleared).
+    pub fn reset(&self, model: ModelRef) {
+        let mut m = self.lock();
+        let alerts = m.reset(model, self.clock.wall());
+        self.send(alerts, &m);
+        self.save_now(&m);
+    }
+
+    /// Every statistic's state now.
+    pub fn states(&self) -> Vec<MonitorState> {
+        self.lock().states()
+    }
+}
+
+/// The monitors' subscriber on the writer's thread.
+pub struct MonitorSink {
+    watch: Watch,
+    since_save: u64,
+    last_save: Instant,
+}
+
+impl RecordSink for MonitorSink {
+    fn finished(&mut self, event: &Finished<'_>) {
+        let Finished::Logged(record, stats) = event else {
+            return;
+        };
+        let mut m = self.watch.lock();
+        let alerts = m.frame(
+            stats,
+            record.objects.len(),
+            &record.model_hash,
+            self.watch.clock.wall(),
+        );
+        self.since_save += 1;
+        if !alerts.is_empty() {
+            self.watch.send(alerts, &m);
+        } else if self.since_save >= SAVE_FRAMES
+            || self.last_save.elapsed() >= Duration::from_secs(SAVE_SECONDS)
+        {
+            self.watch.save_now(&m);
+        } else {
+            return;
+        }
+        self.since_save = 0;
+        self.last_save = Instant::now();
+    }
+
+    fn stopped(&mut self) {
+        let m = self.watch.lock();
+        self.watch.save_now(&m);
+    }
+}
+
+/// Starts the alerts thread: returns the shared monitors, the writer's
+/// sink, and the thread (which ends once every [`Watch`] and the sink are
+/// dropped, after its last file write).
+pub fn start(
+    monitors: Monitors,
+    settings: AlertSettings,
+    logs: &Path,
+    state: &Path,
+    clock: Arc<dyn Clock>,
+) -> Result<(Watch, MonitorSink, thread::JoinHandle<()>)> {
+    let (tx, rx) = crossbeam_channel::unbounded();
+    let watch = Watch {
+        monitors: Arc::new(Mutex::new(monitors)),
+        tx,
+        clock,
+    };
+    let sink = MonitorSink {
+        watch: watch.clone(),
+        since_save: 0,
+        last_save: Instant::now(),
+    };
+    let runner = Runner {
+        log: logs.join(FILE),
+        state: state.join(STATE_FILE),
+        settings,
+    };
+    let handle = thread::Builder::new()
+        .name("burlwatch-alerts".into())
+        .spawn(move || runner.run(rx))
+        .map_err(Error::from)?;
+    Ok((watch, sink, handle))
+}
+
+/// The alerts thread's work.
+struct Runner {
+    log: PathBuf,
+    state: PathBuf,
+    settings: AlertSettings,
+}
+
+impl Runner {
+    fn run(self, rx: Receiver<ToAlerts>) {
+        for msg in rx {
+            match msg {
+                ToAlerts::Alert(a) => self.alert(&a),
+                ToAlerts::Save(json) => {
+                    if let Err(e) = write_atomic(&self.state, json.as_bytes()) {
+                        warn!("drift monitors: cannot save {}: {e}", self.state.display());
+                    }
+                }
+            }
+        }
+    }
+
+    fn alert(&self, a: &Alert) {
+        if a.state == "cleared" {
+            info!(monitor = %a.monitor, statistic = %a.statistic, "{}", a.message);
+        } else {
+            warn!(monitor = %a.monitor, statistic = %a.statistic, state = %a.state, "{}", a.message);
+        }
+        let line = serde_json::to_string(a).expect("alert serialises");
+        if let Err(e) = append_line(&self.log, line.clone()) {
+            error!("cannot write the alerts log: {e}");
+        }
+        if !self.settings.command.is_empty() {
+            if let Err(why) = run_command(&self.settings.command, &line, self.settings.timeout) {
+                warn!(
+                    program = %self.settings.command[0],
+                    "alert command: {why}; the alert is in {}",
+                    self.log.display()
+                );
+            }
+        }
+    }
+}
+
+/// The most of the command's standard error kept for the message.
+const STDERR_KEPT: usize = 2048;
+
+/// Runs `argv` with `input` and a newline on its standard input, waiting
+/// at most `timeout`; the error says what went wrong (could not start,
+/// timed out and was killed, exit status with the end of its standard
+/// error).
+pub fn run_command(
+    argv: &[String],
+    input: &str,
+    timeout: Duration,
+) -> std::result::Result<(), String> {
+    let mut child = Command::new(&argv[0])
+        .args(&argv[1..])
+        .stdin(Stdio::piped())
+        .stdout(Stdio::null())
+        .stderr(Stdio::piped())
+        .spawn()
+        .map_err(|e| format!("cannot start {:?}: {e}", argv[0]))?;
+    // The alert is small (well under a pipe's buffer): written at once; a
+    // command that does not read it is no reason to wait.
+    if let Some(mut stdin) = child.stdin.take() {
+        let _ = stdin.write_all(format!("{input}\n").as_bytes());
+    }
+    // Standard error is read on a thread of its own, so a command that
+    // writes much cannot block on a full pipe, and one whose children keep
+    // the pipe open cannot hold this thread.
+    let kept = Arc::new(Mutex::new(Vec::new()));
+    if let Some(mut err) = child.stderr.take() {
+        let kept = kept.clone();
+        let _ = thread::Builder::new()
+            .name("burlwatch-alert-stderr".into())
+            .spawn(move || {
+                let mut buf = [0u8; 1024];
+                while let Ok(n) = err.read(&mut buf) {
+                    if n == 0 {
+                        break;
+                    }
+                    let mut k = kept.lock().unwrap_or_else(|p| p.into_inner());
+                    k.extend_from_slice(&buf[..n]);
+                    let over = k.len().saturating_sub(STDERR_KEPT);
+                    k.drain(..over);
+                }
+            });
+    }
+    let deadline = Instant::now() + timeout;
+    let status = loop {
+        match child.try_wait() {
+            Ok(Some(status)) => break status,
+            Ok(None) if Instant::now() >= deadline => {
+                let _ = child.kill();
+                let _ = child.wait();
+                return Err(format!(
+                    "still running after {:.1} s: killed",
+                    timeout.as_secs_f64()
+                ));
+            }
+            Ok(None) => thread::sleep(Duration::from_millis(10)),
+            Err(e) => return Err(format!("cannot wait for it: {e}")),
+        }
+    };
+    if status.success() {
+        return Ok(());
+    }
+    // Give the reader a moment to take what the command wrote last.
+    thread::sleep(Duration::from_millis(20));
+    let err = String::from_utf8_lossy(&kept.lock().unwrap_or_else(|p| p.into_inner())).into_owned();
+    let err = err.trim();
+    Err(if err.is_empty() {
+        format!("{status}")
+    } else {
+        format!("{status}: {err}")
+    })
+}
