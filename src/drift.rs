@@ -96,20 +96,27 @@ pub fn pattern_histogram(frame: &BitFrame) -> [u64; 16] {
     pattern_histogram_rows(frame, 1, 0)
 }
 
-/// [`pattern_histogram`] over the row pairs whose top row `y` has
-/// `(y + phase) % step == 0`: a 1-in-`step` sample of the rows. The
-/// daemon moves `phase` from frame to frame, so a window of frames covers
-/// every row of a periodic fabric even when `step` divides its period.
-pub fn pattern_histogram_rows(frame: &BitFrame, step: usize, phase: usize) -> [u64; 16] {
+/// [`pattern_histogram`] over a sample of about one row pair in `step`,
+/// drawn afresh for each `seed`: row pair `y` is counted when a hash of
+/// `y` and `seed` is 0 modulo `step`. The rows are not evenly spaced on
+/// purpose: a fixed stride that divides the fabric's thread period would
+/// see the same rows of every thread in every frame, and its histogram
+/// would differ from the whole frame's.
+pub fn pattern_histogram_rows(frame: &BitFrame, step: usize, seed: u64) -> [u64; 16] {
     let mut h = [0u64; 16];
     let (w, rows) = (frame.width(), frame.height());
     if w < 2 || rows < 2 {
         return h;
     }
-    let step = step.max(1);
+    let step = step.max(1) as u64;
     let words = frame.stride();
-    let first_row = (step - phase % step) % step;
-    for y in (first_row..rows - 1).step_by(step) {
+    for y in 0..rows - 1 {
+        if step > 1 {
+            let mut state = seed ^ (y as u64).wrapping_mul(0x9e37_79b9_7f4a_7c15);
+            if !splitmix64(&mut state).is_multiple_of(step) {
+                continue;
+            }
+        }
         let (top, bottom) = (frame.row(y), frame.row(y + 1));
         for k in 0..words {
             // Pixel x and x + 1 of each row, for every x of this word.
@@ -134,8 +141,8 @@ pub fn pattern_histogram_rows(frame: &BitFrame, step: usize, phase: usize) -> [u
     h
 }
 
-/// Row step of the daemon's 2x2 pattern sample: one row pair in 8, at a
-/// phase that moves with every frame. Measured: the whole-frame count
+/// Row step of the daemon's 2x2 pattern sample: about one row pair in 8,
+/// drawn afresh for every frame. Measured: the whole-frame count
 /// costs about 5% of the detection step on a 512x512 frame, a 1-in-8
 /// sample well under 1%, and over a window of frames it still counts
 /// millions of positions.
@@ -261,9 +268,8 @@ pub fn compare(reference: &[f64], counts: &[u64]) -> (f64, f64) {
 }
 
 /// Takes a frame's [`FrameStats`]: the 1-in-[`PATTERN_ROW_STEP`] pattern
-/// sample at a phase that moves with `seq` (the frame's place in the
-/// stream), and `samples` pixels' leaf groups at positions drawn from
-/// `seq`.
+/// sample and `samples` pixels' leaf groups, at rows and positions drawn
+/// from `seq` (the frame's place in the stream).
 pub fn frame_stats(
     tree: &Tree,
     groups: &LeafGroups,
@@ -273,11 +279,7 @@ pub fn frame_stats(
     samples: usize,
 ) -> FrameStats {
     FrameStats {
-        patterns: pattern_histogram_rows(
-            frame,
-            PATTERN_ROW_STEP,
-            (seq % PATTERN_ROW_STEP as u64) as usize,
-        ),
+        patterns: pattern_histogram_rows(frame, PATTERN_ROW_STEP, seq ^ 0x726f_7773_6c6f_6f6d),
         leaves: groups.sample(tree, frame, samples, seq ^ 0x6c6f_6f6d_6672_616d),
         detected,
         pixels: (frame.width() * frame.height()) as u64,
@@ -732,6 +734,27 @@ mod tests {
             let blocks = (w.saturating_sub(1) * h.saturating_sub(1)) as u64;
             assert_eq!(got.iter().sum::<u64>(), blocks);
         }
+    }
+
+    #[test]
+    fn a_row_sample_counts_about_one_row_in_step_from_every_phase() {
+        // A weave of period 8 whose rows differ by phase: only an
+        // unaligned sample gets the whole frame's shares.
+        let f = BitFrame::from_fn(256, 256, |x, y| (x + 3 * (y % 8)) % 8 < 3);
+        let full = pattern_histogram(&f);
+        let mut sum = [0u64; 16];
+        for seed in 0..20 {
+            let h = pattern_histogram_rows(&f, PATTERN_ROW_STEP, seed);
+            let n: u64 = h.iter().sum();
+            // 255 row pairs of 255 positions; about 32 pairs a frame.
+            assert!((16 * 255..=48 * 255).contains(&n), "{n}");
+            for (s, c) in sum.iter_mut().zip(h) {
+                *s += c;
+            }
+        }
+        let (a, b) = (smoothed(&full, SMOOTHING), smoothed(&sum, SMOOTHING));
+        assert!(psi(&a, &b) < 0.01, "{}", psi(&a, &b));
+        assert_eq!(pattern_histogram_rows(&f, 1, 7), full);
     }
 
     #[test]

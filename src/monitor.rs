@@ -703,6 +703,23 @@ impl Monitors {
 
     /// What a person reading the alert should know and do.
     fn message(&self, stat: Statistic, level: Level) -> String {
+        let what = self.describe(stat);
+        let advice = match (stat.monitor(), level) {
+            (_, Level::Ok) => "back within the limits".to_string(),
+            ("input", _) => "if the fabric or the camera changed, record a changeover (burlwatch changeover) and label frames of it (burlwatch mark); the model is retrained only from labels".to_string(),
+            ("output", _) => "check a few recent frames (burlwatch mark records what is right or wrong); a change of fabric or camera also shows here".to_string(),
+            _ => "label more frames of this line (burlwatch mark); a retrain check is brought forward when the drift is confirmed".to_string(),
+        };
+        let state = if level == Level::Ok {
+            "cleared"
+        } else {
+            level_name(level)
+        };
+        format!("{state}: {what}; {advice}")
+    }
+
+    /// The statistic now, in words.
+    fn describe(&self, stat: Statistic) -> String {
         let (value, t, window) = self.reading(stat);
         let what = match stat {
             Statistic::PatternPsi => format!(
@@ -747,13 +764,7 @@ impl Monitors {
                 )
             }
         };
-        let advice = match (stat.monitor(), level) {
-            (_, Level::Ok) => "back within the limits".to_string(),
-            ("input", _) => "if the fabric or the camera changed, record a changeover (burlwatch changeover) and label frames of it (burlwatch mark); the model is retrained only from labels".to_string(),
-            ("output", _) => "check a few recent frames (burlwatch mark records what is right or wrong); a change of fabric or camera also shows here".to_string(),
-            _ => "label more frames of this line (burlwatch mark); a retrain check is brought forward when the drift is confirmed".to_string(),
-        };
-        format!("{}: {what}; {advice}", level_name(level))
+        what
     }
 
     /// Every statistic's state now.
@@ -779,6 +790,8 @@ impl Monitors {
                 };
                 let detail = if off {
                     "the model has no pattern references (trained before they were kept); retrain to turn this on".to_string()
+                } else if self.level(stat) == Level::Ok {
+                    self.describe(stat)
                 } else {
                     self.message(stat, self.level(stat))
                 };

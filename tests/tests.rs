@@ -11,6 +11,8 @@
 //! - `cli`: the `burlwatch` binary end to end on temporary folders;
 //! - `daemon`: `burlwatch run` end to end: bursts, slow writers, bad files,
 //!   kills, signals, lost events;
+//! - `drift`: the drift monitors on long generated streams, and the
+//!   daemon's alerts log, alert command, restarts and error drift;
 //! - `inprocess`: the daemon driven in-process, with the clock, ticks,
 //!   control channel and disk faults in the test's hands;
 //! - `learning`: corrections, changeovers, retraining behind the gate and
@@ -21,6 +23,7 @@ mod util;
 mod cli;
 mod compiled;
 mod daemon;
+mod drift;
 mod inprocess;
 mod learning;
 mod properties;
