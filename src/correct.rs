@@ -637,6 +637,64 @@ mod tests {
     }
 
     #[test]
+    fn the_error_indicator_follows_what_the_operator_said() {
+        // One detected object at (2..4, 2..4) in a 12x8 frame.
+        let rec = record(&[(1, [2, 2, 4, 4])]);
+        let frame = BitFrame::new(12, 8);
+        let truth_at = |boxes: &[[usize; 4]]| {
+            BitFrame::from_fn(12, 8, |x, y| {
+                boxes
+                    .iter()
+                    .any(|b| (b[0]..=b[2]).contains(&x) && (b[1]..=b[3]).contains(&y))
+            })
+        };
+        let labelled = |mask: BitFrame| LabelledFrame::new("loom-0007.pbm", frame.clone(), mask);
+        let right = Correction {
+            right: true,
+            ..base()
+        };
+        assert!(!right.reports_error(&rec, &labelled(truth_at(&[[2, 2, 4, 4]]))));
+        let wrong = Correction {
+            wrong: vec![1],
+            ..base()
+        };
+        assert!(wrong.reports_error(&rec, &labelled(BitFrame::new(12, 8))));
+        let missed = Correction {
+            missed: vec![Region::Box {
+                x0: 8,
+                y0: 1,
+                x1: 9,
+                y1: 2,
+            }],
+            ..base()
+        };
+        assert!(missed.reports_error(&rec, &labelled(truth_at(&[[2, 2, 4, 4], [8, 1, 9, 2]]))));
+        // `only`: the same object (IoU 1) is no error; another place is.
+        let only = |b: [u32; 4]| Correction {
+            only: vec![Region::Box {
+                x0: b[0],
+                y0: b[1],
+                x1: b[2],
+                y1: b[3],
+            }],
+            ..base()
+        };
+        assert!(!only([2, 2, 4, 4]).reports_error(&rec, &labelled(truth_at(&[[2, 2, 4, 4]]))));
+        assert!(only([7, 4, 9, 6]).reports_error(&rec, &labelled(truth_at(&[[7, 4, 9, 6]]))));
+        // `unknown` alone says nothing about errors.
+        let unknown = Correction {
+            unknown: vec![Region::Box {
+                x0: 0,
+                y0: 0,
+                x1: 1,
+                y1: 1,
+            }],
+            ..base()
+        };
+        assert!(!unknown.reports_error(&rec, &labelled(truth_at(&[[2, 2, 4, 4]]))));
+    }
+
+    #[test]
     fn the_commented_sample_in_config_is_a_valid_correction() {
         let c = Correction::parse(include_str!("../config/correction-example.toml")).unwrap();
         c.check_statements().unwrap();

@@ -80,7 +80,7 @@ impl Default for MonitorSettings {
     fn default() -> Self {
         MonitorSettings {
             window: 50,
-            samples: 64,
+            samples: 32,
             psi_watch: drift::PSI_WATCH,
             psi_alert: drift::PSI_ALERT,
             clear: 0.8,

@@ -194,7 +194,7 @@ pub struct RawDrift {
     /// (default 50).
     pub window_frames: Option<usize>,
     /// Pixels per frame walked down the tree for the leaf groups (default
-    /// 64).
+    /// 32).
     pub leaf_samples: Option<usize>,
     /// PSI at which an input statistic is watched (default 0.1).
     pub psi_watch: Option<f64>,

@@ -54,7 +54,7 @@ const STATE_VERSION: u32 = 1;
 /// The monitors are saved at least this often, in frames...
 pub const SAVE_FRAMES: u64 = 500;
 /// ...and in seconds (when frames come).
-pub const SAVE_SECONDS: u64 = 60;
+pub const SAVE_SECONDS: u64 = 10;
 
 /// `state/monitors.json`.
 #[derive(Clone, Debug, Serialize, Deserialize)]

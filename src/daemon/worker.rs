@@ -124,7 +124,8 @@ fn detect_one(
                     &run.detector.model().tree,
                     groups,
                     &d.frame,
-                    d.result.mask.count_set(),
+                    // The mask's pixels are those of the objects kept.
+                    d.result.objects.iter().map(|o| o.area).sum(),
                     job.seq,
                     *samples,
                 ),
