@@ -27,7 +27,9 @@
 //! - [`score`]: pixel and object precision/recall/F1 (IoU >= 0.5 matching),
 //!   and a detector scored over labelled frames.
 //! - [`drift`]: drift statistics (PSI, Jensen-Shannon, 2x2 pattern
-//!   histograms, Page-Hinkley, DDM) for the monitors.
+//!   histograms, leaf groups, Page-Hinkley, DDM) for the monitors.
+//! - [`monitor`]: the drift monitors' levels and alerts (pure; the daemon
+//!   feeds and saves them).
 //! - [`learn`]: the label store, greedy induction, cost-complexity pruning,
 //!   holdout tuning; builds a [`model::Model`].
 //! - [`synth`]: the seeded loom-frame generator for demo and test data.
@@ -37,7 +39,8 @@
 //!   (parsing is pure; [`config::load`] is its one file read).
 //! - [`fileio`]: labelled data folders and durable file operations.
 //! - [`daemon`]: the unattended detector: inbox watching, workers, the
-//!   detection log, archive and rejects, reload and stop.
+//!   detection log, archive and rejects, reload and stop, the learning
+//!   loop and the drift monitors' alerts.
 //!
 //! Everything except [`fileio`], [`daemon`], [`config::load`],
 //! [`config::Folders::absolute`] and the binary is pure: bytes and bit

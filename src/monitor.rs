@@ -8,7 +8,7 @@
 //! - **input**: `pattern_psi`, the PSI of the window's 2x2 pixel patterns
 //!   against the training frames' (the model's `reference.patterns`), and
 //!   `leaf_psi`, the PSI of the share of sampled pixels reaching each
-//!   group of leaves against the training pixels' ([`LeafGroups`]). Both
+//!   group of leaves against the training pixels' ([`drift::LeafGroups`]). Both
 //!   over the last `window` frames, evaluated on every frame once the
 //!   window is full, with [`Hysteresis`] (watch at `psi_watch`, alert at
 //!   `psi_alert`, lowered below `clear` times a threshold). The

@@ -593,3 +593,43 @@ fn rising_errors_in_corrections_warn_then_drift_and_bring_the_retrain_check_forw
     });
     stop(d);
 }
+
+/// `burlwatch check` finds an alert command that is not there, and
+/// `burlwatch alerts` works before the daemon ever ran.
+#[test]
+fn check_names_a_missing_alert_command_and_alerts_works_on_a_new_box() {
+    let b = Box_::new("[alerts]\ncommand = [\"/nonexistent/notify-maintenance\"]\n");
+    let r = b.run(&["check", "--json"]);
+    assert_eq!(r.code, 1, "{}", r.stdout);
+    let v: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
+    let f = v["checks"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|c| c["what"] == "drift monitors")
+        .unwrap()
+        .clone();
+    assert_eq!(f["ok"], false);
+    assert!(
+        f["detail"]
+            .as_str()
+            .unwrap()
+            .contains("/nonexistent/notify-maintenance"),
+        "{f}"
+    );
+    b.configure("[alerts]\ncommand = [\"sh\", \"-c\", \"cat\"]\n");
+    let r = b.run(&["check", "--json"]);
+    let v: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
+    let f = v["checks"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|c| c["what"] == "drift monitors")
+        .unwrap()
+        .clone();
+    assert_eq!(f["ok"], true, "{f}");
+    let r = b.run(&["alerts"]);
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert!(r.stdout.contains("No monitor state yet"), "{}", r.stdout);
+    assert!(r.stdout.contains("No alerts."), "{}", r.stdout);
+}

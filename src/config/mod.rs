@@ -289,6 +289,12 @@ mod tests {
             c.live.seed_data.as_deref(),
             Some(Path::new("demo-frames/train"))
         );
+        // The file states the defaults.
+        assert_eq!(c, from_str("").unwrap());
+        assert_eq!(
+            c.start.monitors,
+            Some(crate::monitor::MonitorSettings::default())
+        );
     }
 
     #[test]

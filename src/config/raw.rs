@@ -725,6 +725,32 @@ mod tests {
     use crate::config::from_str;
 
     #[test]
+    fn drift_and_alert_settings_are_checked() {
+        for (text, want) in [
+            (
+                "[drift]\npsi_watch = 0.3\npsi_alert = 0.2\n",
+                "drift.psi_alert",
+            ),
+            ("[drift]\nwindow_frames = 2\n", "drift.window_frames"),
+            ("[drift]\nclear_fraction = 1.5\n", "drift.clear_fraction"),
+            ("[alerts]\ncommand = [\"\"]\n", "alerts.command"),
+            ("[alerts]\ncommand = \"notify --all\"\n", "alerts.command"),
+            ("[alerts]\ntimeout_seconds = 0\n", "alerts.timeout_seconds"),
+        ] {
+            let e = from_str(text).unwrap_err().to_string();
+            assert!(e.contains(want), "{want:?} in {e:?}");
+        }
+        let c = from_str(
+            "[drift]\nenabled = false\n[alerts]\ncommand = [\"/usr/bin/logger\", \"-t\", \"loom\"]\nrepeat_minutes = 0\n",
+        )
+        .unwrap();
+        assert_eq!(c.start.monitors, None);
+        assert_eq!(c.start.alerts.command, ["/usr/bin/logger", "-t", "loom"]);
+        let c = from_str("[alerts]\nrepeat_minutes = 5\n").unwrap();
+        assert_eq!(c.start.monitors.unwrap().repeat_seconds, 300.0);
+    }
+
+    #[test]
     fn unknown_keys_and_bad_values_are_named() {
         let e = from_str("[training]\ndepth = 3\n").unwrap_err().to_string();
         assert!(e.contains("training.depth") && e.contains("line 2"), "{e}");

@@ -154,8 +154,65 @@ pub fn all(cfg: &Config) -> Vec<Finding> {
     let mut out = folders(&cfg.start.folders);
     out.push(model(cfg));
     out.push(learning(cfg));
+    out.push(monitors(cfg));
     out.push(lock(cfg));
     out
+}
+
+/// The drift monitors: on or off, their saved state, and the alert
+/// command's program (found and executable; the daemon runs it directly,
+/// with no shell, so `PATH` is searched as for any program).
+pub fn monitors(cfg: &Config) -> Finding {
+    let Some(settings) = &cfg.start.monitors else {
+        return Finding::new("drift monitors", true, "off (drift.enabled = false)".into());
+    };
+    let mut detail = format!(
+        "on: windows of {} frames, PSI watch {} / alert {}",
+        settings.window, settings.psi_watch, settings.psi_alert
+    );
+    match super::alerts::read_saved(&cfg.start.folders.state) {
+        Ok(Some(s)) => detail.push_str(&format!(
+            "; saved state of model {} ({}), {} frames",
+            s.monitors.model().version,
+            s.monitors.model().hash,
+            s.monitors.frames()
+        )),
+        Ok(None) => detail.push_str("; no saved state yet"),
+        // A damaged state file is set aside at start: not a reason to stop.
+        Err(e) => detail.push_str(&format!("; {e} (the monitors will start afresh)")),
+    }
+    let Some(program) = cfg.start.alerts.command.first() else {
+        detail.push_str("; no alert command");
+        return Finding::new("drift monitors", true, detail);
+    };
+    match find_program(program) {
+        Some(p) => {
+            detail.push_str(&format!("; alert command {}", p.display()));
+            Finding::new("drift monitors", true, detail)
+        }
+        None => {
+            detail.push_str(&format!(
+                "; the alert command's program {program:?} is not an executable file (alerts would only be logged)"
+            ));
+            Finding::new("drift monitors", false, detail)
+        }
+    }
+}
+
+/// Where a program named in a command is: the path itself when it has a
+/// slash, else the first executable of that name in `PATH`.
+fn find_program(program: &str) -> Option<std::path::PathBuf> {
+    use std::os::unix::fs::PermissionsExt;
+    let executable = |p: &Path| {
+        std::fs::metadata(p).is_ok_and(|m| m.is_file() && m.permissions().mode() & 0o111 != 0)
+    };
+    if program.contains('/') {
+        let p = Path::new(program);
+        return executable(p).then(|| p.to_path_buf());
+    }
+    std::env::split_paths(&std::env::var_os("PATH")?)
+        .map(|d| d.join(program))
+        .find(|p| executable(p))
 }
 
 /// The learning loop's state: registered models, the line running, its

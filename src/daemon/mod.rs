@@ -5,7 +5,7 @@
 //! intake (notify events ──▶ settle ◀── listing) ──▶ main loop ──jobs (bounded)──▶ workers ──▶ writer ──▶ log, archive
 //!   intake.rs                                        Event        worker.rs            writer.rs   │ detlog.rs, files.rs
 //!                          control (stop, reload) ──▶   ▲                                          ▼
-//!                          ticks ──────────────────▶    └────── Taken / Done ◀──────────── sinks (counts, later drift, metrics)
+//!                          ticks ──────────────────▶    └────── Taken / Done ◀──────────── sinks (counts, drift monitors)
 //! corrections intake ──ready files──▶ main loop ──▶ learner thread ──▶ labels, registry, events (learning.rs)
 //!                       requests/ ──────────────────▶   │  └─▶ retrain job thread (retrain.rs)
 //!                                      main loop ◀──────┘ InService(model): swaps Running
@@ -46,8 +46,13 @@
 //! with, every later one gets the new one, none is dropped or logged
 //! twice.
 //!
-//! Where what comes next goes: drift monitors and the status endpoint's
-//! metrics are [`sink::RecordSink`]s.
+//! The drift monitors ([`alerts`]): a [`sink::RecordSink`] feeds them
+//! every logged frame with the statistics its worker took, the learner
+//! each new correction's error indicator, and the main loop resets them
+//! when it swaps in another model (before the swap, so every frame of the
+//! new model meets its references). Their alerts, the alert command and
+//! their saved state are on a thread of their own. The status endpoint's
+//! metrics will be another sink.
 
 pub mod alerts;
 pub mod checks;
