@@ -723,12 +723,12 @@ impl Monitors {
         let (value, t, window) = self.reading(stat);
         let what = match stat {
             Statistic::PatternPsi => format!(
-                "the frames' 2x2 pixel patterns over the last {window} frames differ from the training frames' (PSI {value:.3}; watch {}, alert {})",
-                t.watch, t.alert
+                "the frames' 2x2 pixel patterns over the last {window} frames against the training frames': PSI {value:.3} (watch {}, alert {}), Jensen-Shannon divergence {:.4}",
+                t.watch, t.alert, self.patterns.js
             ),
             Statistic::LeafPsi => format!(
-                "the pixels of the last {window} frames reach other parts of the tree than the training pixels did (PSI {value:.3}; watch {}, alert {})",
-                t.watch, t.alert
+                "where the pixels of the last {window} frames go in the tree against where the training pixels went: PSI {value:.3} (watch {}, alert {}), Jensen-Shannon divergence {:.4}",
+                t.watch, t.alert, self.leaves.js
             ),
             Statistic::ObjectsPerFrame | Statistic::DetectedShare => {
                 let m = if stat == Statistic::ObjectsPerFrame {
@@ -806,11 +806,6 @@ impl Monitors {
                 }
             })
             .collect()
-    }
-
-    /// The Jensen-Shannon divergences (base 2) of the two input windows.
-    pub fn js(&self) -> (f64, f64) {
-        (self.patterns.js, self.leaves.js)
     }
 }
 

@@ -11,7 +11,7 @@
 use std::path::PathBuf;
 use std::process::Child;
 use std::sync::OnceLock;
-use std::time::{Duration, Instant, SystemTime};
+use std::time::{Duration, SystemTime};
 
 use burlwatch::codec::{self, DecodeLimits};
 use burlwatch::detect::compile::Scratch;
@@ -22,7 +22,9 @@ use burlwatch::model::Model;
 use burlwatch::monitor::{Alert, ModelRef, MonitorSettings, Monitors};
 use burlwatch::synth::{self, LoomParams};
 
-use crate::util::{burlwatch, rename_in, repo, spawn_daemon, wait_for, Dir, Run};
+use crate::util::{
+    burlwatch_with, folders_section, rename_in, repo, start_watching, stop, wait_for, Dir, Run,
+};
 
 /// The default model trained on the committed demo training frames, once
 /// for the module.
@@ -250,16 +252,10 @@ impl Box_ {
     fn configure(&self, extra: &str) {
         let d = self.dir.path();
         let text = format!(
-            "[folders]\ninbox = {:?}\narchive = {:?}\nrejected = {:?}\ncorrections = {:?}\n\
-             state = {:?}\nlogs = {:?}\n[training]\nseed_data = {:?}\n\
+            "{}[training]\nseed_data = {:?}\n\
              [watch]\nsettle_millis = 50\nrescan_seconds = 0.2\n[log]\nsummary_seconds = 0\n\
              [drift]\nwindow_frames = 10\nwarmup_frames = 20\nerror_warm_start = 5\n{extra}",
-            d.join("inbox"),
-            d.join("archive"),
-            d.join("rejected"),
-            d.join("corrections"),
-            d.join("state"),
-            d.join("logs"),
+            folders_section(d),
             d.join("seed"),
         );
         std::fs::write(self.config(), text).unwrap();
@@ -270,24 +266,15 @@ impl Box_ {
     }
 
     fn run(&self, args: &[&str]) -> Run {
-        let mut v: Vec<&str> = args.to_vec();
-        let cfg = self.config();
-        v.insert(1, cfg.to_str().unwrap());
-        v.insert(1, "--config");
-        burlwatch(self.dir.path(), &v)
+        burlwatch_with(self.dir.path(), &self.config(), args)
     }
 
     fn start(&self) -> Child {
-        let before = self.stderr().matches("watching").count();
-        let child = spawn_daemon(
+        start_watching(
             &self.config(),
             self.dir.path(),
             &self.dir.join("daemon.stderr"),
-        );
-        wait_for("the daemon to start", 180, || {
-            self.stderr().matches("watching").count() > before
-        });
-        child
+        )
     }
 
     fn stderr(&self) -> String {
@@ -336,20 +323,6 @@ impl Box_ {
             .find(|m| m["statistic"] == statistic)
             .map(|m| m["level"].as_str().unwrap().to_string())
             .unwrap()
-    }
-}
-
-fn stop(mut child: Child) {
-    // SAFETY: sends a signal to a child process we started.
-    unsafe { libc::kill(child.id() as i32, libc::SIGTERM) };
-    let deadline = Instant::now() + Duration::from_secs(60);
-    loop {
-        if let Some(s) = child.try_wait().unwrap() {
-            assert_eq!(s.code(), Some(0), "the daemon's exit status");
-            return;
-        }
-        assert!(Instant::now() < deadline, "the daemon did not stop");
-        std::thread::sleep(Duration::from_millis(20));
     }
 }
 

@@ -14,7 +14,7 @@
 use std::collections::HashSet;
 use std::path::PathBuf;
 use std::process::Child;
-use std::time::{Duration, Instant};
+use std::time::Duration;
 
 use burlwatch::codec;
 use burlwatch::config;
@@ -26,7 +26,9 @@ use burlwatch::learn::store::LabelStore;
 use burlwatch::record::FrameRecord;
 use burlwatch::synth::{self, LoomParams};
 
-use crate::util::{burlwatch, rename_in, spawn_daemon, wait_for, Dir, Run};
+use crate::util::{
+    burlwatch_with, folders_section, rename_in, start_watching, stop, wait_for, Dir, Run,
+};
 
 /// Frame side of these tests: small enough for quick training in the test
 /// profile, large enough for several defects per frame.
@@ -85,17 +87,10 @@ impl Box_ {
             "check_minutes = 600\n"
         };
         let text = format!(
-            "[folders]\ninbox = {:?}\narchive = {:?}\nrejected = {:?}\ncorrections = {:?}\n\
-             state = {:?}\nlogs = {:?}\n[training]\nseed_data = {:?}\n\
+            "{}[training]\nseed_data = {seed:?}\n\
              [watch]\nsettle_millis = 50\nrescan_seconds = 0.2\n[log]\nsummary_seconds = 0\n\
              [retrain]\n{check}min_line_labels = 6\n{extra}",
-            d.join("inbox"),
-            d.join("archive"),
-            d.join("rejected"),
-            d.join("corrections"),
-            d.join("state"),
-            d.join("logs"),
-            seed,
+            folders_section(d),
         );
         std::fs::write(b.config(), text).unwrap();
         b
@@ -110,25 +105,15 @@ impl Box_ {
     }
 
     fn run(&self, args: &[&str]) -> Run {
-        let mut v: Vec<&str> = args.to_vec();
-        let cfg = self.config();
-        let c = cfg.to_str().unwrap();
-        v.insert(1, c);
-        v.insert(1, "--config");
-        burlwatch(self.dir.path(), &v)
+        burlwatch_with(self.dir.path(), &self.config(), args)
     }
 
     fn start(&self) -> Child {
-        let before = self.stderr().matches("watching").count();
-        let child = spawn_daemon(
+        start_watching(
             &self.config(),
             self.dir.path(),
             &self.dir.join("daemon.stderr"),
-        );
-        wait_for("the daemon to start", 180, || {
-            self.stderr().matches("watching").count() > before
-        });
-        child
+        )
     }
 
     fn stderr(&self) -> String {
@@ -202,20 +187,6 @@ impl Box_ {
 
     fn state(&self) -> PathBuf {
         self.dir.join("state")
-    }
-}
-
-fn stop(mut child: Child) {
-    // SAFETY: sends a signal to a child process we started.
-    unsafe { libc::kill(child.id() as i32, libc::SIGTERM) };
-    let deadline = Instant::now() + Duration::from_secs(60);
-    loop {
-        if let Some(s) = child.try_wait().unwrap() {
-            assert_eq!(s.code(), Some(0), "the daemon's exit status");
-            return;
-        }
-        assert!(Instant::now() < deadline, "the daemon did not stop");
-        std::thread::sleep(Duration::from_millis(20));
     }
 }
 

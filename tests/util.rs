@@ -129,3 +129,60 @@ pub fn rename_in(dir: &Path, name: &str, bytes: &[u8]) {
     std::fs::write(&tmp, bytes).unwrap();
     std::fs::rename(&tmp, dir.join(name)).unwrap();
 }
+
+/// The `[folders]` section of a box whose folders are all under `root`.
+pub fn folders_section(root: &Path) -> String {
+    format!(
+        "[folders]\ninbox = {:?}\narchive = {:?}\nrejected = {:?}\ncorrections = {:?}\n\
+         state = {:?}\nlogs = {:?}\n",
+        root.join("inbox"),
+        root.join("archive"),
+        root.join("rejected"),
+        root.join("corrections"),
+        root.join("state"),
+        root.join("logs"),
+    )
+}
+
+/// Runs `burlwatch COMMAND --config CONFIG ARGS...` in `cwd` (`args[0]` is
+/// the command).
+pub fn burlwatch_with(cwd: &Path, config: &Path, args: &[&str]) -> Run {
+    let mut v: Vec<&str> = args.to_vec();
+    let c = config.to_str().unwrap();
+    v.insert(1, c);
+    v.insert(1, "--config");
+    burlwatch(cwd, &v)
+}
+
+/// [`spawn_daemon`], then waits until its stderr says "watching" once more
+/// than before.
+pub fn start_watching(config: &Path, cwd: &Path, stderr: &Path) -> std::process::Child {
+    let said = || {
+        std::fs::read_to_string(stderr)
+            .unwrap_or_default()
+            .matches("watching")
+            .count()
+    };
+    let before = said();
+    let child = spawn_daemon(config, cwd, stderr);
+    wait_for("the daemon to start", 180, || said() > before);
+    child
+}
+
+/// Sends SIGTERM and waits (a minute at most) for the daemon to exit 0.
+pub fn stop(mut child: std::process::Child) {
+    // SAFETY: sends a signal to a child process we started.
+    unsafe { libc::kill(child.id() as i32, libc::SIGTERM) };
+    let deadline = std::time::Instant::now() + std::time::Duration::from_secs(60);
+    loop {
+        if let Some(s) = child.try_wait().unwrap() {
+            assert_eq!(s.code(), Some(0), "the daemon's exit status");
+            return;
+        }
+        assert!(
+            std::time::Instant::now() < deadline,
+            "the daemon did not stop"
+        );
+        std::thread::sleep(std::time::Duration::from_millis(20));
+    }
+}

@@ -21,10 +21,11 @@
 //!   timeout; a command that fails, hangs or cannot start is logged, and
 //!   nothing else changes.
 //! - The monitors' state is saved to `state/monitors.json` (atomically)
-//!   every [`SAVE_FRAMES`] frames or [`SAVE_SECONDS`], after every alert
-//!   and when the run ends, and read back at start if it belongs to the
-//!   same model and settings: a restart loses at most the frames since the
-//!   last save, and never raises an alert twice.
+//!   every [`SAVE_FRAMES`] frames or [`SAVE_SECONDS`], with every alert
+//!   (right after its line, before the command) and when the run ends, and
+//!   read back at start if it belongs to the same model and settings: a
+//!   restart loses at most the frames since the last save, and repeats an
+//!   alert only if the crash fell between its line and that save.
 
 use std::io::{Read, Write};
 use std::path::{Path, PathBuf};
@@ -137,7 +138,9 @@ pub fn read_alerts(logs: &Path) -> Result<Vec<Alert>> {
 /// What the alerts thread is asked to do.
 #[derive(Debug)]
 enum ToAlerts {
-    Alert(Box<Alert>),
+    /// Log these alerts, save the state they leave (JSON), then run the
+    /// command for each.
+    Alerts(Vec<Alert>, String),
     /// Save this state (JSON).
     Save(String),
 }
@@ -157,24 +160,25 @@ impl Watch {
     }
 
     fn send(&self, alerts: Vec<Alert>, monitors: &Monitors) {
-        if alerts.is_empty() {
-            return;
+        if !alerts.is_empty() {
+            let _ = self
+                .tx
+                .send(ToAlerts::Alerts(alerts, self.snapshot(monitors)));
         }
-        for a in alerts {
-            let _ = self.tx.send(ToAlerts::Alert(Box::new(a)));
-        }
-        self.save_now(monitors);
     }
 
     fn save_now(&self, monitors: &Monitors) {
+        let _ = self.tx.send(ToAlerts::Save(self.snapshot(monitors)));
+    }
+
+    fn snapshot(&self, monitors: &Monitors) -> String {
         let saved = Saved {
             format: STATE_FORMAT.into(),
             format_version: STATE_VERSION,
             saved: crate::record::rfc3339(self.clock.wall()),
             monitors: monitors.clone(),
         };
-        let json = serde_json::to_string(&saved).expect("monitors serialise");
-        let _ = self.tx.send(ToAlerts::Save(json));
+        serde_json::to_string(&saved).expect("monitors serialise")
     }
 
     /// Takes one correction of a record of `model_hash`; true when it
@@ -287,17 +291,29 @@ impl Runner {
     fn run(self, rx: Receiver<ToAlerts>) {
         for msg in rx {
             match msg {
-                ToAlerts::Alert(a) => self.alert(&a),
-                ToAlerts::Save(json) => {
-                    if let Err(e) = write_atomic(&self.state, json.as_bytes()) {
-                        warn!("drift monitors: cannot save {}: {e}", self.state.display());
+                ToAlerts::Alerts(alerts, state) => {
+                    // Logged and saved first, the slow command after: a
+                    // crash in between repeats no alert at the next start.
+                    let lines: Vec<String> = alerts.iter().map(|a| self.log_alert(a)).collect();
+                    self.save(&state);
+                    for line in lines {
+                        self.run_for(&line);
                     }
                 }
+                ToAlerts::Save(state) => self.save(&state),
             }
         }
     }
 
-    fn alert(&self, a: &Alert) {
+    fn save(&self, state: &str) {
+        if let Err(e) = write_atomic(&self.state, state.as_bytes()) {
+            warn!("drift monitors: cannot save {}: {e}", self.state.display());
+        }
+    }
+
+    /// Says the alert in the daemon's messages and appends it to the
+    /// alerts log; returns its line.
+    fn log_alert(&self, a: &Alert) -> String {
         if a.state == "cleared" {
             info!(monitor = %a.monitor, statistic = %a.statistic, "{}", a.message);
         } else {
@@ -307,14 +323,19 @@ impl Runner {
         if let Err(e) = append_line(&self.log, line.clone()) {
             error!("cannot write the alerts log: {e}");
         }
-        if !self.settings.command.is_empty() {
-            if let Err(why) = run_command(&self.settings.command, &line, self.settings.timeout) {
-                warn!(
-                    program = %self.settings.command[0],
-                    "alert command: {why}; the alert is in {}",
-                    self.log.display()
-                );
-            }
+        line
+    }
+
+    fn run_for(&self, line: &str) {
+        if self.settings.command.is_empty() {
+            return;
+        }
+        if let Err(why) = run_command(&self.settings.command, line, self.settings.timeout) {
+            warn!(
+                program = %self.settings.command[0],
+                "alert command: {why}; the alert is in {}",
+                self.log.display()
+            );
         }
     }
 }
