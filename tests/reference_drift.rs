@@ -3,12 +3,16 @@
 //! (library versions recorded in it):
 //! - the Jensen-Shannon divergence against
 //!   `scipy.spatial.distance.jensenshannon(p, q, base=2) ** 2`;
+//! - the Population Stability Index of a window's counts against
+//!   reference shares, smoothed as the monitors smooth them
+//!   (`drift::compare`), against `scipy.special.rel_entr` summed both
+//!   ways;
 //! - the Page-Hinkley test's and the Drift Detection Method's detection
 //!   indices against `river.drift.PageHinkley` and
 //!   `river.drift.binary.DDM` with the same parameters on the same streams.
 
 use burlwatch::drift::{
-    js_divergence, Ddm, DdmParams, DdmState, Direction, PageHinkley, PageHinkleyParams,
+    compare, js_divergence, Ddm, DdmParams, DdmState, Direction, PageHinkley, PageHinkleyParams,
 };
 use serde_json::Value;
 
@@ -42,6 +46,24 @@ fn jensen_shannon_matches_scipy() {
         let want = c["divergence"].as_f64().unwrap();
         let got = js_divergence(&p, &q);
         assert!((got - want).abs() < 1e-12, "{got} vs scipy {want}");
+    }
+}
+
+#[test]
+fn psi_of_smoothed_windows_matches_scipy() {
+    let f = fixture();
+    let cases = f["psi"].as_array().unwrap();
+    assert_eq!(cases.len(), 8);
+    for c in cases {
+        let reference = floats(&c["reference"]);
+        let counts: Vec<u64> = indices(&c["counts"]).iter().map(|&n| n as u64).collect();
+        // Empty bins in every window (and in the larger references), yet
+        // finite.
+        assert!(counts.contains(&0));
+        let (psi, js) = compare(&reference, &counts);
+        let (want_psi, want_js) = (c["psi"].as_f64().unwrap(), c["js"].as_f64().unwrap());
+        assert!((psi - want_psi).abs() < 1e-12, "{psi} vs scipy {want_psi}");
+        assert!((js - want_js).abs() < 1e-12, "{js} vs scipy {want_js}");
     }
 }
 

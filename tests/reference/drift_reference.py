@@ -7,7 +7,9 @@ Run once, by hand, to (re)make the fixture; CI does not run it:
     /tmp/refenv/bin/python tests/reference/drift_reference.py > tests/reference/drift.json
 
 Sources: scipy.spatial.distance.jensenshannon (base 2; squared, it is the
-Jensen-Shannon divergence), river.drift.PageHinkley and
+Jensen-Shannon divergence), scipy.special.rel_entr for the Population
+Stability Index (PSI = sum rel_entr(a, e) + rel_entr(e, a), the symmetric
+Kullback-Leibler sum), river.drift.PageHinkley and
 river.drift.binary.DDM with the parameters written beside each stream.
 The streams are written into the fixture, so the Rust tests need no
 generator of their own.
@@ -21,6 +23,7 @@ import scipy
 from river import drift
 from river.drift import binary
 from scipy.spatial.distance import jensenshannon
+from scipy.special import rel_entr
 
 
 def js_cases():
@@ -35,6 +38,27 @@ def js_cases():
             q = [x / sq for x in q]
             d = float(jensenshannon(p, q, base=2)) ** 2
             cases.append({"p": p, "q": q, "divergence": d})
+    return cases
+
+
+def psi_cases():
+    """Window counts (some bins empty) against reference shares, both
+    smoothed as the monitors do: a pseudo-count of 0.5 per bin at the
+    window's size, then PSI by scipy."""
+    cases = []
+    rng = random.Random(14)
+    for k in (4, 16):
+        for _ in range(4):
+            ref = [rng.random() * (0.0 if i % 5 == 4 else 1.0) for i in range(k)]
+            total = sum(ref)
+            ref = [x / total for x in ref]
+            counts = [rng.randrange(0, 500) if i % 4 != 1 else 0 for i in range(k)]
+            n = sum(counts)
+            e = [(r * n + 0.5) / (n + 0.5 * k) for r in ref]
+            a = [(c + 0.5) / (n + 0.5 * k) for c in counts]
+            psi = float(sum(rel_entr(a, e)) + sum(rel_entr(e, a)))
+            js = float(jensenshannon(e, a, base=2)) ** 2
+            cases.append({"reference": ref, "counts": counts, "psi": psi, "js": js})
     return cases
 
 
@@ -93,6 +117,7 @@ print(
         {
             "versions": {"scipy": scipy.__version__, "river": river.__version__},
             "jensen_shannon": js_cases(),
+            "psi": psi_cases(),
             "page_hinkley": page_hinkley_cases(),
             "ddm": ddm_cases(),
         }
