@@ -121,7 +121,7 @@ fn main() {
         .map(|i| drift::frame_stats(tree, &groups, &frames[i], detected[i], i as u64, samples))
         .collect();
     let hash = det.hash().to_string();
-    let mut warm = Monitors::new(settings.clone(), ModelRef::of(&model, det.hash()));
+    let mut warm = Monitors::new(settings.clone(), ModelRef::of(&det));
     let mut seq = 0u64;
     let mut alerts = 0usize;
     for _ in 0..5 {

@@ -168,10 +168,11 @@ fn count_row_pair_any(top: &[u64], bottom: &[u64], w: usize, h: &mut [u64; 16]) 
 }
 
 /// Row step of the daemon's 2x2 pattern sample: about one row pair in 8,
-/// drawn afresh for every frame. Measured: the whole-frame count
-/// costs about 5% of the detection step on a 512x512 frame, a 1-in-8
-/// sample well under 1%, and over a window of frames it still counts
-/// millions of positions.
+/// drawn afresh for every frame. Measured (`cargo bench --bench drift`):
+/// the whole-frame count costs 2.6% of the detection step on a 512x512
+/// frame (4.2% without the population-count instruction), the 1-in-8
+/// sample 0.5%, and over a window of frames it still counts millions of
+/// positions.
 pub const PATTERN_ROW_STEP: usize = 8;
 
 /// Groups of leaves whose shares of pixels the input monitor compares.
@@ -183,10 +184,10 @@ pub const LEAF_GROUPS: usize = 16;
 /// that sends pixels to other leaves than training did is what matters.
 ///
 /// Leaves are taken in falling share (ties by index) and filled into the
-/// groups in turn, a group closing once the shares so far reach its end
-/// (`k / LEAF_GROUPS` of the total for group `k - 1`): a leaf holding more
-/// than one group's worth stays alone, and the groups follow from the
-/// model alone, so its references need no field of their own.
+/// groups in turn, a group closing once it holds its part of the share
+/// left when it opened (`left / groups left`): a leaf holding more than
+/// that stays alone, and the groups follow from the model alone, so its
+/// references need no field of their own.
 #[derive(Clone, Debug, PartialEq)]
 pub struct LeafGroups {
     /// Group of each node (splits: 0, never used).
@@ -209,15 +210,19 @@ impl LeafGroups {
         let total: f64 = leaves.iter().map(|l| l.1).sum();
         let mut group = vec![0u8; tree.nodes().len()];
         let mut reference = [0.0; LEAF_GROUPS];
-        let (mut current, mut so_far) = (0usize, 0.0);
+        // A group closes once it holds its part of what was left when it
+        // opened: a leaf larger than a part stays alone, and the groups
+        // after it share the rest evenly.
+        let (mut current, mut left) = (0usize, total);
+        let mut part = left / LEAF_GROUPS as f64;
         for (i, share) in leaves {
-            let end = total * (current + 1) as f64 / LEAF_GROUPS as f64;
-            if so_far >= end && current + 1 < LEAF_GROUPS {
+            if reference[current] >= part && reference[current] > 0.0 && current + 1 < LEAF_GROUPS {
+                left -= reference[current];
                 current += 1;
+                part = left / (LEAF_GROUPS - current) as f64;
             }
             group[i] = current as u8;
             reference[current] += share;
-            so_far += share;
         }
         if total > 0.0 {
             for r in &mut reference {
@@ -466,16 +471,25 @@ pub struct DdmParams {
     pub warning: f64,
     /// ... and for drift (3 in Gama et al., 2004).
     pub drift: f64,
+    /// Estimate the error rate as `(errors + 1) / (n + 2)` (Laplace's rule
+    /// of succession) instead of `errors / n`. With the plain rate, a
+    /// stream that starts without errors has `p_min = s_min = 0`, and its
+    /// first error passes `p_min + 3 s_min`: drift on one error. The
+    /// published method and the `river` library use the plain rate
+    /// (false, the default here); the monitors use this.
+    #[serde(default)]
+    pub laplace: bool,
 }
 
 impl Default for DdmParams {
     /// Gama et al. (2004): warning at 2, drift at 3 standard deviations;
-    /// 30 values first (as the `river` library).
+    /// 30 values first (as the `river` library); the plain error rate.
     fn default() -> Self {
         DdmParams {
             warm_start: 30,
             warning: 2.0,
             drift: 3.0,
+            laplace: false,
         }
     }
 }
@@ -489,6 +503,8 @@ impl Default for DdmParams {
 pub struct Ddm {
     params: DdmParams,
     n: u64,
+    #[serde(default)]
+    errors: u64,
     p: f64,
     p_min: f64,
     s_min: f64,
@@ -501,6 +517,7 @@ impl Ddm {
         Ddm {
             params,
             n: 0,
+            errors: 0,
             p: 0.0,
             p_min: 0.0,
             s_min: 0.0,
@@ -516,23 +533,34 @@ impl Ddm {
             *self = Ddm::new(self.params);
         }
         self.n += 1;
+        self.errors += error as u64;
         self.p += (error as u8 as f64 - self.p) / self.n as f64;
-        let s = (self.p * (1.0 - self.p) / self.n as f64).sqrt();
+        let (p, s) = self.estimate();
         if self.n > self.params.warm_start {
-            if self.p + s <= self.ps_min {
-                self.p_min = self.p;
+            if p + s <= self.ps_min {
+                self.p_min = p;
                 self.s_min = s;
-                self.ps_min = self.p + s;
+                self.ps_min = p + s;
             }
-            self.state = if self.p + s > self.p_min + self.params.drift * self.s_min {
+            self.state = if p + s > self.p_min + self.params.drift * self.s_min {
                 DdmState::Drift
-            } else if self.p + s > self.p_min + self.params.warning * self.s_min {
+            } else if p + s > self.p_min + self.params.warning * self.s_min {
                 DdmState::Warning
             } else {
                 DdmState::Stable
             };
         }
         self.state
+    }
+
+    /// The rate as tested (plain or Laplace's) and its spread.
+    fn estimate(&self) -> (f64, f64) {
+        let p = if self.params.laplace {
+            (self.errors + 1) as f64 / (self.n + 2) as f64
+        } else {
+            self.p
+        };
+        (p, (p * (1.0 - p) / self.n.max(1) as f64).sqrt())
     }
 
     /// The error rate since the last start, and how many outcomes.
@@ -549,8 +577,8 @@ impl Ddm {
         if self.n <= self.params.warm_start || self.ps_min == f64::MAX {
             return None;
         }
-        let s = (self.p * (1.0 - self.p) / self.n as f64).sqrt();
-        let rise = self.p + s - self.p_min;
+        let (p, s) = self.estimate();
+        let rise = p + s - self.p_min;
         Some(if self.s_min > 0.0 {
             rise / self.s_min
         } else if rise > 0.0 {
@@ -586,18 +614,34 @@ pub struct Hysteresis {
     /// Fraction of a threshold the statistic must fall below to lower the
     /// level (0 < clear <= 1).
     pub clear: f64,
+    /// Updates in a row the statistic must stay low before the level is
+    /// lowered (0: at once).
+    #[serde(default)]
+    pub dwell: u32,
     level: Level,
+    /// Updates in a row that would have lowered the level so far.
+    #[serde(default)]
+    low: u32,
 }
 
 impl Hysteresis {
-    /// Starts at [`Level::Ok`].
+    /// Starts at [`Level::Ok`], lowering at once.
     pub fn new(watch: f64, alert: f64, clear: f64) -> Hysteresis {
         Hysteresis {
             watch,
             alert,
             clear,
+            dwell: 0,
             level: Level::Ok,
+            low: 0,
         }
+    }
+
+    /// The same, lowering only after `dwell` low updates in a row: a
+    /// statistic that dips below the clearing level for a moment while it
+    /// hovers keeps its level.
+    pub fn with_dwell(self, dwell: u32) -> Hysteresis {
+        Hysteresis { dwell, ..self }
     }
 
     /// The level now.
@@ -620,6 +664,13 @@ impl Hysteresis {
             _ => Level::Ok,
         };
         let next = raised.max(kept);
+        if next < self.level {
+            self.low += 1;
+            if self.low <= self.dwell {
+                return None;
+            }
+        }
+        self.low = 0;
         (next != self.level).then(|| {
             self.level = next;
             next
@@ -801,6 +852,16 @@ mod tests {
         assert_eq!(h.update(0.07), Some(Level::Ok));
         assert_eq!(h.update(0.1), Some(Level::Watch));
         assert_eq!(h.level(), Level::Watch);
+        // With a dwell of 2, a level is lowered on the third low value in
+        // a row only; raising is never delayed.
+        let mut h = Hysteresis::new(PSI_WATCH, PSI_ALERT, 0.8).with_dwell(2);
+        assert_eq!(h.update(0.3), Some(Level::Alert));
+        assert_eq!(h.update(0.01), None);
+        assert_eq!(h.update(0.01), None);
+        assert_eq!(h.update(0.3), None);
+        assert_eq!(h.update(0.01), None);
+        assert_eq!(h.update(0.01), None);
+        assert_eq!(h.update(0.01), Some(Level::Ok));
     }
 
     #[test]

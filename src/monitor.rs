@@ -11,8 +11,9 @@
 //!   group of leaves against the training pixels' ([`drift::LeafGroups`]). Both
 //!   over the last `window` frames, evaluated on every frame once the
 //!   window is full, with [`Hysteresis`] (watch at `psi_watch`, alert at
-//!   `psi_alert`, lowered below `clear` times a threshold). The
-//!   Jensen-Shannon divergence of the same histograms is kept beside.
+//!   `psi_alert`, lowered once below `clear` times a threshold for half a
+//!   window of frames in a row). The Jensen-Shannon divergence of the same
+//!   histograms is kept beside.
 //! - **output**: `objects_per_frame` and `detected_share`, each with the
 //!   Page-Hinkley test in both directions. The first `warmup` frames of a
 //!   model give the level (mean) and the spread (standard deviation,
@@ -22,18 +23,22 @@
 //!   alert. Watch at half the test's threshold; alert when the test
 //!   detects a change, which holds until the mean of the last `window`
 //!   frames is back within `clear_band` standard deviations of the level.
+//!   The level is the line's own, not the training frames': training sets
+//!   are chosen rich in defects, production frames are mostly clean.
 //! - **error**: `error_rate`, the Drift Detection Method on the
 //!   corrections of the model's own records (an error when the operator
-//!   reported a missed or a wrong object). The value is how many of the
-//!   detector's lowest standard deviations `p + s` stands above `p_min`:
-//!   watch at the warning level (2), alert at drift (3); an alert holds
-//!   until another model is put in service.
+//!   reported a missed or a wrong object), its rate estimated by Laplace's
+//!   rule (see [`drift::DdmParams::laplace`]). The value is how many of
+//!   the detector's lowest standard deviations `p + s` stands above
+//!   `p_min`: watch at the warning level (2), alert at drift (3); an alert
+//!   holds until another model is put in service.
 //!
 //! Invariants: a monitor's level changes only here; every change of an
 //! announced level is one [`Alert`] (`watch`, `alert`, `cleared`); a
-//! raise that repeats one announced less than `repeat_seconds` earlier
-//! (the level fell and came back) is held back and counted, and announced
-//! once the interval has passed if the level still stands; frames and
+//! raise no higher than the last one announced, less than
+//! `repeat_seconds` after it (the level fell and came back), is held back
+//! and counted, and announced once the interval has passed if the level
+//! still stands (a raise above the last one is never held); frames and
 //! corrections of another model than the monitors' are ignored; a new
 //! model resets everything to its references, clearing what was raised.
 
@@ -96,7 +101,10 @@ impl Default for MonitorSettings {
             output_threshold: 40.0,
             clip: 4.0,
             clear_band: 0.5,
-            ddm: DdmParams::default(),
+            ddm: DdmParams {
+                laplace: true,
+                ..DdmParams::default()
+            },
             repeat_seconds: 1800.0,
         }
     }
@@ -114,24 +122,41 @@ impl MonitorSettings {
     }
 }
 
-/// What the monitors compare with: the model in service.
+/// What the monitors compare with: the model in service and the
+/// detection settings it runs with (another threshold or grouping changes
+/// the output as much as another model).
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct ModelRef {
     pub version: u64,
     pub hash: String,
+    pub threshold: f64,
+    pub min_area: u32,
+    pub merge_distance: u32,
     /// `reference.patterns` (empty: the pattern monitor is off).
     pub patterns: Vec<f64>,
     /// The leaf groups' training shares.
     pub leaves: Vec<f64>,
+    /// Objects per frame and the detected share on the training frames
+    /// (`reference` in the model), shown beside the line's own level.
+    #[serde(default)]
+    pub trained: [f64; 2],
 }
 
 impl ModelRef {
-    pub fn of(model: &crate::model::Model, hash: &str) -> ModelRef {
+    pub fn of(detector: &crate::detect::Detector) -> ModelRef {
+        let (model, settings) = (detector.model(), detector.settings());
         ModelRef {
             version: model.model_version,
-            hash: hash.to_string(),
+            hash: detector.hash().to_string(),
+            threshold: settings.threshold,
+            min_area: settings.grouping.min_area,
+            merge_distance: settings.grouping.merge_distance,
             patterns: model.reference.patterns.clone(),
             leaves: drift::LeafGroups::new(&model.tree).reference().to_vec(),
+            trained: [
+                model.reference.objects_per_frame,
+                model.reference.detected_share,
+            ],
         }
     }
 }
@@ -218,23 +243,25 @@ pub fn level_name(level: Level) -> &'static str {
 #[derive(Clone, Debug, Default, PartialEq, Serialize, Deserialize)]
 struct Announce {
     announced: Level,
-    /// When a raise was last announced (seconds since 1970).
-    last_raise: Option<f64>,
+    /// When a raise was last announced (seconds since 1970), and to what.
+    last_raise: Option<(f64, Level)>,
     /// A raise is being held back.
     holding: bool,
     repeats: u64,
 }
 
 impl Announce {
-    /// The level to announce now, with the raises held back before it.
+    /// The level to announce now, with the raises held back before it. A
+    /// raise no higher than the last one announced, less than `repeat`
+    /// seconds after it, is held; a raise above it never is.
     fn update(&mut self, level: Level, now: f64, repeat: f64) -> Option<(Level, u64)> {
         if level == self.announced {
             self.holding = false;
             return None;
         }
-        if level > self.announced && self.announced == Level::Ok {
-            if let Some(t) = self.last_raise {
-                if now - t < repeat && now >= t {
+        if level > self.announced {
+            if let Some((t, raised)) = self.last_raise {
+                if level <= raised && now >= t && now - t < repeat {
                     if !self.holding {
                         self.holding = true;
                         self.repeats += 1;
@@ -242,9 +269,7 @@ impl Announce {
                     return None;
                 }
             }
-        }
-        if level > self.announced {
-            self.last_raise = Some(now);
+            self.last_raise = Some((now, level));
         }
         self.holding = false;
         self.announced = level;
@@ -266,7 +291,10 @@ impl InputMonitor {
     fn new(s: &MonitorSettings, bins: usize) -> InputMonitor {
         InputMonitor {
             window: HistogramWindow::new(s.window, bins),
-            hysteresis: Hysteresis::new(s.psi_watch, s.psi_alert, s.clear),
+            // Lowered only after half a window of low values in a row: a
+            // statistic hovering at a threshold dips below it now and then.
+            hysteresis: Hysteresis::new(s.psi_watch, s.psi_alert, s.clear)
+                .with_dwell((s.window / 2) as u32),
             psi: 0.0,
             js: 0.0,
             announce: Announce::default(),
@@ -574,21 +602,27 @@ impl Monitors {
         self.announce_all(now)
     }
 
-    /// A new model is in service: every monitor starts afresh with its
-    /// references; what was raised is cleared.
-    pub fn reset(&mut self, model: ModelRef, now: SystemTime) -> Vec<Alert> {
-        if model == self.model {
+    /// A new model (or new detection or monitor settings) is in service:
+    /// every monitor starts afresh with its references; what was raised is
+    /// cleared.
+    pub fn reset(
+        &mut self,
+        settings: MonitorSettings,
+        model: ModelRef,
+        now: SystemTime,
+    ) -> Vec<Alert> {
+        if model == self.model && settings == self.settings {
             return Vec::new();
         }
         let before = self.clone();
-        *self = Monitors::new(self.settings.clone(), model);
+        *self = Monitors::new(settings, model);
         let mut alerts = Vec::new();
         for stat in Statistic::ALL {
             let old = before.announce(stat);
             if old.announced > Level::Ok {
                 let mut alert = before.alert(stat, Level::Ok, 0, now);
                 alert.message = format!(
-                    "{} cleared: model {} ({}) is in service and the monitors start again from its references",
+                    "cleared: {}: the monitors start again from the references of model {} ({}), put in service or run with other settings",
                     stat.name(),
                     self.model.version,
                     self.model.hash
@@ -746,8 +780,9 @@ impl Monitors {
                     Some((Way::Fell, _)) => "fell",
                     None => "moved",
                 };
+                let trained = self.model.trained[(stat == Statistic::DetectedShare) as usize];
                 format!(
-                    "{noun} {way}: {:.4} over the last {window} frames against {:.4} (spread {:.4}) in this model's first {} frames (Page-Hinkley {value:.1}; watch {}, alert {})",
+                    "{noun} {way}: {:.4} over the last {window} frames against {:.4} (spread {:.4}) in this model's first {} frames and {trained:.4} on its training frames (Page-Hinkley {value:.1}; watch {}, alert {})",
                     m.recent_mean(),
                     m.level_mean,
                     m.sd,
@@ -818,8 +853,12 @@ mod tests {
         ModelRef {
             version: 1,
             hash: hash.into(),
+            threshold: 0.5,
+            min_area: 1,
+            merge_distance: 0,
             patterns: vec![1.0 / 16.0; 16],
             leaves: vec![1.0 / LEAF_GROUPS as f64; LEAF_GROUPS],
+            trained: [2.0, 0.003],
         }
     }
 
@@ -863,6 +902,39 @@ mod tests {
             a.update(Level::Alert, 3602.0, hour),
             Some((Level::Alert, 0))
         );
+        // A watch cleared, then an alert within the interval: the alert is
+        // above the last raise, so it is announced at once.
+        let mut a = Announce::default();
+        assert_eq!(a.update(Level::Watch, 0.0, hour), Some((Level::Watch, 0)));
+        assert_eq!(a.update(Level::Ok, 10.0, hour), Some((Level::Ok, 0)));
+        assert_eq!(a.update(Level::Alert, 20.0, hour), Some((Level::Alert, 0)));
+        // Flapping between alert and watch: the watch is announced, the
+        // alert again is held.
+        assert_eq!(a.update(Level::Watch, 30.0, hour), Some((Level::Watch, 0)));
+        assert_eq!(a.update(Level::Alert, 40.0, hour), None);
+    }
+
+    #[test]
+    fn a_clean_start_does_not_make_the_first_error_a_drift() {
+        // 40 corrections without an error, then one error in 50: the
+        // plain rate's p_min = s_min = 0 would call the first error drift;
+        // the monitors' Laplace estimate does not (a brief warning at
+        // most).
+        let mut m = Monitors::new(MonitorSettings::default(), model("a"));
+        let mut states = Vec::new();
+        for i in 0..1040u64 {
+            let error = i >= 40 && (i - 40) % 50 == 0;
+            for a in m.correction(error, "a", at(i)) {
+                states.push(a.state);
+            }
+        }
+        assert!(!m.error_drift(), "{states:?}");
+        assert!(states.iter().all(|s| s != "alert"), "{states:?}");
+        // The published method's plain rate would have drifted.
+        let mut d = drift::Ddm::new(DdmParams::default());
+        let drifted =
+            (0..1040u64).any(|i| d.update(i >= 40 && (i - 40) % 50 == 0) == DdmState::Drift);
+        assert!(drifted);
     }
 
     #[test]
@@ -959,12 +1031,13 @@ mod tests {
             assert!(m.correction(false, "a", at(i)).is_empty());
         }
         // ...until another model is put in service.
-        let cleared = m.reset(model("b"), at(600));
+        let s = m.settings().clone();
+        let cleared = m.reset(s.clone(), model("b"), at(600));
         assert_eq!(cleared.len(), 1);
         assert_eq!(cleared[0].state, "cleared");
         assert_eq!(cleared[0].model_hash, "b");
         assert!(!m.error_drift());
-        assert_eq!(m.reset(model("b"), at(601)), Vec::new());
+        assert_eq!(m.reset(s, model("b"), at(601)), Vec::new());
     }
 
     #[test]

@@ -109,6 +109,8 @@ fn ddm_warns_and_drifts_where_river_does() {
             warm_start: p["warm_start"].as_u64().unwrap(),
             warning: p["warning_threshold"].as_f64().unwrap(),
             drift: p["drift_threshold"].as_f64().unwrap(),
+            // The published method, as the library has it.
+            laplace: false,
         };
         let mut d = Ddm::new(params);
         let (mut warnings, mut drifts) = (Vec::new(), Vec::new());

@@ -28,7 +28,12 @@ pub fn run(a: AlertsArgs) -> Result<i32> {
     let cfg = load_config(&a.config)?;
     let folders = cfg.start.folders.absolute()?;
     let alerts = read_alerts(&folders.logs).map_err(|e| anyhow!("{e}"))?;
-    let saved = read_saved(&folders.state).map_err(|e| anyhow!("{e}"))?;
+    // A damaged state file is said, and the alerts printed all the same
+    // (the daemon starts its monitors afresh from such a file).
+    let (saved, damaged) = match read_saved(&folders.state) {
+        Ok(s) => (s, None),
+        Err(e) => (None, Some(e.to_string())),
+    };
     let recent = &alerts[alerts.len().saturating_sub(a.last)..];
     if a.json {
         let monitors = saved.as_ref().map(|s| {
@@ -44,6 +49,7 @@ pub fn run(a: AlertsArgs) -> Result<i32> {
         let doc = serde_json::json!({
             "enabled": cfg.start.monitors.is_some(),
             "monitors": monitors,
+            "monitors_error": damaged,
             "alerts": recent,
             "alerts_total": alerts.len(),
         });
@@ -54,6 +60,10 @@ pub fn run(a: AlertsArgs) -> Result<i32> {
         out!("The drift monitors are off in this configuration (drift.enabled = false).");
     }
     match &saved {
+        None if damaged.is_some() => out!(
+            "The monitors' saved state cannot be read: {}",
+            damaged.as_deref().unwrap_or_default()
+        ),
         None => out!(
             "No monitor state yet: the daemon has not saved one in {}.",
             folders.state.display()

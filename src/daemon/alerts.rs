@@ -93,8 +93,15 @@ pub fn read_saved(state: &Path) -> Result<Option<Saved>> {
 }
 
 /// The monitors for `model` at start: the saved ones when they are for the
-/// same model and settings, else fresh ones (saying why).
-pub fn restore(state: &Path, settings: &MonitorSettings, model: ModelRef) -> Monitors {
+/// same model and settings; else fresh ones (saying why), with a `cleared`
+/// alert for each statistic the saved ones had raised, so the log's last
+/// word on it is not a raise that no longer stands.
+pub fn restore(
+    state: &Path,
+    settings: &MonitorSettings,
+    model: ModelRef,
+    now: std::time::SystemTime,
+) -> (Monitors, Vec<Alert>) {
     match read_saved(state) {
         Ok(Some(s)) if s.monitors.model() == &model && s.monitors.settings() == settings => {
             info!(
@@ -102,20 +109,21 @@ pub fn restore(state: &Path, settings: &MonitorSettings, model: ModelRef) -> Mon
                 saved = %s.saved,
                 "drift monitors: state restored"
             );
-            s.monitors
+            (s.monitors, Vec::new())
         }
-        Ok(Some(s)) => {
+        Ok(Some(mut s)) => {
             info!(
                 "drift monitors: the saved state is for model {} ({}) or other settings; starting afresh",
                 s.monitors.model().version,
                 s.monitors.model().hash
             );
-            Monitors::new(settings.clone(), model)
+            let alerts = s.monitors.reset(settings.clone(), model, now);
+            (s.monitors, alerts)
         }
-        Ok(None) => Monitors::new(settings.clone(), model),
+        Ok(None) => (Monitors::new(settings.clone(), model), Vec::new()),
         Err(e) => {
             warn!("drift monitors: {e}; starting afresh");
-            Monitors::new(settings.clone(), model)
+            (Monitors::new(settings.clone(), model), Vec::new())
         }
     }
 }
@@ -182,24 +190,32 @@ impl Watch {
     }
 
     /// Takes one correction of a record of `model_hash`; true when it
-    /// raised error drift (the alert level).
+    /// raised error drift (whether or not the repeat interval let its
+    /// alert line out). Saved at once: corrections are few.
     pub fn correction(&self, error: bool, model_hash: &str) -> bool {
         let mut m = self.lock();
+        let before = m.error_drift();
         let alerts = m.correction(error, model_hash, self.clock.wall());
-        let drift = alerts
-            .iter()
-            .any(|a| a.monitor == "error" && a.state == "alert");
-        self.send(alerts, &m);
-        drift
+        if alerts.is_empty() {
+            self.save_now(&m);
+        } else {
+            self.send(alerts, &m);
+        }
+        !before && m.error_drift()
     }
 
-    /// A model was put in service: the monitors start again from its
-    /// references (what was raised is cleared).
+    /// A model was put in service (or runs with other detection settings):
+    /// the monitors start again from its references, clearing what was
+    /// raised.
     pub fn reset(&self, model: ModelRef) {
         let mut m = self.lock();
-        let alerts = m.reset(model, self.clock.wall());
-        self.send(alerts, &m);
-        self.save_now(&m);
+        let settings = m.settings().clone();
+        let alerts = m.reset(settings, model, self.clock.wall());
+        if alerts.is_empty() {
+            self.save_now(&m);
+        } else {
+            self.send(alerts, &m);
+        }
     }
 
     /// Every statistic's state now.
@@ -252,6 +268,7 @@ impl RecordSink for MonitorSink {
 /// dropped, after its last file write).
 pub fn start(
     monitors: Monitors,
+    first: Vec<Alert>,
     settings: AlertSettings,
     logs: &Path,
     state: &Path,
@@ -268,10 +285,14 @@ pub fn start(
         since_save: 0,
         last_save: Instant::now(),
     };
+    {
+        let m = watch.lock();
+        watch.send(first, &m);
+    }
     let runner = Runner {
         log: logs.join(FILE),
         state: state.join(STATE_FILE),
-        settings,
+        commands: Commands::start(settings)?,
     };
     let handle = thread::Builder::new()
         .name("burlwatch-alerts".into())
@@ -280,11 +301,90 @@ pub fn start(
     Ok((watch, sink, handle))
 }
 
+/// Alert commands waiting to run, at most.
+pub const COMMAND_QUEUE: usize = 64;
+
+/// The alert command's own thread: commands run one at a time, in the
+/// order of their alerts, without holding up the alerts log or the saves.
+struct Commands {
+    tx: Option<Sender<String>>,
+    stopping: Arc<std::sync::atomic::AtomicBool>,
+    program: String,
+    thread: Option<thread::JoinHandle<()>>,
+}
+
+impl Commands {
+    /// `None` when there is no command.
+    fn start(settings: AlertSettings) -> Result<Option<Commands>> {
+        if settings.command.is_empty() {
+            return Ok(None);
+        }
+        let (tx, rx) = crossbeam_channel::bounded::<String>(COMMAND_QUEUE);
+        let stopping = Arc::new(std::sync::atomic::AtomicBool::new(false));
+        let stop = stopping.clone();
+        let program = settings.command[0].clone();
+        let thread = thread::Builder::new()
+            .name("burlwatch-alert-command".into())
+            .spawn(move || {
+                let mut skipped = 0;
+                for line in rx {
+                    // Stopping: what is still queued is not run (every
+                    // alert is in the log); the one running finishes or
+                    // times out.
+                    if stop.load(std::sync::atomic::Ordering::Relaxed) {
+                        skipped += 1;
+                        continue;
+                    }
+                    if let Err(why) = run_command(&settings.command, &line, settings.timeout) {
+                        warn!(
+                            program = %settings.command[0],
+                            "alert command: {why}; the alert is in {FILE}"
+                        );
+                    }
+                }
+                if skipped > 0 {
+                    warn!(
+                        skipped,
+                        "stopping: alert commands not run; the alerts are in {FILE}"
+                    );
+                }
+            })
+            .map_err(Error::from)?;
+        Ok(Some(Commands {
+            tx: Some(tx),
+            stopping,
+            program,
+            thread: Some(thread),
+        }))
+    }
+
+    fn send(&self, line: String) {
+        let Some(tx) = &self.tx else { return };
+        if tx.try_send(line).is_err() {
+            warn!(
+                program = %self.program,
+                "alert command: {COMMAND_QUEUE} commands already wait; this alert's is not run (it is in {FILE})"
+            );
+        }
+    }
+}
+
+impl Drop for Commands {
+    fn drop(&mut self) {
+        self.stopping
+            .store(true, std::sync::atomic::Ordering::Relaxed);
+        drop(self.tx.take());
+        if let Some(t) = self.thread.take() {
+            let _ = t.join();
+        }
+    }
+}
+
 /// The alerts thread's work.
 struct Runner {
     log: PathBuf,
     state: PathBuf,
-    settings: AlertSettings,
+    commands: Option<Commands>,
 }
 
 impl Runner {
@@ -292,12 +392,16 @@ impl Runner {
         for msg in rx {
             match msg {
                 ToAlerts::Alerts(alerts, state) => {
-                    // Logged and saved first, the slow command after: a
-                    // crash in between repeats no alert at the next start.
+                    // Logged and saved first, the slow command after, on
+                    // its own thread: a crash in between repeats no alert
+                    // at the next start, and a hanging command holds up
+                    // neither the log nor the saves.
                     let lines: Vec<String> = alerts.iter().map(|a| self.log_alert(a)).collect();
                     self.save(&state);
-                    for line in lines {
-                        self.run_for(&line);
+                    if let Some(c) = &self.commands {
+                        for line in lines {
+                            c.send(line);
+                        }
                     }
                 }
                 ToAlerts::Save(state) => self.save(&state),
@@ -325,19 +429,6 @@ impl Runner {
         }
         line
     }
-
-    fn run_for(&self, line: &str) {
-        if self.settings.command.is_empty() {
-            return;
-        }
-        if let Err(why) = run_command(&self.settings.command, line, self.settings.timeout) {
-            warn!(
-                program = %self.settings.command[0],
-                "alert command: {why}; the alert is in {}",
-                self.log.display()
-            );
-        }
-    }
 }
 
 /// The most of the command's standard error kept for the message.
@@ -352,17 +443,25 @@ pub fn run_command(
     input: &str,
     timeout: Duration,
 ) -> std::result::Result<(), String> {
+    use std::os::unix::process::CommandExt;
+    // A process group of its own, so a timeout kills what it started too.
     let mut child = Command::new(&argv[0])
         .args(&argv[1..])
         .stdin(Stdio::piped())
         .stdout(Stdio::null())
         .stderr(Stdio::piped())
+        .process_group(0)
         .spawn()
         .map_err(|e| format!("cannot start {:?}: {e}", argv[0]))?;
-    // The alert is small (well under a pipe's buffer): written at once; a
-    // command that does not read it is no reason to wait.
+    // The alert goes in on a thread of its own: a command that does not
+    // read it cannot hold this one past the timeout.
     if let Some(mut stdin) = child.stdin.take() {
-        let _ = stdin.write_all(format!("{input}\n").as_bytes());
+        let bytes = format!("{input}\n").into_bytes();
+        let _ = thread::Builder::new()
+            .name("burlwatch-alert-stdin".into())
+            .spawn(move || {
+                let _ = stdin.write_all(&bytes);
+            });
     }
     // Standard error is read on a thread of its own, so a command that
     // writes much cannot block on a full pipe, and one whose children keep
@@ -390,6 +489,9 @@ pub fn run_command(
         match child.try_wait() {
             Ok(Some(status)) => break status,
             Ok(None) if Instant::now() >= deadline => {
+                // SAFETY: signals the process group the command leads (its
+                // id is the group's, from `process_group(0)`).
+                unsafe { libc::kill(-(child.id() as i32), libc::SIGKILL) };
                 let _ = child.kill();
                 let _ = child.wait();
                 return Err(format!(

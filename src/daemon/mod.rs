@@ -240,10 +240,12 @@ pub fn run_with(
     let samples = start.monitors.as_ref().map(|m| m.samples);
     let monitors = match &start.monitors {
         Some(settings) => {
-            let model = crate::monitor::ModelRef::of(detector.model(), detector.hash());
-            let monitors = alerts::restore(&start.folders.state, settings, model);
+            let model = crate::monitor::ModelRef::of(&detector);
+            let (monitors, first) =
+                alerts::restore(&start.folders.state, settings, model, hooks.clock.wall());
             Some(alerts::start(
                 monitors,
+                first,
                 start.alerts.clone(),
                 &start.folders.logs,
                 &start.folders.state,
@@ -648,10 +650,7 @@ impl MainLoop {
     /// so every frame it detects meets them.
     fn swap(&mut self, detector: crate::detect::Detector, live: LiveConfig) {
         if let Some(w) = &self.watch {
-            w.reset(crate::monitor::ModelRef::of(
-                detector.model(),
-                detector.hash(),
-            ));
+            w.reset(crate::monitor::ModelRef::of(&detector));
         }
         let samples = self.start.monitors.as_ref().map(|m| m.samples);
         self.running
