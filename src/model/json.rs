@@ -6,7 +6,11 @@
 use super::*;
 
 pub const FORMAT: &str = "burlwatch-model";
-pub const FORMAT_VERSION: u32 = 2;
+/// The version written. Version 3 added `reference.patterns` (the 2x2
+/// pattern shares of the training frames, for the drift monitors).
+pub const FORMAT_VERSION: u32 = 3;
+/// The versions read: version 2 files load with no pattern references.
+pub const READS: [u32; 2] = [2, 3];
 /// The split criteria a model may name.
 pub const CRITERIA: [&str; 3] = ["gini", "entropy", "gain-ratio"];
 const MAX_RADIUS: u8 = crate::window::MAX_SIZE / 2;
@@ -87,9 +91,9 @@ impl Head {
             }
         }
         match self.format_version {
-            Some(FORMAT_VERSION) => Ok(()),
+            Some(v) if READS.contains(&v) => Ok(()),
             Some(v) => Err(Error::bad_model(format!(
-                "format_version {v} is not known (this build reads {FORMAT_VERSION})"
+                "format_version {v} is not known (this build reads {READS:?})"
             ))),
             None => Err(Error::bad_model("no \"format_version\" field")),
         }
@@ -276,6 +280,11 @@ impl ModelFile {
         .map_err(|e| Error::bad_model(e.kind().to_string()))?;
         let p = &self.reference.patterns;
         let sum: f64 = p.iter().sum();
+        if self.format_version < 3 && !p.is_empty() {
+            return Err(Error::bad_model(
+                "reference.patterns came with format_version 3, but the file says 2",
+            ));
+        }
         if !p.is_empty()
             && (p.len() != 16
                 || !p.iter().all(|v| (0.0..=1.0).contains(v))

@@ -4,7 +4,8 @@
 //! - [`Tree`] (`tree.rs`): the evaluator's flat node array, frozen once
 //!   built (its invariants are in that file's docs);
 //! - [`json`]: the model file, JSON (`format = "burlwatch-model"`,
-//!   `format_version` 2), whose serde structs are kept apart from the
+//!   `format_version` 3; version 2 files, without pattern references, are
+//!   read too), whose serde structs are kept apart from the
 //!   domain types so the file can stay stable while the code changes;
 //!   loading validates every field and turns any inconsistency into an
 //!   error naming it. A feature is written as its offset from the centre
@@ -197,16 +198,30 @@ mod tests {
                 "training.criterion",
             ),
             (
-                edited(|v| v["format_version"] = 3.into()),
-                "format_version 3 is not known",
+                edited(|v| v["format_version"] = 4.into()),
+                "format_version 4 is not known",
+            ),
+            (
+                edited(|v| {
+                    v["format_version"] = 4.into();
+                    v["new_thing"] = 1.into();
+                    v.as_object_mut().unwrap().remove("reference");
+                }),
+                "format_version 4 is not known",
+            ),
+            (
+                edited(|v| {
+                    v["format_version"] = 2.into();
+                    v["reference"]["patterns"] = serde_json::Value::from(vec![0.0625; 16]);
+                }),
+                "came with format_version 3",
             ),
             (
                 edited(|v| {
                     v["format_version"] = 3.into();
-                    v["new_thing"] = 1.into();
-                    v.as_object_mut().unwrap().remove("reference");
+                    v["reference"]["patterns"] = serde_json::json!([0.5, 0.5]);
                 }),
-                "format_version 3 is not known",
+                "reference.patterns must be 16 shares",
             ),
             (
                 edited(|v| v["format"] = "other".into()),
