@@ -15,6 +15,7 @@
 //!   daemon's alerts log, alert command, restarts and error drift;
 //! - `inprocess`: the daemon driven in-process, with the clock, ticks,
 //!   control channel and disk faults in the test's hands;
+//! - `review`: `burlwatch log` over a generated month of logs;
 //! - `learning`: corrections, changeovers, retraining behind the gate and
 //!   the model registry, through the real binary, with kills.
 
@@ -30,3 +31,4 @@ mod properties;
 mod reference_drift;
 mod reference_images;
 mod reference_learning;
+mod review;

@@ -8,7 +8,7 @@
 //! - the learning loop: `mark` (a correction file), `changeover`,
 //!   `retrain`, `models`; `state` is how they reach a running daemon
 //!   (request files) or, with none, take the state lock themselves;
-//! - the drift monitors: `alerts`;
+//! - the drift monitors: `alerts`; maintenance review: `log`;
 //! - `progress`: the progress bar the long offline commands draw.
 //!
 //! Exit codes: 0 success; 1 the command failed; 2 the command line was
@@ -37,6 +37,7 @@ mod check;
 mod demo;
 mod eval;
 mod generate;
+mod log;
 mod mark;
 mod models;
 mod notify;
@@ -102,6 +103,8 @@ enum Command {
     Models(models::ModelsArgs),
     /// Print the drift monitors' recent alerts and their state now.
     Alerts(alerts::AlertsArgs),
+    /// Query the detection log: a summary of a time range, frames by filter, one frame.
+    Log(log::LogArgs),
 }
 
 /// Frame decoding options shared by the commands that read frames.
@@ -209,6 +212,7 @@ pub fn run(args: Args) -> Result<i32> {
         Command::Retrain(a) => retrain::run(a),
         Command::Models(a) => models::run(a),
         Command::Alerts(a) => alerts::run(a),
+        Command::Log(a) => log::run(a),
     }
 }
 
