@@ -61,6 +61,7 @@ pub mod learn;
 pub mod model;
 pub mod monitor;
 pub mod record;
+pub mod render;
 pub mod review;
 pub mod score;
 pub mod synth;

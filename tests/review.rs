@@ -8,7 +8,7 @@ use std::io::Write;
 use burlwatch::record::{FrameRecord, ObjectRecord};
 use burlwatch::review::{format_time, parse_time, HOUR};
 
-use crate::util::{burlwatch_with, folders_section, Dir};
+use crate::util::{burlwatch, burlwatch_with, folders_section, Dir};
 
 /// One record a minute for 30 days from 2026-11-01; `objects(i)` objects
 /// on the i-th; model 1 for the first half, model 2 after.
@@ -261,4 +261,116 @@ fn frames_are_filtered_and_one_frame_is_shown() {
     );
     assert_eq!(r.code, 1);
     assert!(r.stderr.contains("--from \"last tuesday\""), "{}", r.stderr);
+}
+
+/// An archived frame drawn with the model its record names: the PNG
+/// decodes (with the `image` crate, a general-purpose reference decoder)
+/// to the frame's size times the zoom, and the pixels just outside a
+/// logged object's box have the box colour; a frame outside the daemon's
+/// folders is drawn with `--model --frame`.
+#[test]
+fn render_draws_a_logged_frame_and_an_outside_one() {
+    use crate::util::{rename_in, start_watching, stop, wait_for};
+    use burlwatch::render::BOX;
+    use burlwatch::synth::{self, LoomParams};
+
+    let d = Dir::new();
+    let p = LoomParams {
+        width: 96,
+        height: 64,
+        ..LoomParams::standard()
+    };
+    let seed = d.join("seed");
+    std::fs::create_dir_all(&seed).unwrap();
+    for (i, g) in synth::generate_set(&p, 1, 30).into_iter().enumerate() {
+        burlwatch::fileio::data::write_pair(&seed, &format!("seed-{i:04}"), &g.frame, &g.mask)
+            .unwrap();
+    }
+    let cfg = d.join("burlwatch.toml");
+    std::fs::write(
+        &cfg,
+        format!(
+            "{}[training]\nseed_data = {:?}\n[watch]\nsettle_millis = 50\nrescan_seconds = 0.2\n",
+            folders_section(d.path()),
+            seed
+        ),
+    )
+    .unwrap();
+    let daemon = start_watching(&cfg, d.path(), &d.join("daemon.stderr"));
+    let frames = synth::generate_set(&p, 77, 6);
+    for (i, g) in frames.iter().enumerate() {
+        rename_in(
+            &d.join("inbox"),
+            &format!("loom-{i}.pbm"),
+            &burlwatch::codec::encode_pbm(&g.frame),
+        );
+    }
+    let records = || -> Vec<FrameRecord> {
+        std::fs::read_to_string(d.join("logs/detections.jsonl"))
+            .unwrap_or_default()
+            .lines()
+            .map(|l| serde_json::from_str(l).unwrap())
+            .collect()
+    };
+    wait_for("the frames to be logged", 120, || {
+        records().len() == frames.len()
+    });
+    wait_for("the frames to be archived", 60, || {
+        std::fs::read_dir(d.join("archive")).unwrap().count() >= frames.len()
+    });
+    stop(daemon);
+    let rec = records()
+        .into_iter()
+        .find(|r| !r.objects.is_empty())
+        .expect("a frame with objects");
+    let out = d.join("picture.png");
+    let r = burlwatch_with(
+        d.path(),
+        &cfg,
+        &["render", &rec.frame, "--out", out.to_str().unwrap()],
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let img = image::open(&out).unwrap().to_rgb8();
+    // 96 pixels wide: zoom 5 makes it 480.
+    assert_eq!(img.dimensions(), (96 * 5, 64 * 5));
+    let o = &rec.objects[0];
+    // The picture pixel just left of the object's box, at its middle row.
+    let (x, y) = (o.bbox[0] * 5 - 1, (o.bbox[1] + o.bbox[3]) / 2 * 5 + 2);
+    assert_eq!(img.get_pixel(x, y).0, BOX, "at {x},{y}");
+
+    // The same frame from outside the folders, with the model file.
+    let frame_file = d.join("outside.pbm");
+    let archived = d.join(&format!("archive/{}", rec.frame));
+    std::fs::copy(&archived, &frame_file).unwrap();
+    let out2 = d.join("outside.png");
+    let r = burlwatch(
+        d.path(),
+        &[
+            "render",
+            "--model",
+            d.join("state/model.json").to_str().unwrap(),
+            "--frame",
+            frame_file.to_str().unwrap(),
+            "--out",
+            out2.to_str().unwrap(),
+            "--zoom",
+            "2",
+        ],
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let img2 = image::open(&out2).unwrap().to_rgb8();
+    assert_eq!(img2.dimensions(), (96 * 2, 64 * 2));
+    assert_eq!(
+        img2.get_pixel(o.bbox[0] * 2 - 1, (o.bbox[1] + o.bbox[3]) / 2 * 2)
+            .0,
+        BOX
+    );
+    // A frame with no record is named.
+    let r = burlwatch_with(
+        d.path(),
+        &cfg,
+        &["render", "nothing.pbm", "--out", out.to_str().unwrap()],
+    );
+    assert_eq!(r.code, 1);
+    assert!(r.stderr.contains("nothing.pbm"), "{}", r.stderr);
 }

@@ -8,7 +8,7 @@
 //! - the learning loop: `mark` (a correction file), `changeover`,
 //!   `retrain`, `models`; `state` is how they reach a running daemon
 //!   (request files) or, with none, take the state lock themselves;
-//! - the drift monitors: `alerts`; maintenance review: `log`;
+//! - the drift monitors: `alerts`; maintenance review: `log`, `render`;
 //! - `progress`: the progress bar the long offline commands draw.
 //!
 //! Exit codes: 0 success; 1 the command failed; 2 the command line was
@@ -42,6 +42,7 @@ mod mark;
 mod models;
 mod notify;
 mod progress;
+mod render;
 mod retrain;
 mod rules;
 mod run;
@@ -105,6 +106,8 @@ enum Command {
     Alerts(alerts::AlertsArgs),
     /// Query the detection log: a summary of a time range, frames by filter, one frame.
     Log(log::LogArgs),
+    /// Draw a frame with its detection: an annotated PNG.
+    Render(render::RenderArgs),
 }
 
 /// Frame decoding options shared by the commands that read frames.
@@ -213,6 +216,7 @@ pub fn run(args: Args) -> Result<i32> {
         Command::Models(a) => models::run(a),
         Command::Alerts(a) => alerts::run(a),
         Command::Log(a) => log::run(a),
+        Command::Render(a) => render::run(a),
     }
 }
 

@@ -174,7 +174,7 @@ fn made(d: &Detector, record: &FrameRecord) -> bool {
 
 /// The detector of the model that made `record`, from the registry (when
 /// it is not the one running).
-fn record_detector(
+pub fn record_detector(
     record: &FrameRecord,
     registry: &Registry,
     live: &LiveConfig,
