@@ -413,3 +413,143 @@ fn a_summary_counts_what_happened_since_the_last_one() {
     );
     assert_eq!(d.stop().logged, 2);
 }
+
+/// One HTTP/1.0 GET on loopback: the status code and the body.
+fn get(addr: std::net::SocketAddr, path: &str) -> (u16, String) {
+    use std::io::{Read, Write};
+    let mut s = std::net::TcpStream::connect(addr).unwrap();
+    s.set_read_timeout(Some(Duration::from_secs(10))).unwrap();
+    write!(s, "GET {path} HTTP/1.0\r\nHost: localhost\r\n\r\n").unwrap();
+    let mut text = String::new();
+    s.read_to_string(&mut text).unwrap();
+    let code = text[9..12].parse().unwrap();
+    let body = text.split_once("\r\n\r\n").map_or("", |p| p.1).to_string();
+    (code, body)
+}
+
+/// A metric's value in the exposition text.
+fn metric(text: &str, name: &str) -> f64 {
+    text.lines()
+        .find_map(|l| l.strip_prefix(name)?.strip_prefix(' ')?.parse().ok())
+        .unwrap_or_else(|| panic!("no {name} in\n{text}"))
+}
+
+/// `/metrics` counts what the log holds; promtool (Debian's `prometheus`
+/// package, the format's own checker) accepts it; `/healthz` says 503
+/// while the writer is held so frames wait and none finishes, and 200
+/// again once it goes on; other paths and methods change nothing.
+#[test]
+fn the_status_endpoint_counts_the_log_and_reports_a_stall() {
+    use std::sync::atomic::{AtomicBool, Ordering};
+    let b = Box_::new();
+    let cfg = b.config(
+        "[status]\naddress = \"127.0.0.1:0\"\nstall_seconds = 1\n\
+         [watch]\nrescan_seconds = 0.1\nsettle_millis = 20\n",
+    );
+    let hold = Arc::new(AtomicBool::new(false));
+    let h = hold.clone();
+    // The writer's appends wait while `hold` is set: a stalled pipeline.
+    let faults = Faults::plan(move |op, _, _| {
+        while op == Fault::Write && h.load(Ordering::Relaxed) {
+            thread::sleep(Duration::from_millis(5));
+        }
+        false
+    });
+    let d = start(cfg, None, None, faults);
+    let Status::Listening(addr) = d.wait_status("listening", |s| matches!(s, Status::Listening(_)))
+    else {
+        unreachable!()
+    };
+    assert!(addr.ip().is_loopback() && addr.port() != 0);
+    let mut batch = frames(12, 4242);
+    batch.push(("broken.pbm".into(), b"P4\n99999 3\n".to_vec()));
+    b.drop_frames(&batch);
+    d.wait_until(|seen| seen.len() >= batch.len());
+    let (code, text) = get(addr, "/metrics");
+    assert_eq!(code, 200);
+    let records = b.records();
+    let objects: usize = records.iter().map(|r| r.objects.len()).sum();
+    assert_eq!(
+        metric(&text, "burlwatch_frames_total"),
+        records.len() as f64
+    );
+    assert_eq!(metric(&text, "burlwatch_objects_total"), objects as f64);
+    assert_eq!(metric(&text, "burlwatch_rejects_total"), 1.0);
+    assert_eq!(
+        metric(&text, "burlwatch_frame_seconds_count"),
+        records.len() as f64
+    );
+    assert_eq!(metric(&text, "burlwatch_model_version"), 1.0);
+    check_with_promtool(&text);
+    let (code, body) = get(addr, "/healthz");
+    assert_eq!(code, 200, "{body}");
+    let h: serde_json::Value = serde_json::from_str(&body).unwrap();
+    assert_eq!(h["healthy"], true);
+    assert_eq!(h["model_version"], 1);
+    assert!(h["last_frame"].is_string());
+
+    hold.store(true, Ordering::Relaxed);
+    b.drop_frames(&frames(3, 4343));
+    crate::util::wait_for("/healthz to say 503", 60, || get(addr, "/healthz").0 == 503);
+    let (_, body) = get(addr, "/healthz");
+    assert!(body.contains("none was finished"), "{body}");
+    hold.store(false, Ordering::Relaxed);
+    crate::util::wait_for("/healthz to say 200 again", 60, || {
+        get(addr, "/healthz").0 == 200
+    });
+
+    // Nothing else is served, and nothing changes state.
+    assert_eq!(get(addr, "/").0, 404);
+    {
+        use std::io::{Read, Write};
+        let mut s = std::net::TcpStream::connect(addr).unwrap();
+        s.set_read_timeout(Some(Duration::from_secs(10))).unwrap();
+        write!(s, "POST /metrics HTTP/1.1\r\nHost: localhost\r\nContent-Length: 0\r\nConnection: close\r\n\r\n").unwrap();
+        let mut t = String::new();
+        let _ = s.read_to_string(&mut t);
+        assert!(t.starts_with("HTTP/1.1 405"), "{t}");
+    }
+    d.stop();
+    // The endpoint is gone with the daemon.
+    assert!(std::net::TcpStream::connect(addr).is_err());
+}
+
+/// Runs `promtool check metrics` on the text when promtool is installed;
+/// without it the check is skipped with a reason, unless
+/// BURLWATCH_REQUIRE_TOOLS=1 (CI), which makes it a failure.
+fn check_with_promtool(text: &str) {
+    use std::io::Write;
+    let child = std::process::Command::new("promtool")
+        .args(["check", "metrics"])
+        .stdin(std::process::Stdio::piped())
+        .stdout(std::process::Stdio::piped())
+        .stderr(std::process::Stdio::piped())
+        .spawn();
+    let mut child = match child {
+        Ok(c) => c,
+        Err(e) => {
+            assert!(
+                std::env::var("BURLWATCH_REQUIRE_TOOLS").as_deref() != Ok("1"),
+                "promtool is required (BURLWATCH_REQUIRE_TOOLS=1) but cannot run: {e}"
+            );
+            let _ = writeln!(
+                std::io::stderr(),
+                "skipped: promtool (Debian's prometheus package) is not installed: {e}"
+            );
+            return;
+        }
+    };
+    child
+        .stdin
+        .take()
+        .unwrap()
+        .write_all(text.as_bytes())
+        .unwrap();
+    let out = child.wait_with_output().unwrap();
+    assert!(
+        out.status.success(),
+        "promtool check metrics refused:\n{}{}\n{text}",
+        String::from_utf8_lossy(&out.stdout),
+        String::from_utf8_lossy(&out.stderr)
+    );
+}

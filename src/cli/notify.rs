@@ -71,6 +71,8 @@ impl Notifier {
                 last.objects,
                 last.rejected
             )),
+            // The daemon's own log line says where.
+            Status::Listening(_) => {}
             Status::Alive => {
                 let Some(every) = self.watchdog else { return };
                 if self.last_ping.is_none_or(|t| t.elapsed() >= every) {

@@ -128,6 +128,17 @@ pub struct StartConfig {
     pub monitors: Option<crate::monitor::MonitorSettings>,
     /// `[alerts]`.
     pub alerts: AlertSettings,
+    /// `[status]`: the status endpoint; `None` when turned off.
+    pub status: Option<StatusSettings>,
+}
+
+/// Resolved `[status]`.
+#[derive(Clone, Debug, PartialEq)]
+pub struct StatusSettings {
+    /// Where it listens (loopback unless `allow_remote` was given).
+    pub address: std::net::SocketAddr,
+    /// No frame finished for this long while frames wait: not healthy.
+    pub stall: std::time::Duration,
 }
 
 /// Resolved `[alerts]`.
@@ -170,6 +181,7 @@ impl StartConfig {
         differs("log.level", self.log.level != new.log.level);
         differs("drift", self.monitors != new.monitors);
         differs("alerts", self.alerts != new.alerts);
+        differs("status", self.status != new.status);
         differs(
             "log.summary_seconds",
             self.log.summary_seconds != new.log.summary_seconds,

@@ -9,7 +9,7 @@ use serde::Deserialize;
 
 use super::{
     AlertSettings, Config, Folders, LiveConfig, LogSettings, QuietHours, Retention,
-    RetrainSettings, StartConfig, SyncPolicy, LEVELS,
+    RetrainSettings, StartConfig, StatusSettings, SyncPolicy, LEVELS,
 };
 use crate::codec::DecodeLimits;
 use crate::error::{Error, Result};
@@ -228,6 +228,22 @@ pub struct RawAlerts {
     pub repeat_minutes: Option<f64>,
 }
 
+/// `[status]`: the status endpoint (`/metrics`, `/healthz`).
+#[derive(Debug, Default, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct RawStatus {
+    /// On or off (default true).
+    pub enabled: Option<bool>,
+    /// Address and port (default "127.0.0.1:9737"); port 0 picks a free one.
+    pub address: Option<String>,
+    /// Listen on an address other hosts can reach (default false: only a
+    /// loopback address is taken).
+    pub allow_remote: Option<bool>,
+    /// Seconds without a finished frame, while frames wait, before the
+    /// daemon is reported unhealthy (default 60).
+    pub stall_seconds: Option<f64>,
+}
+
 /// The file as written.
 #[derive(Debug, Default, Deserialize)]
 #[serde(deny_unknown_fields)]
@@ -252,6 +268,8 @@ pub struct RawConfig {
     pub drift: RawDrift,
     #[serde(default)]
     pub alerts: RawAlerts,
+    #[serde(default)]
+    pub status: RawStatus,
 }
 
 fn invalid(key: &str, msg: impl std::fmt::Display) -> Error {
@@ -489,6 +507,7 @@ impl RawConfig {
         }
         let retrain = resolve_retrain(self.retrain)?;
         let (monitors, alerts) = resolve_drift(self.drift, self.alerts)?;
+        let status = resolve_status(self.status)?;
         let a = self.archive;
         let overrides = Overrides {
             threshold: det.threshold,
@@ -511,6 +530,7 @@ impl RawConfig {
                 },
                 monitors,
                 alerts,
+                status,
             },
             live: LiveConfig {
                 limits,
@@ -593,6 +613,43 @@ fn resolve_retrain(r: RawRetrain) -> Result<RetrainSettings> {
         budget: std::time::Duration::from_secs_f64(budget_seconds),
         on_error_drift: r.on_error_drift.unwrap_or(true),
     })
+}
+
+/// The status endpoint's default address: loopback only.
+pub const STATUS_ADDRESS: &str = "127.0.0.1:9737";
+
+/// Checks `[status]` and fills its defaults.
+fn resolve_status(r: RawStatus) -> Result<Option<StatusSettings>> {
+    if !r.enabled.unwrap_or(true) {
+        return Ok(None);
+    }
+    let text = r.address.unwrap_or_else(|| STATUS_ADDRESS.into());
+    let address: std::net::SocketAddr = text.parse().map_err(|_| {
+        invalid(
+            "status.address",
+            format!("{text:?} is not an address and port such as \"127.0.0.1:9737\""),
+        )
+    })?;
+    if !address.ip().is_loopback() && !r.allow_remote.unwrap_or(false) {
+        return Err(invalid(
+            "status.address",
+            format!(
+                "{address} can be reached from other hosts; use a loopback address (127.0.0.1), \
+                 or set status.allow_remote = true to mean it"
+            ),
+        ));
+    }
+    let stall = r.stall_seconds.unwrap_or(60.0);
+    if !(1.0..=86_400.0).contains(&stall) {
+        return Err(invalid(
+            "status.stall_seconds",
+            format!("{stall} is outside 1..=86400"),
+        ));
+    }
+    Ok(Some(StatusSettings {
+        address,
+        stall: std::time::Duration::from_secs_f64(stall),
+    }))
 }
 
 /// Checks `[drift]` and `[alerts]` and fills their defaults.
@@ -723,6 +780,32 @@ fn resolve_drift(
 mod tests {
     use super::*;
     use crate::config::from_str;
+
+    #[test]
+    fn the_status_endpoint_is_loopback_unless_told() {
+        let e = from_str("[status]\naddress = \"0.0.0.0:9737\"\n")
+            .unwrap_err()
+            .to_string();
+        assert!(
+            e.contains("status.address") && e.contains("allow_remote"),
+            "{e}"
+        );
+        let c = from_str("[status]\naddress = \"0.0.0.0:9737\"\nallow_remote = true\n").unwrap();
+        assert_eq!(c.start.status.unwrap().address.to_string(), "0.0.0.0:9737");
+        let c = from_str("").unwrap();
+        assert_eq!(c.start.status.unwrap().address.to_string(), STATUS_ADDRESS);
+        assert_eq!(
+            from_str("[status]\nenabled = false\n")
+                .unwrap()
+                .start
+                .status,
+            None
+        );
+        let e = from_str("[status]\naddress = \"localhost\"\n")
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("status.address"), "{e}");
+    }
 
     #[test]
     fn drift_and_alert_settings_are_checked() {

@@ -273,6 +273,7 @@ pub fn start(
     logs: &Path,
     state: &Path,
     clock: Arc<dyn Clock>,
+    board: Option<Arc<super::status::Board>>,
 ) -> Result<(Watch, MonitorSink, thread::JoinHandle<()>)> {
     let (tx, rx) = crossbeam_channel::unbounded();
     let watch = Watch {
@@ -293,6 +294,7 @@ pub fn start(
         log: logs.join(FILE),
         state: state.join(STATE_FILE),
         commands: Commands::start(settings)?,
+        board,
     };
     let handle = thread::Builder::new()
         .name("burlwatch-alerts".into())
@@ -385,6 +387,8 @@ struct Runner {
     log: PathBuf,
     state: PathBuf,
     commands: Option<Commands>,
+    /// Counts the lines written, for the status endpoint.
+    board: Option<Arc<super::status::Board>>,
 }
 
 impl Runner {
@@ -426,6 +430,9 @@ impl Runner {
         let line = serde_json::to_string(a).expect("alert serialises");
         if let Err(e) = append_line(&self.log, line.clone()) {
             error!("cannot write the alerts log: {e}");
+        }
+        if let Some(b) = &self.board {
+            b.alert();
         }
         line
     }

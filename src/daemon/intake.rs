@@ -185,6 +185,11 @@ impl Settle {
     pub fn is_empty(&self) -> bool {
         self.files.is_empty()
     }
+
+    /// Files settling now.
+    pub fn len(&self) -> usize {
+        self.files.len()
+    }
 }
 
 /// Whether `path` names a wanted file directly in `dir`.
@@ -219,6 +224,8 @@ pub(super) struct Intake {
     overflow: Arc<AtomicBool>,
     events: Receiver<notify::Result<notify::Event>>,
     _watcher: Option<notify::RecommendedWatcher>,
+    /// File events arrive (false: off, or the watcher stopped).
+    events_on: bool,
 }
 
 impl Intake {
@@ -264,8 +271,19 @@ impl Intake {
             next_rescan: now,
             overflow,
             events,
+            events_on: watcher.is_some(),
             _watcher: watcher,
         })
+    }
+
+    /// Files found and not handed out yet: ready, or settling.
+    pub fn waiting(&self) -> usize {
+        self.ready.len() + self.settle.len()
+    }
+
+    /// Whether file events still arrive (listing goes on either way).
+    pub fn events_on(&self) -> bool {
+        self.events_on
     }
 
     /// The watcher's events, for the main loop's `select!`.
@@ -359,6 +377,7 @@ impl Intake {
                     self.what
                 );
                 self.events = crossbeam_channel::never();
+                self.events_on = false;
                 self.settle.forget_announcements();
                 self.next_rescan = now;
             }

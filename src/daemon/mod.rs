@@ -70,6 +70,7 @@ pub mod requests;
 pub mod retrain;
 pub mod sink;
 pub mod start;
+pub mod status;
 mod worker;
 mod writer;
 
@@ -120,6 +121,9 @@ pub enum Status {
     Stopping,
     /// The pipeline is making progress (or has nothing to do).
     Alive,
+    /// The status endpoint listens here (the port chosen, when the
+    /// configuration said 0).
+    Listening(std::net::SocketAddr),
     /// What the daemon did in the last `seconds` (every
     /// `log.summary_seconds`; also written as an info line).
     Summary {
@@ -237,6 +241,8 @@ pub fn run_with(
     .map_err(|e| Error::from(e).with_path(&start.folders.logs))?;
     prune(&start, &live, hooks.clock.wall());
 
+    let board = status::Board::new();
+    board.set_model(detector.version(), detector.hash());
     let samples = start.monitors.as_ref().map(|m| m.samples);
     let monitors = match &start.monitors {
         Some(settings) => {
@@ -250,6 +256,7 @@ pub fn run_with(
                 &start.folders.logs,
                 &start.folders.state,
                 hooks.clock.clone(),
+                Some(board.clone()),
             )?)
         }
         None => {
@@ -288,6 +295,31 @@ pub fn run_with(
     if let Some(sink) = monitor_sink {
         sinks.push(Box::new(sink));
     }
+    sinks.push(Box::new(status::MetricsSink(board.clone())));
+    // The status endpoint: a failure to listen is said, and the daemon
+    // runs on without it.
+    let mut listening = None;
+    let server = match &start.status {
+        Some(st) => {
+            if !st.address.ip().is_loopback() {
+                warn!(
+                    address = %st.address,
+                    "the status endpoint listens where other hosts can reach it (status.allow_remote = true)"
+                );
+            }
+            match status::serve(st.address, board.clone(), watch.clone()) {
+                Ok(server) => {
+                    listening = Some(server.address);
+                    Some(server)
+                }
+                Err(e) => {
+                    warn!("{e}; the daemon runs without it");
+                    None
+                }
+            }
+        }
+        None => None,
+    };
     sinks.extend(hooks.sinks);
     let writer = Writer::new(
         log,
@@ -330,6 +362,7 @@ pub fn run_with(
         ticks,
         clock: hooks.clock,
         watch,
+        board,
         seq: 0,
         in_flight: 0,
         unfinished: 0,
@@ -344,10 +377,16 @@ pub fn run_with(
         summarised: Summary::default(),
     };
     status(Status::Ready);
+    if let Some(a) = listening {
+        status(Status::Listening(a));
+    }
     info!(inbox = %main.start.folders.inbox.display(), workers, queue = main.queue, "watching");
     main.run(status);
     let (workers_lost, writer_lost) = (main.workers_lost, main.writer_lost);
     drop(main);
+    // The server holds the monitors too: it goes before the alerts thread
+    // is waited for.
+    drop(server);
     for t in threads {
         let _ = t.join();
     }
@@ -433,6 +472,8 @@ struct MainLoop {
     clock: Arc<dyn Clock>,
     /// The drift monitors (`None` when off).
     watch: Option<alerts::Watch>,
+    /// What the status endpoint shows.
+    board: Arc<status::Board>,
     queue: usize,
     stall: Duration,
     /// The next job's place in hand-out order.
@@ -487,6 +528,7 @@ impl MainLoop {
                 Event::WriterGone => {
                     error!("the detection log writer stopped");
                     self.writer_lost = true;
+                    self.board.writer_lost();
                 }
                 Event::Control(Control::Reload(new)) => {
                     status(Status::Reloading);
@@ -535,6 +577,7 @@ impl MainLoop {
             {
                 error!("every detection worker has stopped");
                 self.workers_lost = true;
+                self.board.workers_lost();
                 break;
             }
             self.seq += 1;
@@ -562,6 +605,18 @@ impl MainLoop {
         if self.unfinished == 0 || now.duration_since(self.last_progress) < self.stall {
             status(Status::Alive);
         }
+        let waiting = self.inbox.waiting();
+        let overdue = self
+            .start
+            .status
+            .as_ref()
+            .is_some_and(|s| now.duration_since(self.last_progress) >= s.stall);
+        self.board.tick(
+            self.unfinished as u64,
+            waiting as u64,
+            (self.unfinished > 0 || waiting > 0) && overdue,
+            self.inbox.events_on(),
+        );
         if now >= self.next_prune {
             self.next_prune = now + Duration::from_secs(3600);
             prune(&self.start, &self.running.load().live, self.clock.wall());
@@ -653,6 +708,7 @@ impl MainLoop {
             w.reset(crate::monitor::ModelRef::of(&detector));
         }
         let samples = self.start.monitors.as_ref().map(|m| m.samples);
+        self.board.set_model(detector.version(), detector.hash());
         self.running
             .store(Arc::new(Running::new(detector, live, samples)));
     }
