@@ -585,6 +585,18 @@ fn rising_errors_in_corrections_warn_then_drift_and_bring_the_retrain_check_forw
     stop(d);
 }
 
+/// The "drift monitors" finding of `burlwatch check --json`'s output.
+fn monitors_finding(stdout: &str) -> serde_json::Value {
+    let v: serde_json::Value = serde_json::from_str(stdout).unwrap();
+    v["checks"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .find(|c| c["what"] == "drift monitors")
+        .unwrap()
+        .clone()
+}
+
 /// `burlwatch check` finds an alert command that is not there, and
 /// `burlwatch alerts` works before the daemon ever ran.
 #[test]
@@ -592,14 +604,7 @@ fn check_names_a_missing_alert_command_and_alerts_works_on_a_new_box() {
     let b = Box_::new("[alerts]\ncommand = [\"/nonexistent/notify-maintenance\"]\n");
     let r = b.run(&["check", "--json"]);
     assert_eq!(r.code, 1, "{}", r.stdout);
-    let v: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
-    let f = v["checks"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .find(|c| c["what"] == "drift monitors")
-        .unwrap()
-        .clone();
+    let f = monitors_finding(&r.stdout);
     assert_eq!(f["ok"], false);
     assert!(
         f["detail"]
@@ -610,14 +615,7 @@ fn check_names_a_missing_alert_command_and_alerts_works_on_a_new_box() {
     );
     b.configure("[alerts]\ncommand = [\"sh\", \"-c\", \"cat\"]\n");
     let r = b.run(&["check", "--json"]);
-    let v: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
-    let f = v["checks"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .find(|c| c["what"] == "drift monitors")
-        .unwrap()
-        .clone();
+    let f = monitors_finding(&r.stdout);
     assert_eq!(f["ok"], true, "{f}");
     let r = b.run(&["alerts"]);
     assert_eq!(r.code, 0, "{}", r.stderr);
@@ -634,14 +632,7 @@ fn check_names_a_missing_alert_command_and_alerts_works_on_a_new_box() {
         r.stdout
     );
     let r = b.run(&["check", "--json"]);
-    let v: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
-    let f = v["checks"]
-        .as_array()
-        .unwrap()
-        .iter()
-        .find(|c| c["what"] == "drift monitors")
-        .unwrap()
-        .clone();
+    let f = monitors_finding(&r.stdout);
     assert_eq!(f["ok"], true, "{f}");
     assert!(
         f["detail"].as_str().unwrap().contains("start afresh"),

@@ -131,16 +131,7 @@ pub fn restore(
 /// Every alert in the logs folder's alerts log that parses, oldest first
 /// (a torn line is passed over).
 pub fn read_alerts(logs: &Path) -> Result<Vec<Alert>> {
-    let path = logs.join(FILE);
-    let text = match std::fs::read_to_string(&path) {
-        Ok(t) => t,
-        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(Vec::new()),
-        Err(e) => return Err(Error::from(e).with_path(&path)),
-    };
-    Ok(text
-        .lines()
-        .filter_map(|l| serde_json::from_str(l).ok())
-        .collect())
+    super::events::read_json_lines(&logs.join(FILE))
 }
 
 /// What the alerts thread is asked to do.

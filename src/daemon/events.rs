@@ -84,16 +84,22 @@ impl EventsLog {
     /// Every event that parses, oldest first (a torn or foreign line is
     /// passed over).
     pub fn read(&self) -> Result<Vec<Event>> {
-        let text = match std::fs::read_to_string(&self.path) {
-            Ok(t) => t,
-            Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(Vec::new()),
-            Err(e) => return Err(Error::from(e).with_path(&self.path)),
-        };
-        Ok(text
-            .lines()
-            .filter_map(|l| serde_json::from_str(l).ok())
-            .collect())
+        read_json_lines(&self.path)
     }
+}
+
+/// Every line of a JSON Lines file that parses as `T`, in order (a torn or
+/// foreign line is passed over); none for a file that is not there.
+pub fn read_json_lines<T: serde::de::DeserializeOwned>(path: &Path) -> Result<Vec<T>> {
+    let text = match std::fs::read_to_string(path) {
+        Ok(t) => t,
+        Err(e) if e.kind() == std::io::ErrorKind::NotFound => return Ok(Vec::new()),
+        Err(e) => return Err(Error::from(e).with_path(path)),
+    };
+    Ok(text
+        .lines()
+        .filter_map(|l| serde_json::from_str(l).ok())
+        .collect())
 }
 
 /// Appends one line (a newline is added) to a JSON Lines file with one
