@@ -62,6 +62,7 @@ pub mod model;
 pub mod monitor;
 pub mod record;
 pub mod render;
+pub mod report;
 pub mod review;
 pub mod score;
 pub mod synth;

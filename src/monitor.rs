@@ -511,6 +511,31 @@ pub struct MonitorState {
     pub detail: String,
 }
 
+/// Every statistic's value at one time, as kept in the drift history
+/// (`logs/drift.jsonl`, one line every `drift.history_minutes`), which the
+/// report charts against the thresholds.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct DriftSample {
+    /// RFC 3339, UTC.
+    pub time: String,
+    pub model_version: u64,
+    pub model_hash: String,
+    /// Frames seen since the model was put in service.
+    pub frames: u64,
+    pub statistics: Vec<SampleValue>,
+}
+
+/// One statistic in a [`DriftSample`].
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+pub struct SampleValue {
+    pub statistic: String,
+    /// As [`MonitorState::level`].
+    pub level: String,
+    pub value: f64,
+    pub watch: f64,
+    pub alert: f64,
+}
+
 /// All monitors of the model in service.
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 pub struct Monitors {
@@ -800,6 +825,27 @@ impl Monitors {
             }
         };
         what
+    }
+
+    /// Every statistic's value now, for the drift history.
+    pub fn sample(&self, now: SystemTime) -> DriftSample {
+        DriftSample {
+            time: rfc3339(now),
+            model_version: self.model.version,
+            model_hash: self.model.hash.clone(),
+            frames: self.frames,
+            statistics: self
+                .states()
+                .into_iter()
+                .map(|s| SampleValue {
+                    statistic: s.statistic,
+                    level: s.level,
+                    value: s.value,
+                    watch: s.thresholds.watch,
+                    alert: s.thresholds.alert,
+                })
+                .collect(),
+        }
     }
 
     /// Every statistic's state now.

@@ -75,17 +75,62 @@ impl Picture {
         }
     }
 
-    /// PNG bytes (8-bit RGB).
+    /// PNG bytes: indexed colour when the picture has at most 16 colours
+    /// (as drawn here it has at most five: 4 bits a pixel, a sixth of
+    /// 8-bit RGB before compression), 8-bit RGB otherwise.
     pub fn to_png(&self) -> Result<Vec<u8>> {
+        let err = |e: png::EncodingError| Error::daemon(format!("cannot encode the picture: {e}"));
+        let mut palette: Vec<[u8; 3]> = Vec::new();
+        let mut indexed = true;
+        for px in self.rgb.chunks_exact(3) {
+            let c = [px[0], px[1], px[2]];
+            if !palette.contains(&c) {
+                if palette.len() == 16 {
+                    indexed = false;
+                    break;
+                }
+                palette.push(c);
+            }
+        }
         let mut out = Vec::new();
         let mut enc = png::Encoder::new(&mut out, self.width as u32, self.height as u32);
-        enc.set_color(png::ColorType::Rgb);
-        enc.set_depth(png::BitDepth::Eight);
-        let mut w = enc
-            .write_header()
-            .map_err(|e| Error::daemon(format!("cannot encode the picture: {e}")))?;
-        w.write_image_data(&self.rgb)
-            .map_err(|e| Error::daemon(format!("cannot encode the picture: {e}")))?;
+        let data = if indexed {
+            let depth: usize = match palette.len() {
+                0..=2 => 1,
+                3..=4 => 2,
+                _ => 4,
+            };
+            enc.set_color(png::ColorType::Indexed);
+            enc.set_depth(match depth {
+                1 => png::BitDepth::One,
+                2 => png::BitDepth::Two,
+                _ => png::BitDepth::Four,
+            });
+            enc.set_palette(palette.concat());
+            let per_byte = 8 / depth;
+            let row_bytes = self.width.div_ceil(per_byte);
+            let mut data = vec![0u8; row_bytes * self.height];
+            for y in 0..self.height {
+                for x in 0..self.width {
+                    let i = (y * self.width + x) * 3;
+                    let c = [self.rgb[i], self.rgb[i + 1], self.rgb[i + 2]];
+                    let k = palette
+                        .iter()
+                        .position(|p| *p == c)
+                        .expect("in the palette") as u8;
+                    let shift = 8 - depth * (x % per_byte + 1);
+                    data[y * row_bytes + x / per_byte] |= k << shift;
+                }
+            }
+            data
+        } else {
+            enc.set_color(png::ColorType::Rgb);
+            enc.set_depth(png::BitDepth::Eight);
+            self.rgb.clone()
+        };
+        enc.set_compression(png::Compression::High);
+        let mut w = enc.write_header().map_err(err)?;
+        w.write_image_data(&data).map_err(err)?;
         drop(w);
         Ok(out)
     }

@@ -274,15 +274,26 @@ impl Default for TimeHistogram {
     }
 }
 
+/// A processing time made finite and not negative, and its bin.
+fn bin_of(ms: f64) -> (f64, usize) {
+    let ms = if ms.is_finite() { ms.max(0.0) } else { 0.0 };
+    let k = if ms <= MIN_MS {
+        0
+    } else {
+        ((ms / MIN_MS).ln() / RATIO.ln()).ceil() as usize
+    };
+    (ms, k.min(BINS - 1))
+}
+
+/// The upper bound of bin `k`, in milliseconds.
+fn bin_upper(k: usize) -> f64 {
+    MIN_MS * RATIO.powi(k as i32)
+}
+
 impl TimeHistogram {
     pub fn add(&mut self, ms: f64) {
-        let ms = if ms.is_finite() { ms.max(0.0) } else { 0.0 };
-        let k = if ms <= MIN_MS {
-            0
-        } else {
-            ((ms / MIN_MS).ln() / RATIO.ln()).ceil() as usize
-        };
-        self.bins[k.min(BINS - 1)] += 1;
+        let (ms, k) = bin_of(ms);
+        self.bins[k] += 1;
         self.count += 1;
         self.max = self.max.max(ms);
     }
@@ -298,7 +309,7 @@ impl TimeHistogram {
         for (k, &n) in self.bins.iter().enumerate() {
             seen += n;
             if seen >= rank {
-                return Some((MIN_MS * RATIO.powi(k as i32)).min(self.max));
+                return Some(bin_upper(k).min(self.max));
             }
         }
         Some(self.max)
@@ -306,6 +317,193 @@ impl TimeHistogram {
 
     pub fn count(&self) -> u64 {
         self.count
+    }
+}
+
+/// The same bins as [`TimeHistogram`], only those used kept: for one
+/// hour's times, whose few hundred distinct bins would not pay for 2,800.
+#[derive(Clone, Debug, Default, PartialEq)]
+pub struct SparseTimes {
+    /// (bin, count), by bin.
+    bins: Vec<(u16, u32)>,
+    count: u64,
+    max: f64,
+}
+
+impl SparseTimes {
+    pub fn add(&mut self, ms: f64) {
+        let (ms, k) = bin_of(ms);
+        let k = k as u16;
+        match self.bins.binary_search_by_key(&k, |b| b.0) {
+            Ok(i) => self.bins[i].1 += 1,
+            Err(i) => self.bins.insert(i, (k, 1)),
+        }
+        self.count += 1;
+        self.max = self.max.max(ms);
+    }
+
+    /// As [`TimeHistogram::quantile`].
+    pub fn quantile(&self, q: f64) -> Option<f64> {
+        if self.count == 0 {
+            return None;
+        }
+        let rank = ((q * self.count as f64).ceil() as u64).clamp(1, self.count);
+        let mut seen = 0;
+        for &(k, n) in &self.bins {
+            seen += n as u64;
+            if seen >= rank {
+                return Some(bin_upper(k as usize).min(self.max));
+            }
+        }
+        Some(self.max)
+    }
+
+    pub fn count(&self) -> u64 {
+        self.count
+    }
+}
+
+/// One of the frames with the most objects: its record line and what it
+/// is ranked by.
+#[derive(Clone, Debug, PartialEq)]
+pub struct TopFrame {
+    pub objects: u32,
+    pub max_score: f64,
+    pub time: Millis,
+    /// The record line as logged.
+    pub line: Vec<u8>,
+}
+
+impl TopFrame {
+    /// More objects first, then a higher best score, then later.
+    fn outranks(&self, objects: u32, max_score: f64, time: Millis) -> bool {
+        (self.objects, self.max_score, self.time)
+            .partial_cmp(&(objects, max_score, time))
+            .is_some_and(|o| o.is_gt())
+    }
+}
+
+/// The `n` frames with the most objects seen, kept as they stream past:
+/// a line is copied only when it enters, so most records cost one
+/// comparison.
+#[derive(Clone, Debug, Default)]
+pub struct TopFrames {
+    n: usize,
+    /// Best first.
+    kept: Vec<TopFrame>,
+}
+
+impl TopFrames {
+    pub fn new(n: usize) -> TopFrames {
+        TopFrames {
+            n,
+            kept: Vec::with_capacity(n + 1),
+        }
+    }
+
+    /// Offers one record with at least one object.
+    pub fn offer(&mut self, line: &Line<'_>, t: Millis, bytes: &[u8]) {
+        let (objects, score) = (line.objects.count, line.objects.max_score);
+        if self.n == 0 || objects == 0 {
+            return;
+        }
+        let full = self.kept.len() == self.n;
+        if full
+            && self
+                .kept
+                .last()
+                .is_none_or(|worst| worst.outranks(objects, score, t))
+        {
+            return;
+        }
+        let at = self
+            .kept
+            .iter()
+            .position(|k| !k.outranks(objects, score, t))
+            .unwrap_or(self.kept.len());
+        self.kept.insert(
+            at,
+            TopFrame {
+                objects,
+                max_score: score,
+                time: t,
+                line: bytes.to_vec(),
+            },
+        );
+        self.kept.truncate(self.n);
+    }
+
+    /// Best first.
+    pub fn frames(&self) -> &[TopFrame] {
+        &self.kept
+    }
+}
+
+/// A stretch of consecutive records (in log order) by one model.
+#[derive(Clone, Debug, PartialEq, Eq)]
+pub struct ModelRun {
+    pub version: u64,
+    pub hash: String,
+    pub from: Millis,
+    pub to: Millis,
+    pub frames: u64,
+}
+
+/// What a report reads of the records of a range: the [`Summary`], each
+/// hour's processing times, the stretches each model ran, and the frames
+/// with the most objects.
+#[derive(Clone, Debug, Default)]
+pub struct ReportStats {
+    pub summary: Summary,
+    /// By the hour's start.
+    pub hour_times: BTreeMap<Millis, SparseTimes>,
+    /// In log order; a model that ran twice has two.
+    pub runs: Vec<ModelRun>,
+    pub top: TopFrames,
+}
+
+impl ReportStats {
+    /// Keeps the `top` frames with the most objects.
+    pub fn new(top: usize) -> ReportStats {
+        ReportStats {
+            top: TopFrames::new(top),
+            ..ReportStats::default()
+        }
+    }
+
+    /// As [`Summary::add_line`].
+    pub fn add_line(&mut self, bytes: &[u8], last_in_file: bool, range: &Range) {
+        let s = &mut self.summary;
+        let Some(line) = Line::parse(bytes) else {
+            s.not_a_record(bytes, last_in_file);
+            return;
+        };
+        let Some(t) = parse_time(&line.time) else {
+            s.bad_times += 1;
+            return;
+        };
+        if range.contains(t) {
+            s.add(&line, t);
+            self.hour_times
+                .entry(t.div_euclid(HOUR) * HOUR)
+                .or_default()
+                .add(line.millis);
+            match self.runs.last_mut() {
+                Some(r) if r.version == line.model_version && r.hash == line.model_hash => {
+                    r.from = r.from.min(t);
+                    r.to = r.to.max(t);
+                    r.frames += 1;
+                }
+                _ => self.runs.push(ModelRun {
+                    version: line.model_version,
+                    hash: line.model_hash.to_string(),
+                    from: t,
+                    to: t,
+                    frames: 1,
+                }),
+            }
+            self.top.offer(&line, t, bytes);
+        }
     }
 }
 
@@ -356,11 +554,7 @@ impl Summary {
     /// after it. Lines outside `range` are passed over.
     pub fn add_line(&mut self, bytes: &[u8], last_in_file: bool, range: &Range) {
         let Some(line) = Line::parse(bytes) else {
-            if last_in_file {
-                self.torn += 1;
-            } else if !bytes.iter().all(u8::is_ascii_whitespace) {
-                self.unreadable += 1;
-            }
+            self.not_a_record(bytes, last_in_file);
             return;
         };
         let Some(t) = parse_time(&line.time) else {
@@ -369,6 +563,17 @@ impl Summary {
         };
         if range.contains(t) {
             self.add(&line, t);
+        }
+    }
+
+    /// Counts a line that is not a record: torn when it was a file's
+    /// last with no newline, unreadable elsewhere (blank lines are not
+    /// counted).
+    pub fn not_a_record(&mut self, bytes: &[u8], last_in_file: bool) {
+        if last_in_file {
+            self.torn += 1;
+        } else if !bytes.iter().all(u8::is_ascii_whitespace) {
+            self.unreadable += 1;
         }
     }
 
@@ -550,5 +755,84 @@ mod tests {
         s.add_line(rec("2026-12-02T10:10:00.000Z", 2).as_bytes(), false, &r);
         s.add_line(rec("2026-12-02T12:59:59.999Z", 0).as_bytes(), false, &r);
         assert_eq!(s.frames, 1);
+    }
+
+    fn record(t: Millis, objects: &[f64], millis: f64) -> String {
+        let objects: Vec<String> = objects
+            .iter()
+            .enumerate()
+            .map(|(i, score)| format!("{{\"id\":{},\"bbox\":[0,0,0,0],\"centroid\":[0,0],\"area\":1,\"score\":{score}}}", i + 1))
+            .collect();
+        format!(
+            "{{\"time\":\"{}\",\"frame\":\"f{t}.pbm\",\"sha256\":\"x\",\"width\":1,\"height\":1,\"model_version\":1,\"model_hash\":\"h\",\"millis\":{millis},\"objects\":[{}]}}",
+            format_time(t),
+            objects.join(",")
+        )
+    }
+
+    #[test]
+    fn an_hours_sparse_times_agree_with_the_full_histogram() {
+        let mut full = TimeHistogram::default();
+        let mut sparse = SparseTimes::default();
+        let mut x = 17u64;
+        for _ in 0..5000 {
+            x = x
+                .wrapping_mul(6364136223846793005)
+                .wrapping_add(1442695040888963407);
+            let ms = 0.5 + (x >> 40) as f64 / (1u64 << 24) as f64 * 40.0;
+            full.add(ms);
+            sparse.add(ms);
+        }
+        for q in [0.0, 0.1, 0.5, 0.9, 0.99, 1.0] {
+            assert_eq!(full.quantile(q), sparse.quantile(q), "q {q}");
+        }
+        assert_eq!(sparse.count(), 5000);
+        assert_eq!(SparseTimes::default().quantile(0.5), None);
+    }
+
+    #[test]
+    fn the_top_frames_are_those_a_full_sort_puts_first() {
+        let t0 = parse_time("2026-12-01T00:00:00.000Z").unwrap();
+        let mut stats = ReportStats::new(7);
+        let mut all = Vec::new();
+        let range = Range::default();
+        let mut x = 5u64;
+        for i in 0..400i64 {
+            x = x
+                .wrapping_mul(6364136223846793005)
+                .wrapping_add(1442695040888963407);
+            let n = (x >> 61) as usize; // 0..=7 objects
+            let scores: Vec<f64> = (0..n)
+                .map(|k| ((x >> (8 * k)) & 0xff) as f64 / 256.0)
+                .collect();
+            let t = t0 + i * 1000;
+            let line = record(t, &scores, 1.0 + (i % 5) as f64);
+            stats.add_line(line.as_bytes(), false, &range);
+            let best = scores.iter().cloned().fold(0.0, f64::max);
+            if n > 0 {
+                all.push((n as u32, best, t, line));
+            }
+        }
+        // The reference order: a full sort, most objects, best score,
+        // latest first.
+        all.sort_by(|a, b| (b.0, b.1, b.2).partial_cmp(&(a.0, a.1, a.2)).unwrap());
+        let top = stats.top.frames();
+        assert_eq!(top.len(), 7);
+        for (got, want) in top.iter().zip(&all) {
+            assert_eq!(
+                (got.objects, got.max_score, got.time),
+                (want.0, want.1, want.2)
+            );
+            assert_eq!(got.line, want.3.as_bytes());
+        }
+        assert_eq!(stats.summary.frames, 400);
+        assert_eq!(
+            stats
+                .hour_times
+                .values()
+                .map(SparseTimes::count)
+                .sum::<u64>(),
+            400
+        );
     }
 }

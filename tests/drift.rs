@@ -339,8 +339,10 @@ fn input_alerts(b: &Box_, state: &str) -> usize {
 fn the_daemon_logs_and_sends_alerts_and_keeps_its_monitors_across_a_restart() {
     let b = Box_::new("");
     let out = b.dir.join("command-got.jsonl");
+    // A drift history line every 0.6 s.
     b.configure(&format!(
-        "[alerts]\ncommand = [\"/bin/sh\", \"-c\", \"cat >> {}\"]\ntimeout_seconds = 5\nrepeat_minutes = 0\n",
+        "history_minutes = 0.01\n\
+         [alerts]\ncommand = [\"/bin/sh\", \"-c\", \"cat >> {}\"]\ntimeout_seconds = 5\nrepeat_minutes = 0\n",
         out.display()
     ));
     let d = b.start();
@@ -405,6 +407,41 @@ fn the_daemon_logs_and_sends_alerts_and_keeps_its_monitors_across_a_restart() {
     assert_eq!(b.states()["monitors"]["frames"], 40);
     b.feed(&frames(&LoomParams::drifted(), 502, 5, "drift-again"));
     wait_for("the restored level", 60, || b.level(&statistic) == "alert");
+    // The drift history holds every statistic with its thresholds, and
+    // shows the alert once a line falls while it stands.
+    let mut more = frames(&LoomParams::drifted(), 505, 40, "drift-history").into_iter();
+    wait_for("a drift history line at the alert level", 120, || {
+        let history = b.lines("logs/drift.jsonl");
+        if history.iter().any(|h| {
+            h["statistics"]
+                .as_array()
+                .unwrap()
+                .iter()
+                .any(|v| v["statistic"] == "leaf_psi" && v["level"] == "alert")
+        }) {
+            return true;
+        }
+        if let Some(f) = more.next() {
+            b.feed(&[f]);
+        }
+        false
+    });
+    let history = b.lines("logs/drift.jsonl");
+    for h in &history {
+        let stats = h["statistics"].as_array().unwrap();
+        assert_eq!(stats.len(), 5, "{h}");
+        let leaf = stats.iter().find(|v| v["statistic"] == "leaf_psi").unwrap();
+        assert_eq!(
+            (leaf["watch"].as_f64(), leaf["alert"].as_f64()),
+            (Some(0.1), Some(0.25))
+        );
+        assert!(h["time"].as_str().unwrap().ends_with('Z') && h["model_hash"].is_string());
+    }
+    let times: Vec<&str> = history
+        .iter()
+        .map(|h| h["time"].as_str().unwrap())
+        .collect();
+    assert!(times.windows(2).all(|w| w[0] < w[1]), "{times:?}");
     b.feed(&frames(&LoomParams::standard(), 503, 25, "std-again"));
     wait_for("the input alert to clear", 60, || {
         input_alerts(&b, "cleared") > 0

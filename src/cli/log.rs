@@ -31,21 +31,21 @@ pub struct LogArgs {
 
 /// The time range options every query takes.
 #[derive(clap::Args, Debug, Clone)]
-struct When {
+pub(super) struct When {
     /// Only the last DURATION (24h, 7d, 90min...).
     #[arg(long, conflicts_with_all = ["from", "to"])]
-    since: Option<String>,
+    pub(super) since: Option<String>,
     /// From this time (RFC 3339, "2026-12-01T08:00:00Z"; a date alone is
     /// midnight UTC).
     #[arg(long)]
-    from: Option<String>,
+    pub(super) from: Option<String>,
     /// Up to this time (exclusive).
     #[arg(long)]
-    to: Option<String>,
+    pub(super) to: Option<String>,
 }
 
 impl When {
-    fn range(&self, now: SystemTime) -> Result<Range> {
+    pub(super) fn range(&self, now: SystemTime) -> Result<Range> {
         let time = |what: &str, s: &str| {
             parse_time(s).ok_or_else(|| {
                 anyhow!("--{what} {s:?} is not a time (RFC 3339, such as 2026-12-01T08:00:00Z)")
@@ -153,30 +153,14 @@ pub fn run(a: LogArgs) -> Result<i32> {
     }
 }
 
-/// Whether a file can hold records of the range: a rotated file's records
-/// are all older than its rotation.
-fn may_hold(f: &LogFile, range: &Range) -> bool {
-    match (f.rotated_at, range.from) {
-        (Some(rotated), Some(from)) => rotated >= from,
-        _ => true,
-    }
-}
-
 /// Streams every line of the files that may hold the range.
 fn each_line(files: &[LogFile], range: &Range, f: &mut dyn FnMut(&[u8], bool)) -> Result<u64> {
     let mut bytes = 0;
-    for file in files.iter().filter(|file| may_hold(file, range)) {
+    for file in files.iter().filter(|file| file.may_hold(range)) {
         bytes += for_each_line(&file.path, f)
             .with_context(|| format!("cannot read {}", file.path.display()))?;
     }
     Ok(bytes)
-}
-
-/// Lines that are not records, counted as the summary counts them.
-#[derive(Default)]
-struct Bad {
-    torn: u64,
-    unreadable: u64,
 }
 
 fn summary(
@@ -231,7 +215,7 @@ fn summary(
             "to": range.to.map(format_time),
             "first_record": s.first.map(format_time),
             "last_record": s.last.map(format_time),
-            "files": files.iter().filter(|f| may_hold(f, range)).count(),
+            "files": files.iter().filter(|f| f.may_hold(range)).count(),
             "bytes_read": bytes,
             "frames": s.frames,
             "objects": s.objects,
@@ -372,7 +356,8 @@ fn frames(
     limit: usize,
     json: bool,
 ) -> Result<i32> {
-    let mut bad = Bad::default();
+    // Only its counts of lines that are not records.
+    let mut bad = Summary::default();
     let mut kept: VecDeque<Vec<u8>> = VecDeque::new();
     let mut matched = 0u64;
     let mut printed: Result<()> = Ok(());
@@ -399,11 +384,7 @@ fn frames(
     };
     each_line(files, range, &mut |line, last| {
         let Some(l) = Line::parse(line) else {
-            if last {
-                bad.torn += 1;
-            } else if !line.iter().all(u8::is_ascii_whitespace) {
-                bad.unreadable += 1;
-            }
+            bad.not_a_record(line, last);
             return;
         };
         if !parse_time(&l.time).is_some_and(|t| range.contains(t)) || !keep(&l) {

@@ -8,7 +8,8 @@
 //! - the learning loop: `mark` (a correction file), `changeover`,
 //!   `retrain`, `models`; `state` is how they reach a running daemon
 //!   (request files) or, with none, take the state lock themselves;
-//! - the drift monitors: `alerts`; maintenance review: `log`, `render`;
+//! - the drift monitors: `alerts`; maintenance review: `log`, `render`,
+//!   `report`;
 //! - `progress`: the progress bar the long offline commands draw.
 //!
 //! Exit codes: 0 success; 1 the command failed; 2 the command line was
@@ -43,6 +44,7 @@ mod models;
 mod notify;
 mod progress;
 mod render;
+mod report;
 mod retrain;
 mod rules;
 mod run;
@@ -108,6 +110,8 @@ enum Command {
     Log(log::LogArgs),
     /// Draw a frame with its detection: an annotated PNG.
     Render(render::RenderArgs),
+    /// Write a self-contained HTML report of a time range: charts, tables, pictures.
+    Report(report::ReportArgs),
 }
 
 /// Frame decoding options shared by the commands that read frames.
@@ -217,6 +221,7 @@ pub fn run(args: Args) -> Result<i32> {
         Command::Alerts(a) => alerts::run(a),
         Command::Log(a) => log::run(a),
         Command::Render(a) => render::run(a),
+        Command::Report(a) => report::run(a),
     }
 }
 

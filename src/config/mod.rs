@@ -141,13 +141,17 @@ pub struct StatusSettings {
     pub stall: std::time::Duration,
 }
 
-/// Resolved `[alerts]`.
+/// Resolved `[alerts]`, and the drift history's interval: what the
+/// alerts thread does besides logging alerts.
 #[derive(Clone, Debug, PartialEq)]
 pub struct AlertSettings {
     /// The alert command as an argument vector (empty: none).
     pub command: Vec<String>,
     /// How long the command may run before it is killed.
     pub timeout: std::time::Duration,
+    /// `drift.history_minutes`: how often the monitors' values are
+    /// appended to the drift history (`None`: never).
+    pub history: Option<std::time::Duration>,
 }
 
 impl StartConfig {

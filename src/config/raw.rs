@@ -212,6 +212,9 @@ pub struct RawDrift {
     pub output_threshold: Option<f64>,
     /// Corrections before the error monitor tests its levels (default 30).
     pub error_warm_start: Option<u64>,
+    /// Minutes between two lines of the drift history, `logs/drift.jsonl`
+    /// (default 5; 0: none kept).
+    pub history_minutes: Option<f64>,
 }
 
 /// `[alerts]`: what happens when a monitor's level changes.
@@ -741,6 +744,12 @@ fn resolve_drift(
         0.0,
         10_080.0,
     )?;
+    let history = within(
+        "drift.history_minutes",
+        d.history_minutes.unwrap_or(5.0),
+        0.0,
+        1440.0,
+    )?;
     let command = a.command.unwrap_or_default();
     if command.first().is_some_and(|c| c.is_empty()) {
         return Err(invalid(
@@ -772,6 +781,7 @@ fn resolve_drift(
         AlertSettings {
             command,
             timeout: std::time::Duration::from_secs_f64(timeout),
+            history: (history > 0.0).then(|| std::time::Duration::from_secs_f64(history * 60.0)),
         },
     ))
 }

@@ -6,7 +6,7 @@
 //! main loop: a model put in service ──▶ Watch::reset ─────────────┘      │ alerts, snapshots
 //!                                                                        ▼
 //!                                     alerts thread: logs/alerts.jsonl, the alert command,
-//!                                                    state/monitors.json
+//!                                                    state/monitors.json, logs/drift.jsonl
 //! ```
 //!
 //! - The monitors' logic is [`crate::monitor`] (pure); here it is fed,
@@ -26,6 +26,11 @@
 //!   read back at start if it belongs to the same model and settings: a
 //!   restart loses at most the frames since the last save, and repeats an
 //!   alert only if the crash fell between its line and that save.
+//! - Every `drift.history_minutes` (on the wall clock's whole multiples of
+//!   it, at the first frame after one) every statistic's value and
+//!   thresholds are appended to the drift history, `logs/drift.jsonl`
+//!   (a [`DriftSample`] a line), renamed to `drift.1.jsonl` past
+//!   [`HISTORY_ROTATE`]: what the report charts.
 
 use std::io::{Read, Write};
 use std::path::{Path, PathBuf};
@@ -44,10 +49,20 @@ use super::Clock;
 use crate::config::AlertSettings;
 use crate::error::{Error, Result};
 use crate::fileio::durable::write_atomic;
-use crate::monitor::{Alert, ModelRef, MonitorSettings, MonitorState, Monitors};
+use crate::monitor::{Alert, DriftSample, ModelRef, MonitorSettings, MonitorState, Monitors};
 
 /// The alerts log's file name in the logs folder.
 pub const FILE: &str = "alerts.jsonl";
+/// The drift history's file name in the logs folder: one
+/// [`DriftSample`] line every `drift.history_minutes`.
+pub const HISTORY_FILE: &str = "drift.jsonl";
+/// The drift history's previous file, which a full one is renamed to
+/// (replacing the one before).
+pub const HISTORY_OLDER: &str = "drift.1.jsonl";
+/// The drift history's file is renamed to [`HISTORY_OLDER`] once past
+/// this size: at the default interval a line is about 700 bytes, so the
+/// two files keep about 40 days in at most 8 MiB.
+pub const HISTORY_ROTATE: u64 = 4 << 20;
 /// The monitors' saved state in the state folder.
 pub const STATE_FILE: &str = "monitors.json";
 const STATE_FORMAT: &str = "burlwatch-monitors";
@@ -134,6 +149,14 @@ pub fn read_alerts(logs: &Path) -> Result<Vec<Alert>> {
     super::events::read_json_lines(&logs.join(FILE))
 }
 
+/// The drift history in the logs folder, oldest first: the older file,
+/// then the current one (a torn line is passed over).
+pub fn read_history(logs: &Path) -> Result<Vec<DriftSample>> {
+    let mut samples = super::events::read_json_lines(&logs.join(HISTORY_OLDER))?;
+    samples.extend(super::events::read_json_lines(&logs.join(HISTORY_FILE))?);
+    Ok(samples)
+}
+
 /// What the alerts thread is asked to do.
 #[derive(Debug)]
 enum ToAlerts {
@@ -142,6 +165,8 @@ enum ToAlerts {
     Alerts(Vec<Alert>, String),
     /// Save this state (JSON).
     Save(String),
+    /// Append this line to the drift history.
+    History(String),
 }
 
 /// The monitors shared by the writer's sink, the learner and the main
@@ -220,6 +245,21 @@ pub struct MonitorSink {
     watch: Watch,
     since_save: u64,
     last_save: Instant,
+    /// The drift history's interval, and when its next line is due (on
+    /// the wall clock, at whole multiples of the interval).
+    history: Option<Duration>,
+    next_history: Option<std::time::SystemTime>,
+}
+
+/// The first multiple of `every` since 1970 after `now`.
+fn next_multiple(now: std::time::SystemTime, every: Duration) -> std::time::SystemTime {
+    let since = now
+        .duration_since(std::time::UNIX_EPOCH)
+        .unwrap_or_default()
+        .as_millis();
+    let every_ms = every.as_millis().max(1);
+    let next = (since / every_ms + 1) * every_ms;
+    std::time::UNIX_EPOCH + Duration::from_millis(next as u64)
 }
 
 impl RecordSink for MonitorSink {
@@ -228,12 +268,19 @@ impl RecordSink for MonitorSink {
             return;
         };
         let mut m = self.watch.lock();
-        let alerts = m.frame(
-            stats,
-            record.objects.len(),
-            &record.model_hash,
-            self.watch.clock.wall(),
-        );
+        let now = self.watch.clock.wall();
+        let alerts = m.frame(stats, record.objects.len(), &record.model_hash, now);
+        if let Some(every) = self.history {
+            match self.next_history {
+                Some(due) if now >= due => {
+                    let line = serde_json::to_string(&m.sample(now)).expect("sample serialises");
+                    let _ = self.watch.tx.send(ToAlerts::History(line));
+                    self.next_history = Some(next_multiple(now, every));
+                }
+                Some(_) => {}
+                None => self.next_history = Some(next_multiple(now, every)),
+            }
+        }
         self.since_save += 1;
         if !alerts.is_empty() {
             self.watch.send(alerts, &m);
@@ -276,6 +323,8 @@ pub fn start(
         watch: watch.clone(),
         since_save: 0,
         last_save: Instant::now(),
+        history: settings.history,
+        next_history: None,
     };
     {
         let m = watch.lock();
@@ -283,6 +332,7 @@ pub fn start(
     }
     let runner = Runner {
         log: logs.join(FILE),
+        history: logs.join(HISTORY_FILE),
         state: state.join(STATE_FILE),
         commands: Commands::start(settings)?,
         board,
@@ -376,6 +426,7 @@ impl Drop for Commands {
 /// The alerts thread's work.
 struct Runner {
     log: PathBuf,
+    history: PathBuf,
     state: PathBuf,
     commands: Option<Commands>,
     /// Counts the lines written, for the status endpoint.
@@ -400,7 +451,30 @@ impl Runner {
                     }
                 }
                 ToAlerts::Save(state) => self.save(&state),
+                ToAlerts::History(line) => self.add_history(line),
             }
+        }
+    }
+
+    /// Appends one line to the drift history, first renaming a full file
+    /// to the older one. A failure is said and the line dropped: the
+    /// history is for review, detection does not wait on it.
+    fn add_history(&self, line: String) {
+        if std::fs::metadata(&self.history).is_ok_and(|m| m.len() >= HISTORY_ROTATE) {
+            let older = self.history.with_file_name(HISTORY_OLDER);
+            if let Err(e) = std::fs::rename(&self.history, &older) {
+                warn!(
+                    "drift history: cannot rename {} to {}: {e}",
+                    self.history.display(),
+                    older.display()
+                );
+            }
+        }
+        if let Err(e) = append_line(&self.history, line) {
+            warn!(
+                "drift history: cannot write {}: {e}",
+                self.history.display()
+            );
         }
     }
 

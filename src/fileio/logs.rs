@@ -29,6 +29,17 @@ pub struct LogFile {
     suffix: u32,
 }
 
+impl LogFile {
+    /// Whether the file can hold records of `range`: a rotated file's
+    /// records are all older than its rotation.
+    pub fn may_hold(&self, range: &crate::review::Range) -> bool {
+        match (self.rotated_at, range.from) {
+            (Some(rotated), Some(from)) => rotated >= from,
+            _ => true,
+        }
+    }
+}
+
 /// The time in a rotated file's name: `detections-YYYYMMDDTHHMMSS_nnnnnnnnnZ`
 /// with an optional `-k`, `.jsonl`.
 fn rotated_time(name: &str) -> Option<(Millis, u32)> {
