@@ -705,34 +705,9 @@ fn the_demo_refuses_a_kept_folder_that_is_not_empty() {
     assert!(r.stderr.contains("not a folder"), "{}", r.stderr);
 }
 
-/// Whether an outside tool may be missing: tests that need one skip with a
-/// printed reason, unless `BURLWATCH_REQUIRE_TOOLS=1` (set by `.ci/run`).
-fn tool(name: &str) -> Option<PathBuf> {
-    let found = std::env::var_os("PATH").and_then(|paths| {
-        std::env::split_paths(&paths)
-            .map(|p| p.join(name))
-            .find(|p| p.is_file())
-    });
-    if found.is_none() {
-        assert!(
-            std::env::var("BURLWATCH_REQUIRE_TOOLS").as_deref() != Ok("1"),
-            "{name} is required (BURLWATCH_REQUIRE_TOOLS=1) but not installed"
-        );
-        // Straight to the process's stderr: the test harness captures
-        // `eprintln!` of passing tests, and a skip must be seen.
-        use std::io::Write as _;
-        let _ = writeln!(
-            std::io::stderr(),
-            "SKIPPED: {name} is not installed (Debian package `systemd`); \
-             set BURLWATCH_REQUIRE_TOOLS=1 to make this a failure"
-        );
-    }
-    found
-}
-
 #[test]
 fn the_systemd_unit_verifies_and_is_well_hardened() {
-    let Some(analyze) = tool("systemd-analyze") else {
+    let Some(analyze) = crate::util::tool("systemd-analyze", "systemd") else {
         return;
     };
     // The unit as shipped, with ExecStart pointing at the binary just built

@@ -374,3 +374,325 @@ fn render_draws_a_logged_frame_and_an_outside_one() {
     assert_eq!(r.code, 1);
     assert!(r.stderr.contains("nothing.pbm"), "{}", r.stderr);
 }
+
+/// A box whose daemon handled loom frames in batches (so the drift
+/// history, one line every 0.6 s, has several lines) and rejected one
+/// file; returns the configuration and the records.
+fn reviewed_box(d: &Dir) -> (std::path::PathBuf, Vec<FrameRecord>) {
+    use crate::util::{rename_in, start_watching, stop, wait_for};
+    use burlwatch::synth::{self, LoomParams};
+
+    let p = LoomParams {
+        width: 96,
+        height: 64,
+        ..LoomParams::standard()
+    };
+    let seed = d.join("seed");
+    std::fs::create_dir_all(&seed).unwrap();
+    for (i, g) in synth::generate_set(&p, 1, 30).into_iter().enumerate() {
+        burlwatch::fileio::data::write_pair(&seed, &format!("seed-{i:04}"), &g.frame, &g.mask)
+            .unwrap();
+    }
+    let cfg = d.join("burlwatch.toml");
+    std::fs::write(
+        &cfg,
+        format!(
+            "{}[training]\nseed_data = {:?}\n[watch]\nsettle_millis = 50\nrescan_seconds = 0.2\n\
+             [drift]\nwindow_frames = 5\nwarmup_frames = 10\nhistory_minutes = 0.01\n[status]\nenabled = false\n",
+            folders_section(d.path()),
+            seed
+        ),
+    )
+    .unwrap();
+    let daemon = start_watching(&cfg, d.path(), &d.join("daemon.stderr"));
+    let records = || -> Vec<FrameRecord> {
+        std::fs::read_to_string(d.join("logs/detections.jsonl"))
+            .unwrap_or_default()
+            .lines()
+            .map(|l| serde_json::from_str(l).unwrap())
+            .collect()
+    };
+    let frames = synth::generate_set(&p, 78, 32);
+    for (batch, chunk) in frames.chunks(4).enumerate() {
+        for (i, g) in chunk.iter().enumerate() {
+            rename_in(
+                &d.join("inbox"),
+                &format!("loom-{batch}-{i}.pbm"),
+                &burlwatch::codec::encode_pbm(&g.frame),
+            );
+        }
+        wait_for("a batch to be logged", 120, || {
+            records().len() == (batch + 1) * 4.min(frames.len())
+        });
+        std::thread::sleep(std::time::Duration::from_millis(300));
+    }
+    rename_in(&d.join("inbox"), "broken <1>.pbm", b"P4\n96 64\n\x00");
+    wait_for("the broken file to be rejected", 60, || {
+        d.join("rejected/broken <1>.pbm.reason.txt").exists()
+    });
+    wait_for("a few drift history lines", 60, || {
+        std::fs::read_to_string(d.join("logs/drift.jsonl"))
+            .unwrap_or_default()
+            .lines()
+            .count()
+            >= 2
+    });
+    stop(daemon);
+    (cfg, records())
+}
+
+/// The SVG elements of a page, each as its own text.
+fn svgs(html: &str) -> Vec<&str> {
+    let mut out = Vec::new();
+    let mut rest = html;
+    while let Some(a) = rest.find("<svg") {
+        let b = rest[a..].find("</svg>").expect("every svg is closed") + a + 6;
+        out.push(&rest[a..b]);
+        rest = &rest[b..];
+    }
+    out
+}
+
+/// The PNG pictures embedded in a page as data URIs, decoded.
+fn pictures(html: &str) -> Vec<image::RgbImage> {
+    use base64::Engine;
+    html.split("src=\"data:image/png;base64,")
+        .skip(1)
+        .map(|s| {
+            let b64 = &s[..s.find('"').unwrap()];
+            let png = base64::engine::general_purpose::STANDARD
+                .decode(b64)
+                .unwrap();
+            image::load_from_memory(&png).unwrap().to_rgb8()
+        })
+        .collect()
+}
+
+/// `burlwatch report` on a box whose daemon ran: one self-contained page
+/// (no script, no outside address, every picture a data URI), its SVG
+/// charts well-formed XML (checked with roxmltree, a general-purpose XML
+/// parser), its counts those of the log, its thumbnails decoding (with the
+/// `image` crate) to the frame's size times the zoom with the box colour
+/// just outside the object, and a file name with markup in it escaped.
+#[test]
+fn the_report_is_one_self_contained_page_of_the_logs() {
+    use burlwatch::render::BOX;
+
+    let d = Dir::new();
+    let (cfg, records) = reviewed_box(&d);
+    let out = d.join("report.html");
+    let r = burlwatch_with(
+        d.path(),
+        &cfg,
+        &["report", "--since", "1h", "--out", out.to_str().unwrap()],
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let html = std::fs::read_to_string(&out).unwrap();
+    assert!(html.starts_with("<!DOCTYPE html>"));
+    // Self-contained: no script, no linked file, no outside address but
+    // the SVG namespace.
+    assert!(!html.contains("<script") && !html.contains("<link"));
+    assert_eq!(
+        html.matches("src=\"").count(),
+        html.matches("src=\"data:image/png;base64,").count()
+    );
+    assert_eq!(
+        html.matches("http").count(),
+        html.matches("http://www.w3.org/2000/svg").count()
+    );
+    // Charts: frames and objects, processing time, the drift statistics
+    // that were not warming up, the model timeline.
+    let charts = svgs(&html);
+    assert!(charts.len() >= 5, "{} charts", charts.len());
+    for svg in &charts {
+        let doc = roxmltree::Document::parse(svg).unwrap_or_else(|e| panic!("{e}: {svg}"));
+        let root = doc.root_element();
+        assert_eq!(root.tag_name().name(), "svg");
+        assert!(root.attribute("viewBox").is_some());
+        assert!(root.children().any(|c| c.has_tag_name("title")));
+    }
+    assert!(
+        charts
+            .iter()
+            .any(|s| s.contains("<title>Input: 2x2 pixel patterns")),
+        "no pattern_psi chart"
+    );
+    // Counts as in the log.
+    let objects: usize = records.iter().map(|r| r.objects.len()).sum();
+    assert!(
+        html.contains(&format!("Frames<b>{}</b>", records.len())),
+        "frames card"
+    );
+    assert!(
+        html.contains(&format!("Objects<b>{objects}</b>")),
+        "objects card"
+    );
+    assert!(html.contains("Rejected files<b>1</b>"));
+    // The rejected file's name, escaped.
+    assert!(html.contains("broken &lt;1&gt;.pbm") && !html.contains("broken <1>"));
+    // Thumbnails: the frames with the most objects, drawn.
+    let with_objects = records.iter().filter(|r| !r.objects.is_empty()).count();
+    let pics = pictures(&html);
+    assert_eq!(pics.len(), with_objects.min(50));
+    let best = records
+        .iter()
+        .max_by(|a, b| {
+            let key = |r: &FrameRecord| {
+                let s = r.objects.iter().map(|o| o.score).fold(0.0, f64::max);
+                (r.objects.len(), s, r.time.clone())
+            };
+            key(a).partial_cmp(&key(b)).unwrap()
+        })
+        .unwrap();
+    // 96 pixels wide: zoom 5.
+    let first = &pics[0];
+    assert_eq!(first.dimensions(), (96 * 5, 64 * 5));
+    // The picture pixel just outside an object's box, at its middle row:
+    // left of it, or right of it for an object at the frame's left edge.
+    let o = &best.objects[0];
+    let x = if o.bbox[0] > 0 {
+        o.bbox[0] * 5 - 1
+    } else {
+        (o.bbox[2] + 1) * 5
+    };
+    let y = (o.bbox[1] + o.bbox[3]) / 2 * 5 + 2;
+    assert_eq!(first.get_pixel(x, y).0, BOX, "at {x},{y} of {}", best.frame);
+    assert!(html.contains(&best.frame));
+    // A range with nothing in it is a page that says so.
+    let r = burlwatch_with(
+        d.path(),
+        &cfg,
+        &[
+            "report",
+            "--from",
+            "2020-01-01T00:00:00Z",
+            "--to",
+            "2020-01-02T00:00:00Z",
+            "--out",
+            out.to_str().unwrap(),
+        ],
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let empty = std::fs::read_to_string(&out).unwrap();
+    assert!(empty.contains("No frame was logged in this range."));
+    assert!(empty.contains("Frames<b>0</b>"));
+    // A wrong output name is refused before anything is read.
+    let r = burlwatch_with(d.path(), &cfg, &["report", "--out", "report.txt"]);
+    assert_eq!(r.code, 1);
+    assert!(r.stderr.contains("report.txt"), "{}", r.stderr);
+}
+
+/// Runs Debian's Chromium headless on `args` with a fresh profile, as the
+/// issue names the flags; killed after two minutes.
+fn chromium(exe: &std::path::Path, profile: &std::path::Path, args: &[&str]) -> Vec<u8> {
+    use std::process::{Command, Stdio};
+    let mut child = Command::new(exe)
+        .args([
+            "--headless",
+            "--no-sandbox",
+            "--disable-gpu",
+            "--no-first-run",
+            "--disable-background-networking",
+            "--disable-component-update",
+            "--disable-sync",
+            "--disable-quic",
+            "--hide-scrollbars",
+        ])
+        .arg(format!("--user-data-dir={}", profile.display()))
+        .args(args)
+        .stdout(Stdio::piped())
+        .stderr(Stdio::null())
+        .spawn()
+        .unwrap();
+    let mut stdout = child.stdout.take().unwrap();
+    let reader = std::thread::spawn(move || {
+        let mut out = Vec::new();
+        std::io::Read::read_to_end(&mut stdout, &mut out).unwrap();
+        out
+    });
+    let deadline = std::time::Instant::now() + std::time::Duration::from_secs(120);
+    let status = loop {
+        if let Some(s) = child.try_wait().unwrap() {
+            break s;
+        }
+        if std::time::Instant::now() > deadline {
+            let _ = child.kill();
+            panic!("chromium {args:?} did not finish in two minutes");
+        }
+        std::thread::sleep(std::time::Duration::from_millis(50));
+    };
+    assert!(status.success(), "chromium {args:?}: {status}");
+    reader.join().unwrap()
+}
+
+/// The report opened in real headless Chromium (Debian's `chromium`): the
+/// page it parsed (`--dump-dom`) holds every SVG chart of the file as
+/// elements, and its screenshots, at a laptop's and a phone's
+/// width, are not blank and show the charts' bars in their colours.
+#[test]
+fn the_report_renders_in_headless_chromium() {
+    let Some(exe) = crate::util::tool("chromium", "chromium") else {
+        return;
+    };
+    let d = Dir::new();
+    let (cfg, records) = reviewed_box(&d);
+    let out = d.join("report.html");
+    let r = burlwatch_with(
+        d.path(),
+        &cfg,
+        &[
+            "report",
+            "--since",
+            "1h",
+            "--out",
+            out.to_str().unwrap(),
+            "--thumbnails",
+            "0",
+        ],
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let html = std::fs::read_to_string(&out).unwrap();
+    let url = format!("file://{}", out.display());
+
+    let dom = String::from_utf8(chromium(
+        &exe,
+        &d.join("profile-dom"),
+        &["--dump-dom", &url],
+    ))
+    .unwrap();
+    assert_eq!(dom.matches("<svg").count(), html.matches("<svg").count());
+    assert!(dom.contains("<title>Frames per hour</title>"), "{dom}");
+    assert!(records.iter().any(|r| !r.objects.is_empty()));
+    assert_eq!(
+        dom.matches("<polyline").count() + dom.matches("<rect").count(),
+        html.matches("<polyline").count() + html.matches("<rect").count()
+    );
+
+    for (width, least_blue) in [(1000u32, 400usize), (390, 150)] {
+        let shot = d.join(&format!("shot-{width}.png"));
+        chromium(
+            &exe,
+            &d.join(&format!("profile-{width}")),
+            &[
+                &format!("--window-size={width},2400"),
+                &format!("--screenshot={}", shot.display()),
+                &url,
+            ],
+        );
+        let img = image::open(&shot).unwrap().to_rgb8();
+        assert_eq!(img.dimensions(), (width, 2400));
+        let pixels = img.pixels().count();
+        let inked = img.pixels().filter(|p| p.0 != [255, 255, 255]).count();
+        assert!(inked * 50 > pixels, "{width}: blank ({inked} of {pixels})");
+        // The frames bars are filled with Okabe-Ito blue, the objects bars
+        // with vermillion (svg::BLUE, svg::VERMILLION); no other part of
+        // this page (no thumbnails) has those colours.
+        let blue = img.pixels().filter(|p| p.0 == [0, 114, 178]).count();
+        let vermillion = img.pixels().filter(|p| p.0 == [213, 94, 0]).count();
+        assert!(blue >= least_blue, "{width}: {blue} blue pixels");
+        assert!(
+            vermillion >= least_blue,
+            "{width}: {vermillion} vermillion pixels"
+        );
+    }
+}

@@ -186,3 +186,30 @@ pub fn stop(mut child: std::process::Child) {
         std::thread::sleep(std::time::Duration::from_millis(20));
     }
 }
+
+/// An outside tool on the PATH. Tests that need one skip (`None`) with a
+/// printed reason naming the Debian package that has it, unless
+/// `BURLWATCH_REQUIRE_TOOLS=1` (set by `.ci/run`), which makes a missing
+/// tool a failure.
+pub fn tool(name: &str, package: &str) -> Option<PathBuf> {
+    let found = std::env::var_os("PATH").and_then(|paths| {
+        std::env::split_paths(&paths)
+            .map(|p| p.join(name))
+            .find(|p| p.is_file())
+    });
+    if found.is_none() {
+        assert!(
+            std::env::var("BURLWATCH_REQUIRE_TOOLS").as_deref() != Ok("1"),
+            "{name} is required (BURLWATCH_REQUIRE_TOOLS=1) but not installed"
+        );
+        // Straight to the process's stderr: the test harness captures
+        // `eprintln!` of passing tests, and a skip must be seen.
+        use std::io::Write as _;
+        let _ = writeln!(
+            std::io::stderr(),
+            "SKIPPED: {name} is not installed (Debian package `{package}`); \
+             set BURLWATCH_REQUIRE_TOOLS=1 to make this a failure"
+        );
+    }
+    found
+}

@@ -89,7 +89,7 @@ const STYLE: &str = "\
 :root{color-scheme:light}\
 body{font-family:system-ui,-apple-system,'Segoe UI',Roboto,'DejaVu Sans',sans-serif;margin:0 auto;max-width:1000px;padding:12px;color:#222;background:#fff;line-height:1.4}\
 h1{font-size:1.5em;margin:.2em 0}\
-h2{font-size:1.2em;border-bottom:2px solid #0072b2;padding-bottom:2px;margin-top:1.6em}\
+h2{font-size:1.2em;border-bottom:2px solid #888;padding-bottom:2px;margin-top:1.6em}\
 h3{font-size:1em;margin:1em 0 .3em}\
 .cards{display:grid;grid-template-columns:repeat(auto-fill,minmax(150px,1fr));gap:8px}\
 .card{border:1px solid #ddd;border-radius:6px;padding:6px 10px}\
@@ -829,5 +829,96 @@ impl Report {
             }
         }
         h.push_str("</div></section>");
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::monitor::Thresholds;
+
+    fn alert(t: Millis, state: &str) -> Alert {
+        Alert {
+            time: format_time(t),
+            monitor: "input".into(),
+            statistic: "leaf_psi".into(),
+            value: 0.3,
+            thresholds: Thresholds {
+                watch: 0.1,
+                alert: 0.25,
+            },
+            model_version: 2,
+            model_hash: "abc".into(),
+            window: 50,
+            state: state.into(),
+            message: "moved <a lot>".into(),
+            repeats: 0,
+        }
+    }
+
+    #[test]
+    fn long_tables_show_their_latest_rows_and_say_how_many_are_left_out() {
+        let t0 = parse_time("2026-12-01T00:00:00.000Z").unwrap();
+        let report = Report {
+            title: "box <7>".into(),
+            generated: t0 + 24 * HOUR,
+            range: Range {
+                from: Some(t0),
+                to: Some(t0 + 24 * HOUR),
+            },
+            alerts: (0..250).map(|k| alert(t0 + k * 60_000, "alert")).collect(),
+            thumbnails: vec![Thumbnail {
+                frame: "loom-<b>.pbm".into(),
+                time: format_time(t0),
+                objects: 3,
+                max_score: 0.9,
+                model_version: 2,
+                png: Err("the frame has left the archive".into()),
+            }],
+            ..Report::default()
+        };
+        let html = report.html();
+        assert!(html.contains("<title>box &lt;7&gt;</title>"));
+        assert!(html.contains("50 earlier alert line(s) not shown."));
+        assert_eq!(html.matches("moved &lt;a lot&gt;").count(), TABLE_ROWS);
+        assert!(html.contains("loom-&lt;b&gt;.pbm"));
+        assert!(html.contains("No picture: the frame has left the archive"));
+        assert!(html.contains("No drift history in this range"));
+        assert!(html.contains("No frame was logged in this range."));
+        assert!(html.contains("Alerts<b>250</b>"));
+        // The span is the range asked for, in whole hours.
+        assert_eq!(
+            report.span(),
+            Span {
+                from: t0,
+                to: t0 + 24 * HOUR
+            }
+        );
+    }
+
+    #[test]
+    fn an_open_range_starts_at_the_first_record() {
+        let t0 = parse_time("2026-12-01T10:20:00.000Z").unwrap();
+        let mut stats = ReportStats::new(0);
+        let line = format!(
+            "{{\"time\":\"{}\",\"frame\":\"f.pbm\",\"sha256\":\"x\",\"width\":1,\"height\":1,\"model_version\":1,\"model_hash\":\"h\",\"millis\":2.0,\"objects\":[]}}",
+            format_time(t0)
+        );
+        stats.add_line(line.as_bytes(), false, &Range::default());
+        let report = Report {
+            generated: t0 + 3 * HOUR,
+            stats,
+            ..Report::default()
+        };
+        assert_eq!(
+            report.span(),
+            Span {
+                from: parse_time("2026-12-01T10:00:00.000Z").unwrap(),
+                to: parse_time("2026-12-01T14:00:00.000Z").unwrap()
+            }
+        );
+        let html = report.html();
+        assert!(html.contains("Frames<b>1</b>"));
+        assert!(html.contains("Longest stretch without a logged frame: 3 h"));
     }
 }
