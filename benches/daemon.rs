@@ -12,12 +12,16 @@
 //!    record, so its arrival in the archive marks durability) at a steady
 //!    50 frames per second, with the default (sync every record) and the
 //!    batched log: p50 and p99;
+//!    then the same with the status endpoint off and with it on and
+//!    scraped once a second (`/metrics` and `/healthz`), in three
+//!    alternating pairs of runs;
 //! 3. resident memory of the daemon after 10,000 and 20,000 frames.
 //!
 //! The feeder and the timing watcher run on the same 2 cores as the
 //! daemon, so the figures are for the whole box.
 //!
-//! Environment: `BURLWATCH_BENCH_FRAMES` (default 5000) for the
+//! Environment: `BURLWATCH_BENCH_ONLY=status` runs only the endpoint's
+//! part; `BURLWATCH_BENCH_FRAMES` (default 5000) for the
 //! throughput runs.
 
 use std::path::{Path, PathBuf};
@@ -82,6 +86,76 @@ fn start(model: &str, extra: &str, tag: &str) -> Box_ {
     Box_ { root, child }
 }
 
+/// One GET on loopback; true for a 200 answer.
+fn get(port: u16, path: &str) -> bool {
+    use std::io::{Read, Write};
+    let Ok(mut s) = std::net::TcpStream::connect(("127.0.0.1", port)) else {
+        return false;
+    };
+    let _ = s.set_read_timeout(Some(Duration::from_secs(5)));
+    let req = format!("GET {path} HTTP/1.1\r\nHost: 127.0.0.1\r\nConnection: close\r\n\r\n");
+    if s.write_all(req.as_bytes()).is_err() {
+        return false;
+    }
+    let mut answer = String::new();
+    let _ = s.read_to_string(&mut answer);
+    answer.starts_with("HTTP/1.1 200")
+}
+
+/// Frames renamed into the inbox at a steady 50 a second; the p50 and p99
+/// of rename to durable record in ms, and, with `scrape`, how many
+/// scrapes of /metrics and /healthz (once a second, on the endpoint's
+/// port) answered 200.
+fn latency(
+    model: &str,
+    frames: &[Vec<u8>],
+    extra: &str,
+    count: usize,
+    scrape: Option<u16>,
+) -> (f64, f64, usize) {
+    let b = start(model, extra, "lat");
+    let arrivals = Arrivals::watch(&b.root.join("archive"));
+    let stage = b.root.join("stage");
+    std::fs::create_dir_all(&stage).unwrap();
+    let done = std::sync::Arc::new(std::sync::atomic::AtomicBool::new(false));
+    let scraper = scrape.map(|port| {
+        let done = done.clone();
+        std::thread::spawn(move || {
+            let mut ok = 0;
+            while !done.load(Ordering::Relaxed) {
+                ok += (get(port, "/metrics") && get(port, "/healthz")) as usize;
+                std::thread::sleep(Duration::from_secs(1));
+            }
+            ok
+        })
+    });
+    let mut sent = Vec::with_capacity(count);
+    let t0 = Instant::now();
+    for i in 0..count {
+        let name = format!("l{i:06}.pbm");
+        std::fs::write(stage.join(&name), &frames[i % frames.len()]).unwrap();
+        let due = t0 + Duration::from_millis(20 * i as u64);
+        std::thread::sleep(due.saturating_duration_since(Instant::now()));
+        let at = Instant::now();
+        std::fs::rename(stage.join(&name), b.root.join("inbox").join(&name)).unwrap();
+        sent.push((name, at));
+    }
+    arrivals.wait_count(count, 60);
+    done.store(true, Ordering::Relaxed);
+    let scrapes = scraper.map_or(0, |t| t.join().unwrap());
+    let times: std::collections::HashMap<String, Instant> =
+        arrivals.times.lock().unwrap().iter().cloned().collect();
+    let mut lat: Vec<f64> = sent
+        .iter()
+        .map(|(n, at)| times[n].duration_since(*at).as_secs_f64() * 1e3)
+        .collect();
+    (
+        percentile(&mut lat, 0.5),
+        percentile(&mut lat, 0.99),
+        scrapes,
+    )
+}
+
 fn main() {
     let repo = Path::new(env!("CARGO_MANIFEST_DIR"));
     let folder = burlwatch::fileio::data::read_folder(
@@ -107,10 +181,18 @@ fn main() {
         .and_then(|s| s.parse().ok())
         .unwrap_or(5000);
 
+    let only = std::env::var("BURLWATCH_BENCH_ONLY").unwrap_or_default();
+    if only != "status" {
+        throughput_latency_memory(&model, &frames, n);
+    }
+    status_endpoint(&model, &frames);
+}
+
+fn throughput_latency_memory(model: &str, frames: &[Vec<u8>], n: usize) {
     // 1. Throughput, sync batched.
     let mut rates = Vec::new();
     for run in 0..3 {
-        let b = start(&model, "[log]\nsync = \"batch\"\n", &format!("tp{run}"));
+        let b = start(model, "[log]\nsync = \"batch\"\n", &format!("tp{run}"));
         let stage = b.root.join("stage");
         std::fs::create_dir_all(&stage).unwrap();
         for i in 0..n {
@@ -148,38 +230,14 @@ fn main() {
         ("sync every record (default)", ""),
         ("sync batched", "[log]\nsync = \"batch\"\n"),
     ] {
-        let b = start(&model, extra, "lat");
-        let arrivals = Arrivals::watch(&b.root.join("archive"));
-        let stage = b.root.join("stage");
-        std::fs::create_dir_all(&stage).unwrap();
-        let count = 1000;
-        let mut sent = Vec::with_capacity(count);
-        let t0 = Instant::now();
-        for i in 0..count {
-            let name = format!("l{i:06}.pbm");
-            std::fs::write(stage.join(&name), &frames[i % frames.len()]).unwrap();
-            let due = t0 + Duration::from_millis(20 * i as u64);
-            std::thread::sleep(due.saturating_duration_since(Instant::now()));
-            let at = Instant::now();
-            std::fs::rename(stage.join(&name), b.root.join("inbox").join(&name)).unwrap();
-            sent.push((name, at));
-        }
-        arrivals.wait_count(count, 60);
-        let times: std::collections::HashMap<String, Instant> =
-            arrivals.times.lock().unwrap().iter().cloned().collect();
-        let mut lat: Vec<f64> = sent
-            .iter()
-            .map(|(n, at)| times[n].duration_since(*at).as_secs_f64() * 1e3)
-            .collect();
+        let (p50, p99, _) = latency(model, frames, extra, 1000, None);
         println!(
-            "latency rename -> durable record at 50 frames/s, {label}: p50 {:.2} ms, p99 {:.2} ms ({count} frames)",
-            percentile(&mut lat, 0.5),
-            percentile(&mut lat, 0.99)
+            "latency rename -> durable record at 50 frames/s, {label}: p50 {p50:.2} ms, p99 {p99:.2} ms (1000 frames)"
         );
     }
 
     // 3. Resident memory over 20,000 frames.
-    let b = start(&model, "[log]\nsync = \"batch\"\n", "mem");
+    let b = start(model, "[log]\nsync = \"batch\"\n", "mem");
     let arrivals = Arrivals::watch(&b.root.join("archive"));
     let start_rss = rss_kib(b.child.id());
     let mut at = Vec::new();
@@ -207,5 +265,43 @@ fn main() {
             .collect::<Vec<_>>()
             .join(" / "),
         (at[3] as f64 - at[1] as f64) / 1024.0
+    );
+}
+
+fn status_endpoint(model: &str, frames: &[Vec<u8>]) {
+    // 2b. The status endpoint: off, or on and scraped once a second
+    // (/metrics and /healthz), in alternating runs.
+    let mut off = Vec::new();
+    let mut on = Vec::new();
+    for run in 0..3 {
+        let (p50, p99, _) = latency(model, frames, "[status]\nenabled = false\n", 1000, None);
+        println!("  run {run}, endpoint off: p50 {p50:.2} ms, p99 {p99:.2} ms");
+        off.push((p50, p99));
+        let port = std::net::TcpListener::bind("127.0.0.1:0")
+            .unwrap()
+            .local_addr()
+            .unwrap()
+            .port();
+        let (p50, p99, scrapes) = latency(
+            model,
+            frames,
+            &format!("[status]\naddress = \"127.0.0.1:{port}\"\n"),
+            1000,
+            Some(port),
+        );
+        println!("  run {run}, endpoint scraped once a second: p50 {p50:.2} ms, p99 {p99:.2} ms ({scrapes} scrapes)");
+        on.push((p50, p99));
+    }
+    let med = |v: &[(f64, f64)], k: usize| {
+        let mut x: Vec<f64> = v.iter().map(|p| if k == 0 { p.0 } else { p.1 }).collect();
+        percentile(&mut x, 0.5)
+    };
+    println!(
+        "status endpoint at 50 frames/s, medians of 3 alternating runs: off p50 {:.2} ms p99 {:.2} ms; scraped once a second p50 {:.2} ms p99 {:.2} ms (p99 ratio {:.2})",
+        med(&off, 0),
+        med(&off, 1),
+        med(&on, 0),
+        med(&on, 1),
+        med(&on, 1) / med(&off, 1)
     );
 }

@@ -184,7 +184,14 @@ impl StartConfig {
         differs("log.sync", self.log.sync != new.log.sync);
         differs("log.level", self.log.level != new.log.level);
         differs("drift", self.monitors != new.monitors);
-        differs("alerts", self.alerts != new.alerts);
+        differs(
+            "alerts",
+            self.alerts.command != new.alerts.command || self.alerts.timeout != new.alerts.timeout,
+        );
+        differs(
+            "drift.history_minutes",
+            self.alerts.history != new.alerts.history,
+        );
         differs("status", self.status != new.status);
         differs(
             "log.summary_seconds",

@@ -829,6 +829,7 @@ mod tests {
             ("[alerts]\ncommand = [\"\"]\n", "alerts.command"),
             ("[alerts]\ncommand = \"notify --all\"\n", "alerts.command"),
             ("[alerts]\ntimeout_seconds = 0\n", "alerts.timeout_seconds"),
+            ("[drift]\nhistory_minutes = -1\n", "drift.history_minutes"),
         ] {
             let e = from_str(text).unwrap_err().to_string();
             assert!(e.contains(want), "{want:?} in {e:?}");
@@ -841,6 +842,12 @@ mod tests {
         assert_eq!(c.start.alerts.command, ["/usr/bin/logger", "-t", "loom"]);
         let c = from_str("[alerts]\nrepeat_minutes = 5\n").unwrap();
         assert_eq!(c.start.monitors.unwrap().repeat_seconds, 300.0);
+        assert_eq!(
+            c.start.alerts.history,
+            Some(std::time::Duration::from_secs(300))
+        );
+        let c = from_str("[drift]\nhistory_minutes = 0\n").unwrap();
+        assert_eq!(c.start.alerts.history, None);
     }
 
     #[test]

@@ -588,3 +588,73 @@ pub fn run_command(
         format!("{status}: {err}")
     })
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn sample(k: u64) -> String {
+        serde_json::to_string(&DriftSample {
+            time: format!("2026-12-01T00:{:02}:00.000Z", k % 60),
+            model_version: 1,
+            model_hash: "h".into(),
+            frames: k,
+            statistics: Vec::new(),
+        })
+        .unwrap()
+    }
+
+    #[test]
+    fn a_full_drift_history_is_renamed_and_both_files_are_read_in_order() {
+        let dir = tempfile::tempdir().unwrap();
+        let runner = Runner {
+            log: dir.path().join(FILE),
+            history: dir.path().join(HISTORY_FILE),
+            state: dir.path().join(STATE_FILE),
+            commands: None,
+            board: None,
+        };
+        runner.add_history(sample(1));
+        runner.add_history(sample(2));
+        assert_eq!(
+            read_history(dir.path())
+                .unwrap()
+                .iter()
+                .map(|s| s.frames)
+                .collect::<Vec<_>>(),
+            [1, 2]
+        );
+        // Past the size: the next line starts a new file, the full one is
+        // kept as the older file, replacing the one before.
+        std::fs::write(dir.path().join(HISTORY_OLDER), "old\n").unwrap();
+        let mut big = std::fs::read_to_string(&runner.history).unwrap();
+        while (big.len() as u64) < HISTORY_ROTATE {
+            big.push_str(&sample(3));
+            big.push('\n');
+        }
+        std::fs::write(&runner.history, &big).unwrap();
+        runner.add_history(sample(4));
+        assert_eq!(
+            std::fs::read_to_string(&runner.history).unwrap(),
+            format!("{}\n", sample(4))
+        );
+        let all = read_history(dir.path()).unwrap();
+        assert_eq!(all.first().unwrap().frames, 1);
+        assert_eq!(all.last().unwrap().frames, 4);
+        assert_eq!(all.len() as u64, big.lines().count() as u64 + 1);
+    }
+
+    #[test]
+    fn history_lines_fall_on_whole_multiples_of_the_interval() {
+        let t = std::time::UNIX_EPOCH + Duration::from_millis(1_000_123);
+        assert_eq!(
+            next_multiple(t, Duration::from_secs(300)),
+            std::time::UNIX_EPOCH + Duration::from_secs(1_200)
+        );
+        let on = std::time::UNIX_EPOCH + Duration::from_secs(1_200);
+        assert_eq!(
+            next_multiple(on, Duration::from_secs(300)),
+            std::time::UNIX_EPOCH + Duration::from_secs(1_500)
+        );
+    }
+}

@@ -5,7 +5,7 @@
 //! annotated thumbnails of the frames with the most objects, embedded as
 //! data URIs.
 //!
-//! [`Report`] is everything the page shows, gathered by [`gather`] (the
+//! [`Report`] is everything the page shows, gathered by [`gather()`] (the
 //! only part that reads files); [`Report::html`] is pure. The page needs
 //! no script and no outside file: styles are inline, charts are SVG
 //! elements, pictures are `data:` URIs. It reads on a phone (the charts
