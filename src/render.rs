@@ -37,6 +37,21 @@ pub struct Mark {
     pub score: f64,
 }
 
+impl Mark {
+    /// The marks of a record's objects.
+    pub fn of_record(record: &crate::record::FrameRecord) -> Vec<Mark> {
+        record
+            .objects
+            .iter()
+            .map(|o| Mark {
+                bbox: o.bbox,
+                id: o.id,
+                score: o.score,
+            })
+            .collect()
+    }
+}
+
 /// An RGB picture, row by row, 3 bytes a pixel.
 #[derive(Clone, Debug, PartialEq, Eq)]
 pub struct Picture {

@@ -290,6 +290,20 @@ fn bin_upper(k: usize) -> f64 {
     MIN_MS * RATIO.powi(k as i32)
 }
 
+/// The `q`-quantile of `count` values in `bins` ((bin, count), by bin):
+/// its bin's upper bound, never above the largest value `max`.
+fn quantile_of(bins: impl Iterator<Item = (usize, u64)>, count: u64, max: f64, q: f64) -> f64 {
+    let rank = ((q * count as f64).ceil() as u64).clamp(1, count);
+    let mut seen = 0;
+    for (k, n) in bins {
+        seen += n;
+        if seen >= rank {
+            return bin_upper(k).min(max);
+        }
+    }
+    max
+}
+
 impl TimeHistogram {
     pub fn add(&mut self, ms: f64) {
         let (ms, k) = bin_of(ms);
@@ -304,15 +318,12 @@ impl TimeHistogram {
         if self.count == 0 {
             return None;
         }
-        let rank = ((q * self.count as f64).ceil() as u64).clamp(1, self.count);
-        let mut seen = 0;
-        for (k, &n) in self.bins.iter().enumerate() {
-            seen += n;
-            if seen >= rank {
-                return Some(bin_upper(k).min(self.max));
-            }
-        }
-        Some(self.max)
+        Some(quantile_of(
+            self.bins.iter().copied().enumerate(),
+            self.count,
+            self.max,
+            q,
+        ))
     }
 
     pub fn count(&self) -> u64 {
@@ -347,15 +358,12 @@ impl SparseTimes {
         if self.count == 0 {
             return None;
         }
-        let rank = ((q * self.count as f64).ceil() as u64).clamp(1, self.count);
-        let mut seen = 0;
-        for &(k, n) in &self.bins {
-            seen += n as u64;
-            if seen >= rank {
-                return Some(bin_upper(k as usize).min(self.max));
-            }
-        }
-        Some(self.max)
+        Some(quantile_of(
+            self.bins.iter().map(|&(k, n)| (k as usize, n as u64)),
+            self.count,
+            self.max,
+            q,
+        ))
     }
 
     pub fn count(&self) -> u64 {

@@ -270,58 +270,15 @@ fn frames_are_filtered_and_one_frame_is_shown() {
 /// folders is drawn with `--model --frame`.
 #[test]
 fn render_draws_a_logged_frame_and_an_outside_one() {
-    use crate::util::{rename_in, start_watching, stop, wait_for};
     use burlwatch::render::BOX;
-    use burlwatch::synth::{self, LoomParams};
 
     let d = Dir::new();
-    let p = LoomParams {
-        width: 96,
-        height: 64,
-        ..LoomParams::standard()
-    };
-    let seed = d.join("seed");
-    std::fs::create_dir_all(&seed).unwrap();
-    for (i, g) in synth::generate_set(&p, 1, 30).into_iter().enumerate() {
-        burlwatch::fileio::data::write_pair(&seed, &format!("seed-{i:04}"), &g.frame, &g.mask)
-            .unwrap();
-    }
-    let cfg = d.join("burlwatch.toml");
-    std::fs::write(
-        &cfg,
-        format!(
-            "{}[training]\nseed_data = {:?}\n[watch]\nsettle_millis = 50\nrescan_seconds = 0.2\n",
-            folders_section(d.path()),
-            seed
-        ),
-    )
-    .unwrap();
-    let daemon = start_watching(&cfg, d.path(), &d.join("daemon.stderr"));
-    let frames = synth::generate_set(&p, 77, 6);
-    for (i, g) in frames.iter().enumerate() {
-        rename_in(
-            &d.join("inbox"),
-            &format!("loom-{i}.pbm"),
-            &burlwatch::codec::encode_pbm(&g.frame),
-        );
-    }
-    let records = || -> Vec<FrameRecord> {
-        std::fs::read_to_string(d.join("logs/detections.jsonl"))
-            .unwrap_or_default()
-            .lines()
-            .map(|l| serde_json::from_str(l).unwrap())
-            .collect()
-    };
-    wait_for("the frames to be logged", 120, || {
-        records().len() == frames.len()
-    });
-    wait_for("the frames to be archived", 60, || {
-        std::fs::read_dir(d.join("archive")).unwrap().count() >= frames.len()
-    });
-    stop(daemon);
-    let rec = records()
+    let (cfg, records) = reviewed_box(&d);
+    // An object away from the frame's left edge, so the pixel left of its
+    // box is in the picture.
+    let rec = records
         .into_iter()
-        .find(|r| !r.objects.is_empty())
+        .find(|r| r.objects.first().is_some_and(|o| o.bbox[0] > 0))
         .expect("a frame with objects");
     let out = d.join("picture.png");
     let r = burlwatch_with(

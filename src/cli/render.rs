@@ -69,15 +69,7 @@ pub fn run(a: RenderArgs) -> Result<i32> {
             let detector = record_detector(&record, &registry, &cfg.live)
                 .map_err(|e| anyhow!("{e}"))
                 .with_context(|| format!("cannot draw the detection of {name}"))?;
-            let marks: Vec<Mark> = record
-                .objects
-                .iter()
-                .map(|o| Mark {
-                    bbox: o.bbox,
-                    id: o.id,
-                    score: o.score,
-                })
-                .collect();
+            let marks = Mark::of_record(&record);
             (frame, detector, Some(marks), path.display().to_string())
         }
     };

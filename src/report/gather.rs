@@ -170,15 +170,7 @@ fn thumbnails(
                 let frame = codec::decode(&bytes, &live.limits)
                     .map_err(|e| format!("the archived frame cannot be read: {}", e.kind()))?;
                 let result = d.detect(&frame, &mut scratch);
-                let marks: Vec<Mark> = record
-                    .objects
-                    .iter()
-                    .map(|o| Mark {
-                        bbox: o.bbox,
-                        id: o.id,
-                        score: o.score,
-                    })
-                    .collect();
+                let marks = Mark::of_record(&record);
                 let zoom = zoom_for(frame.width(), frame.height());
                 render(&frame, Some(&result.mask), &marks, zoom)
                     .to_png()
