@@ -839,3 +839,50 @@ fn generate(d: &Dir, out: &std::path::Path, count: &str, seed: &str, extra: &[&s
     let g = crate::util::burlwatch(d.path(), &args);
     assert_eq!(g.code, 0, "{}", g.stderr);
 }
+
+/// Regression (a fault probe found 40 of 40 records lost): the detection
+/// log deleted, then renamed, while the daemon runs. Every frame that
+/// comes after is logged once in the file readers look at, and the
+/// daemon says what happened, once each time.
+#[test]
+fn a_detection_log_deleted_or_renamed_while_running_loses_no_record() {
+    let s = Setup::new("[watch]\nrescan_seconds = 0.2\n[status]\nenabled = false\n");
+    let mut d = s.start_watching();
+    let all = frames(60, 41);
+    let (first, rest) = all.split_at(20);
+    let (second, third) = rest.split_at(20);
+    let feed = |batch: &[(String, Vec<u8>)], total: usize| {
+        for (n, b) in batch {
+            s.drop_frame(n, b);
+        }
+        wait_for("the batch to be archived", 60, || {
+            s.names_in("archive").len() == total
+        });
+    };
+    feed(first, 20);
+    let log = s.dir.join("logs/detections.jsonl");
+    std::fs::remove_file(&log).unwrap();
+    feed(second, 40);
+    let moved = s.dir.join("logs/moved-away.txt");
+    std::fs::rename(&log, &moved).unwrap();
+    feed(third, 60);
+    signal(&d, libc::SIGTERM);
+    assert_eq!(exit_code(&mut d, 20), 0, "{}", s.stderr());
+    // The second batch is whole in the file that was renamed, the third in
+    // the new log: none lost, none twice.
+    let read = |p: &std::path::Path| -> Vec<FrameRecord> {
+        std::fs::read_to_string(p)
+            .unwrap()
+            .lines()
+            .map(|l| serde_json::from_str(l).unwrap())
+            .collect()
+    };
+    logged_once(&read(&moved), second);
+    logged_once(&read(&log), third);
+    assert_eq!(
+        s.stderr().matches("deleted, renamed or replaced").count(),
+        2,
+        "{}",
+        s.stderr()
+    );
+}

@@ -18,6 +18,15 @@
 //! hashes of the records of the frames still in the inbox, so such a frame
 //! is archived, not logged twice. Records are written with one `write` call
 //! each, so a crash leaves at most the last line partial.
+//!
+//! The log must still be where readers look for it. After every sync (and
+//! before a rotation renames it) the path is checked to name the open file
+//! (same device and inode, not unlinked): a log deleted, renamed or
+//! replaced while open would otherwise take records no reader ever sees
+//! while their frames are archived. When it does not, the records written
+//! since the last check are cut off the old file and come back as lost
+//! (their frames stay in the inbox and are logged again), and a new file is
+//! started at the path.
 
 use std::collections::HashSet;
 use std::fs::{self, File, OpenOptions};
@@ -88,19 +97,7 @@ impl<T> DetectionLog<T> {
     ) -> io::Result<(Self, HashSet<Key>)> {
         fs::create_dir_all(dir)?;
         let path = dir.join(CURRENT);
-        let created = !path.exists();
-        let mut file = OpenOptions::new()
-            .read(true)
-            .append(true)
-            .create(true)
-            .open(&path)?;
-        if created {
-            sync_dir(dir)?;
-        }
-        let size = cut_partial_line(&mut file)?;
-        // Records a killed daemon wrote may still be only in memory: make
-        // them durable before their frames are archived as already logged.
-        file.sync_data()?;
+        let (file, size) = open_current(dir)?;
         let mut keys = HashSet::new();
         if !wanted.is_empty() {
             read_keys(&path, wanted, &mut keys)?;
@@ -201,7 +198,7 @@ impl<T> DetectionLog<T> {
     pub fn sync(&mut self) -> (Settled<T>, Option<io::Error>) {
         let mut error = None;
         if !self.unsynced.is_empty() {
-            match self.sync_file() {
+            match self.sync_file().and_then(|()| self.check_named()) {
                 Ok(()) => {
                     self.synced_size = self.size;
                     self.settled.durable.append(&mut self.unsynced);
@@ -213,6 +210,55 @@ impl<T> DetectionLog<T> {
             }
         }
         (std::mem::take(&mut self.settled), error)
+    }
+
+    /// Checks that the log's path still names the open file; when it does
+    /// not (deleted, renamed or replaced), starts a new file there and
+    /// fails, so the caller cuts the records since the last check off the
+    /// old one as lost.
+    fn check_named(&mut self) -> io::Result<()> {
+        use std::os::unix::fs::MetadataExt;
+        let open = self.file.metadata()?;
+        let path = self.dir.join(CURRENT);
+        let named = open.nlink() > 0
+            && match fs::symlink_metadata(&path) {
+                Ok(m) => m.dev() == open.dev() && m.ino() == open.ino(),
+                Err(e) if e.kind() == io::ErrorKind::NotFound => false,
+                Err(e) => return Err(e),
+            };
+        if named {
+            return Ok(());
+        }
+        // The records since the last good sync are cut off the old file
+        // (still open, wherever it went) before the handle is replaced.
+        self.cut_unsynced_back();
+        match open_current(&self.dir) {
+            Ok((file, size)) => {
+                self.file = file;
+                self.size = size;
+                self.synced_size = size;
+                Err(io::Error::other(format!(
+                    "{} was deleted, renamed or replaced while the daemon wrote to it; \
+                     a new log is started there and the records not yet durable are written again",
+                    path.display()
+                )))
+            }
+            Err(e) => {
+                self.broken = Some(format!(
+                    "{} was deleted, renamed or replaced while the daemon wrote to it, \
+                     and a new log cannot be started there ({e})",
+                    path.display()
+                ));
+                Err(e)
+            }
+        }
+    }
+
+    /// Cuts the open file back to its last good sync (the caller settles
+    /// the tickets).
+    fn cut_unsynced_back(&mut self) {
+        let _ = self.file.set_len(self.synced_size);
+        self.size = self.synced_size;
     }
 
     fn sync_file(&mut self) -> io::Result<()> {
@@ -242,7 +288,8 @@ impl<T> DetectionLog<T> {
         let synced = self
             .faults
             .check(Fault::Rotate, &self.dir)
-            .and_then(|()| self.file.sync_data());
+            .and_then(|()| self.file.sync_data())
+            .and_then(|()| self.check_named());
         if let Err(e) = synced {
             self.cut_unsynced();
             return Err(e);
@@ -319,6 +366,26 @@ pub fn rotated(dir: &Path) -> io::Result<Vec<PathBuf>> {
     Ok(v)
 }
 
+/// Opens (or creates) `dir/CURRENT` for appending, cuts a partial last
+/// line, and syncs it: records a killed daemon wrote may still be only in
+/// memory, and must be durable before their frames are archived as already
+/// logged. Returns the file and its length.
+fn open_current(dir: &Path) -> io::Result<(File, u64)> {
+    let path = dir.join(CURRENT);
+    let created = !path.exists();
+    let mut file = OpenOptions::new()
+        .read(true)
+        .append(true)
+        .create(true)
+        .open(&path)?;
+    if created {
+        sync_dir(dir)?;
+    }
+    let size = cut_partial_line(&mut file)?;
+    file.sync_data()?;
+    Ok((file, size))
+}
+
 /// Truncates a file that does not end in a newline back to its last
 /// newline; returns the new length.
 fn cut_partial_line(file: &mut File) -> io::Result<u64> {
@@ -392,6 +459,59 @@ mod tests {
             millis: 0.5,
             objects: vec![],
         }
+    }
+
+    /// Regression: a log deleted or renamed while open took every later
+    /// record into a file no reader saw, while the frames were archived.
+    #[test]
+    fn a_log_deleted_or_renamed_while_open_loses_no_record() {
+        let dir = tempfile::tempdir().unwrap();
+        let path = dir.path().join(CURRENT);
+        let (mut log, _) =
+            DetectionLog::<u32>::open(dir.path(), 1 << 20, 3, &HashSet::new(), Faults::none())
+                .unwrap();
+        log.append(&rec("a.pbm", "1"), 1).unwrap();
+        let (s, e) = log.sync();
+        assert!(e.is_none());
+        assert_eq!(s.durable, [1]);
+        for (how, ticket) in [("deleted", 2u32), ("renamed", 3)] {
+            match how {
+                "deleted" => fs::remove_file(&path).unwrap(),
+                _ => fs::rename(&path, dir.path().join("elsewhere.jsonl")).unwrap(),
+            }
+            log.append(&rec("b.pbm", "2"), ticket).unwrap();
+            let (s, e) = log.sync();
+            // Not durable where readers look: lost, so the frame stays in
+            // the inbox, and a new log is started at the path.
+            assert_eq!(s.lost, [ticket], "{how}");
+            assert!(s.durable.is_empty(), "{how}");
+            let why = e.unwrap().to_string();
+            assert!(why.contains("deleted, renamed or replaced"), "{why}");
+            assert!(path.exists(), "{how}");
+            assert!(log.broken().is_none());
+            // Logged again, it is durable in the new file.
+            log.append(&rec("b.pbm", "2"), ticket + 10).unwrap();
+            let (s, e) = log.sync();
+            assert!(e.is_none(), "{how}");
+            assert_eq!(s.durable, [ticket + 10]);
+            let text = fs::read_to_string(&path).unwrap();
+            assert_eq!(text.lines().count(), 1, "{how}: {text}");
+            assert!(text.contains("b.pbm"));
+        }
+        // The renamed file kept only what was durable in it.
+        let moved = fs::read_to_string(dir.path().join("elsewhere.jsonl")).unwrap();
+        assert_eq!(moved.lines().count(), 1, "{moved}");
+        // A file put in its place is taken as the log (its partial last
+        // line cut), and the records since the last check go there again.
+        fs::remove_file(&path).unwrap();
+        fs::write(&path, "{\"frame\":\"x.pbm\"}\n{\"fra").unwrap();
+        log.append(&rec("c.pbm", "3"), 7).unwrap();
+        let (s, _) = log.sync();
+        assert_eq!(s.lost, [7]);
+        assert_eq!(
+            fs::read_to_string(&path).unwrap(),
+            "{\"frame\":\"x.pbm\"}\n"
+        );
     }
 
     #[test]
