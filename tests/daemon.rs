@@ -886,3 +886,48 @@ fn a_detection_log_deleted_or_renamed_while_running_loses_no_record() {
         s.stderr()
     );
 }
+
+/// Regression (a fault probe found 1,000 of 1,000 frames logged twice): a
+/// second daemon with its own state folder but the same inbox, corrections
+/// and logs folders refuses to start, naming the folder, and `check` says
+/// so; the first daemon logs every frame once.
+#[test]
+fn a_second_daemon_with_another_state_folder_cannot_share_the_inbox() {
+    let s = Setup::new("[status]\nenabled = false\n");
+    let mut first = s.start_watching();
+    let other = s.dir.join("other-state");
+    std::fs::create_dir_all(&other).unwrap();
+    std::fs::copy(s.dir.join("state/model.json"), other.join("model.json")).unwrap();
+    let cfg2 = s.dir.join("second.toml");
+    std::fs::write(
+        &cfg2,
+        s.config_text("[status]\nenabled = false\n")
+            .replace(&format!("{:?}", s.dir.join("state")), &format!("{other:?}")),
+    )
+    .unwrap();
+    let second = crate::util::burlwatch(s.dir.path(), &["run", "--config", cfg2.to_str().unwrap()]);
+    assert_eq!(second.code, 1, "{}", second.stderr);
+    assert!(
+        second.stderr.contains("folders.inbox")
+            && second.stderr.contains("another burlwatch daemon")
+            && second.stderr.contains(s.inbox().to_str().unwrap()),
+        "{}",
+        second.stderr
+    );
+    let check =
+        crate::util::burlwatch(s.dir.path(), &["check", "--config", cfg2.to_str().unwrap()]);
+    assert!(
+        check
+            .stdout
+            .contains("in use by another burlwatch daemon with another state folder"),
+        "{}",
+        check.stdout
+    );
+    assert_ne!(check.code, 0);
+    let all = frames(30, 43);
+    feed_and_stop(&s, &mut first, &all, 60);
+    // Stopped, the folders are free again.
+    let mut again = s.start_watching();
+    signal(&again, libc::SIGTERM);
+    assert_eq!(exit_code(&mut again, 20), 0);
+}

@@ -139,8 +139,30 @@ pub fn model(cfg: &Config) -> Finding {
 /// Whether a daemon holds the lock on these folders (not a problem: it
 /// says which process serves them).
 pub fn lock(cfg: &Config) -> Finding {
-    match files::daemon_running(&cfg.start.folders.state) {
-        None => Finding::new("lock", true, "no daemon is running on these folders".into()),
+    let f = &cfg.start.folders;
+    match files::daemon_running(&f.state) {
+        None => {
+            // A daemon with another state folder on the same inbox,
+            // corrections or logs folder: this one would not start.
+            for (key, path) in [
+                ("folders.inbox", &f.inbox),
+                ("folders.corrections", &f.corrections),
+                ("folders.logs", &f.logs),
+            ] {
+                if files::folder_in_use(path) {
+                    return Finding::new(
+                        "lock",
+                        false,
+                        format!(
+                            "{key} {} is in use by another burlwatch daemon with another state folder; \
+                             this one would not start",
+                            path.display()
+                        ),
+                    );
+                }
+            }
+            Finding::new("lock", true, "no daemon is running on these folders".into())
+        }
         Some(pid) => Finding::new(
             "lock",
             true,

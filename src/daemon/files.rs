@@ -83,6 +83,61 @@ impl StateLock {
     }
 }
 
+/// Exclusive `flock`s on the folders a daemon must have to itself (the
+/// inbox, the corrections folder, the logs folder), held while alive. The
+/// state lock alone let two daemons with different state folders share an
+/// inbox and log every frame twice. The folders themselves are locked (a
+/// directory can be), so nothing is written into them; a folder named
+/// twice is locked once.
+#[derive(Debug)]
+pub struct FolderLocks {
+    _dirs: Vec<File>,
+}
+
+impl FolderLocks {
+    /// Locks each `(configuration key, folder)`; the error names the key,
+    /// the folder and what to do.
+    pub fn acquire(folders: &[(&str, &Path)]) -> Result<FolderLocks> {
+        use std::os::unix::fs::MetadataExt;
+        let mut dirs: Vec<File> = Vec::new();
+        let mut seen = Vec::new();
+        for (key, path) in folders {
+            let dir = File::open(path).map_err(|e| Error::from(e).with_path(path))?;
+            let m = dir.metadata().map_err(|e| Error::from(e).with_path(path))?;
+            if seen.contains(&(m.dev(), m.ino())) {
+                continue;
+            }
+            seen.push((m.dev(), m.ino()));
+            // SAFETY: flock on a file descriptor we own; no memory involved.
+            let rc = unsafe { libc::flock(dir.as_raw_fd(), libc::LOCK_EX | libc::LOCK_NB) };
+            if rc != 0 {
+                return Err(Error::daemon(format!(
+                    "{key} is in use by another burlwatch daemon (one with another state \
+                     folder); two daemons on one folder would handle every file twice: give \
+                     each daemon its own inbox, corrections and logs folders"
+                ))
+                .with_path(path));
+            }
+            dirs.push(dir);
+        }
+        Ok(FolderLocks { _dirs: dirs })
+    }
+}
+
+/// Whether a daemon holds the folder lock of `path` (see [`FolderLocks`]).
+pub fn folder_in_use(path: &Path) -> bool {
+    let Ok(dir) = File::open(path) else {
+        return false;
+    };
+    // SAFETY: flock on a file descriptor we own; no memory involved.
+    let free = unsafe { libc::flock(dir.as_raw_fd(), libc::LOCK_SH | libc::LOCK_NB) } == 0;
+    if free {
+        // SAFETY: as above; releases the shared lock just taken.
+        unsafe { libc::flock(dir.as_raw_fd(), libc::LOCK_UN) };
+    }
+    !free
+}
+
 /// Reads a frame file, bounded, with the stamp of the version read.
 pub use crate::fileio::data::read_frame_file as read_frame;
 

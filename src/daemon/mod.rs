@@ -198,6 +198,11 @@ pub fn run_with(
     }
     start.folders = start::make_folders(&start.folders)?;
     let _lock = files::StateLock::acquire(&start.folders.state)?;
+    let _folder_locks = files::FolderLocks::acquire(&[
+        ("folders.inbox", &start.folders.inbox),
+        ("folders.corrections", &start.folders.corrections),
+        ("folders.logs", &start.folders.logs),
+    ])?;
     let (model, origin, trained_on) = start::load_or_train(&start.folders, &live)?;
     let learning = learning::Learning::open(&start.folders, &live, model.tree.window())?;
     let (model, _) = learning.in_service(model, origin, trained_on)?;
