@@ -931,3 +931,34 @@ fn a_second_daemon_with_another_state_folder_cannot_share_the_inbox() {
     signal(&again, libc::SIGTERM);
     assert_eq!(exit_code(&mut again, 20), 0);
 }
+
+/// Regression (a fault probe: a FIFO renamed in place of a queued frame
+/// blocked a worker in open() forever, and SIGTERM never ended the
+/// daemon): a FIFO named like a frame is rejected with its reason without
+/// blocking anything, every frame is logged, and the daemon stops at once.
+#[test]
+fn a_fifo_named_like_a_frame_never_blocks_the_pipeline() {
+    let s = Setup::new(
+        "[watch]\nsettle_millis = 50\nrescan_seconds = 0.2\n[status]\nenabled = false\n",
+    );
+    let mut d = s.start_watching();
+    let fifo = s.inbox().join("pipe.pbm");
+    let c = std::ffi::CString::new(fifo.as_os_str().as_encoded_bytes()).unwrap();
+    // SAFETY: mkfifo with a valid NUL-terminated path.
+    assert_eq!(unsafe { libc::mkfifo(c.as_ptr(), 0o600) }, 0);
+    let all = frames(10, 44);
+    for (n, b) in &all {
+        s.drop_frame(n, b);
+    }
+    wait_for("every frame to be archived", 60, || {
+        s.names_in("archive").len() == all.len()
+    });
+    wait_for("the FIFO to be rejected", 60, || {
+        s.names_in("rejected").contains("pipe.pbm.reason.txt")
+    });
+    let why = std::fs::read_to_string(s.dir.join("rejected/pipe.pbm.reason.txt")).unwrap();
+    assert!(why.contains("FIFO"), "{why}");
+    signal(&d, libc::SIGTERM);
+    assert_eq!(exit_code(&mut d, 20), 0, "{}", s.stderr());
+    logged_once(&s.records(), &all);
+}

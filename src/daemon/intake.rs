@@ -60,8 +60,16 @@ pub struct Listed {
     pub modified: SystemTime,
 }
 
-/// The frame files directly in `dir`: plain files only (symbolic links and
-/// folders are passed over), oldest first (then by name).
+/// Whether an entry named like a frame is taken: anything but a symbolic
+/// link (never followed). A FIFO, socket, device or folder so named is
+/// taken too, so the worker's read refuses it (without blocking) and it is
+/// rejected with its reason rather than left in the folder unexplained.
+fn takeable(ft: fs::FileType) -> bool {
+    !ft.is_symlink()
+}
+
+/// The frame files directly in `dir` ([`takeable`]: symbolic links are
+/// passed over), oldest first (then by name).
 pub fn list(dir: &Path, formats: &[String]) -> std::io::Result<Vec<Listed>> {
     let mut out = Vec::new();
     for entry in fs::read_dir(dir)? {
@@ -73,7 +81,7 @@ pub fn list(dir: &Path, formats: &[String]) -> std::io::Result<Vec<Listed>> {
         }
         // `DirEntry::metadata` does not follow symbolic links.
         let Ok(meta) = entry.metadata() else { continue };
-        if !meta.file_type().is_file() {
+        if !takeable(meta.file_type()) {
             continue;
         }
         out.push(Listed {
@@ -342,7 +350,7 @@ impl Intake {
         let mut done: Vec<Listed> = Vec::new();
         for path in self.settle.paths() {
             match fs::symlink_metadata(&path) {
-                Ok(m) if m.file_type().is_file() => {
+                Ok(m) if takeable(m.file_type()) => {
                     let l = Listed {
                         path,
                         size: m.len(),
@@ -384,10 +392,10 @@ impl Intake {
         }
     }
 
-    /// Queues `path` if it is a plain file not queued or in flight.
+    /// Queues `path` if it is [`takeable`] and not queued or in flight.
     fn make_ready(&mut self, path: PathBuf) {
         self.settle.remove(&path);
-        let plain = fs::symlink_metadata(&path).is_ok_and(|m| m.file_type().is_file());
+        let plain = fs::symlink_metadata(&path).is_ok_and(|m| takeable(m.file_type()));
         if plain && self.known.insert(path.clone()) {
             self.ready.push_back(path);
         }
@@ -428,11 +436,38 @@ impl Intake {
             EventKind::Create(CreateKind::File | CreateKind::Any) | EventKind::Modify(_) => {
                 if let Some(p) = target(0) {
                     if !self.known.contains(&p) {
-                        self.settle.announce(&p, now);
+                        self.created(p, now);
                     }
                 }
             }
             _ => {}
+        }
+    }
+
+    /// An event says `path` appeared or changed. A plain file with one link
+    /// may be being written: it waits for its close event (or for the long
+    /// settle time). Anything else has no writer to wait for: a hard link
+    /// made into the folder (more than one link), or a FIFO, socket, device
+    /// or folder so named; it settles like a file a listing found.
+    fn created(&mut self, path: PathBuf, now: Instant) {
+        use std::os::unix::fs::MetadataExt;
+        let Ok(m) = fs::symlink_metadata(&path) else {
+            return;
+        };
+        if m.file_type().is_file() && m.nlink() == 1 {
+            self.settle.announce(&path, now);
+            return;
+        }
+        if !takeable(m.file_type()) {
+            return;
+        }
+        let listed = Listed {
+            path,
+            size: m.len(),
+            modified: m.modified().unwrap_or(SystemTime::UNIX_EPOCH),
+        };
+        if self.settle.observe(&listed, now) {
+            self.make_ready(listed.path);
         }
     }
 
@@ -529,8 +564,10 @@ mod tests {
         assert!(s.observe(&f, t0 + ms(700)));
     }
 
+    /// A folder named like a frame is taken (the worker refuses it with
+    /// its reason); symbolic links, hidden and other names are not.
     #[test]
-    fn listing_skips_links_folders_and_others() {
+    fn listing_skips_links_hidden_and_other_names() {
         let dir = tempfile::tempdir().unwrap();
         let d = dir.path();
         fs::write(d.join("b.pbm"), b"P1 1 1 0").unwrap();
@@ -546,7 +583,7 @@ mod tests {
             .collect();
         let mut sorted = names.clone();
         sorted.sort();
-        assert_eq!(sorted, ["a.png", "b.pbm"]);
+        assert_eq!(sorted, ["a.png", "b.pbm", "sub.pbm"]);
     }
 
     fn intake(dir: &Path) -> Intake {
@@ -618,5 +655,42 @@ mod tests {
         assert_eq!(i.next_ready(), None);
         i.finished(&p);
         assert!(i.known.is_empty());
+    }
+
+    /// Regression (a fault probe: a hard link made into the inbox waited
+    /// 60 s for a close event that never comes; a FIFO so named was never
+    /// taken): only a plain file with one link waits for its close event;
+    /// the others settle as a listing's files do.
+    #[test]
+    fn a_hard_link_or_a_fifo_does_not_wait_for_a_close_event() {
+        use notify::event::CreateKind;
+        let d = tempfile::tempdir().unwrap();
+        let mut i = intake(d.path());
+        let t0 = Instant::now();
+        let outside = d.path().join("outside");
+        std::fs::write(&outside, "P1 1 1 0").unwrap();
+        let linked = d.path().join("linked.pbm");
+        std::fs::hard_link(&outside, &linked).unwrap();
+        let written = d.path().join("written.pbm");
+        std::fs::write(&written, "P1 1 1 0").unwrap();
+        let fifo = d.path().join("pipe.pbm");
+        let c = std::ffi::CString::new(fifo.as_os_str().as_encoded_bytes()).unwrap();
+        // SAFETY: mkfifo with a valid NUL-terminated path.
+        assert_eq!(unsafe { libc::mkfifo(c.as_ptr(), 0o600) }, 0);
+        for p in [&linked, &written, &fifo] {
+            let ev = notify::Event::new(EventKind::Create(CreateKind::File)).add_path(p.clone());
+            i.on_watch(Ok(Ok(ev)), t0);
+        }
+        // Past the settle time (100 ms), well before the minute an
+        // announced file may wait: the link and the FIFO are ready, the
+        // file being written still waits for its close event.
+        i.tick(t0 + Duration::from_millis(200));
+        let mut ready = Vec::new();
+        while let Some(p) = i.next_ready() {
+            ready.push(p);
+        }
+        ready.sort();
+        assert_eq!(ready, [linked, fifo]);
+        assert_eq!(i.waiting(), 1);
     }
 }

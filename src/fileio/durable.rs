@@ -69,8 +69,16 @@ pub fn read_bounded(
     max: u64,
     what_fits: &dyn Fn() -> String,
 ) -> std::result::Result<FileBytes, ReadFailure> {
+    use std::os::unix::fs::{FileTypeExt, OpenOptionsExt};
     let err = |e: io::Error| Error::from(e).with_path(path);
-    let file = File::open(path).map_err(|e| (err(e), None))?;
+    // Without blocking: a FIFO put where a frame was would otherwise hold
+    // the reader in open() until something writes to it, which may be
+    // never. What was opened is checked to be a plain file before a read.
+    let file = fs::OpenOptions::new()
+        .read(true)
+        .custom_flags(libc::O_NONBLOCK | libc::O_NOCTTY)
+        .open(path)
+        .map_err(|e| (err(e), None))?;
     let meta = file.metadata().map_err(|e| (err(e), None))?;
     let stamp = Stamp::of(&meta);
     let fail = |e: Error| (e.with_path(path), Some(stamp));
@@ -80,10 +88,22 @@ pub fn read_bounded(
             what_fits()
         ))))
     };
-    if meta.is_dir() {
-        return Err(fail(Error::new(ErrorKind::Data(
-            "is a folder, not a file".into(),
-        ))));
+    let ft = meta.file_type();
+    if !ft.is_file() {
+        let what = if ft.is_dir() {
+            "a folder"
+        } else if ft.is_fifo() {
+            "a FIFO (named pipe)"
+        } else if ft.is_socket() {
+            "a socket"
+        } else if ft.is_char_device() || ft.is_block_device() {
+            "a device"
+        } else {
+            "not a plain file"
+        };
+        return Err(fail(Error::new(ErrorKind::Data(format!(
+            "is {what}, not a plain file: not read"
+        )))));
     }
     if meta.len() > max {
         return Err(too_big(meta.len()));
@@ -226,6 +246,24 @@ pub fn move_into(src: &Path, dir: &Path) -> io::Result<PathBuf> {
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    /// Regression: a FIFO renamed in place of a queued frame blocked a
+    /// worker in open() forever.
+    #[test]
+    fn a_fifo_or_a_folder_is_refused_without_blocking() {
+        let d = tempfile::tempdir().unwrap();
+        let fifo = d.path().join("frame.pbm");
+        let c = std::ffi::CString::new(fifo.as_os_str().as_encoded_bytes()).unwrap();
+        // SAFETY: mkfifo with a valid NUL-terminated path.
+        assert_eq!(unsafe { libc::mkfifo(c.as_ptr(), 0o600) }, 0);
+        // Nothing writes to it: a blocking open would never return.
+        let (e, stamp) = read_bounded(&fifo, 100, &|| "a frame".into()).unwrap_err();
+        assert!(e.to_string().contains("FIFO"), "{e}");
+        assert!(e.to_string().contains("frame.pbm"), "{e}");
+        assert!(stamp.is_some());
+        let (e, _) = read_bounded(d.path(), 100, &|| "a frame".into()).unwrap_err();
+        assert!(e.to_string().contains("a folder"), "{e}");
+    }
 
     #[test]
     fn moves_never_overwrite() {
