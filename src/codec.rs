@@ -85,6 +85,14 @@ pub fn decode(bytes: &[u8], limits: &DecodeLimits) -> Result<BitFrame> {
 }
 
 fn check_size(width: u64, height: u64, limits: &DecodeLimits) -> Result<()> {
+    // A frame with no pixels was never inspected: it must not be logged as
+    // a frame with no objects.
+    if width == 0 || height == 0 {
+        return Err(ErrorKind::Data(format!(
+            "the frame is {width}x{height}: it has no pixels, so there is nothing to inspect"
+        ))
+        .into());
+    }
     if width > limits.max_width as u64 || height > limits.max_height as u64 {
         return Err(ErrorKind::TooLarge {
             width,
@@ -529,6 +537,16 @@ mod tests {
         // No whitespace between plain bits is allowed by the spec.
         let g = decode(b"P1 3 2 101010", &lim()).unwrap();
         assert_eq!(g, f);
+    }
+
+    /// Regression: `P4 0 0` was logged as an inspected frame with no
+    /// objects.
+    #[test]
+    fn a_frame_with_no_pixels_is_refused() {
+        for bytes in [&b"P4\n0 0\n"[..], b"P1\n0 5\n", b"P4\n7 0\n"] {
+            let e = decode(bytes, &lim()).unwrap_err().to_string();
+            assert!(e.contains("no pixels"), "{e}");
+        }
     }
 
     #[test]

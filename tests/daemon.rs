@@ -303,6 +303,8 @@ fn bad_files_are_rejected_with_a_reason_and_the_rest_logged() {
             "not a PBM or PNG",
         ),
         ("bad-plain.pbm", b"P1\n2 2\n0 1\n1 x\n", "only '0' and '1'"),
+        // Regression: a frame with no pixels was logged as inspected.
+        ("no-pixels.pbm", b"P4\n0 0\n", "no pixels"),
     ];
     for (k, (n, b)) in good.iter().enumerate() {
         s.drop_frame(n, b);

@@ -486,7 +486,10 @@ fn the_daemon_logs_and_sends_alerts_and_keeps_its_monitors_across_a_restart() {
         serde_json::from_str(&std::fs::read_to_string(b.dir.join("state/monitors.json")).unwrap())
             .unwrap()
     };
-    assert_eq!(saved()["monitors"]["model"]["threshold"], 0.6);
+    // The alerts thread saves the state right after the alert's line.
+    wait_for("the state saved with the new model", 60, || {
+        saved()["monitors"]["model"]["threshold"] == 0.6
+    });
     b.configure(&format!(
         "[alerts]\ncommand = [\"/bin/sh\", \"-c\", \"cat >> {}\"]\ntimeout_seconds = 5\n\
          repeat_minutes = 0\n[detection]\nthreshold = 0.7\n",
