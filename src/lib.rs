@@ -58,6 +58,7 @@ pub mod error;
 pub mod fileio;
 pub mod frame;
 pub mod learn;
+pub mod messages;
 pub mod model;
 pub mod monitor;
 pub mod record;

@@ -274,15 +274,17 @@ fn read_data(dir: &Path, limits: &DecodeLimits, skip_bad: bool) -> Result<(data:
 }
 
 /// Sends `tracing`'s messages to stderr at `level` (or as `RUST_LOG` says),
-/// coloured only on a terminal.
+/// coloured only on a terminal, each on one line (`messages::OneLine`).
 fn init_tracing(level: &str) {
     use std::io::IsTerminal;
     use tracing_subscriber::EnvFilter;
     let filter = EnvFilter::try_from_default_env().unwrap_or_else(|_| EnvFilter::new(level));
+    let ansi = std::io::stderr().is_terminal();
+    // One line per message, whatever the file names in it hold.
     let _ = tracing_subscriber::fmt()
         .with_env_filter(filter)
-        .with_writer(std::io::stderr)
-        .with_ansi(std::io::stderr().is_terminal())
+        .with_writer(move || burlwatch::messages::OneLine::new(std::io::stderr(), ansi))
+        .with_ansi(ansi)
         .with_target(false)
         .try_init();
 }
