@@ -164,7 +164,12 @@ pub fn daemon_running(state: &Path) -> Option<String> {
 /// Moves a frame that cannot be read into `rejected` and writes
 /// `NAME.reason.txt` beside it (whole or not at all).
 pub fn reject(src: &Path, rejected: &Path, reason: &str) -> io::Result<PathBuf> {
-    let target = move_into(src, rejected)?;
+    // Short enough that its reason file's name fits too.
+    let target = crate::fileio::durable::move_into_max(
+        src,
+        rejected,
+        crate::fileio::durable::NAME_MAX - ".reason.txt".len(),
+    )?;
     let name = target
         .file_name()
         .and_then(|n| n.to_str())

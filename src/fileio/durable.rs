@@ -205,42 +205,123 @@ pub fn sync_dir(dir: &Path) -> io::Result<()> {
     File::open(dir)?.sync_all()
 }
 
-/// A free name in `dir` for `name`: `name` itself, else `stem-2.ext`,
-/// `stem-3.ext`, ...
-fn free_name(dir: &Path, name: &str) -> PathBuf {
-    let first = dir.join(name);
-    if fs::symlink_metadata(&first).is_err() {
-        return first;
-    }
+/// The longest file name most Linux filesystems take, in bytes.
+pub const NAME_MAX: usize = 255;
+
+/// `name` shortened (at a character boundary, keeping its ending) so that
+/// with `suffix` put before the ending it is at most `max` bytes.
+fn fitted(name: &str, suffix: &str, max: usize) -> String {
     let (stem, ext) = match name.rsplit_once('.') {
         Some((s, e)) if !s.is_empty() => (s, format!(".{e}")),
         _ => (name, String::new()),
     };
-    (2u64..)
-        .map(|k| dir.join(format!("{stem}-{k}{ext}")))
-        .find(|p| fs::symlink_metadata(p).is_err())
-        .expect("some name is free")
+    let room = max.saturating_sub(suffix.len() + ext.len());
+    let mut cut = stem.len().min(room);
+    while !stem.is_char_boundary(cut) {
+        cut -= 1;
+    }
+    format!("{}{suffix}{ext}", &stem[..cut])
+}
+
+/// The names `move_into` tries in `dir`, in order: the name itself (or
+/// shortened to `max` bytes), then `STEM-2.EXT`, `STEM-3.EXT`...
+fn candidates<'a>(dir: &'a Path, name: &'a str, max: usize) -> impl Iterator<Item = PathBuf> + 'a {
+    (1u64..).map(move |k| {
+        let suffix = if k == 1 {
+            String::new()
+        } else {
+            format!("-{k}")
+        };
+        dir.join(fitted(name, &suffix, max))
+    })
+}
+
+/// Whether two files hold the same bytes.
+fn same_bytes(a: &Path, b: &Path) -> bool {
+    match (fs::symlink_metadata(a), fs::symlink_metadata(b)) {
+        (Ok(ma), Ok(mb)) if ma.is_file() && mb.is_file() && ma.len() == mb.len() => {
+            matches!((fs::read(a), fs::read(b)), (Ok(x), Ok(y)) if x == y)
+        }
+        _ => false,
+    }
 }
 
 /// Moves `src` into `dir` under a free name and returns where it went.
-/// Across filesystems it copies, syncs, then removes the original, so the
-/// file exists somewhere at every moment.
+/// The name is kept when free, else `STEM-2.EXT`, `STEM-3.EXT`...,
+/// shortened where needed to fit [`NAME_MAX`] bytes.
+///
+/// Across filesystems (a rename cannot) it copies to a hidden temporary
+/// name in `dir`, syncs, links it under the free name (never over another
+/// file), syncs the folder and only then deletes the original: a crash
+/// leaves the file whole in one place or both, never a partial file under
+/// a real name. A copy already there from an earlier try interrupted
+/// before the delete (same name, same bytes) is taken as the move, not
+/// copied again; a copy whose original cannot be deleted is removed again,
+/// so failed tries never pile copies up.
 pub fn move_into(src: &Path, dir: &Path) -> io::Result<PathBuf> {
+    move_into_max(src, dir, NAME_MAX)
+}
+
+/// [`move_into`] with names of at most `max` bytes (so that a companion
+/// file, `NAME.reason.txt`, fits too).
+pub fn move_into_max(src: &Path, dir: &Path, max: usize) -> io::Result<PathBuf> {
     let name = src
         .file_name()
         .and_then(|n| n.to_str())
         .ok_or_else(|| io::Error::other("file name is not UTF-8"))?;
-    let target = free_name(dir, name);
+    let free = || {
+        candidates(dir, name, max)
+            .find(|p| fs::symlink_metadata(p).is_err())
+            .expect("some name is free")
+    };
+    let target = free();
     match fs::rename(src, &target) {
         Ok(()) => Ok(target),
-        Err(e) if e.raw_os_error() == Some(libc::EXDEV) => {
-            fs::copy(src, &target)?;
-            File::open(&target)?.sync_all()?;
-            fs::remove_file(src)?;
-            Ok(target)
-        }
+        Err(e) if e.raw_os_error() == Some(libc::EXDEV) => copy_across(src, dir, name, max),
         Err(e) => Err(e),
     }
+}
+
+/// The cross-filesystem half of [`move_into_max`].
+fn copy_across(src: &Path, dir: &Path, name: &str, max: usize) -> io::Result<PathBuf> {
+    // An earlier try that copied but was stopped before the delete.
+    for p in candidates(dir, name, max) {
+        if fs::symlink_metadata(&p).is_err() {
+            break;
+        }
+        if same_bytes(src, &p) {
+            fs::remove_file(src)?;
+            return Ok(p);
+        }
+    }
+    let tmp = dir.join(fitted(&format!(".{name}"), ".part", max));
+    let copied = fs::copy(src, &tmp).and_then(|_| File::open(&tmp)?.sync_all());
+    if let Err(e) = copied {
+        let _ = fs::remove_file(&tmp);
+        return Err(e);
+    }
+    let target = loop {
+        let target = candidates(dir, name, max)
+            .find(|p| fs::symlink_metadata(p).is_err())
+            .expect("some name is free");
+        match fs::hard_link(&tmp, &target) {
+            Ok(()) => break target,
+            Err(e) if e.kind() == io::ErrorKind::AlreadyExists => continue,
+            Err(e) => {
+                let _ = fs::remove_file(&tmp);
+                return Err(e);
+            }
+        }
+    };
+    let _ = fs::remove_file(&tmp);
+    sync_dir(dir)?;
+    if let Err(e) = fs::remove_file(src) {
+        // The original stays: take the copy back, so the next try does
+        // not leave another.
+        let _ = fs::remove_file(&target);
+        return Err(e);
+    }
+    Ok(target)
 }
 
 #[cfg(test)]
@@ -263,6 +344,96 @@ mod tests {
         assert!(stamp.is_some());
         let (e, _) = read_bounded(d.path(), 100, &|| "a frame".into()).unwrap_err();
         assert!(e.to_string().contains("a folder"), "{e}");
+    }
+
+    /// Regression (a fault probe: a 255-byte name could not take a `-2`
+    /// suffix and stayed in the inbox forever).
+    #[test]
+    fn a_name_too_long_for_a_suffix_is_shortened() {
+        let d = tempfile::tempdir().unwrap();
+        let (inbox, archive) = (d.path().join("in"), d.path().join("ar"));
+        fs::create_dir_all(&inbox).unwrap();
+        fs::create_dir_all(&archive).unwrap();
+        // 251 bytes of stem, some of them two-byte characters, and ".pbm".
+        let name = format!("{}{}.pbm", "é".repeat(100), "x".repeat(51));
+        assert_eq!(name.len(), 255);
+        let mut went = Vec::new();
+        for k in 0..3 {
+            fs::write(inbox.join(&name), format!("{k}")).unwrap();
+            went.push(move_into(&inbox.join(&name), &archive).unwrap());
+        }
+        let names: Vec<String> = went
+            .iter()
+            .map(|p| p.file_name().unwrap().to_str().unwrap().to_string())
+            .collect();
+        assert_eq!(names[0], name);
+        assert!(
+            names[1].ends_with("-2.pbm") && names[2].ends_with("-3.pbm"),
+            "{names:?}"
+        );
+        assert!(names.iter().all(|n| n.len() <= NAME_MAX));
+        for (k, p) in went.iter().enumerate() {
+            assert_eq!(fs::read_to_string(p).unwrap(), k.to_string());
+        }
+        // With room kept for a companion file's ending.
+        fs::write(inbox.join(&name), "x").unwrap();
+        let p = move_into_max(&inbox.join(&name), &archive, NAME_MAX - 11).unwrap();
+        assert!(p.file_name().unwrap().len() <= NAME_MAX - 11);
+    }
+
+    /// The copy a move across filesystems makes: whole under its name, no
+    /// temporary left, the original gone; a copy an interrupted earlier
+    /// try left is taken as the move rather than copied again (a fault
+    /// probe found a second copy, `-2`, after a kill between copy and
+    /// delete). Called directly, as a rename within one filesystem never
+    /// needs it.
+    #[test]
+    fn a_copy_across_filesystems_is_whole_and_never_doubled() {
+        let d = tempfile::tempdir().unwrap();
+        let (inbox, archive) = (d.path().join("in"), d.path().join("ar"));
+        fs::create_dir_all(&inbox).unwrap();
+        fs::create_dir_all(&archive).unwrap();
+        fs::write(inbox.join("a.pbm"), "frame a").unwrap();
+        let p = copy_across(&inbox.join("a.pbm"), &archive, "a.pbm", NAME_MAX).unwrap();
+        assert_eq!(p, archive.join("a.pbm"));
+        assert_eq!(fs::read_to_string(&p).unwrap(), "frame a");
+        assert!(!inbox.join("a.pbm").exists());
+        // A kill after the copy, before the delete: the frame is in both.
+        fs::write(inbox.join("a.pbm"), "frame a").unwrap();
+        let p = copy_across(&inbox.join("a.pbm"), &archive, "a.pbm", NAME_MAX).unwrap();
+        assert_eq!(p, archive.join("a.pbm"));
+        assert!(!inbox.join("a.pbm").exists());
+        // Another frame of that name is a new file.
+        fs::write(inbox.join("a.pbm"), "frame a, later").unwrap();
+        let p = copy_across(&inbox.join("a.pbm"), &archive, "a.pbm", NAME_MAX).unwrap();
+        assert_eq!(p, archive.join("a-2.pbm"));
+        let mut names: Vec<_> = fs::read_dir(&archive)
+            .unwrap()
+            .map(|e| e.unwrap().file_name().into_string().unwrap())
+            .collect();
+        names.sort();
+        assert_eq!(names, ["a-2.pbm", "a.pbm"]);
+    }
+
+    /// A real move across filesystems (the temporary folder and
+    /// `/dev/shm`, where they differ).
+    #[test]
+    fn a_move_across_filesystems_copies_then_deletes() {
+        let here = tempfile::tempdir().unwrap();
+        let Ok(there) = tempfile::tempdir_in("/dev/shm") else {
+            eprintln!("skipped: no /dev/shm to move across to");
+            return;
+        };
+        let dev = |p: &Path| fs::metadata(p).unwrap().dev();
+        if dev(here.path()) == dev(there.path()) {
+            eprintln!("skipped: /dev/shm is on the temporary folder's filesystem");
+            return;
+        }
+        fs::write(here.path().join("b.pbm"), "frame b").unwrap();
+        let p = move_into(&here.path().join("b.pbm"), there.path()).unwrap();
+        assert_eq!(fs::read_to_string(&p).unwrap(), "frame b");
+        assert!(!here.path().join("b.pbm").exists());
+        assert_eq!(fs::read_dir(there.path()).unwrap().count(), 1);
     }
 
     #[test]
