@@ -200,6 +200,23 @@ impl Settle {
     }
 }
 
+/// The longest a file left in place waits before it is tried again.
+pub const MAX_BACKOFF: Duration = Duration::from_secs(300);
+
+/// A file left in place: how often, until when it is not taken, and the
+/// size and time stamp it had (a change ends the wait).
+#[derive(Clone, Copy, Debug)]
+struct Backoff {
+    tries: u32,
+    until: Instant,
+    stamp: (u64, SystemTime),
+}
+
+fn stamp_of(path: &Path) -> Option<(u64, SystemTime)> {
+    let m = fs::symlink_metadata(path).ok()?;
+    Some((m.len(), m.modified().unwrap_or(SystemTime::UNIX_EPOCH)))
+}
+
 /// Whether `path` names a wanted file directly in `dir`.
 fn wanted(dir: &Path, formats: &[String], path: &Path) -> bool {
     path.parent() == Some(dir)
@@ -226,6 +243,9 @@ pub(super) struct Intake {
     ready: VecDeque<PathBuf>,
     /// Files queued or in flight: never handed out twice at once.
     known: HashSet<PathBuf>,
+    /// Files finished but left in place (their move or reject failed):
+    /// not taken again before their time, which doubles with each try.
+    backoff: HashMap<PathBuf, Backoff>,
     rescan_every: Duration,
     next_rescan: Instant,
     /// Set by the watcher's callback when its channel was full.
@@ -275,6 +295,7 @@ impl Intake {
             settle: Settle::new(settle),
             ready: VecDeque::new(),
             known: HashSet::new(),
+            backoff: HashMap::new(),
             rescan_every,
             next_rescan: now,
             overflow,
@@ -321,9 +342,49 @@ impl Intake {
         self.ready.pop_front()
     }
 
-    /// A file handed out is finished (moved, or left for the next listing).
-    pub fn finished(&mut self, path: &Path) {
+    /// A file handed out is finished: moved, or left in place for a later
+    /// try. A file left in place is not taken again before its backoff has
+    /// passed: the listing period, doubled with each try that left it, up
+    /// to [`MAX_BACKOFF`], so a frame that cannot be moved (a full disk, a
+    /// folder it may not leave) is tried, and said, ever more rarely rather
+    /// than every listing. A file changed since is taken at once.
+    pub fn finished(&mut self, path: &Path, now: Instant) {
         self.known.remove(path);
+        match stamp_of(path) {
+            Some(stamp) => {
+                let tries = self.backoff.get(path).map_or(0, |b| b.tries) + 1;
+                let wait = self
+                    .rescan_every
+                    .saturating_mul(1 << (tries - 1).min(16))
+                    .min(MAX_BACKOFF);
+                self.backoff.insert(
+                    path.to_path_buf(),
+                    Backoff {
+                        tries,
+                        until: now + wait,
+                        stamp,
+                    },
+                );
+            }
+            None => {
+                self.backoff.remove(path);
+            }
+        }
+    }
+
+    /// Whether `path` waits out a backoff now (dropped once it has passed,
+    /// or the file changed).
+    fn backing_off(&mut self, path: &Path, now: Instant) -> bool {
+        let Some(b) = self.backoff.get(path) else {
+            return false;
+        };
+        if now < b.until && stamp_of(path) == Some(b.stamp) {
+            return true;
+        }
+        if stamp_of(path).is_none_or(|s| s != b.stamp) {
+            self.backoff.remove(path);
+        }
+        false
     }
 
     /// Lists the folder if the watcher lost events or the period is up.
@@ -365,7 +426,7 @@ impl Intake {
         }
         done.sort_by(|a, b| a.modified.cmp(&b.modified).then(a.path.cmp(&b.path)));
         for l in done {
-            self.make_ready(l.path);
+            self.make_ready(l.path, now);
         }
     }
 
@@ -392,9 +453,13 @@ impl Intake {
         }
     }
 
-    /// Queues `path` if it is [`takeable`] and not queued or in flight.
-    fn make_ready(&mut self, path: PathBuf) {
+    /// Queues `path` if it is [`takeable`], not queued or in flight, and not
+    /// waiting out a backoff.
+    fn make_ready(&mut self, path: PathBuf, now: Instant) {
         self.settle.remove(&path);
+        if self.backing_off(&path, now) {
+            return;
+        }
         let plain = fs::symlink_metadata(&path).is_ok_and(|m| takeable(m.file_type()));
         if plain && self.known.insert(path.clone()) {
             self.ready.push_back(path);
@@ -417,7 +482,7 @@ impl Intake {
             EventKind::Access(AccessKind::Close(AccessMode::Write))
             | EventKind::Modify(ModifyKind::Name(RenameMode::To)) => {
                 if let Some(p) = target(0) {
-                    self.make_ready(p);
+                    self.make_ready(p, now);
                 }
             }
             EventKind::Modify(ModifyKind::Name(RenameMode::Both)) => {
@@ -425,7 +490,7 @@ impl Intake {
                     self.settle.remove(p);
                 }
                 if let Some(p) = target(1) {
-                    self.make_ready(p);
+                    self.make_ready(p, now);
                 }
             }
             EventKind::Modify(ModifyKind::Name(RenameMode::From)) | EventKind::Remove(_) => {
@@ -467,7 +532,7 @@ impl Intake {
             modified: m.modified().unwrap_or(SystemTime::UNIX_EPOCH),
         };
         if self.settle.observe(&listed, now) {
-            self.make_ready(listed.path);
+            self.make_ready(listed.path, now);
         }
     }
 
@@ -484,7 +549,7 @@ impl Intake {
                     .map(|l| l.path.clone())
                     .collect();
                 for p in done {
-                    self.make_ready(p);
+                    self.make_ready(p, now);
                 }
             }
             Err(e) => warn!(folder = %self.dir.display(), "cannot list the {}: {e}", self.what),
@@ -653,7 +718,7 @@ mod tests {
         }
         assert_eq!(i.next_ready(), Some(p.clone()));
         assert_eq!(i.next_ready(), None);
-        i.finished(&p);
+        i.finished(&p, now);
         assert!(i.known.is_empty());
     }
 
@@ -692,5 +757,57 @@ mod tests {
         ready.sort();
         assert_eq!(ready, [linked, fifo]);
         assert_eq!(i.waiting(), 1);
+    }
+
+    /// Regression (a fault probe: a frame that could not be moved was
+    /// tried, and an error said, every listing): each try that leaves a
+    /// file in place doubles its wait; a change ends it.
+    #[test]
+    fn a_file_left_in_place_is_tried_again_ever_more_rarely() {
+        let d = tempfile::tempdir().unwrap();
+        let t0 = Instant::now();
+        let mut i = Intake::open(
+            "inbox",
+            d.path(),
+            formats(),
+            Duration::ZERO,
+            Duration::from_secs(1),
+            false,
+            t0,
+        )
+        .unwrap();
+        let p = d.path().join("stuck.pbm");
+        std::fs::write(&p, "P1 1 1 0").unwrap();
+        let s = Duration::from_millis;
+        let taken = |i: &mut Intake, at: Instant| {
+            i.make_ready(p.clone(), at);
+            let got = i.next_ready();
+            if got.is_some() {
+                i.known.remove(&p);
+            }
+            got.is_some()
+        };
+        i.finished(&p, t0);
+        assert!(!taken(&mut i, t0 + s(500)));
+        assert!(taken(&mut i, t0 + s(1100)));
+        i.finished(&p, t0 + s(1100));
+        assert!(!taken(&mut i, t0 + s(2500)));
+        assert!(taken(&mut i, t0 + s(3200)));
+        i.finished(&p, t0 + s(3200));
+        assert!(!taken(&mut i, t0 + s(6000)));
+        // Up to five minutes at most, however many tries.
+        for _ in 0..20 {
+            i.finished(&p, t0);
+        }
+        assert!(!taken(&mut i, t0 + s(299_000)));
+        assert!(taken(&mut i, t0 + s(300_100)));
+        // A new version of the file is taken at once.
+        i.finished(&p, t0);
+        std::fs::write(&p, "P1 2 1 0 1").unwrap();
+        assert!(taken(&mut i, t0 + s(10)));
+        // A file moved away leaves no wait behind.
+        std::fs::remove_file(&p).unwrap();
+        i.finished(&p, t0);
+        assert!(i.backoff.is_empty());
     }
 }

@@ -519,11 +519,11 @@ impl MainLoop {
                 Event::Writer(FromWriter::Taken) => self.in_flight -= 1,
                 Event::Writer(FromWriter::Done(path)) => {
                     self.unfinished -= 1;
-                    self.inbox.finished(&path);
+                    self.inbox.finished(&path, self.clock.now());
                     self.last_progress = self.clock.now();
                 }
                 Event::Learner(FromLearner::CorrectionDone(path)) => {
-                    self.corrections.finished(&path)
+                    self.corrections.finished(&path, self.clock.now())
                 }
                 Event::Learner(FromLearner::InService(model)) => self.put_in_service(*model),
                 Event::LearnerGone => {
