@@ -1039,3 +1039,41 @@ fn hostile_frame_names_are_logged_or_rejected_and_never_forge_a_message() {
     assert!(err.contains("evil\\nERROR forged message.pbm"), "{err}");
     assert!(!err.contains('\x07') && !err.contains('\x1b'), "{err}");
 }
+
+/// Regression (a fault probe: a file whose name is not UTF-8 text was
+/// ignored without a word): it is left alone and said once, however many
+/// listings see it; the frames around it are logged.
+#[test]
+fn a_name_that_is_not_utf8_is_said_once_and_left_alone() {
+    use std::os::unix::ffi::OsStrExt;
+    let s = Setup::new(
+        "[watch]\nsettle_millis = 50\nrescan_seconds = 0.1\n[status]\nenabled = false\n",
+    );
+    let mut d = s.start_watching();
+    let odd = s
+        .inbox()
+        .join(std::ffi::OsStr::from_bytes(b"loom-\xff\xfe.pbm"));
+    std::fs::write(&odd, b"P4\n8 1\n\x00").unwrap();
+    let all = frames(5, 46);
+    for (n, b) in &all {
+        s.drop_frame(n, b);
+    }
+    wait_for("the frames to be archived", 60, || {
+        s.names_in("archive").len() == all.len()
+    });
+    wait_for("the odd name to be said", 60, || {
+        s.stderr().contains("not UTF-8")
+    });
+    // Several more listings (one every 0.1 s) see it again.
+    std::thread::sleep(Duration::from_millis(600));
+    signal(&d, libc::SIGTERM);
+    assert_eq!(exit_code(&mut d, 20), 0);
+    assert_eq!(s.stderr().matches("not UTF-8").count(), 1, "{}", s.stderr());
+    assert!(
+        s.stderr().contains("\\xFF\\xFE") || s.stderr().contains("\\xff\\xfe"),
+        "{}",
+        s.stderr()
+    );
+    assert!(odd.exists());
+    logged_once(&s.records(), &all);
+}

@@ -71,11 +71,24 @@ fn takeable(ft: fs::FileType) -> bool {
 /// The frame files directly in `dir` ([`takeable`]: symbolic links are
 /// passed over), oldest first (then by name).
 pub fn list(dir: &Path, formats: &[String]) -> std::io::Result<Vec<Listed>> {
+    Ok(list_with_strays(dir, formats)?.0)
+}
+
+/// [`list`], and the entries whose names are not UTF-8 text (no record
+/// can name them: they are left alone, and said).
+pub fn list_with_strays(
+    dir: &Path,
+    formats: &[String],
+) -> std::io::Result<(Vec<Listed>, Vec<PathBuf>)> {
     let mut out = Vec::new();
+    let mut strays = Vec::new();
     for entry in fs::read_dir(dir)? {
         let Ok(entry) = entry else { continue };
         let name = entry.file_name();
-        let Some(name) = name.to_str() else { continue };
+        let Some(name) = name.to_str() else {
+            strays.push(entry.path());
+            continue;
+        };
         if !is_frame_name(name, formats) {
             continue;
         }
@@ -91,7 +104,7 @@ pub fn list(dir: &Path, formats: &[String]) -> std::io::Result<Vec<Listed>> {
         });
     }
     out.sort_by(|a, b| a.modified.cmp(&b.modified).then(a.path.cmp(&b.path)));
-    Ok(out)
+    Ok((out, strays))
 }
 
 /// A file's size and time stamp, as last seen.
@@ -246,6 +259,8 @@ pub(super) struct Intake {
     /// Files finished but left in place (their move or reject failed):
     /// not taken again before their time, which doubles with each try.
     backoff: HashMap<PathBuf, Backoff>,
+    /// Names that are not UTF-8 text, said once each while they stay.
+    strays: HashSet<PathBuf>,
     rescan_every: Duration,
     next_rescan: Instant,
     /// Set by the watcher's callback when its channel was full.
@@ -296,6 +311,7 @@ impl Intake {
             ready: VecDeque::new(),
             known: HashSet::new(),
             backoff: HashMap::new(),
+            strays: HashSet::new(),
             rescan_every,
             next_rescan: now,
             overflow,
@@ -540,8 +556,18 @@ impl Intake {
     /// observed by the settle tracker (a file first seen now is ready only
     /// with a settle time of zero); the ready ones are queued oldest first.
     fn rescan(&mut self, now: Instant) {
-        match list(&self.dir, &self.formats) {
-            Ok(listed) => {
+        match list_with_strays(&self.dir, &self.formats) {
+            Ok((listed, strays)) => {
+                for p in &strays {
+                    if !self.strays.contains(p) {
+                        warn!(
+                            "a file in the {} whose name is not UTF-8 text is left alone (no record could name it); rename it: {:?}",
+                            self.what,
+                            p.as_os_str()
+                        );
+                    }
+                }
+                self.strays = strays.into_iter().collect();
                 self.settle.retain_listed(&listed);
                 let done: Vec<PathBuf> = listed
                     .iter()
