@@ -1077,3 +1077,41 @@ fn a_name_that_is_not_utf8_is_said_once_and_left_alone() {
     assert!(odd.exists());
     logged_once(&s.records(), &all);
 }
+
+/// Regression (a fault probe: an inbox deleted and made again was no
+/// longer watched; its frames waited for the next listing, without a
+/// word): the daemon says the inbox is gone, watches it anew when it is
+/// back, and frames put there after are found by their file events alone
+/// (listing is set to once an hour here).
+#[test]
+fn an_inbox_deleted_and_made_again_is_watched_anew() {
+    let s = Setup::new(
+        "[watch]\nsettle_millis = 50\nrescan_seconds = 3600\n[status]\nenabled = false\n",
+    );
+    let mut d = s.start_watching();
+    let all = frames(10, 47);
+    let (before, after) = all.split_at(5);
+    for (n, b) in before {
+        s.drop_frame(n, b);
+    }
+    wait_for("the first frames to be archived", 60, || {
+        s.names_in("archive").len() == 5
+    });
+    std::fs::remove_dir_all(s.inbox()).unwrap();
+    wait_for("the daemon to say the inbox is gone", 60, || {
+        s.stderr().contains("inbox is gone")
+    });
+    std::fs::create_dir(s.inbox()).unwrap();
+    wait_for("the daemon to watch the inbox anew", 60, || {
+        s.stderr().contains("watching it anew")
+    });
+    for (n, b) in after {
+        s.drop_frame(n, b);
+    }
+    wait_for("the later frames to be archived", 60, || {
+        s.names_in("archive").len() == 10
+    });
+    signal(&d, libc::SIGTERM);
+    assert_eq!(exit_code(&mut d, 20), 0, "{}", s.stderr());
+    logged_once(&s.records(), &all);
+}

@@ -27,7 +27,7 @@ use std::sync::atomic::{AtomicBool, Ordering};
 use std::sync::Arc;
 use std::time::{Duration, Instant, SystemTime};
 
-use crossbeam_channel::{bounded, Receiver, RecvError};
+use crossbeam_channel::{bounded, Receiver, RecvError, Sender};
 use notify::{EventKind, RecursiveMode, Watcher};
 use tracing::{debug, info, warn};
 
@@ -267,8 +267,40 @@ pub(super) struct Intake {
     overflow: Arc<AtomicBool>,
     events: Receiver<notify::Result<notify::Event>>,
     _watcher: Option<notify::RecommendedWatcher>,
+    /// The watcher's channel, kept to watch the folder again when it is
+    /// replaced (`None`: file events are off).
+    tx: Option<Sender<notify::Result<notify::Event>>>,
     /// File events arrive (false: off, or the watcher stopped).
     events_on: bool,
+    /// The folder's device and inode as watched, and whether it is gone;
+    /// checked every [`FOLDER_CHECK`].
+    folder: Option<(u64, u64)>,
+    gone: bool,
+    next_folder_check: Instant,
+}
+
+/// How often an intake checks that its folder is still the one it watches.
+const FOLDER_CHECK: Duration = Duration::from_millis(500);
+
+/// A watcher of `dir` sending to `tx`, setting `flag` when the channel is
+/// full.
+fn watcher_of(
+    dir: &Path,
+    tx: Sender<notify::Result<notify::Event>>,
+    flag: Arc<AtomicBool>,
+) -> notify::Result<notify::RecommendedWatcher> {
+    let mut w = notify::recommended_watcher(move |ev| {
+        if tx.try_send(ev).is_err() {
+            flag.store(true, Ordering::Relaxed);
+        }
+    })?;
+    w.watch(dir, RecursiveMode::NonRecursive)?;
+    Ok(w)
+}
+
+fn folder_id(dir: &Path) -> Option<(u64, u64)> {
+    use std::os::unix::fs::MetadataExt;
+    fs::metadata(dir).ok().map(|m| (m.dev(), m.ino()))
 }
 
 impl Intake {
@@ -290,18 +322,12 @@ impl Intake {
         let cannot = |e: notify::Error| {
             Error::daemon(format!("cannot watch the {what}: {e}")).with_path(dir)
         };
-        let (watcher, events) = if use_events {
-            let mut w = notify::recommended_watcher(move |ev| {
-                if tx.try_send(ev).is_err() {
-                    flag.store(true, Ordering::Relaxed);
-                }
-            })
-            .map_err(cannot)?;
-            w.watch(dir, RecursiveMode::NonRecursive).map_err(cannot)?;
-            (Some(w), rx)
+        let (watcher, events, tx) = if use_events {
+            let w = watcher_of(dir, tx.clone(), flag).map_err(cannot)?;
+            (Some(w), rx, Some(tx))
         } else {
             info!("file events are off: the {what} is found by listing alone");
-            (None, crossbeam_channel::never())
+            (None, crossbeam_channel::never(), None)
         };
         Ok(Intake {
             what,
@@ -318,7 +344,59 @@ impl Intake {
             events,
             events_on: watcher.is_some(),
             _watcher: watcher,
+            tx,
+            folder: folder_id(dir),
+            gone: false,
+            next_folder_check: now + FOLDER_CHECK,
         })
+    }
+
+    /// Checks that the folder is still the one watched. A folder deleted is
+    /// said once; one made again (or replaced by another) is watched anew,
+    /// said, and listed at once, so its files are not left to the next
+    /// listing (a fault probe found them waiting up to a listing period,
+    /// without a word).
+    fn check_folder(&mut self, now: Instant) {
+        if now < self.next_folder_check {
+            return;
+        }
+        self.next_folder_check = now + FOLDER_CHECK;
+        let Some(id) = folder_id(&self.dir) else {
+            if !self.gone {
+                warn!(
+                    folder = %self.dir.display(),
+                    "the {} is gone; its files are taken again once it is back", self.what
+                );
+                self.gone = true;
+            }
+            return;
+        };
+        if !self.gone && self.folder == Some(id) {
+            return;
+        }
+        self.folder = Some(id);
+        self.gone = false;
+        self.settle.forget_announcements();
+        self.next_rescan = now;
+        let Some(tx) = &self.tx else {
+            info!(folder = %self.dir.display(), "the {} is there again", self.what);
+            return;
+        };
+        self._watcher = None;
+        match watcher_of(&self.dir, tx.clone(), self.overflow.clone()) {
+            Ok(w) => {
+                self._watcher = Some(w);
+                self.events_on = true;
+                warn!(folder = %self.dir.display(), "the {} was made again or replaced; watching it anew", self.what);
+            }
+            Err(e) => {
+                self.events_on = false;
+                warn!(
+                    folder = %self.dir.display(),
+                    "the {} was made again or replaced and cannot be watched ({e}); it is found by listing alone", self.what
+                );
+            }
+        }
     }
 
     /// Files found and not handed out yet: ready, or settling.
@@ -424,6 +502,7 @@ impl Intake {
     /// Stats the files that are settling; those unchanged long enough
     /// become ready, oldest first.
     pub fn tick(&mut self, now: Instant) {
+        self.check_folder(now);
         let mut done: Vec<Listed> = Vec::new();
         for path in self.settle.paths() {
             match fs::symlink_metadata(&path) {
