@@ -1115,3 +1115,61 @@ fn an_inbox_deleted_and_made_again_is_watched_anew() {
     assert_eq!(exit_code(&mut d, 20), 0, "{}", s.stderr());
     logged_once(&s.records(), &all);
 }
+
+/// Regression (a fault probe: `check` said "ready to run" for folders the
+/// daemon's user could not write): `check` run as an unprivileged user on
+/// folders only root may write names each folder and why. Needs root (to
+/// become another user with `runuser`, from Debian's util-linux); skipped
+/// otherwise.
+#[test]
+fn check_names_folders_the_user_cannot_write() {
+    // SAFETY: geteuid has no preconditions.
+    if unsafe { libc::geteuid() } != 0 || crate::util::tool("runuser", "util-linux").is_none() {
+        eprintln!("skipped: needs root and runuser to run check as another user");
+        return;
+    }
+    use std::os::unix::fs::PermissionsExt;
+    let s = Setup::new("");
+    for f in ["archive", "rejected", "corrections", "logs"] {
+        std::fs::create_dir_all(s.dir.join(f)).unwrap();
+    }
+    // Readable by everyone (the temporary folder is the owner's alone),
+    // writable by root only.
+    for p in [s.dir.path().to_path_buf(), s.inbox(), s.dir.join("state")] {
+        std::fs::set_permissions(&p, std::fs::Permissions::from_mode(0o755)).unwrap();
+    }
+    for f in ["archive", "rejected", "corrections", "logs"] {
+        std::fs::set_permissions(s.dir.join(f), std::fs::Permissions::from_mode(0o755)).unwrap();
+    }
+    std::fs::set_permissions(s.config(), std::fs::Permissions::from_mode(0o644)).unwrap();
+    std::fs::set_permissions(
+        s.dir.join("state/model.json"),
+        std::fs::Permissions::from_mode(0o644),
+    )
+    .unwrap();
+    let out = std::process::Command::new("runuser")
+        .args(["-u", "nobody", "--"])
+        .arg(env!("CARGO_BIN_EXE_burlwatch"))
+        .args(["check", "--config"])
+        .arg(s.config())
+        .current_dir("/")
+        .output()
+        .unwrap();
+    let stdout = String::from_utf8_lossy(&out.stdout);
+    assert_eq!(out.status.code(), Some(1), "{stdout}");
+    for key in ["folders.inbox", "folders.archive", "folders.logs"] {
+        assert!(
+            stdout
+                .lines()
+                .any(|l| l.contains(key) && l.contains("cannot be written by this user")),
+            "{key}: {stdout}"
+        );
+    }
+    assert!(!stdout.contains("ready to run"), "{stdout}");
+    // As root the same folders are ready.
+    let ok = crate::util::burlwatch(
+        s.dir.path(),
+        &["check", "--config", s.config().to_str().unwrap()],
+    );
+    assert_eq!(ok.code, 0, "{}", ok.stdout);
+}

@@ -28,19 +28,84 @@ impl Finding {
     }
 }
 
-/// Every folder: a usable folder, or missing with a parent it can be made
-/// in.
+/// Below this much free space in a folder's filesystem, the daemon cannot
+/// be expected to run (a frame, its record and its move need room).
+pub const LEAST_FREE_BYTES: u64 = 16 << 20;
+/// Below this, a folder's finding says how little is left.
+pub const LOW_FREE_BYTES: u64 = 1 << 30;
+
+/// Whether this process (its real user: run `check` as the daemon's user)
+/// may create and delete files in `dir`; the error says why not (a
+/// read-only filesystem counts).
+fn writable(dir: &Path) -> std::result::Result<(), std::io::Error> {
+    use std::os::unix::ffi::OsStrExt;
+    let c = std::ffi::CString::new(dir.as_os_str().as_bytes()).map_err(std::io::Error::other)?;
+    // SAFETY: access with a valid NUL-terminated path; no memory is kept.
+    if unsafe { libc::access(c.as_ptr(), libc::W_OK | libc::X_OK) } == 0 {
+        Ok(())
+    } else {
+        Err(std::io::Error::last_os_error())
+    }
+}
+
+/// Free bytes and free inodes of the filesystem `dir` is on (for this
+/// process's user).
+pub fn free_space(dir: &Path) -> Option<(u64, u64)> {
+    use std::os::unix::ffi::OsStrExt;
+    let c = std::ffi::CString::new(dir.as_os_str().as_bytes()).ok()?;
+    // SAFETY: statvfs fills the struct we pass, from a valid path.
+    let mut v: libc::statvfs = unsafe { std::mem::zeroed() };
+    if unsafe { libc::statvfs(c.as_ptr(), &mut v) } != 0 {
+        return None;
+    }
+    Some((
+        (v.f_bavail as u64).saturating_mul(v.f_frsize as u64),
+        v.f_favail as u64,
+    ))
+}
+
+/// Every folder: a folder this user may write in, on a filesystem with
+/// room, or missing with a parent it can be made in.
 pub fn folders(folders: &Folders) -> Vec<Finding> {
+    folders_with(folders, true)
+}
+
+/// [`folders`] as the daemon checks them at start: a full filesystem is
+/// not a reason to stop (frames wait in the inbox until there is room),
+/// so with `space` false it is not checked.
+pub fn folders_with(folders: &Folders, space: bool) -> Vec<Finding> {
     let mut out = Vec::new();
     for (name, dir) in folders.named() {
         out.push(match std::fs::metadata(dir) {
             Ok(m) if m.is_dir() => {
-                let ro = m.permissions().readonly();
-                Finding::new(
-                    name,
-                    !ro,
-                    format!("{}{}", dir.display(), if ro { " is read-only" } else { "" }),
-                )
+                let mut problems = Vec::new();
+                let mut notes = Vec::new();
+                if let Err(e) = writable(dir) {
+                    problems.push(format!(
+                        "cannot be written by this user ({e}); the daemon must create, move and delete files here"
+                    ));
+                }
+                if let Some((bytes, inodes)) = free_space(dir).filter(|_| space) {
+                    if bytes < LEAST_FREE_BYTES || inodes < 100 {
+                        problems.push(format!(
+                            "its filesystem is full ({:.1} MB, {inodes} inodes free)",
+                            bytes as f64 / 1e6
+                        ));
+                    } else if bytes < LOW_FREE_BYTES {
+                        notes.push(format!(
+                            "only {:.0} MB free on its filesystem",
+                            bytes as f64 / 1e6
+                        ));
+                    }
+                }
+                let ok = problems.is_empty();
+                problems.extend(notes);
+                let detail = if problems.is_empty() {
+                    dir.display().to_string()
+                } else {
+                    format!("{}: {}", dir.display(), problems.join("; "))
+                };
+                Finding::new(name, ok, detail)
             }
             Ok(_) => Finding::new(name, false, format!("{} is not a folder", dir.display())),
             Err(_) => {

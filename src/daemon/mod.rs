@@ -193,7 +193,10 @@ pub fn run_with(
 ) -> Result<Summary> {
     let Config { mut start, live } = cfg;
     learner::map_large_blocks();
-    if let Some(bad) = checks::folders(&start.folders).into_iter().find(|f| !f.ok) {
+    if let Some(bad) = checks::folders_with(&start.folders, false)
+        .into_iter()
+        .find(|f| !f.ok)
+    {
         return Err(Error::daemon(format!("{}: {}", bad.what, bad.detail)));
     }
     start.folders = start::make_folders(&start.folders)?;
