@@ -28,6 +28,10 @@ impl RecordSink for Report {
             Finished::AlreadyLogged { frame } => ("already", name(frame)),
             Finished::Rejected { frame, .. } => ("rejected", name(frame)),
             Finished::Left { frame } => ("left", name(frame)),
+            Finished::Trouble { what, error } => (
+                if error.is_some() { "trouble" } else { "works" },
+                what.to_string(),
+            ),
         });
     }
 }
@@ -552,4 +556,32 @@ fn check_with_promtool(text: &str) {
         String::from_utf8_lossy(&out.stdout),
         String::from_utf8_lossy(&out.stderr)
     );
+}
+
+/// Issue 14: the detection log cannot be written for a while (a full
+/// disk, here the fault plan's first 25 writes): the frames stay in the
+/// inbox and are tried again with backoff, the trouble is told once when
+/// it starts and once when it ends (not once per frame), and every frame
+/// is logged once when writing works again.
+#[test]
+fn a_log_that_cannot_be_written_for_a_while_loses_nothing_and_says_so_once() {
+    let b = Box_::new();
+    let cfg =
+        b.config("[watch]\nrescan_seconds = 0.05\nsettle_millis = 20\n[status]\nenabled = false\n");
+    let faults = Faults::plan(|op, n, _| op == Fault::Write && n < 25);
+    let d = start(cfg, None, None, faults);
+    let all = frames(10, 23);
+    b.drop_frames(&all);
+    let seen = d.wait_until(|s| s.iter().filter(|(k, _)| *k == "logged").count() == 10);
+    let count = |k: &str| seen.iter().filter(|(kind, _)| *kind == k).count();
+    assert_eq!(count("trouble"), 1, "{seen:?}");
+    assert_eq!(count("works"), 1, "{seen:?}");
+    assert!(count("left") >= 10, "{seen:?}");
+    let at = |k: &str| seen.iter().position(|(kind, _)| *kind == k).unwrap();
+    assert!(at("trouble") < at("works") && at("works") < at("logged"));
+    d.stop();
+    let mut names: Vec<String> = b.records().into_iter().map(|r| r.frame).collect();
+    names.sort();
+    let want: Vec<String> = all.iter().map(|(n, _)| n.clone()).collect();
+    assert_eq!(names, want, "one record per frame");
 }

@@ -27,6 +27,14 @@ pub enum Finished<'a> {
     /// Not moved (gone, changed since read, or a log or move error): the
     /// next listing decides.
     Left { frame: &'a Path },
+    /// An operation the writer repeats for every frame (writing the log,
+    /// moving to the archive or to `rejected/`) started or kept failing
+    /// (`error`), or works again (`None`). Said once per change, not per
+    /// frame.
+    Trouble {
+        what: &'a str,
+        error: Option<&'a str>,
+    },
 }
 
 /// A subscriber to finished frames.
@@ -69,7 +77,7 @@ impl Summary {
             }
             Finished::AlreadyLogged { .. } => self.already_logged += 1,
             Finished::Rejected { .. } => self.rejected += 1,
-            Finished::Left { .. } => {}
+            Finished::Left { .. } | Finished::Trouble { .. } => {}
         }
     }
 }

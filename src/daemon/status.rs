@@ -22,6 +22,7 @@
 //! - Metric names are our own, under `burlwatch_`; counters count from the
 //!   daemon's start and end in `_total`.
 
+use std::collections::BTreeMap;
 use std::convert::Infallible;
 use std::net::SocketAddr;
 use std::sync::atomic::{AtomicBool, AtomicI64, AtomicU64, Ordering};
@@ -82,6 +83,9 @@ pub struct Board {
     events: AtomicBool,
     model: Mutex<(u64, String)>,
     started: AtomicI64,
+    /// Operations failing for every frame now (writing the log, moving
+    /// frames), with their error.
+    troubles: Mutex<BTreeMap<String, String>>,
 }
 
 impl Board {
@@ -141,6 +145,18 @@ impl Board {
                 self.rejected.fetch_add(1, Ordering::Relaxed);
             }
             Finished::Left { .. } => return,
+            Finished::Trouble { what, error } => {
+                let mut t = self.troubles.lock().unwrap_or_else(|p| p.into_inner());
+                match error {
+                    Some(e) => {
+                        t.insert(what.to_string(), e.to_string());
+                    }
+                    None => {
+                        t.remove(*what);
+                    }
+                }
+                return;
+            }
         }
         self.last_frame.store(now_ms(), Ordering::Relaxed);
     }
@@ -157,6 +173,14 @@ impl Board {
         }
         if self.writer_lost.load(Ordering::Relaxed) {
             p.push("the detection log writer stopped".into());
+        }
+        for (what, e) in self
+            .troubles
+            .lock()
+            .unwrap_or_else(|p| p.into_inner())
+            .iter()
+        {
+            p.push(format!("{what} fails: {e}; frames wait in the inbox"));
         }
         if self.workers_lost.load(Ordering::Relaxed) {
             p.push("every detection worker stopped".into());
@@ -463,5 +487,33 @@ fn answer<B>(req: &Request<B>, board: &Board, watch: Option<&Watch>) -> Response
             "text/plain; charset=utf-8",
             "not found: /metrics and /healthz are served\n".into(),
         ),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn a_failing_operation_makes_the_daemon_unhealthy_until_it_works() {
+        let b = Board::new();
+        assert!(b.problems().is_empty());
+        b.record(&Finished::Trouble {
+            what: "writing the detection log",
+            error: Some("No space left on device (os error 28)"),
+        });
+        let p = b.problems();
+        assert_eq!(p.len(), 1);
+        assert!(
+            p[0].contains("writing the detection log fails: No space left"),
+            "{p:?}"
+        );
+        assert!(!b.health(Vec::new()).healthy);
+        b.record(&Finished::Trouble {
+            what: "writing the detection log",
+            error: None,
+        });
+        assert!(b.problems().is_empty());
+        assert!(b.health(Vec::new()).healthy);
     }
 }

@@ -25,7 +25,7 @@ use std::path::{Path, PathBuf};
 use std::time::{Duration, Instant};
 
 use crossbeam_channel::{select, Receiver, Sender};
-use tracing::{debug, error, warn};
+use tracing::{debug, error, info, warn};
 
 use super::detlog::{line_of, DetectionLog, Key, Settled};
 use super::faults::{Fault, Faults};
@@ -74,6 +74,83 @@ pub(super) struct Writer {
     faults: Faults,
     out: Sender<FromWriter>,
     sinks: Vec<Box<dyn RecordSink>>,
+    troubles: Troubles,
+}
+
+/// The operations the writer repeats for every frame, by name.
+pub const LOG_WRITE: &str = "writing the detection log";
+pub const ARCHIVE_MOVE: &str = "moving frames to the archive";
+pub const REJECT_MOVE: &str = "moving files to rejected/";
+
+/// While an operation fails, it is said again this often.
+pub const TROUBLE_REPEAT: Duration = Duration::from_secs(600);
+
+/// One failing operation.
+#[derive(Debug)]
+struct Trouble {
+    since: Instant,
+    failures: u64,
+    said: Instant,
+}
+
+/// Failing operations: said once when they start failing, again every
+/// [`TROUBLE_REPEAT`] while they last, and once when they work again,
+/// rather than once per frame (a full disk fails every frame).
+#[derive(Debug, Default)]
+struct Troubles(HashMap<&'static str, Trouble>);
+
+impl Troubles {
+    /// Counts a failure; whether it is the first of a run of failures.
+    fn fail(&mut self, what: &'static str, e: &str, frame: &Path) -> bool {
+        let now = Instant::now();
+        match self.0.get_mut(what) {
+            None => {
+                error!(
+                    frame = ?frame,
+                    "{what} fails: {e}; frames stay in the inbox and are tried again, less often each time (said again every {} minutes while it lasts)",
+                    TROUBLE_REPEAT.as_secs() / 60
+                );
+                self.0.insert(
+                    what,
+                    Trouble {
+                        since: now,
+                        failures: 1,
+                        said: now,
+                    },
+                );
+                true
+            }
+            Some(t) => {
+                t.failures += 1;
+                if now.duration_since(t.said) >= TROUBLE_REPEAT {
+                    t.said = now;
+                    error!(
+                        "{what} still fails ({} failures over {:.0} s): {e}",
+                        t.failures,
+                        now.duration_since(t.since).as_secs_f64()
+                    );
+                } else {
+                    debug!(frame = ?frame, "{what} fails: {e}");
+                }
+                false
+            }
+        }
+    }
+
+    /// An operation worked; whether it had been failing.
+    fn ok(&mut self, what: &'static str) -> bool {
+        match self.0.remove(what) {
+            Some(t) => {
+                info!(
+                    "{what} works again, after {} failure(s) over {:.0} s",
+                    t.failures,
+                    t.since.elapsed().as_secs_f64()
+                );
+                true
+            }
+            None => false,
+        }
+    }
 }
 
 /// However the writer ends, its subscribers hear that the run is over.
@@ -112,6 +189,7 @@ impl Writer {
             faults,
             out,
             sinks,
+            troubles: Troubles::default(),
         }
     }
 
@@ -183,15 +261,18 @@ impl Writer {
                     .check(Fault::Move, &job.path)
                     .and_then(|()| files::reject(&job.path, &self.rejected, &reason));
                 match moved {
-                    Ok(_) => self.finish(
-                        &job.path,
-                        &Finished::Rejected {
-                            frame: &job.path,
-                            reason: &reason,
-                        },
-                    ),
+                    Ok(_) => {
+                        self.works(REJECT_MOVE);
+                        self.finish(
+                            &job.path,
+                            &Finished::Rejected {
+                                frame: &job.path,
+                                reason: &reason,
+                            },
+                        )
+                    }
                     Err(e) => {
-                        error!(frame = %job.path.display(), "cannot move the frame to rejected/: {e}");
+                        self.fails(REJECT_MOVE, &e.to_string(), &job.path);
                         self.left(job.path);
                     }
                 }
@@ -221,7 +302,7 @@ impl Writer {
                         self.first_unsynced.get_or_insert_with(Instant::now);
                     }
                     Err((e, p)) => {
-                        error!(frame = %p.path.display(), "cannot write the detection log: {e}; the frame stays in the inbox");
+                        self.fails(LOG_WRITE, &e.to_string(), &p.path);
                         self.left(p.path);
                     }
                 }
@@ -248,11 +329,16 @@ impl Writer {
     /// Syncs the log and settles every record whose fate it reports.
     fn sync(&mut self) {
         let (settled, error) = self.log.sync();
-        if let Some(e) = &error {
-            error!(
-                "cannot sync the detection log: {e}; {} frame(s) stay in the inbox",
-                settled.lost.len()
-            );
+        match &error {
+            Some(e) => {
+                let frame = settled
+                    .lost
+                    .first()
+                    .map_or_else(PathBuf::new, |p| p.path.clone());
+                self.fails(LOG_WRITE, &format!("cannot sync it: {e}"), &frame);
+            }
+            None if !settled.durable.is_empty() => self.works(LOG_WRITE),
+            None => {}
         }
         self.first_unsynced = None;
         self.settle(settled);
@@ -288,6 +374,7 @@ impl Writer {
             .and_then(|()| files::move_into(path, &self.archive));
         match moved {
             Ok(_) => {
+                self.works(ARCHIVE_MOVE);
                 self.unmoved.forget(name);
                 if already_logged {
                     self.tell(&Finished::AlreadyLogged { frame: path });
@@ -295,12 +382,30 @@ impl Writer {
                 let _ = self.out.send(FromWriter::Done(path.to_path_buf()));
             }
             Err(e) => {
-                error!(frame = %path.display(), "cannot move the frame to the archive: {e}");
+                self.fails(ARCHIVE_MOVE, &e.to_string(), path);
                 if std::fs::symlink_metadata(path).is_err() {
                     self.unmoved.forget(name);
                 }
                 self.left(path.to_path_buf());
             }
+        }
+    }
+
+    /// An operation failed for `frame`: said (once per run of failures)
+    /// and told to the subscribers when it starts failing.
+    fn fails(&mut self, what: &'static str, e: &str, frame: &Path) {
+        if self.troubles.fail(what, e, frame) {
+            self.tell(&Finished::Trouble {
+                what,
+                error: Some(e),
+            });
+        }
+    }
+
+    /// An operation worked: if it had been failing, said and told.
+    fn works(&mut self, what: &'static str) {
+        if self.troubles.ok(what) {
+            self.tell(&Finished::Trouble { what, error: None });
         }
     }
 
