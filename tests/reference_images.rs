@@ -36,10 +36,23 @@ pub(crate) mod counting {
 
     thread_local! {
         static BYTES: Cell<u64> = const { Cell::new(0) };
+        /// Bytes this thread holds (memory freed on another thread than
+        /// the one that took it is counted where it is freed), and the
+        /// most it held since `held_at_most` began.
+        static LIVE: Cell<i64> = const { Cell::new(0) };
+        static PEAK: Cell<i64> = const { Cell::new(0) };
     }
 
     fn add(n: usize) {
         let _ = BYTES.try_with(|b| b.set(b.get().wrapping_add(n as u64)));
+    }
+
+    fn hold(n: i64) {
+        let _ = LIVE.try_with(|l| {
+            let v = l.get() + n;
+            l.set(v);
+            let _ = PEAK.try_with(|p| p.set(p.get().max(v)));
+        });
     }
 
     // SAFETY: every method hands the caller's arguments, unchanged, to the
@@ -48,23 +61,36 @@ pub(crate) mod counting {
     unsafe impl GlobalAlloc for Counting {
         unsafe fn alloc(&self, l: Layout) -> *mut u8 {
             add(l.size());
+            hold(l.size() as i64);
             // SAFETY: the caller keeps `GlobalAlloc`'s contract; passed on as is.
             unsafe { System.alloc(l) }
         }
         unsafe fn alloc_zeroed(&self, l: Layout) -> *mut u8 {
             add(l.size());
+            hold(l.size() as i64);
             // SAFETY: the caller keeps `GlobalAlloc`'s contract; passed on as is.
             unsafe { System.alloc_zeroed(l) }
         }
         unsafe fn realloc(&self, p: *mut u8, l: Layout, new_size: usize) -> *mut u8 {
             add(new_size);
+            hold(new_size as i64 - l.size() as i64);
             // SAFETY: the caller keeps `GlobalAlloc`'s contract; passed on as is.
             unsafe { System.realloc(p, l, new_size) }
         }
         unsafe fn dealloc(&self, p: *mut u8, l: Layout) {
+            hold(-(l.size() as i64));
             // SAFETY: the caller keeps `GlobalAlloc`'s contract; passed on as is.
             unsafe { System.dealloc(p, l) }
         }
+    }
+
+    /// Runs `f` and returns its result with the most heap this thread held
+    /// at once meanwhile, above what it held before.
+    pub fn held_at_most<T>(f: impl FnOnce() -> T) -> (T, i64) {
+        let before = LIVE.with(Cell::get);
+        PEAK.with(|p| p.set(before));
+        let r = f();
+        (r, PEAK.with(Cell::get) - before)
     }
 
     /// Runs `f` and returns its result with the bytes this thread allocated.

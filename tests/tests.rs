@@ -17,7 +17,10 @@
 //!   control channel and disk faults in the test's hands;
 //! - `review`: `burlwatch log` over a generated month of logs;
 //! - `learning`: corrections, changeovers, retraining behind the gate and
-//!   the model registry, through the real binary, with kills.
+//!   the model registry, through the real binary, with kills;
+//! - `fuzz`: the readers of outside input (PBM, PNG, model, configuration
+//!   and correction files) on mutated inputs: no panic, no hang, no
+//!   allocation past the limits (counted by this binary's allocator, in `reference_images`).
 
 mod util;
 
@@ -25,6 +28,7 @@ mod cli;
 mod compiled;
 mod daemon;
 mod drift;
+mod fuzz;
 mod inprocess;
 mod learning;
 mod properties;
