@@ -20,7 +20,12 @@
 //! The feeder and the timing watcher run on the same 2 cores as the
 //! daemon, so the figures are for the whole box.
 //!
-//! Environment: `BURLWATCH_BENCH_ONLY=status` runs only the endpoint's
+//! 4. with `BURLWATCH_BENCH_ONLY=soak` alone: 100,000 frames
+//!    (`BURLWATCH_SOAK_FRAMES`) fed as fast as they are taken, reporting
+//!    resident memory, open files and the logs' and archive's size every
+//!    10,000.
+//!
+//! Environment: `BURLWATCH_BENCH_ONLY=daemon`, `status` or `soak` runs one
 //! part; `BURLWATCH_BENCH_FRAMES` (default 5000) for the
 //! throughput runs.
 
@@ -182,10 +187,85 @@ fn main() {
         .unwrap_or(5000);
 
     let only = std::env::var("BURLWATCH_BENCH_ONLY").unwrap_or_default();
-    if only != "status" {
+    if only.is_empty() || only == "daemon" {
         throughput_latency_memory(&model, &frames, n);
     }
-    status_endpoint(&model, &frames);
+    if only.is_empty() || only == "status" {
+        status_endpoint(&model, &frames);
+    }
+    if only == "soak" {
+        soak(&model, &frames);
+    }
+}
+
+/// Open file descriptors of a process.
+fn fds(pid: u32) -> usize {
+    std::fs::read_dir(format!("/proc/{pid}/fd")).map_or(0, |d| d.count())
+}
+
+/// Bytes of the files directly in `dir`.
+fn folder_bytes(dir: &Path) -> u64 {
+    std::fs::read_dir(dir)
+        .map(|d| {
+            d.filter_map(|e| e.ok())
+                .filter_map(|e| e.metadata().ok())
+                .filter(|m| m.is_file())
+                .map(|m| m.len())
+                .sum()
+        })
+        .unwrap_or(0)
+}
+
+/// The soak: `BURLWATCH_SOAK_FRAMES` (100,000) frames fed as fast as the
+/// daemon takes them (a backlog of at most 300 in the inbox), with small
+/// log files (4 MiB, 3 kept) and a 100 MB archive: resident memory, open
+/// file descriptors, and the logs' and archive's size at every 10,000.
+fn soak(model: &str, frames: &[Vec<u8>]) {
+    let total: usize = std::env::var("BURLWATCH_SOAK_FRAMES")
+        .ok()
+        .and_then(|s| s.parse().ok())
+        .unwrap_or(100_000);
+    let b = start(
+        model,
+        "[log]\nsync = \"batch\"\nrotate_bytes = 4194304\nkeep_files = 3\n[archive]\nkeep_bytes = 100000000\n[status]\nenabled = false\n",
+        "soak",
+    );
+    let arrivals = Arrivals::watch(&b.root.join("archive"));
+    let stage = b.root.join("stage");
+    std::fs::create_dir_all(&stage).unwrap();
+    let pid = b.child.id();
+    let t0 = Instant::now();
+    println!(
+        "soak start: RSS {:.1} MB, {} open files",
+        rss_kib(pid) as f64 / 1024.0,
+        fds(pid)
+    );
+    for i in 0..total {
+        while i > arrivals.count.load(Ordering::Relaxed) + 300 {
+            std::thread::sleep(Duration::from_millis(1));
+        }
+        let name = format!("s{i:07}.pbm");
+        std::fs::write(stage.join(&name), &frames[i % frames.len()]).unwrap();
+        std::fs::rename(stage.join(&name), b.root.join("inbox").join(&name)).unwrap();
+        if (i + 1) % 10_000 == 0 {
+            arrivals.wait_count(i + 1, 300);
+            println!(
+                "soak {:>7} frames ({:.0} s): RSS {:.1} MB, {} open files, logs {:.1} MB, archive {:.1} MB",
+                i + 1,
+                t0.elapsed().as_secs_f64(),
+                rss_kib(pid) as f64 / 1024.0,
+                fds(pid),
+                folder_bytes(&b.root.join("logs")) as f64 / 1e6,
+                folder_bytes(&b.root.join("archive")) as f64 / 1e6,
+            );
+        }
+    }
+    let err = std::fs::read_to_string(b.root.join("stderr")).unwrap_or_default();
+    println!(
+        "soak done: {total} frames in {:.0} s; the daemon said {} error line(s)",
+        t0.elapsed().as_secs_f64(),
+        err.lines().filter(|l| l.contains("ERROR")).count()
+    );
 }
 
 fn throughput_latency_memory(model: &str, frames: &[Vec<u8>], n: usize) {

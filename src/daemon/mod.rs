@@ -379,6 +379,7 @@ pub fn run_with(
         writer_lost: false,
         last_progress: now,
         next_prune: now + Duration::from_secs(3600),
+        finished_since_prune: 0,
         counts: counts.clone(),
         summary_every,
         next_summary: now + summary_every,
@@ -437,6 +438,11 @@ fn stall_time(sync: SyncPolicy) -> Duration {
 }
 
 /// Archive retention, logged when it deletes anything.
+/// Archive retention runs at start, every hour, and after this many
+/// frames, so a fast line cannot overrun `archive.keep_bytes` by more than
+/// that many frames.
+pub const PRUNE_FRAMES: u64 = 10_000;
+
 fn prune(start: &StartConfig, live: &LiveConfig, now: SystemTime) {
     match files::prune_archive(&start.folders.archive, live.retention, now) {
         Ok(n) if n > 0 => info!(deleted = n, "archive retention"),
@@ -495,6 +501,8 @@ struct MainLoop {
     writer_lost: bool,
     last_progress: Instant,
     next_prune: Instant,
+    /// Frames finished since archive retention last ran.
+    finished_since_prune: u64,
     /// The run's counts, and what the last summary line had counted.
     counts: Counter,
     summary_every: Duration,
@@ -522,6 +530,7 @@ impl MainLoop {
                 Event::Writer(FromWriter::Taken) => self.in_flight -= 1,
                 Event::Writer(FromWriter::Done(path)) => {
                     self.unfinished -= 1;
+                    self.finished_since_prune += 1;
                     self.inbox.finished(&path, self.clock.now());
                     self.last_progress = self.clock.now();
                 }
@@ -625,8 +634,9 @@ impl MainLoop {
             (self.unfinished > 0 || waiting > 0) && overdue,
             self.inbox.events_on(),
         );
-        if now >= self.next_prune {
+        if now >= self.next_prune || self.finished_since_prune >= PRUNE_FRAMES {
             self.next_prune = now + Duration::from_secs(3600);
+            self.finished_since_prune = 0;
             prune(&self.start, &self.running.load().live, self.clock.wall());
         }
         if !self.summary_every.is_zero() && now >= self.next_summary {
