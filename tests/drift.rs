@@ -280,9 +280,7 @@ impl Box_ {
     }
 
     fn lines(&self, file: &str) -> Vec<serde_json::Value> {
-        std::fs::read_to_string(self.dir.join(file))
-            .unwrap_or_default()
-            .lines()
+        crate::util::whole_lines(&std::fs::read_to_string(self.dir.join(file)).unwrap_or_default())
             .map(|l| serde_json::from_str(l).unwrap())
             .collect()
     }
@@ -352,9 +350,7 @@ fn the_daemon_logs_and_sends_alerts_and_keeps_its_monitors_across_a_restart() {
     wait_for("an input alert", 60, || input_alerts(&b, "alert") > 0);
     // The command got exactly the logged lines.
     let parsed = |path: &PathBuf| -> Vec<serde_json::Value> {
-        std::fs::read_to_string(path)
-            .unwrap_or_default()
-            .lines()
+        crate::util::whole_lines(&std::fs::read_to_string(path).unwrap_or_default())
             .map(|l| serde_json::from_str(l).unwrap())
             .collect()
     };

@@ -127,7 +127,7 @@ impl Box_ {
     fn records(&self) -> Vec<FrameRecord> {
         let text =
             std::fs::read_to_string(self.dir.join("logs/detections.jsonl")).unwrap_or_default();
-        text.lines()
+        crate::util::whole_lines(&text)
             .map(|l| serde_json::from_str(l).unwrap())
             .collect()
     }

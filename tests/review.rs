@@ -363,11 +363,11 @@ fn reviewed_box(d: &Dir) -> (std::path::PathBuf, Vec<FrameRecord>) {
     .unwrap();
     let daemon = start_watching(&cfg, d.path(), &d.join("daemon.stderr"));
     let records = || -> Vec<FrameRecord> {
-        std::fs::read_to_string(d.join("logs/detections.jsonl"))
-            .unwrap_or_default()
-            .lines()
-            .map(|l| serde_json::from_str(l).unwrap())
-            .collect()
+        crate::util::whole_lines(
+            &std::fs::read_to_string(d.join("logs/detections.jsonl")).unwrap_or_default(),
+        )
+        .map(|l| serde_json::from_str(l).unwrap())
+        .collect()
     };
     let frames = synth::generate_set(&p, 78, 32);
     for (batch, chunk) in frames.chunks(4).enumerate() {

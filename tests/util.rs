@@ -213,3 +213,10 @@ pub fn tool(name: &str, package: &str) -> Option<PathBuf> {
     }
     found
 }
+
+/// The whole lines of a file another process may be appending to: a last
+/// line without its newline is still being written, and is left out.
+pub fn whole_lines(text: &str) -> impl Iterator<Item = &str> {
+    let end = text.rfind('\n').map_or(0, |i| i + 1);
+    text[..end].lines()
+}
