@@ -29,7 +29,7 @@ use crate::correct::{check_name, Correction};
 use crate::detect::compile::Scratch;
 use crate::detect::Detector;
 use crate::error::{Error, ErrorKind, Result};
-use crate::fileio::durable::{move_into, read_bounded, write_atomic};
+use crate::fileio::durable::{move_into, read_bounded_in_place, write_atomic};
 use crate::frame::LabelledFrame;
 use crate::record::{sha256_hex, FrameRecord};
 
@@ -151,7 +151,8 @@ pub fn find_archived(
     let mut seen_other = false;
     for name in names {
         let path = archive.join(&name);
-        let read = crate::fileio::data::read_frame_file(&path, &live.limits).map_err(|(e, _)| e)?;
+        let read = crate::fileio::data::read_frame_file_in_place(&path, &live.limits)
+            .map_err(|(e, _)| e)?;
         if sha256_hex(&read.bytes) == sha256 {
             return Ok((path, read.bytes));
         }
@@ -336,7 +337,7 @@ pub fn apply(
         .map(|n| n.to_string_lossy().into_owned())
         .unwrap_or_default();
     let dir = path.parent().unwrap_or(Path::new(".")).to_path_buf();
-    let bytes = match read_bounded(path, MAX_CORRECTION_BYTES, &|| "a correction".into()) {
+    let bytes = match read_bounded_in_place(path, MAX_CORRECTION_BYTES, &|| "a correction".into()) {
         Ok(b) => b.bytes,
         Err((e, _)) => {
             return match e.kind() {

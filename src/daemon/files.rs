@@ -138,8 +138,9 @@ pub fn folder_in_use(path: &Path) -> bool {
     !free
 }
 
-/// Reads a frame file, bounded, with the stamp of the version read.
-pub use crate::fileio::data::read_frame_file as read_frame;
+/// Reads a frame file, bounded, with the stamp of the version read; a
+/// symbolic link is refused, never followed.
+pub use crate::fileio::data::read_frame_file_in_place as read_frame;
 
 /// Whether a daemon holds the lock on `state`, without touching the lock
 /// file: `Some(pid)` when one does. A missing lock file means none.

@@ -82,6 +82,20 @@ pub fn read_frame_file(
     })
 }
 
+/// [`read_frame_file`] of a frame the daemon found in its inbox or
+/// archive: a symbolic link is refused, never followed.
+pub fn read_frame_file_in_place(
+    path: &Path,
+    limits: &DecodeLimits,
+) -> std::result::Result<super::durable::FileBytes, super::durable::ReadFailure> {
+    super::durable::read_bounded_in_place(path, max_file_bytes(limits), &|| {
+        format!(
+            "a frame of at most {}x{}",
+            limits.max_width, limits.max_height
+        )
+    })
+}
+
 /// What kind of file a name denotes in a data folder.
 enum Role {
     Frame(String),

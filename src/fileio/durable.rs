@@ -69,16 +69,50 @@ pub fn read_bounded(
     max: u64,
     what_fits: &dyn Fn() -> String,
 ) -> std::result::Result<FileBytes, ReadFailure> {
+    read_bounded_with(path, max, what_fits, true)
+}
+
+/// [`read_bounded`] of a file the daemon found in one of its folders: a
+/// symbolic link (one put in place of the file after it was listed) is
+/// refused, never followed, so no file elsewhere on the box is read, moved
+/// or quoted in a reason.
+pub fn read_bounded_in_place(
+    path: &Path,
+    max: u64,
+    what_fits: &dyn Fn() -> String,
+) -> std::result::Result<FileBytes, ReadFailure> {
+    read_bounded_with(path, max, what_fits, false)
+}
+
+fn read_bounded_with(
+    path: &Path,
+    max: u64,
+    what_fits: &dyn Fn() -> String,
+    follow: bool,
+) -> std::result::Result<FileBytes, ReadFailure> {
     use std::os::unix::fs::{FileTypeExt, OpenOptionsExt};
     let err = |e: io::Error| Error::from(e).with_path(path);
     // Without blocking: a FIFO put where a frame was would otherwise hold
     // the reader in open() until something writes to it, which may be
     // never. What was opened is checked to be a plain file before a read.
+    let nofollow = if follow { 0 } else { libc::O_NOFOLLOW };
     let file = fs::OpenOptions::new()
         .read(true)
-        .custom_flags(libc::O_NONBLOCK | libc::O_NOCTTY)
+        .custom_flags(libc::O_NONBLOCK | libc::O_NOCTTY | nofollow)
         .open(path)
-        .map_err(|e| (err(e), None))?;
+        .map_err(|e| {
+            if !follow && e.raw_os_error() == Some(libc::ELOOP) {
+                let stamp = fs::symlink_metadata(path).ok().map(|m| Stamp::of(&m));
+                return (
+                    Error::new(ErrorKind::Data(
+                        "is a symbolic link, not a plain file: not followed".into(),
+                    ))
+                    .with_path(path),
+                    stamp,
+                );
+            }
+            (err(e), None)
+        })?;
     let meta = file.metadata().map_err(|e| (err(e), None))?;
     let stamp = Stamp::of(&meta);
     let fail = |e: Error| (e.with_path(path), Some(stamp));
@@ -434,6 +468,20 @@ mod tests {
         assert_eq!(fs::read_to_string(&p).unwrap(), "frame b");
         assert!(!here.path().join("b.pbm").exists());
         assert_eq!(fs::read_dir(there.path()).unwrap().count(), 1);
+    }
+
+    /// A symbolic link put where a file was is refused by the daemon's
+    /// reader (never followed), and read through by the commands' reader.
+    #[test]
+    fn the_daemon_never_follows_a_symbolic_link() {
+        let d = tempfile::tempdir().unwrap();
+        std::fs::write(d.path().join("secret"), "P1 1 1 1").unwrap();
+        let link = d.path().join("frame.pbm");
+        std::os::unix::fs::symlink(d.path().join("secret"), &link).unwrap();
+        let (e, stamp) = read_bounded_in_place(&link, 100, &|| "a frame".into()).unwrap_err();
+        assert!(e.to_string().contains("symbolic link"), "{e}");
+        assert!(stamp.is_some());
+        assert!(read_bounded(&link, 100, &|| "a frame".into()).is_ok());
     }
 
     #[test]
