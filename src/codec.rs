@@ -189,7 +189,9 @@ pub fn decode_pbm(bytes: &[u8], limits: &DecodeLimits) -> Result<BitFrame> {
         while h.pos < bytes.len() && bytes[h.pos] != b'\n' && bytes[h.pos] != b'\r' {
             h.pos += 1;
         }
-        h.pos += 1;
+        // Past its newline, if it has one: a comment may run to the end of
+        // the file (found by fuzzing: the raster then began past the end).
+        h.pos = (h.pos + 1).min(bytes.len());
     }
     // Exactly one whitespace character ends the header.
     match bytes.get(h.pos) {
@@ -537,6 +539,16 @@ mod tests {
         // No whitespace between plain bits is allowed by the spec.
         let g = decode(b"P1 3 2 101010", &lim()).unwrap();
         assert_eq!(g, f);
+    }
+
+    /// Regression, found by `tests/fuzz.rs`: a comment after the height
+    /// that runs to the end of the file panicked.
+    #[test]
+    fn a_comment_to_the_end_of_the_file_is_a_truncated_frame() {
+        for bytes in [&b"P1\n1 1# a lo"[..], b"P4\n8 1#", b"P1 2 2 #\n"] {
+            let e = decode(bytes, &lim()).unwrap_err().to_string();
+            assert!(e.contains("truncated") || e.contains("expected"), "{e}");
+        }
     }
 
     /// Regression: `P4 0 0` was logged as an inspected frame with no
