@@ -1173,3 +1173,103 @@ fn check_names_folders_the_user_cannot_write() {
     );
     assert_eq!(ok.code, 0, "{}", ok.stdout);
 }
+
+/// A tmpfs mounted for a test, unmounted when dropped.
+struct Mounted(PathBuf);
+
+impl Mounted {
+    /// Mounts a tmpfs of `size` (mount's syntax, "1m") at `at`; `None`
+    /// (with the reason printed) where this process may not mount.
+    fn tmpfs(at: &std::path::Path, size: &str) -> Option<Mounted> {
+        std::fs::create_dir_all(at).unwrap();
+        let out = Command::new("mount")
+            .args(["-t", "tmpfs", "-o", &format!("size={size}"), "tmpfs"])
+            .arg(at)
+            .output();
+        match out {
+            Ok(o) if o.status.success() => Some(Mounted(at.to_path_buf())),
+            Ok(o) => {
+                eprintln!(
+                    "skipped: cannot mount a tmpfs here ({})",
+                    String::from_utf8_lossy(&o.stderr).trim()
+                );
+                None
+            }
+            Err(e) => {
+                eprintln!("skipped: cannot run mount: {e}");
+                None
+            }
+        }
+    }
+}
+
+impl Drop for Mounted {
+    fn drop(&mut self) {
+        let _ = Command::new("umount").arg("-l").arg(&self.0).status();
+    }
+}
+
+/// A real full disk: the logs folder on a 1 MiB tmpfs, filled while the
+/// daemon runs. The frames that come meanwhile stay in the inbox, the
+/// daemon says once that writing the log fails, and once space returns it
+/// says so and logs every frame once, by itself. Needs the right to mount
+/// (root); skipped with the reason otherwise.
+#[test]
+fn a_full_disk_for_the_log_keeps_frames_waiting_until_there_is_room() {
+    let s = Setup::new(
+        "[watch]\nsettle_millis = 50\nrescan_seconds = 0.1\n[status]\nenabled = false\n",
+    );
+    let Some(_mounted) = Mounted::tmpfs(&s.dir.join("logs"), "1m") else {
+        return;
+    };
+    let mut d = s.start_watching();
+    let all = frames(30, 48);
+    let (first, rest) = all.split_at(10);
+    for (n, b) in first {
+        s.drop_frame(n, b);
+    }
+    wait_for("the first frames to be archived", 60, || {
+        s.names_in("archive").len() == 10
+    });
+    // Fill the filesystem to the last byte.
+    let filler = s.dir.join("logs/filler");
+    {
+        use std::io::Write as _;
+        let mut f = std::fs::File::create(&filler).unwrap();
+        let block = vec![0u8; 4096];
+        while f.write_all(&block).is_ok() {}
+        let mut byte = [0u8; 1];
+        while f.write_all(&byte).is_ok() {
+            byte[0] = 1;
+        }
+    }
+    for (n, b) in rest {
+        s.drop_frame(n, b);
+    }
+    wait_for("the daemon to say the log cannot be written", 60, || {
+        s.stderr().contains("writing the detection log fails")
+    });
+    // The log file's last page may have held a record or two more; the
+    // rest wait in the inbox (every archived frame's record is checked at
+    // the end).
+    assert!(s.names_in("archive").len() < 30);
+    assert!(!s.names_in("inbox").is_empty());
+    std::fs::remove_file(&filler).unwrap();
+    wait_for("every frame to be archived once there is room", 120, || {
+        s.names_in("archive").len() == 30
+    });
+    signal(&d, libc::SIGTERM);
+    assert_eq!(exit_code(&mut d, 20), 0, "{}", s.stderr());
+    logged_once(&s.records(), &all);
+    let err = s.stderr();
+    assert_eq!(
+        err.matches("writing the detection log fails").count(),
+        1,
+        "{err}"
+    );
+    assert_eq!(
+        err.matches("writing the detection log works again").count(),
+        1,
+        "{err}"
+    );
+}
