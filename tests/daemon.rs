@@ -1216,10 +1216,23 @@ impl Drop for Mounted {
 /// (root); skipped with the reason otherwise.
 #[test]
 fn a_full_disk_for_the_log_keeps_frames_waiting_until_there_is_room() {
+    full_disk("logs", "writing the detection log");
+}
+
+/// The same with the archive on its own full filesystem: records are
+/// written, the moves fail (across filesystems: nothing partial is left
+/// there), and once there is room the frames are archived without a
+/// second record.
+#[test]
+fn a_full_disk_for_the_archive_keeps_frames_waiting_until_there_is_room() {
+    full_disk("archive", "moving frames to the archive");
+}
+
+fn full_disk(folder: &str, what: &str) {
     let s = Setup::new(
         "[watch]\nsettle_millis = 50\nrescan_seconds = 0.1\n[status]\nenabled = false\n",
     );
-    let Some(_mounted) = Mounted::tmpfs(&s.dir.join("logs"), "1m") else {
+    let Some(_mounted) = Mounted::tmpfs(&s.dir.join(folder), "1m") else {
         return;
     };
     let mut d = s.start_watching();
@@ -1232,7 +1245,7 @@ fn a_full_disk_for_the_log_keeps_frames_waiting_until_there_is_room() {
         s.names_in("archive").len() == 10
     });
     // Fill the filesystem to the last byte.
-    let filler = s.dir.join("logs/filler");
+    let filler = s.dir.join(folder).join(".filler");
     {
         use std::io::Write as _;
         let mut f = std::fs::File::create(&filler).unwrap();
@@ -1246,8 +1259,8 @@ fn a_full_disk_for_the_log_keeps_frames_waiting_until_there_is_room() {
     for (n, b) in rest {
         s.drop_frame(n, b);
     }
-    wait_for("the daemon to say the log cannot be written", 60, || {
-        s.stderr().contains("writing the detection log fails")
+    wait_for("the daemon to say it cannot go on", 60, || {
+        s.stderr().contains(&format!("{what} fails"))
     });
     // The log file's last page may have held a record or two more; the
     // rest wait in the inbox (every archived frame's record is checked at
@@ -1262,14 +1275,17 @@ fn a_full_disk_for_the_log_keeps_frames_waiting_until_there_is_room() {
     assert_eq!(exit_code(&mut d, 20), 0, "{}", s.stderr());
     logged_once(&s.records(), &all);
     let err = s.stderr();
+    assert_eq!(err.matches(&format!("{what} fails")).count(), 1, "{err}");
     assert_eq!(
-        err.matches("writing the detection log fails").count(),
+        err.matches(&format!("{what} works again")).count(),
         1,
         "{err}"
     );
-    assert_eq!(
-        err.matches("writing the detection log works again").count(),
-        1,
-        "{err}"
-    );
+    // Nothing partial or temporary was left where the files go.
+    let left: Vec<String> = std::fs::read_dir(s.dir.join(folder))
+        .unwrap()
+        .map(|e| e.unwrap().file_name().to_string_lossy().into_owned())
+        .filter(|n| n.ends_with(".part"))
+        .collect();
+    assert!(left.is_empty(), "{left:?}");
 }
