@@ -68,7 +68,7 @@ fn takeable(ft: fs::FileType) -> bool {
     !ft.is_symlink()
 }
 
-/// The frame files directly in `dir` ([`takeable`]: symbolic links are
+/// The frame files directly in `dir` (symbolic links are
 /// passed over), oldest first (then by name).
 pub fn list(dir: &Path, formats: &[String]) -> std::io::Result<Vec<Listed>> {
     Ok(list_with_strays(dir, formats)?.0)
