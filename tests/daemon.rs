@@ -1080,9 +1080,9 @@ fn a_name_that_is_not_utf8_is_said_once_and_left_alone() {
 
 /// Regression (a fault probe: an inbox deleted and made again was no
 /// longer watched; its frames waited for the next listing, without a
-/// word): the daemon says the inbox is gone, watches it anew when it is
-/// back, and frames put there after are found by their file events alone
-/// (listing is set to once an hour here).
+/// word): the daemon says the inbox is gone, watches and locks it anew
+/// when it is back, and frames put there after are found by their file
+/// events alone (listing is set to once an hour here).
 #[test]
 fn an_inbox_deleted_and_made_again_is_watched_anew() {
     let s = Setup::new(
@@ -1105,6 +1105,21 @@ fn an_inbox_deleted_and_made_again_is_watched_anew() {
     wait_for("the daemon to watch the inbox anew", 60, || {
         s.stderr().contains("watching it anew")
     });
+    // The new inbox is locked too: a second daemon with its own state
+    // folder cannot take it.
+    let other = s.dir.join("other-state");
+    std::fs::create_dir_all(&other).unwrap();
+    std::fs::copy(s.dir.join("state/model.json"), other.join("model.json")).unwrap();
+    let cfg2 = s.dir.join("second.toml");
+    std::fs::write(
+        &cfg2,
+        s.config_text("[status]\nenabled = false\n")
+            .replace(&format!("{:?}", s.dir.join("state")), &format!("{other:?}")),
+    )
+    .unwrap();
+    let second = crate::util::burlwatch(s.dir.path(), &["run", "--config", cfg2.to_str().unwrap()]);
+    assert_eq!(second.code, 1, "{}", second.stderr);
+    assert!(second.stderr.contains("folders.inbox"), "{}", second.stderr);
     for (n, b) in after {
         s.drop_frame(n, b);
     }

@@ -29,7 +29,7 @@ use std::time::{Duration, Instant, SystemTime};
 
 use crossbeam_channel::{bounded, Receiver, RecvError, Sender};
 use notify::{EventKind, RecursiveMode, Watcher};
-use tracing::{debug, info, warn};
+use tracing::{debug, error, info, warn};
 
 use crate::error::{Error, Result};
 
@@ -277,6 +277,12 @@ pub(super) struct Intake {
     folder: Option<(u64, u64)>,
     gone: bool,
     next_folder_check: Instant,
+    /// With a configuration key: the folder is locked (`files::FolderLocks`)
+    /// and a folder made again is locked anew; `foreign` when another
+    /// daemon holds the new one, whose files are then left alone.
+    lock_key: Option<&'static str>,
+    relock: Option<super::files::FolderLocks>,
+    foreign: bool,
 }
 
 /// How often an intake checks that its folder is still the one it watches.
@@ -348,7 +354,16 @@ impl Intake {
             folder: folder_id(dir),
             gone: false,
             next_folder_check: now + FOLDER_CHECK,
+            lock_key: None,
+            relock: None,
+            foreign: false,
         })
+    }
+
+    /// The folder is locked by this daemon under configuration `key`: a
+    /// folder made again in its place is locked anew.
+    pub fn keep_locked(&mut self, key: &'static str) {
+        self.lock_key = Some(key);
     }
 
     /// Checks that the folder is still the one watched. A folder deleted is
@@ -378,6 +393,19 @@ impl Intake {
         self.gone = false;
         self.settle.forget_announcements();
         self.next_rescan = now;
+        if let Some(key) = self.lock_key {
+            match super::files::FolderLocks::acquire(&[(key, &self.dir)]) {
+                Ok(l) => {
+                    self.relock = Some(l);
+                    self.foreign = false;
+                }
+                Err(e) => {
+                    error!("{e}; its files are left alone");
+                    self.relock = None;
+                    self.foreign = true;
+                }
+            }
+        }
         let Some(tx) = &self.tx else {
             info!(folder = %self.dir.display(), "the {} is there again", self.what);
             return;
@@ -552,7 +580,7 @@ impl Intake {
     /// waiting out a backoff.
     fn make_ready(&mut self, path: PathBuf, now: Instant) {
         self.settle.remove(&path);
-        if self.backing_off(&path, now) {
+        if self.foreign || self.backing_off(&path, now) {
             return;
         }
         let plain = fs::symlink_metadata(&path).is_ok_and(|m| takeable(m.file_type()));

@@ -217,7 +217,7 @@ pub fn run_with(
         "model loaded"
     );
     let now = hooks.clock.now();
-    let inbox = Intake::open(
+    let mut inbox = Intake::open(
         "inbox",
         &start.folders.inbox,
         live.formats.clone(),
@@ -226,7 +226,7 @@ pub fn run_with(
         start.events,
         now,
     )?;
-    let corrections = Intake::open(
+    let mut corrections = Intake::open(
         "corrections folder",
         &start.folders.corrections,
         vec!["toml".into()],
@@ -235,6 +235,9 @@ pub fn run_with(
         start.events,
         now,
     )?;
+    // Locked above (`FolderLocks`); a folder made again is locked anew.
+    inbox.keep_locked("folders.inbox");
+    corrections.keep_locked("folders.corrections");
     // The frames waiting now: the log is asked which of them it holds.
     let waiting = inbox
         .names()
