@@ -585,3 +585,52 @@ fn a_log_that_cannot_be_written_for_a_while_loses_nothing_and_says_so_once() {
     let want: Vec<String> = all.iter().map(|(n, _)| n.clone()).collect();
     assert_eq!(names, want, "one record per frame");
 }
+
+/// Issue 14: a stalled pipeline (workers held by the fault plan's stall
+/// switch, which exists only in a fault plan) stops feeding the watchdog
+/// once no frame has finished for the stall time while frames wait; under
+/// systemd (`WatchdogSec`, `Restart=on-failure` in the unit, checked by
+/// `daemon::the_systemd_unit_verifies_and_is_well_hardened`) that is a
+/// restart. When the pipeline moves again, so does the watchdog.
+#[test]
+fn a_stalled_pipeline_stops_feeding_the_watchdog() {
+    use std::sync::atomic::{AtomicBool, Ordering};
+    let b = Box_::new();
+    let cfg = b.config(
+        "[watch]\nevents = false\nsettle_millis = 0\nrescan_seconds = 1\n[status]\nenabled = false\n",
+    );
+    b.drop_frames(&frames(3, 33));
+    let stalled = Arc::new(AtomicBool::new(true));
+    let flag = stalled.clone();
+    let faults = Faults::plan(move |op, _, _| op == Fault::Stall && flag.load(Ordering::Relaxed));
+    let clock = TestClock::new();
+    let (tick, ticks) = unbounded();
+    let d = start(cfg, Some(clock.clone()), Some(ticks), faults);
+    // The frames are handed out and held; within the stall time the
+    // watchdog is still fed.
+    tick.send(Instant::now()).unwrap();
+    d.wait_status("alive", |s| *s == Status::Alive);
+    clock.advance(Duration::from_secs(11));
+    while d.statuses.try_recv().is_ok() {}
+    for _ in 0..3 {
+        tick.send(Instant::now()).unwrap();
+    }
+    // Time for the main loop to take the ticks; no Alive among the
+    // statuses meanwhile.
+    thread::sleep(Duration::from_millis(300));
+    let meanwhile: Vec<Status> = d.statuses.try_iter().collect();
+    assert!(
+        !meanwhile.contains(&Status::Alive),
+        "the watchdog was fed while stalled: {meanwhile:?}"
+    );
+    assert!(
+        d.finished.try_recv().is_err(),
+        "a frame finished while stalled"
+    );
+    // Moving again: the frames finish and the watchdog is fed.
+    stalled.store(false, Ordering::Relaxed);
+    d.wait_finished("logged", 3);
+    tick.send(Instant::now()).unwrap();
+    d.wait_status("alive again", |s| *s == Status::Alive);
+    assert_eq!(d.stop().logged, 3);
+}

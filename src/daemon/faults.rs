@@ -25,6 +25,10 @@ pub enum Fault {
     Rotate,
     /// Moving a frame to the archive or to `rejected/`.
     Move,
+    /// A worker about to detect: while this "fails", the worker waits (a
+    /// stalled pipeline, for the watchdog's tests; never in production,
+    /// where there is no plan).
+    Stall,
 }
 
 type Plan = dyn Fn(Fault, u64, &Path) -> bool + Send + Sync;
@@ -32,7 +36,7 @@ type Plan = dyn Fn(Fault, u64, &Path) -> bool + Send + Sync;
 /// Which operations fail; cheap to clone and share between threads.
 #[derive(Clone, Default)]
 pub struct Faults {
-    plan: Option<Arc<(Box<Plan>, [AtomicU64; 4])>>,
+    plan: Option<Arc<(Box<Plan>, [AtomicU64; 5])>>,
 }
 
 impl Faults {

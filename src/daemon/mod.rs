@@ -292,10 +292,11 @@ pub fn run_with(
     let mut threads = Vec::new();
     for k in 0..workers {
         let (rx, tx, run) = (work_rx.clone(), res_tx.clone(), running.clone());
+        let faults = hooks.faults.clone();
         threads.push(
             thread::Builder::new()
                 .name(format!("burlwatch-worker-{k}"))
-                .spawn(move || worker::work(rx, tx, run))
+                .spawn(move || worker::work(rx, tx, run, faults))
                 .map_err(Error::from)?,
         );
     }

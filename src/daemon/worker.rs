@@ -69,11 +69,19 @@ pub(super) fn work(
     jobs: Receiver<Job>,
     results: Sender<(Job, Outcome)>,
     running: Arc<ArcSwap<Running>>,
+    faults: super::faults::Faults,
 ) {
     let mut scratch = Scratch::default();
     let started = Instant::now();
     let mut clock = || (SystemTime::now(), started.elapsed().as_secs_f64());
     for job in jobs {
+        // A stalled pipeline, when a test's fault plan asks for one.
+        while faults
+            .check(super::faults::Fault::Stall, &job.path)
+            .is_err()
+        {
+            std::thread::sleep(std::time::Duration::from_millis(5));
+        }
         let run = running.load_full();
         let outcome = detect_one(&job, &run, &mut scratch, &mut clock);
         if results.send((job, outcome)).is_err() {
