@@ -271,6 +271,15 @@ impl RecordSink for MonitorSink {
         let now = self.watch.clock.wall();
         let alerts = m.frame(stats, record.objects.len(), &record.model_hash, now);
         if let Some(every) = self.history {
+            // The wall clock set back by more than an interval (a clock
+            // corrected, a box whose clock was wrong): the next line is due
+            // from the clock as it now reads, not a day from now.
+            if self
+                .next_history
+                .is_some_and(|due| due.duration_since(now).is_ok_and(|ahead| ahead > every))
+            {
+                self.next_history = Some(next_multiple(now, every));
+            }
             match self.next_history {
                 Some(due) if now >= due => {
                     let line = serde_json::to_string(&m.sample(now)).expect("sample serialises");
@@ -656,5 +665,91 @@ mod tests {
             next_multiple(on, Duration::from_secs(300)),
             std::time::UNIX_EPOCH + Duration::from_secs(1_500)
         );
+    }
+
+    /// A wall clock that the test sets.
+    struct SetClock(Mutex<std::time::SystemTime>);
+
+    impl Clock for SetClock {
+        fn now(&self) -> Instant {
+            Instant::now()
+        }
+        fn wall(&self) -> std::time::SystemTime {
+            *self.0.lock().unwrap()
+        }
+    }
+
+    /// Issue 14 (clock jumps): the wall clock set back by a day does not
+    /// stop the drift history for a day; set forward, the next line comes
+    /// at the next frame.
+    #[test]
+    fn the_drift_history_goes_on_when_the_clock_is_set_back_or_forward() {
+        use crate::drift::FrameStats;
+        use crate::record::FrameRecord;
+        let dir = tempfile::tempdir().unwrap();
+        let t0 = std::time::UNIX_EPOCH + Duration::from_secs(1_800_000_000);
+        let clock = Arc::new(SetClock(Mutex::new(t0)));
+        let model = ModelRef {
+            version: 1,
+            hash: "abc".into(),
+            threshold: 0.9,
+            min_area: 5,
+            merge_distance: 0,
+            patterns: Vec::new(),
+            leaves: vec![1.0 / 16.0; 16],
+            trained: [1.0, 0.01],
+        };
+        let settings = MonitorSettings::default();
+        let (watch, mut sink, thread) = start(
+            Monitors::new(settings, model),
+            Vec::new(),
+            AlertSettings {
+                command: Vec::new(),
+                timeout: Duration::from_secs(1),
+                history: Some(Duration::from_secs(60)),
+            },
+            dir.path(),
+            dir.path(),
+            clock.clone(),
+            None,
+        )
+        .unwrap();
+        let record = FrameRecord {
+            time: String::new(),
+            frame: "f.pbm".into(),
+            sha256: "00".into(),
+            width: 1,
+            height: 1,
+            model_version: 1,
+            model_hash: "abc".into(),
+            millis: 1.0,
+            objects: Vec::new(),
+        };
+        let stats = FrameStats::default();
+        let mut frame_at = |t: std::time::SystemTime| {
+            *clock.0.lock().unwrap() = t;
+            sink.finished(&Finished::Logged(&record, &stats));
+        };
+        let s = Duration::from_secs;
+        frame_at(t0);
+        frame_at(t0 + s(61));
+        frame_at(t0 + s(122));
+        // Set back a day: lines go on a minute apart on the new clock.
+        let back = t0 - s(86_400);
+        frame_at(back);
+        frame_at(back + s(61));
+        frame_at(back + s(122));
+        // Set forward a week: the next frame has its line.
+        frame_at(t0 + s(7 * 86_400));
+        drop(sink);
+        drop(watch);
+        thread.join().unwrap();
+        let times: Vec<String> = read_history(dir.path())
+            .unwrap()
+            .into_iter()
+            .map(|h| h.time)
+            .collect();
+        assert_eq!(times.len(), 5, "{times:?}");
+        assert!(times[2] < times[1], "the set-back clock's lines: {times:?}");
     }
 }
