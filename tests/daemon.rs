@@ -1304,3 +1304,93 @@ fn full_disk(folder: &str, what: &str) {
         .collect();
     assert!(left.is_empty(), "{left:?}");
 }
+
+/// Issue 14, permissions: the daemon run as an unprivileged user (with
+/// `setpriv`, from Debian's util-linux) whose archive folder stops being
+/// writable for it. Records are written, every move fails with a reason a
+/// person can act on ("Permission denied"), said once; when the folder is
+/// writable again the frames are archived without a second record. Needs
+/// root to change users; skipped otherwise.
+#[test]
+fn an_archive_the_daemon_may_not_write_keeps_frames_waiting() {
+    use std::os::unix::fs::PermissionsExt;
+    // SAFETY: geteuid has no preconditions.
+    if unsafe { libc::geteuid() } != 0 || crate::util::tool("setpriv", "util-linux").is_none() {
+        eprintln!("skipped: needs root and setpriv to run the daemon as another user");
+        return;
+    }
+    let s = Setup::new(
+        "[watch]\nsettle_millis = 50\nrescan_seconds = 0.1\n[status]\nenabled = false\n",
+    );
+    for f in ["archive", "rejected", "corrections", "logs"] {
+        std::fs::create_dir_all(s.dir.join(f)).unwrap();
+    }
+    // Everything belongs to nobody (uid and gid 65534).
+    let own = |p: &std::path::Path| std::os::unix::fs::chown(p, Some(65534), Some(65534)).unwrap();
+    own(s.dir.path());
+    for e in walk(s.dir.path()) {
+        own(&e);
+    }
+    let err = std::fs::File::create(s.dir.join("daemon.stderr")).unwrap();
+    let mut d = Command::new("setpriv")
+        .args(["--reuid=65534", "--regid=65534", "--clear-groups"])
+        .arg(env!("CARGO_BIN_EXE_burlwatch"))
+        .args(["run", "--config"])
+        .arg(s.config())
+        .current_dir(s.dir.path())
+        .env_remove("RUST_LOG")
+        .env_remove("NOTIFY_SOCKET")
+        .stdout(std::process::Stdio::null())
+        .stderr(err)
+        .spawn()
+        .unwrap();
+    wait_for("the daemon to start", 60, || {
+        s.stderr().contains("watching")
+    });
+    let archive = s.dir.join("archive");
+    std::fs::set_permissions(&archive, std::fs::Permissions::from_mode(0o555)).unwrap();
+    let all = frames(10, 49);
+    for (n, b) in &all {
+        s.drop_frame(n, b);
+        own(&s.inbox().join(n));
+    }
+    wait_for(
+        "the daemon to say it cannot move to the archive",
+        60,
+        || s.stderr().contains("moving frames to the archive fails"),
+    );
+    assert!(s.stderr().contains("Permission denied"), "{}", s.stderr());
+    assert_eq!(s.names_in("archive").len(), 0);
+    std::fs::set_permissions(&archive, std::fs::Permissions::from_mode(0o755)).unwrap();
+    wait_for("every frame to be archived", 120, || {
+        s.names_in("archive").len() == 10
+    });
+    signal(&d, libc::SIGTERM);
+    assert_eq!(exit_code(&mut d, 20), 0, "{}", s.stderr());
+    logged_once(&s.records(), &all);
+    let err = s.stderr();
+    assert_eq!(
+        err.matches("moving frames to the archive fails").count(),
+        1,
+        "{err}"
+    );
+    assert_eq!(
+        err.matches("moving frames to the archive works again")
+            .count(),
+        1,
+        "{err}"
+    );
+}
+
+/// Every path under `dir`.
+fn walk(dir: &std::path::Path) -> Vec<PathBuf> {
+    let mut out = Vec::new();
+    for e in std::fs::read_dir(dir).unwrap() {
+        let p = e.unwrap().path();
+        if p.is_dir() {
+            out.extend(walk(&p));
+        }
+        out.push(p);
+    }
+    out
+}
