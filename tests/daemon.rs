@@ -1306,7 +1306,8 @@ fn full_disk(folder: &str, what: &str) {
 }
 
 /// Issue 14, permissions: the daemon run as an unprivileged user (with
-/// `setpriv`, from Debian's util-linux) whose archive folder stops being
+/// `setpriv`, from Debian's util-linux). A frame it may not read is
+/// rejected with the reason; then its archive folder stops being
 /// writable for it. Records are written, every move fails with a reason a
 /// person can act on ("Permission denied"), said once; when the folder is
 /// writable again the frames are archived without a second record. Needs
@@ -1347,6 +1348,16 @@ fn an_archive_the_daemon_may_not_write_keeps_frames_waiting() {
     wait_for("the daemon to start", 60, || {
         s.stderr().contains("watching")
     });
+    // A frame the daemon's user may not read is rejected with the reason.
+    let locked = s.dir.join("locked.pbm");
+    std::fs::write(&locked, &frames(1, 50)[0].1).unwrap();
+    std::fs::set_permissions(&locked, std::fs::Permissions::from_mode(0o000)).unwrap();
+    std::fs::rename(&locked, s.inbox().join("locked.pbm")).unwrap();
+    wait_for("the unreadable frame to be rejected", 60, || {
+        s.names_in("rejected").contains("locked.pbm.reason.txt")
+    });
+    let why = std::fs::read_to_string(s.dir.join("rejected/locked.pbm.reason.txt")).unwrap();
+    assert!(why.contains("Permission denied"), "{why}");
     let archive = s.dir.join("archive");
     std::fs::set_permissions(&archive, std::fs::Permissions::from_mode(0o555)).unwrap();
     let all = frames(10, 49);
