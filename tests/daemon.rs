@@ -1405,3 +1405,51 @@ fn walk(dir: &std::path::Path) -> Vec<PathBuf> {
     }
     out
 }
+
+/// A real full disk for the state folder (a 2 MiB tmpfs, filled once the
+/// daemon runs): frames are logged and archived as ever; the drift
+/// monitors' saves fail and that is said once, not at every save; once
+/// there is room a save works and says so. Needs the right to mount;
+/// skipped otherwise.
+#[test]
+fn a_full_disk_for_the_state_folder_leaves_detection_alone() {
+    let s = Setup::new(
+        "[watch]\nsettle_millis = 50\nrescan_seconds = 0.1\n[status]\nenabled = false\n",
+    );
+    let model = std::fs::read(s.dir.join("state/model.json")).unwrap();
+    let Some(_mounted) = Mounted::tmpfs(&s.dir.join("state"), "2m") else {
+        return;
+    };
+    std::fs::write(s.dir.join("state/model.json"), &model).unwrap();
+    let mut d = s.start_watching();
+    let filler = s.dir.join("state/.filler");
+    {
+        use std::io::Write as _;
+        let mut f = std::fs::File::create(&filler).unwrap();
+        let block = vec![0u8; 4096];
+        while f.write_all(&block).is_ok() {}
+        let mut byte = [0u8; 1];
+        while f.write_all(&byte).is_ok() {
+            byte[0] = 1;
+        }
+    }
+    // More than two saves' worth of frames (one every 500).
+    let all = frames(1100, 51);
+    for (n, b) in &all {
+        s.drop_frame(n, b);
+    }
+    wait_for("every frame to be archived", 180, || {
+        s.names_in("archive").len() == all.len()
+    });
+    assert_eq!(
+        s.stderr().matches("cannot save").count(),
+        1,
+        "{}",
+        s.stderr()
+    );
+    std::fs::remove_file(&filler).unwrap();
+    signal(&d, libc::SIGTERM);
+    assert_eq!(exit_code(&mut d, 20), 0, "{}", s.stderr());
+    logged_once(&s.records(), &all);
+    assert!(s.stderr().contains("saved again after"), "{}", s.stderr());
+}

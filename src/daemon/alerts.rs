@@ -345,6 +345,7 @@ pub fn start(
         state: state.join(STATE_FILE),
         commands: Commands::start(settings)?,
         board,
+        save_failures: std::cell::Cell::new(0),
     };
     let handle = thread::Builder::new()
         .name("burlwatch-alerts".into())
@@ -440,6 +441,9 @@ struct Runner {
     commands: Option<Commands>,
     /// Counts the lines written, for the status endpoint.
     board: Option<Arc<super::status::Board>>,
+    /// Saves of the state failing since this many tries (said once when
+    /// they start failing and once when they work again, not every save).
+    save_failures: std::cell::Cell<u64>,
 }
 
 impl Runner {
@@ -488,8 +492,25 @@ impl Runner {
     }
 
     fn save(&self, state: &str) {
-        if let Err(e) = write_atomic(&self.state, state.as_bytes()) {
-            warn!("drift monitors: cannot save {}: {e}", self.state.display());
+        let failures = self.save_failures.get();
+        match write_atomic(&self.state, state.as_bytes()) {
+            Ok(()) if failures > 0 => {
+                info!(
+                    "drift monitors: {} saved again after {failures} failed save(s)",
+                    self.state.display()
+                );
+                self.save_failures.set(0);
+            }
+            Ok(()) => {}
+            Err(e) => {
+                if failures == 0 {
+                    warn!(
+                        "drift monitors: cannot save {}: {e}; detection goes on, and a restart now would start the monitors afresh (said once until a save works)",
+                        self.state.display()
+                    );
+                }
+                self.save_failures.set(failures + 1);
+            }
         }
     }
 
@@ -622,6 +643,7 @@ mod tests {
             state: dir.path().join(STATE_FILE),
             commands: None,
             board: None,
+            save_failures: std::cell::Cell::new(0),
         };
         runner.add_history(sample(1));
         runner.add_history(sample(2));
