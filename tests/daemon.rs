@@ -95,6 +95,24 @@ impl Setup {
         rename_in(&self.inbox(), name, bytes);
     }
 
+    /// The configuration of a second daemon on the same folders but with a
+    /// state folder of its own (holding the same model).
+    fn second_config(&self) -> PathBuf {
+        let other = self.dir.join("other-state");
+        std::fs::create_dir_all(&other).unwrap();
+        std::fs::copy(self.dir.join("state/model.json"), other.join("model.json")).unwrap();
+        let cfg = self.dir.join("second.toml");
+        std::fs::write(
+            &cfg,
+            self.config_text("[status]\nenabled = false\n").replace(
+                &format!("{:?}", self.dir.join("state")),
+                &format!("{other:?}"),
+            ),
+        )
+        .unwrap();
+        cfg
+    }
+
     fn names_in(&self, folder: &str) -> HashSet<String> {
         std::fs::read_dir(self.dir.join(folder))
             .map(|d| {
@@ -911,16 +929,7 @@ fn a_detection_log_deleted_or_renamed_while_running_loses_no_record() {
 fn a_second_daemon_with_another_state_folder_cannot_share_the_inbox() {
     let s = Setup::new("[status]\nenabled = false\n");
     let mut first = s.start_watching();
-    let other = s.dir.join("other-state");
-    std::fs::create_dir_all(&other).unwrap();
-    std::fs::copy(s.dir.join("state/model.json"), other.join("model.json")).unwrap();
-    let cfg2 = s.dir.join("second.toml");
-    std::fs::write(
-        &cfg2,
-        s.config_text("[status]\nenabled = false\n")
-            .replace(&format!("{:?}", s.dir.join("state")), &format!("{other:?}")),
-    )
-    .unwrap();
+    let cfg2 = s.second_config();
     let second = crate::util::burlwatch(s.dir.path(), &["run", "--config", cfg2.to_str().unwrap()]);
     assert_eq!(second.code, 1, "{}", second.stderr);
     assert!(
@@ -1107,16 +1116,7 @@ fn an_inbox_deleted_and_made_again_is_watched_anew() {
     });
     // The new inbox is locked too: a second daemon with its own state
     // folder cannot take it.
-    let other = s.dir.join("other-state");
-    std::fs::create_dir_all(&other).unwrap();
-    std::fs::copy(s.dir.join("state/model.json"), other.join("model.json")).unwrap();
-    let cfg2 = s.dir.join("second.toml");
-    std::fs::write(
-        &cfg2,
-        s.config_text("[status]\nenabled = false\n")
-            .replace(&format!("{:?}", s.dir.join("state")), &format!("{other:?}")),
-    )
-    .unwrap();
+    let cfg2 = s.second_config();
     let second = crate::util::burlwatch(s.dir.path(), &["run", "--config", cfg2.to_str().unwrap()]);
     assert_eq!(second.code, 1, "{}", second.stderr);
     assert!(second.stderr.contains("folders.inbox"), "{}", second.stderr);
@@ -1218,6 +1218,15 @@ impl Mounted {
     }
 }
 
+/// Fills the filesystem `file` is on, to the last byte, with `file`.
+fn fill(file: &std::path::Path) {
+    use std::io::Write as _;
+    let mut f = std::fs::File::create(file).unwrap();
+    let block = vec![0u8; 4096];
+    while f.write_all(&block).is_ok() {}
+    while f.write_all(&[0u8]).is_ok() {}
+}
+
 impl Drop for Mounted {
     fn drop(&mut self) {
         let _ = Command::new("umount").arg("-l").arg(&self.0).status();
@@ -1259,18 +1268,8 @@ fn full_disk(folder: &str, what: &str) {
     wait_for("the first frames to be archived", 60, || {
         s.names_in("archive").len() == 10
     });
-    // Fill the filesystem to the last byte.
     let filler = s.dir.join(folder).join(".filler");
-    {
-        use std::io::Write as _;
-        let mut f = std::fs::File::create(&filler).unwrap();
-        let block = vec![0u8; 4096];
-        while f.write_all(&block).is_ok() {}
-        let mut byte = [0u8; 1];
-        while f.write_all(&byte).is_ok() {
-            byte[0] = 1;
-        }
-    }
+    fill(&filler);
     for (n, b) in rest {
         s.drop_frame(n, b);
     }
@@ -1423,16 +1422,7 @@ fn a_full_disk_for_the_state_folder_leaves_detection_alone() {
     std::fs::write(s.dir.join("state/model.json"), &model).unwrap();
     let mut d = s.start_watching();
     let filler = s.dir.join("state/.filler");
-    {
-        use std::io::Write as _;
-        let mut f = std::fs::File::create(&filler).unwrap();
-        let block = vec![0u8; 4096];
-        while f.write_all(&block).is_ok() {}
-        let mut byte = [0u8; 1];
-        while f.write_all(&byte).is_ok() {
-            byte[0] = 1;
-        }
-    }
+    fill(&filler);
     // More than two saves' worth of frames (one every 500).
     let all = frames(1100, 51);
     for (n, b) in &all {

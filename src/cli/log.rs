@@ -188,7 +188,7 @@ fn summary(
         .filter(|e| in_range(&e.time))
         .filter(|e| e.decision == "in-service" || e.event == "use")
         .collect();
-    let rejects = count_rejects(rejected, range);
+    let rejects = burlwatch::report::gather::rejects(rejected, range).len() as u64;
     let (p50, p99) = (s.times.quantile(0.5), s.times.quantile(0.99));
     let per_day = match (s.first, s.last) {
         (Some(f), Some(l)) => l - f > 7 * 24 * HOUR,
@@ -328,25 +328,6 @@ fn ratio(a: u64, b: u64) -> f64 {
     } else {
         a as f64 / b as f64
     }
-}
-
-/// Reason files in the rejected folder whose first line (the time of the
-/// reject) is in the range.
-fn count_rejects(rejected: &Path, range: &Range) -> u64 {
-    let Ok(dir) = std::fs::read_dir(rejected) else {
-        return 0;
-    };
-    dir.filter_map(|e| e.ok())
-        .filter(|e| e.file_name().to_string_lossy().ends_with(".reason.txt"))
-        .filter(|e| {
-            std::fs::read_to_string(e.path()).is_ok_and(|t| {
-                t.lines()
-                    .next()
-                    .and_then(parse_time)
-                    .is_some_and(|t| range.contains(t))
-            })
-        })
-        .count() as u64
 }
 
 fn frames(

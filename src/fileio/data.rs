@@ -74,12 +74,7 @@ pub fn read_frame_file(
     path: &Path,
     limits: &DecodeLimits,
 ) -> std::result::Result<super::durable::FileBytes, super::durable::ReadFailure> {
-    super::durable::read_bounded(path, max_file_bytes(limits), &|| {
-        format!(
-            "a frame of at most {}x{}",
-            limits.max_width, limits.max_height
-        )
-    })
+    super::durable::read_bounded(path, max_file_bytes(limits), &|| fits(limits))
 }
 
 /// [`read_frame_file`] of a frame the daemon found in its inbox or
@@ -88,12 +83,15 @@ pub fn read_frame_file_in_place(
     path: &Path,
     limits: &DecodeLimits,
 ) -> std::result::Result<super::durable::FileBytes, super::durable::ReadFailure> {
-    super::durable::read_bounded_in_place(path, max_file_bytes(limits), &|| {
-        format!(
-            "a frame of at most {}x{}",
-            limits.max_width, limits.max_height
-        )
-    })
+    super::durable::read_bounded_in_place(path, max_file_bytes(limits), &|| fits(limits))
+}
+
+/// What a frame file's size limit is for, in an error.
+fn fits(limits: &DecodeLimits) -> String {
+    format!(
+        "a frame of at most {}x{}",
+        limits.max_width, limits.max_height
+    )
 }
 
 /// What kind of file a name denotes in a data folder.

@@ -114,8 +114,8 @@ pub fn gather(src: &Sources<'_>) -> Result<Report> {
 
 /// The reason files in the rejected folder whose time is in the range,
 /// oldest first. A reason file is the time (RFC 3339) on its first line
-/// and the reason after it.
-fn rejects(dir: &Path, range: &Range) -> Vec<Reject> {
+/// and the reason after it. (`log summary` counts them too.)
+pub fn rejects(dir: &Path, range: &Range) -> Vec<Reject> {
     let Ok(rd) = std::fs::read_dir(dir) else {
         return Vec::new();
     };
