@@ -49,6 +49,10 @@ impl TestClock {
         t.0 += d;
         t.1 += d;
     }
+    /// The wall clock alone moves, as when it is set.
+    fn step(&self, d: Duration) {
+        self.0.lock().unwrap().1 += d;
+    }
 }
 
 impl Clock for TestClock {
@@ -633,4 +637,154 @@ fn a_stalled_pipeline_stops_feeding_the_watchdog() {
     tick.send(Instant::now()).unwrap();
     d.wait_status("alive again", |s| *s == Status::Alive);
     assert_eq!(d.stop().logged, 3);
+}
+
+/// Issue 14, "the clock jumping back and forward": a wall clock stepped a
+/// year ahead must not make archive retention delete every frame at once.
+/// The frames archived before the step are counted younger by the step
+/// (remembered across a restart) and deleted once `keep_days` have truly
+/// passed. Without the allowance, the first retention run after the step
+/// deletes all three.
+#[test]
+fn a_clock_stepped_a_year_ahead_does_not_empty_the_archive() {
+    let b = Box_::new();
+    let text = "[watch]\nevents = false\nsettle_millis = 0\nrescan_seconds = 1\n\
+                [status]\nenabled = false\n[archive]\nkeep_days = 30\n";
+    let archived = || std::fs::read_dir(b.dir.join("archive")).map_or(0, |d| d.count());
+    // Listed at start (the test's clock alone moves the listing period).
+    b.drop_frames(&frames(3, 41));
+    let clock = TestClock::new();
+    let (tick, ticks) = unbounded();
+    let d = start(
+        b.config(text),
+        Some(clock.clone()),
+        Some(ticks),
+        Faults::none(),
+    );
+    d.wait_finished("logged", 3);
+    // Each tick is answered with Alive early on, so a tick (and the
+    // retention run in it) is over when the next tick's Alive arrives.
+    let tick_once = |d: &Running, tick: &Sender<Instant>| {
+        for _ in 0..2 {
+            while d.statuses.try_recv().is_ok() {}
+            tick.send(Instant::now()).unwrap();
+            d.wait_status("alive", |s| *s == Status::Alive);
+        }
+    };
+    tick_once(&d, &tick);
+    let year = Duration::from_secs(365 * 86_400);
+    clock.step(year);
+    tick_once(&d, &tick);
+    // Retention is due an hour on (monotonic time).
+    clock.advance(Duration::from_secs(3601));
+    tick_once(&d, &tick);
+    assert_eq!(archived(), 3, "the step alone deleted archived frames");
+    let steps = std::fs::read_to_string(b.dir.join("state/clock-steps.json")).unwrap();
+    assert!(steps.contains("\"seconds\":31536000"), "{steps}");
+    d.stop();
+
+    // Restarted with the clock still a year ahead: the step is remembered.
+    let clock = TestClock::new();
+    clock.step(year + Duration::from_secs(3601));
+    let (tick, ticks) = unbounded();
+    let d = start(
+        b.config(text),
+        Some(clock.clone()),
+        Some(ticks),
+        Faults::none(),
+    );
+    assert_eq!(archived(), 3, "the retention run at start forgot the step");
+    // Thirty days and an hour later the frames are truly that old.
+    clock.advance(Duration::from_secs(30 * 86_400 + 3601));
+    tick_once(&d, &tick);
+    let left: Vec<_> = std::fs::read_dir(b.dir.join("archive"))
+        .unwrap()
+        .map(|e| e.unwrap().path())
+        .collect();
+    assert_eq!(
+        archived(),
+        0,
+        "frames older than keep_days were kept: {left:?}"
+    );
+    d.stop();
+}
+
+/// Issue 14, "files vanishing between the event and the read": frames
+/// taken out of the inbox after they were handed to a worker (before the
+/// read) and after they were read (before the move). The first are not
+/// inspected and leave no record; the second keep the record of what was
+/// inspected; neither is rejected, tried again or taken for a failing
+/// disk, and the rest are logged and archived once each.
+#[test]
+fn frames_taken_away_between_the_event_and_the_read_are_let_go() {
+    let b = Box_::new();
+    let cfg = b.config(
+        "[watch]\nevents = false\nsettle_millis = 0\nrescan_seconds = 1\n[status]\nenabled = false\n",
+    );
+    let all = frames(6, 43);
+    b.drop_frames(&all);
+    let name = |p: &Path| p.file_name().unwrap().to_string_lossy().into_owned();
+    let before_read = [all[1].0.clone(), all[3].0.clone()];
+    let before_move = all[4].0.clone();
+    let faults = Faults::plan(move |op, _, path| {
+        let n = name(path);
+        // The worker's last step before the read, and the writer's before
+        // the move: the file is deleted there, as by another program.
+        if (op == Fault::Stall && before_read.contains(&n))
+            || (op == Fault::Move && n == before_move)
+        {
+            let _ = std::fs::remove_file(path);
+        }
+        false
+    });
+    let clock = TestClock::new();
+    let (tick, ticks) = unbounded();
+    let d = start(cfg, Some(clock.clone()), Some(ticks), faults);
+    // Frame 4 is both logged and left.
+    let seen = d.wait_until(|s| s.len() >= 7);
+    let kinds = |k: &str| {
+        let mut v: Vec<String> = seen
+            .iter()
+            .filter(|(x, _)| *x == k)
+            .map(|(_, n)| n.clone())
+            .collect();
+        v.sort();
+        v
+    };
+    assert_eq!(
+        kinds("left"),
+        [all[1].0.clone(), all[3].0.clone(), all[4].0.clone()]
+    );
+    assert_eq!(kinds("logged").len(), 4, "{seen:?}");
+    assert!(
+        kinds("trouble").is_empty() && kinds("rejected").is_empty(),
+        "{seen:?}"
+    );
+    // Later listings find nothing more to do.
+    for _ in 0..3 {
+        clock.advance(Duration::from_secs(2));
+        tick.send(Instant::now()).unwrap();
+    }
+    thread::sleep(Duration::from_millis(300));
+    assert!(d.finished.try_recv().is_err());
+    let summary = d.stop();
+    assert_eq!(summary.logged, 4);
+    let mut logged: Vec<String> = b.records().into_iter().map(|r| r.frame).collect();
+    logged.sort();
+    assert_eq!(
+        logged,
+        [
+            all[0].0.clone(),
+            all[2].0.clone(),
+            all[4].0.clone(),
+            all[5].0.clone()
+        ]
+    );
+    let archived = std::fs::read_dir(b.dir.join("archive")).unwrap().count();
+    assert_eq!(archived, 3, "frame 4 was gone before its move");
+    assert_eq!(
+        std::fs::read_dir(b.dir.join("rejected")).map_or(0, |d| d.count()),
+        0
+    );
+    assert_eq!(std::fs::read_dir(b.dir.join("inbox")).unwrap().count(), 0);
 }

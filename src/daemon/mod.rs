@@ -56,6 +56,7 @@
 
 pub mod alerts;
 pub mod checks;
+pub mod clocksteps;
 pub mod corrections;
 pub mod detlog;
 pub mod events;
@@ -250,7 +251,13 @@ pub fn run_with(
         hooks.faults.clone(),
     )
     .map_err(|e| Error::from(e).with_path(&start.folders.logs))?;
-    prune(&start, &live, hooks.clock.wall());
+    let mut steps = clocksteps::ClockSteps::open(&start.folders.state);
+    steps.look(
+        hooks.clock.now(),
+        hooks.clock.wall(),
+        live.retention.keep_days,
+    );
+    prune(&start, &live, hooks.clock.wall(), &steps);
 
     let board = status::Board::new();
     board.set_model(detector.version(), detector.hash());
@@ -383,6 +390,7 @@ pub fn run_with(
         writer_lost: false,
         last_progress: now,
         next_prune: now + Duration::from_secs(3600),
+        steps,
         finished_since_prune: 0,
         counts: counts.clone(),
         summary_every,
@@ -447,7 +455,11 @@ fn stall_time(sync: SyncPolicy) -> Duration {
 /// that many frames.
 pub const PRUNE_FRAMES: u64 = 10_000;
 
-fn prune(start: &StartConfig, live: &LiveConfig, now: SystemTime) {
+/// Frames archived before a forward step of the wall clock are counted
+/// younger by the step (see [`clocksteps`]).
+fn prune(start: &StartConfig, live: &LiveConfig, now: SystemTime, steps: &clocksteps::ClockSteps) {
+    let allowance = steps.allowance(now, live.retention.keep_days);
+    let now = now.checked_sub(allowance).unwrap_or(SystemTime::UNIX_EPOCH);
     match files::prune_archive(&start.folders.archive, live.retention, now) {
         Ok(n) if n > 0 => info!(deleted = n, "archive retention"),
         Ok(_) => {}
@@ -505,6 +517,8 @@ struct MainLoop {
     writer_lost: bool,
     last_progress: Instant,
     next_prune: Instant,
+    /// Steps of the wall clock seen, which retention allows for.
+    steps: clocksteps::ClockSteps,
     /// Frames finished since archive retention last ran.
     finished_since_prune: u64,
     /// The run's counts, and what the last summary line had counted.
@@ -623,6 +637,8 @@ impl MainLoop {
         let now = self.clock.now();
         self.inbox.tick(now);
         self.corrections.tick(now);
+        let keep_days = self.running.load().live.retention.keep_days;
+        self.steps.look(now, self.clock.wall(), keep_days);
         if self.unfinished == 0 || now.duration_since(self.last_progress) < self.stall {
             status(Status::Alive);
         }
@@ -641,7 +657,12 @@ impl MainLoop {
         if now >= self.next_prune || self.finished_since_prune >= PRUNE_FRAMES {
             self.next_prune = now + Duration::from_secs(3600);
             self.finished_since_prune = 0;
-            prune(&self.start, &self.running.load().live, self.clock.wall());
+            prune(
+                &self.start,
+                &self.running.load().live,
+                self.clock.wall(),
+                &self.steps,
+            );
         }
         if !self.summary_every.is_zero() && now >= self.next_summary {
             self.next_summary = now + self.summary_every;

@@ -250,7 +250,10 @@ impl Writer {
 
     fn handle(&mut self, job: Job, outcome: Outcome) {
         match outcome {
-            Outcome::Gone => self.left(job.path),
+            Outcome::Gone => {
+                info!(frame = %job.path.display(), "gone from the inbox before it was read: not inspected");
+                self.left(job.path)
+            }
             Outcome::Reject(reason, stamp) => {
                 if changed(&job.path, stamp) {
                     return self.left(job.path);
@@ -270,6 +273,11 @@ impl Writer {
                                 reason: &reason,
                             },
                         )
+                    }
+                    // Taken away meanwhile: nothing to move, nothing failing.
+                    Err(_) if gone(&job.path) => {
+                        info!(frame = %job.path.display(), "gone from the inbox before it was moved to rejected/");
+                        self.left(job.path);
                     }
                     Err(e) => {
                         self.fails(REJECT_MOVE, &e.to_string(), &job.path);
@@ -381,6 +389,13 @@ impl Writer {
                 }
                 let _ = self.out.send(FromWriter::Done(path.to_path_buf()));
             }
+            // Taken away after it was read: its record stands, nothing is
+            // failing.
+            Err(_) if gone(path) => {
+                info!(frame = %path.display(), "gone from the inbox before it was archived (its record is logged)");
+                self.unmoved.forget(name);
+                self.left(path.to_path_buf());
+            }
             Err(e) => {
                 self.fails(ARCHIVE_MOVE, &e.to_string(), path);
                 if std::fs::symlink_metadata(path).is_err() {
@@ -424,6 +439,11 @@ impl Writer {
             s.finished(event);
         }
     }
+}
+
+/// Whether nothing is named `path` any more (someone took the file away).
+fn gone(path: &Path) -> bool {
+    matches!(std::fs::symlink_metadata(path), Err(e) if e.kind() == std::io::ErrorKind::NotFound)
 }
 
 /// The keys of durable records whose frames are not moved yet, by frame
