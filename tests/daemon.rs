@@ -1443,3 +1443,233 @@ fn a_full_disk_for_the_state_folder_leaves_detection_alone() {
     logged_once(&s.records(), &all);
     assert!(s.stderr().contains("saved again after"), "{}", s.stderr());
 }
+
+/// A service manager of systemd's own (`systemd --user`), private to one
+/// test: its runtime and configuration folders are the test's, and it runs
+/// in a mount namespace of its own where `/run/systemd/system` exists (a
+/// user manager starts only on a system booted with systemd; the test
+/// machines' first process is not systemd). Stopped when dropped.
+struct UserManager {
+    dir: Dir,
+    child: Child,
+}
+
+impl UserManager {
+    /// `None`, with the reason printed, where systemd or the right to make
+    /// a mount namespace is missing.
+    fn start() -> Option<UserManager> {
+        let systemd = PathBuf::from("/lib/systemd/systemd");
+        crate::util::tool("systemctl", "systemd")?;
+        // SAFETY: geteuid has no preconditions.
+        if !systemd.exists() || unsafe { libc::geteuid() } != 0 {
+            assert!(
+                std::env::var("BURLWATCH_REQUIRE_TOOLS").as_deref() != Ok("1"),
+                "the watchdog test needs root and /lib/systemd/systemd"
+            );
+            use std::io::Write as _;
+            let _ = writeln!(
+                std::io::stderr(),
+                "SKIPPED: the watchdog test needs root (a mount namespace) and \
+                 /lib/systemd/systemd (Debian package `systemd`)"
+            );
+            return None;
+        }
+        let dir = Dir::new();
+        for f in ["runtime", "config", "data"] {
+            std::fs::create_dir_all(dir.join(f)).unwrap();
+        }
+        std::fs::set_permissions(
+            dir.join("runtime"),
+            std::os::unix::fs::PermissionsExt::from_mode(0o700),
+        )
+        .unwrap();
+        let log = std::fs::File::create(dir.join("manager.log")).unwrap();
+        let child = UserManager::command(&dir, &systemd.to_string_lossy())
+            .args(["--user", "--log-target=console"])
+            .stdout(log.try_clone().unwrap())
+            .stderr(log)
+            .spawn()
+            .unwrap();
+        let m = UserManager { dir, child };
+        let deadline = Instant::now() + Duration::from_secs(30);
+        loop {
+            let state = m.systemctl(&["is-system-running"]);
+            if state.contains("running") || state.contains("degraded") {
+                return Some(m);
+            }
+            assert!(
+                Instant::now() < deadline,
+                "the user manager did not start: {state}\n{}",
+                m.log()
+            );
+            std::thread::sleep(Duration::from_millis(100));
+        }
+    }
+
+    /// `program` in a mount namespace of its own where a tmpfs on
+    /// `/run/systemd` holds an empty `system/`, with the test's folders.
+    fn command(dir: &Dir, program: &str) -> Command {
+        let mut c = Command::new("unshare");
+        c.args([
+            "-m",
+            "sh",
+            "-c",
+            "mount -t tmpfs none /run/systemd && mkdir /run/systemd/system && exec \"$@\"",
+            "sh",
+            program,
+        ])
+        .env("XDG_RUNTIME_DIR", dir.join("runtime"))
+        .env("XDG_CONFIG_HOME", dir.join("config"))
+        .env("XDG_DATA_HOME", dir.join("data"))
+        .env_remove("NOTIFY_SOCKET")
+        .env_remove("DBUS_SESSION_BUS_ADDRESS");
+        c
+    }
+
+    /// `systemctl --user ARGS`: what it printed, both streams.
+    fn systemctl(&self, args: &[&str]) -> String {
+        let out = UserManager::command(&self.dir, "systemctl")
+            .arg("--user")
+            .args(args)
+            .output()
+            .unwrap();
+        String::from_utf8_lossy(&out.stdout).into_owned() + &String::from_utf8_lossy(&out.stderr)
+    }
+
+    /// A property of a unit, as `systemctl show` prints its value.
+    fn property(&self, unit: &str, name: &str) -> String {
+        self.systemctl(&["show", unit, "-p", name, "--value"])
+            .trim()
+            .to_string()
+    }
+
+    /// Installs a unit (in the runtime unit folder) and loads it.
+    fn install(&self, name: &str, text: &str) {
+        let units = self.dir.join("runtime/systemd/user");
+        std::fs::create_dir_all(&units).unwrap();
+        std::fs::write(units.join(name), text).unwrap();
+        self.systemctl(&["daemon-reload"]);
+    }
+
+    fn log(&self) -> String {
+        std::fs::read_to_string(self.dir.join("manager.log")).unwrap_or_default()
+    }
+}
+
+impl Drop for UserManager {
+    fn drop(&mut self) {
+        self.systemctl(&["stop", "burlwatch.service"]);
+        signal(&self.child, libc::SIGTERM);
+        if exit_code(&mut self.child, 20) == -1 {
+            let _ = self.child.kill();
+        }
+    }
+}
+
+/// Issue 14: "the watchdog restarts a deliberately stalled pipeline". The
+/// unit as shipped (its `Type=notify`, watchdog, restart and hardening
+/// lines; folders, user and paths made the test's, `WatchdogSec` cut from
+/// 30 s to 4 s so the test is short) run by systemd's own service manager.
+/// The workers are held by the stall switch of debug builds; once no frame
+/// finished for 10 s the daemon stops feeding the watchdog, systemd kills
+/// it (it tells the stop command `watchdog`, the process killed by SIGABRT)
+/// and starts it again. With the
+/// switch off, every frame is logged once and archived.
+#[test]
+fn the_systemd_watchdog_restarts_a_stalled_pipeline() {
+    let Some(m) = UserManager::start() else {
+        return;
+    };
+    let s = Setup::new(
+        "[watch]\nsettle_millis = 50\nrescan_seconds = 0.1\n[status]\nenabled = false\n",
+    );
+    let stall = s.dir.join("stall");
+    std::fs::write(&stall, b"").unwrap();
+    let shipped = std::fs::read_to_string(repo().join("systemd/burlwatch.service")).unwrap();
+    let mut unit = String::new();
+    for line in shipped.lines() {
+        let key = line.split('=').next().unwrap_or("");
+        match key {
+            // The test's user, folders and paths instead of the box's (its
+            // folders are under /tmp and belong to root).
+            "User"
+            | "Group"
+            | "StateDirectory"
+            | "StateDirectoryMode"
+            | "LogsDirectory"
+            | "LogsDirectoryMode"
+            | "ConfigurationDirectory"
+            | "ReadWritePaths"
+            | "PrivateTmp"
+            | "PrivateUsers"
+            | "WantedBy" => continue,
+            // The test machines' kernel refuses these three under a user
+            // manager (the service fails with 226/NAMESPACE; seen here, each
+            // alone); `the_systemd_unit_verifies_and_is_well_hardened` checks
+            // the shipped unit keeps them.
+            "ProtectHome" | "ProtectKernelTunables" | "ProtectKernelLogs" => continue,
+            "ExecStart" => {
+                unit += &format!(
+                    "ExecStart={} run --config {}\n",
+                    env!("CARGO_BIN_EXE_burlwatch"),
+                    s.config().display()
+                )
+            }
+            "WatchdogSec" => {
+                unit += "WatchdogSec=4s\n";
+                unit += &format!("ReadWritePaths={}\n", s.dir.path().display());
+                unit += &format!("Environment=BURLWATCH_TEST_STALL={}\n", stall.display());
+                unit += &format!(
+                    "StandardError=append:{}\n",
+                    s.dir.join("daemon.stderr").display()
+                );
+                // systemd tells a stop command why the service stopped
+                // (`$SERVICE_RESULT`, systemd.exec(5)): "watchdog" here.
+                unit += &format!(
+                    "ExecStopPost=/bin/sh -c 'echo \"$SERVICE_RESULT $EXIT_CODE $EXIT_STATUS\" >> {}'\n",
+                    s.dir.join("stops").display()
+                );
+            }
+            _ => {
+                unit += line;
+                unit.push('\n');
+            }
+        }
+    }
+    m.install("burlwatch.service", &unit);
+    let started = m.systemctl(&["start", "burlwatch.service"]);
+    assert_eq!(
+        m.property("burlwatch.service", "ActiveState"),
+        "active",
+        "{started}\n{}\n{}\n{}",
+        m.systemctl(&["status", "burlwatch.service"]),
+        m.log(),
+        s.stderr()
+    );
+    let all = frames(5, 51);
+    for (n, b) in &all {
+        s.drop_frame(n, b);
+    }
+    wait_for("systemd to restart the stalled daemon", 90, || {
+        m.property("burlwatch.service", "NRestarts")
+            .parse::<u32>()
+            .is_ok_and(|n| n >= 1)
+    });
+    let stops = std::fs::read_to_string(s.dir.join("stops")).unwrap_or_default();
+    let first = stops.lines().next().unwrap_or_default();
+    // Killed with SIGABRT, systemd's watchdog signal (systemd.service(5)).
+    assert!(
+        first.starts_with("watchdog ") && first.ends_with(" ABRT"),
+        "{stops}"
+    );
+    assert!(
+        s.names_in("archive").is_empty(),
+        "a frame moved while stalled"
+    );
+    std::fs::remove_file(&stall).unwrap();
+    wait_for("every frame to be archived after the restart", 90, || {
+        s.names_in("archive").len() == all.len()
+    });
+    m.systemctl(&["stop", "burlwatch.service"]);
+    logged_once(&s.records(), &all);
+}

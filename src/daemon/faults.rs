@@ -66,6 +66,24 @@ impl Faults {
     }
 }
 
+/// The environment variable naming the stall switch's file (debug builds).
+pub const STALL_SWITCH: &str = "BURLWATCH_TEST_STALL";
+
+/// The one fault that reaches a daemon run as its own process, for the test
+/// of the systemd watchdog: while the file named by `BURLWATCH_TEST_STALL`
+/// exists, workers wait before detecting. Compiled into debug builds only
+/// (the ones `cargo test` makes); a release build has no such switch.
+#[cfg(debug_assertions)]
+pub fn stall_switch_on() -> bool {
+    std::env::var_os(STALL_SWITCH).is_some_and(|p| Path::new(&p).exists())
+}
+
+/// Release builds: no switch.
+#[cfg(not(debug_assertions))]
+pub fn stall_switch_on() -> bool {
+    false
+}
+
 impl fmt::Debug for Faults {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         f.write_str(if self.plan.is_some() {

@@ -75,10 +75,12 @@ pub(super) fn work(
     let started = Instant::now();
     let mut clock = || (SystemTime::now(), started.elapsed().as_secs_f64());
     for job in jobs {
-        // A stalled pipeline, when a test's fault plan asks for one.
+        // A stalled pipeline, when a test's fault plan (or, in a debug
+        // build, its stall switch) asks for one.
         while faults
             .check(super::faults::Fault::Stall, &job.path)
             .is_err()
+            || super::faults::stall_switch_on()
         {
             std::thread::sleep(std::time::Duration::from_millis(5));
         }
