@@ -13,7 +13,7 @@ use burlwatch::codec;
 use burlwatch::record::{sha256_hex, FrameRecord};
 use burlwatch::synth::{self, LoomParams};
 
-use crate::util::{frames, rename_in, repo, spawn_daemon, wait_for, Dir};
+use crate::util::{fill, frames, rename_in, repo, spawn_daemon, wait_for, Dir, Mounted};
 
 /// A daemon's folders, its configuration and the committed model as its
 /// running model.
@@ -1187,50 +1187,6 @@ fn check_names_folders_the_user_cannot_write() {
         &["check", "--config", s.config().to_str().unwrap()],
     );
     assert_eq!(ok.code, 0, "{}", ok.stdout);
-}
-
-/// A tmpfs mounted for a test, unmounted when dropped.
-struct Mounted(PathBuf);
-
-impl Mounted {
-    /// Mounts a tmpfs of `size` (mount's syntax, "1m") at `at`; `None`
-    /// (with the reason printed) where this process may not mount.
-    fn tmpfs(at: &std::path::Path, size: &str) -> Option<Mounted> {
-        std::fs::create_dir_all(at).unwrap();
-        let out = Command::new("mount")
-            .args(["-t", "tmpfs", "-o", &format!("size={size}"), "tmpfs"])
-            .arg(at)
-            .output();
-        match out {
-            Ok(o) if o.status.success() => Some(Mounted(at.to_path_buf())),
-            Ok(o) => {
-                eprintln!(
-                    "skipped: cannot mount a tmpfs here ({})",
-                    String::from_utf8_lossy(&o.stderr).trim()
-                );
-                None
-            }
-            Err(e) => {
-                eprintln!("skipped: cannot run mount: {e}");
-                None
-            }
-        }
-    }
-}
-
-/// Fills the filesystem `file` is on, to the last byte, with `file`.
-fn fill(file: &std::path::Path) {
-    use std::io::Write as _;
-    let mut f = std::fs::File::create(file).unwrap();
-    let block = vec![0u8; 4096];
-    while f.write_all(&block).is_ok() {}
-    while f.write_all(&[0u8]).is_ok() {}
-}
-
-impl Drop for Mounted {
-    fn drop(&mut self) {
-        let _ = Command::new("umount").arg("-l").arg(&self.0).status();
-    }
 }
 
 /// A real full disk: the logs folder on a 1 MiB tmpfs, filled while the

@@ -876,3 +876,94 @@ fn the_daemon_retrains_on_its_schedule_when_enough_labels_are_new() {
     );
     stop(d);
 }
+
+/// Issue 14, a full disk for the state folder while the operator corrects
+/// and the box retrains (the state folder on a 16 MiB tmpfs, filled; needs
+/// the right to mount, skipped otherwise). Corrections that cannot be
+/// stored stay in the corrections folder; that is said once, and once when
+/// it works again, and each is then applied once. A retrain whose decision
+/// cannot be recorded leaves the running model in service (detection goes
+/// on) and is tried again at the next check once there is room; before,
+/// it waited for new labels.
+#[test]
+fn a_full_state_folder_keeps_corrections_waiting_and_retries_the_retrain() {
+    let b = Box_::new("check_minutes = 0.005\nmin_new_labels = 12\nenabled = false\n");
+    let Some(_mounted) = crate::util::Mounted::tmpfs(&b.state(), "16m") else {
+        return;
+    };
+    let d = b.start();
+    let frames = generated(&params(LoomParams::alternate()), 7, 12, "full");
+    b.feed(&frames);
+    assert_eq!(b.run(&["changeover"]).code, 0);
+    let running = in_service(&b);
+    let filler = b.state().join(".filler");
+    crate::util::fill(&filler);
+    for (name, _, lf) in &frames {
+        let mask = b.mask_file(lf);
+        let r = b.run(&["mark", name, "--mask", mask.to_str().unwrap()]);
+        assert_eq!(r.code, 0, "{}", r.stderr);
+    }
+    let storing = "storing corrections in the state folder";
+    wait_for("the daemon to say it cannot store corrections", 60, || {
+        b.stderr().contains(&format!("{storing} fails"))
+    });
+    assert_eq!(b.applied(), 0);
+    assert_eq!(
+        b.names_in("corrections")
+            .iter()
+            .filter(|n| n.ends_with(".toml"))
+            .count(),
+        12
+    );
+    std::fs::remove_file(&filler).unwrap();
+    wait_for(
+        "every correction to be applied once there is room",
+        120,
+        || b.applied() == 12,
+    );
+    let err = b.stderr();
+    assert_eq!(err.matches(&format!("{storing} fails")).count(), 1, "{err}");
+    assert_eq!(
+        err.matches(&format!("{storing} works again")).count(),
+        1,
+        "{err}"
+    );
+    assert_eq!(b.rejected(), 0);
+
+    // Full again, and the retrain switched on: its decision cannot be
+    // recorded.
+    crate::util::fill(&filler);
+    let text = std::fs::read_to_string(b.config()).unwrap();
+    std::fs::write(
+        b.config(),
+        text.replace("enabled = false", "enabled = true"),
+    )
+    .unwrap();
+    // SAFETY: a signal to the daemon this test started.
+    unsafe { libc::kill(d.id() as i32, libc::SIGHUP) };
+    let deadline = std::time::Instant::now() + Duration::from_secs(120);
+    while !b.stderr().contains("retraining fails") {
+        assert!(
+            std::time::Instant::now() < deadline,
+            "no failed retrain within 120 s: {}",
+            b.stderr()
+        );
+        std::thread::sleep(Duration::from_millis(50));
+    }
+    assert_eq!(in_service(&b), running, "the running model changed");
+    assert!(!b.events().iter().any(|e| e["event"] == "retrain"));
+    let more = generated(&params(LoomParams::alternate()), 8, 1, "meanwhile");
+    b.feed(&more);
+    std::fs::remove_file(&filler).unwrap();
+    wait_for("the retrain to be tried again and decided", 180, || {
+        b.events()
+            .iter()
+            .any(|e| e["event"] == "retrain" && e["by"] == "schedule")
+    });
+    stop(d);
+    let err = b.stderr();
+    // Tried at every check (0.3 s) while full, said once.
+    assert_eq!(err.matches("retraining fails").count(), 1, "{err}");
+    assert_eq!(err.matches("retraining works again").count(), 1, "{err}");
+    assert_eq!(labels_consistent(&b), 12);
+}

@@ -220,3 +220,50 @@ pub fn whole_lines(text: &str) -> impl Iterator<Item = &str> {
     let end = text.rfind('\n').map_or(0, |i| i + 1);
     text[..end].lines()
 }
+
+/// A tmpfs mounted for a test, unmounted when dropped.
+pub struct Mounted(PathBuf);
+
+impl Mounted {
+    /// Mounts a tmpfs of `size` (mount's syntax, "1m") at `at`; `None`
+    /// (with the reason printed) where this process may not mount.
+    pub fn tmpfs(at: &std::path::Path, size: &str) -> Option<Mounted> {
+        std::fs::create_dir_all(at).unwrap();
+        let out = std::process::Command::new("mount")
+            .args(["-t", "tmpfs", "-o", &format!("size={size}"), "tmpfs"])
+            .arg(at)
+            .output();
+        match out {
+            Ok(o) if o.status.success() => Some(Mounted(at.to_path_buf())),
+            Ok(o) => {
+                eprintln!(
+                    "skipped: cannot mount a tmpfs here ({})",
+                    String::from_utf8_lossy(&o.stderr).trim()
+                );
+                None
+            }
+            Err(e) => {
+                eprintln!("skipped: cannot run mount: {e}");
+                None
+            }
+        }
+    }
+}
+
+impl Drop for Mounted {
+    fn drop(&mut self) {
+        let _ = std::process::Command::new("umount")
+            .arg("-l")
+            .arg(&self.0)
+            .status();
+    }
+}
+
+/// Fills the filesystem `file` is on, to the last byte, with `file`.
+pub fn fill(file: &std::path::Path) {
+    use std::io::Write as _;
+    let mut f = std::fs::File::create(file).unwrap();
+    let block = vec![0u8; 4096];
+    while f.write_all(&block).is_ok() {}
+    while f.write_all(&[0u8]).is_ok() {}
+}

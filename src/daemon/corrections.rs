@@ -321,9 +321,19 @@ pub enum Applied {
     },
     /// Moved to `rejected/` with this reason.
     Rejected(String),
-    /// Gone before it was read, or not readable for a passing reason.
+    /// Gone before it was read.
     Gone,
+    /// Left where it is for a passing reason (the log or archive could not
+    /// be read, the labels could not be stored: a full disk...); read again
+    /// at a later listing. `what` names the operation for the messages.
+    Waiting { what: &'static str, error: String },
 }
+
+/// What [`Applied::Waiting`] names when the log or the archive could not
+/// be read for the checks.
+pub const CHECKING: &str = "checking corrections against the log and archive";
+/// ... and when the labels could not be stored.
+pub const STORING: &str = "storing corrections in the state folder";
 
 /// Applies one correction file (see the module docs).
 pub fn apply(
@@ -363,8 +373,10 @@ pub fn apply(
         // A passing failure (the log or archive could not be read): the
         // correction stays for the next listing.
         Err(e) if matches!(e.kind(), ErrorKind::Io(_)) => {
-            warn!(correction = %name, "cannot check it now: {e}; it stays and is read again");
-            return Applied::Gone;
+            return Applied::Waiting {
+                what: CHECKING,
+                error: format!("{name}: {e}"),
+            };
         }
         Err(e) => {
             return reject(
@@ -378,8 +390,10 @@ pub fn apply(
     let lines = match read_lines(&folders.state) {
         Ok(l) => l,
         Err(e) => {
-            warn!(correction = %name, "cannot read the lines: {e}; the correction stays");
-            return Applied::Gone;
+            return Applied::Waiting {
+                what: STORING,
+                error: format!("{name}: cannot read the lines: {e}"),
+            };
         }
     };
     let label = Label {
@@ -415,10 +429,10 @@ pub fn apply(
         }
         // The labels could not be written (a full disk...): the file stays
         // for the next listing.
-        Err(e) => {
-            warn!(correction = %name, "cannot store the labels: {e}; the correction stays");
-            Applied::Gone
-        }
+        Err(e) => Applied::Waiting {
+            what: STORING,
+            error: format!("{name}: {e}"),
+        },
     }
 }
 

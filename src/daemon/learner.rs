@@ -48,6 +48,9 @@ struct Job {
     /// Requests to answer when it ends.
     waiting: Vec<PathBuf>,
     thread: thread::JoinHandle<()>,
+    /// The learner's `last_tried` before this job: taken back when the
+    /// job's decision cannot be recorded, so the schedule tries again.
+    tried_before: Option<u64>,
 }
 
 /// How a retrain job ended.
@@ -70,6 +73,10 @@ pub(super) struct Learner {
     last_tried: Option<u64>,
     /// The drift monitors, for the corrections' error indicators.
     watch: Option<super::alerts::Watch>,
+    /// Failing operations on corrections, said once per run of failures.
+    troubles: super::troubles::Troubles,
+    /// What the status endpoint shows.
+    board: Option<Arc<super::status::Board>>,
 }
 
 /// Lowers the calling thread's CPU and disk priority (Linux: both are per
@@ -121,6 +128,7 @@ impl Learner {
         running: Arc<ArcSwap<Running>>,
         out: Sender<FromLearner>,
         watch: Option<super::alerts::Watch>,
+        board: Option<Arc<super::status::Board>>,
     ) -> Learner {
         let every = running.load().live.retrain.check_every;
         let last_tried = learning.last_decided_generation();
@@ -139,6 +147,8 @@ impl Learner {
             next_check: Instant::now() + every,
             last_tried,
             watch,
+            troubles: Default::default(),
+            board,
         }
     }
 
@@ -177,6 +187,7 @@ impl Learner {
     fn correction(&mut self, path: PathBuf) {
         let run = self.running.load_full();
         let applied = corrections::apply(&path, &mut self.learning, &run.live, Some(&run.detector));
+        self.troubled(&applied, &path);
         if let (
             corrections::Applied::New {
                 model_hash, error, ..
@@ -190,6 +201,33 @@ impl Learner {
             }
         }
         let _ = self.out.send(FromLearner::CorrectionDone(path));
+    }
+
+    /// Says a run of failures to apply corrections once (and once when it
+    /// ends), and shows it on the status endpoint meanwhile.
+    fn troubled(&mut self, applied: &corrections::Applied, path: &std::path::Path) {
+        use corrections::{Applied, CHECKING, STORING};
+        let then =
+            "corrections stay in the corrections folder and are read again, less often each time";
+        match applied {
+            Applied::Waiting { what, error } => {
+                if self.troubles.fail(what, error, path, then) {
+                    if let Some(b) = &self.board {
+                        b.trouble(what, Some(format!("{what} fails: {error}; {then}")));
+                    }
+                }
+            }
+            Applied::Gone => {}
+            _ => {
+                for what in [CHECKING, STORING] {
+                    if self.troubles.ok(what) {
+                        if let Some(b) = &self.board {
+                            b.trouble(what, None);
+                        }
+                    }
+                }
+            }
+        }
     }
 
     fn requests(&mut self) {
@@ -310,7 +348,7 @@ impl Learner {
             &run.live,
         )
         .map_err(|e| e.to_string())?;
-        self.last_tried = Some(planned.generation());
+        let tried_before = self.last_tried.replace(planned.generation());
         let stop = Arc::new(AtomicBool::new(false));
         let (tx, rx) = bounded(1);
         let model = Box::new(run.detector.model().clone());
@@ -357,6 +395,7 @@ impl Learner {
             by: by.to_string(),
             waiting: Vec::new(),
             thread,
+            tried_before,
         });
         Ok(())
     }
@@ -411,7 +450,15 @@ impl Learner {
     fn finish_job(&mut self, plan: Plan, result: crate::error::Result<Challenge>, running: &Model) {
         let job = self.job.take().expect("a job ended");
         let _ = job.thread.join();
+        let then = "the running model stays, and the retrain is tried again at the next check";
         let (ok, message) = match result {
+            // A retrain that could not write (a full state folder...) is
+            // tried again at the next check, not only once labels are new.
+            Err(e) if matches!(e.kind(), crate::error::ErrorKind::Io(_)) => {
+                self.last_tried = job.tried_before;
+                self.retrain_fails(&e.to_string(), then);
+                (false, format!("retrain failed: {e}"))
+            }
             Err(e) => {
                 error!("retrain failed: {e}");
                 (false, format!("retrain failed: {e}"))
@@ -426,24 +473,37 @@ impl Learner {
                 }
                 let reason = ch.reason.clone();
                 match self.learning.decide(&plan, ch, running, &job.by) {
-                    Ok(Some(m)) => {
-                        let msg = format!(
-                            "version {} ({}) is in service: {reason}",
-                            m.model_version,
-                            crate::detect::model_hash(&m)
-                        );
-                        info!("{msg}");
-                        let _ = self.out.send(FromLearner::InService(Box::new(m)));
-                        (true, msg)
+                    Ok(decided) => {
+                        if self.troubles.ok(RETRAINING) {
+                            if let Some(b) = &self.board {
+                                b.trouble(RETRAINING, None);
+                            }
+                        }
+                        match decided {
+                            Some(m) => {
+                                let msg = format!(
+                                    "version {} ({}) is in service: {reason}",
+                                    m.model_version,
+                                    crate::detect::model_hash(&m)
+                                );
+                                info!("{msg}");
+                                let _ = self.out.send(FromLearner::InService(Box::new(m)));
+                                (true, msg)
+                            }
+                            None => {
+                                let msg = format!("the running model stays: {reason}");
+                                info!("{msg}");
+                                (true, msg)
+                            }
+                        }
                     }
-                    Ok(None) => {
-                        let msg = format!("the running model stays: {reason}");
-                        info!("{msg}");
-                        (true, msg)
-                    }
+                    // Nothing was decided (a full state folder...): the
+                    // schedule tries again at its next check.
                     Err(e) => {
-                        error!("cannot record the retrain's decision: {e}");
-                        (false, format!("cannot record the decision: {e}"))
+                        self.last_tried = job.tried_before;
+                        let e = format!("cannot record the decision: {e}");
+                        self.retrain_fails(&e, then);
+                        (false, e)
                     }
                 }
             }
@@ -461,11 +521,22 @@ impl Learner {
                 },
             );
         }
-        if !ok {
-            warn!("{message}");
+    }
+
+    /// A retrain failed for its files: said once per run of failures, and
+    /// shown on the status endpoint meanwhile.
+    fn retrain_fails(&mut self, e: &str, then: &str) {
+        let state = self.learning.folders.state.clone();
+        if self.troubles.fail(RETRAINING, e, &state, then) {
+            if let Some(b) = &self.board {
+                b.trouble(RETRAINING, Some(format!("{RETRAINING} fails: {e}; {then}")));
+            }
         }
     }
 }
+
+/// What a retrain that cannot write is called in the messages.
+const RETRAINING: &str = "retraining";
 
 /// Minutes after local midnight now.
 fn local_minute() -> u32 {

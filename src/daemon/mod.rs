@@ -72,6 +72,7 @@ pub mod retrain;
 pub mod sink;
 pub mod start;
 pub mod status;
+pub mod troubles;
 mod worker;
 mod writer;
 
@@ -355,7 +356,13 @@ pub fn run_with(
         .map_err(Error::from)?;
     let (to_learner, learner_rx) = unbounded::<ToLearner>();
     let (learner_tx, from_learner) = unbounded::<FromLearner>();
-    let learner = Learner::new(learning, running.clone(), learner_tx, watch.clone());
+    let learner = Learner::new(
+        learning,
+        running.clone(),
+        learner_tx,
+        watch.clone(),
+        Some(board.clone()),
+    );
     let learner = thread::Builder::new()
         .name("burlwatch-learner".into())
         .spawn(move || learner.run(learner_rx))

@@ -83,8 +83,8 @@ pub struct Board {
     events: AtomicBool,
     model: Mutex<(u64, String)>,
     started: AtomicI64,
-    /// Operations failing for every frame now (writing the log, moving
-    /// frames), with their error.
+    /// Operations failing for every file now (writing the log, moving
+    /// frames, storing corrections), with the problem as `/healthz` says it.
     troubles: Mutex<BTreeMap<String, String>>,
 }
 
@@ -118,6 +118,19 @@ impl Board {
         self.workers_lost.store(true, Ordering::Relaxed);
     }
 
+    /// An operation started failing (`Some(problem)`) or works again.
+    pub fn trouble(&self, what: &str, problem: Option<String>) {
+        let mut t = self.troubles.lock().unwrap_or_else(|p| p.into_inner());
+        match problem {
+            Some(p) => {
+                t.insert(what.to_string(), p);
+            }
+            None => {
+                t.remove(what);
+            }
+        }
+    }
+
     /// An alert line was written.
     pub fn alert(&self) {
         self.alerts.fetch_add(1, Ordering::Relaxed);
@@ -146,15 +159,8 @@ impl Board {
             }
             Finished::Left { .. } => return,
             Finished::Trouble { what, error } => {
-                let mut t = self.troubles.lock().unwrap_or_else(|p| p.into_inner());
-                match error {
-                    Some(e) => {
-                        t.insert(what.to_string(), e.to_string());
-                    }
-                    None => {
-                        t.remove(*what);
-                    }
-                }
+                let problem = error.map(|e| format!("{what} fails: {e}; frames wait in the inbox"));
+                self.trouble(what, problem);
                 return;
             }
         }
@@ -174,14 +180,13 @@ impl Board {
         if self.writer_lost.load(Ordering::Relaxed) {
             p.push("the detection log writer stopped".into());
         }
-        for (what, e) in self
-            .troubles
-            .lock()
-            .unwrap_or_else(|p| p.into_inner())
-            .iter()
-        {
-            p.push(format!("{what} fails: {e}; frames wait in the inbox"));
-        }
+        p.extend(
+            self.troubles
+                .lock()
+                .unwrap_or_else(|p| p.into_inner())
+                .values()
+                .cloned(),
+        );
         if self.workers_lost.load(Ordering::Relaxed) {
             p.push("every detection worker stopped".into());
         }
@@ -514,6 +519,17 @@ mod tests {
             error: None,
         });
         assert!(b.problems().is_empty());
+        assert!(b.health(Vec::new()).healthy);
+        // The learner's troubles say what waits: corrections, not frames.
+        b.trouble(
+            "storing corrections in the state folder",
+            Some("storing corrections in the state folder fails: full; corrections stay".into()),
+        );
+        assert_eq!(
+            b.problems(),
+            ["storing corrections in the state folder fails: full; corrections stay"]
+        );
+        b.trouble("storing corrections in the state folder", None);
         assert!(b.health(Vec::new()).healthy);
     }
 }

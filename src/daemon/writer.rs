@@ -74,84 +74,13 @@ pub(super) struct Writer {
     faults: Faults,
     out: Sender<FromWriter>,
     sinks: Vec<Box<dyn RecordSink>>,
-    troubles: Troubles,
+    troubles: super::troubles::Troubles,
 }
 
 /// The operations the writer repeats for every frame, by name.
 pub const LOG_WRITE: &str = "writing the detection log";
 pub const ARCHIVE_MOVE: &str = "moving frames to the archive";
 pub const REJECT_MOVE: &str = "moving files to rejected/";
-
-/// While an operation fails, it is said again this often.
-pub const TROUBLE_REPEAT: Duration = Duration::from_secs(600);
-
-/// One failing operation.
-#[derive(Debug)]
-struct Trouble {
-    since: Instant,
-    failures: u64,
-    said: Instant,
-}
-
-/// Failing operations: said once when they start failing, again every
-/// [`TROUBLE_REPEAT`] while they last, and once when they work again,
-/// rather than once per frame (a full disk fails every frame).
-#[derive(Debug, Default)]
-struct Troubles(HashMap<&'static str, Trouble>);
-
-impl Troubles {
-    /// Counts a failure; whether it is the first of a run of failures.
-    fn fail(&mut self, what: &'static str, e: &str, frame: &Path) -> bool {
-        let now = Instant::now();
-        match self.0.get_mut(what) {
-            None => {
-                error!(
-                    frame = ?frame,
-                    "{what} fails: {e}; frames stay in the inbox and are tried again, less often each time (said again every {} minutes while it lasts)",
-                    TROUBLE_REPEAT.as_secs() / 60
-                );
-                self.0.insert(
-                    what,
-                    Trouble {
-                        since: now,
-                        failures: 1,
-                        said: now,
-                    },
-                );
-                true
-            }
-            Some(t) => {
-                t.failures += 1;
-                if now.duration_since(t.said) >= TROUBLE_REPEAT {
-                    t.said = now;
-                    error!(
-                        "{what} still fails ({} failures over {:.0} s): {e}",
-                        t.failures,
-                        now.duration_since(t.since).as_secs_f64()
-                    );
-                } else {
-                    debug!(frame = ?frame, "{what} fails: {e}");
-                }
-                false
-            }
-        }
-    }
-
-    /// An operation worked; whether it had been failing.
-    fn ok(&mut self, what: &'static str) -> bool {
-        match self.0.remove(what) {
-            Some(t) => {
-                info!(
-                    "{what} works again, after {} failure(s) over {:.0} s",
-                    t.failures,
-                    t.since.elapsed().as_secs_f64()
-                );
-                true
-            }
-            None => false,
-        }
-    }
-}
 
 /// However the writer ends, its subscribers hear that the run is over.
 impl Drop for Writer {
@@ -189,7 +118,7 @@ impl Writer {
             faults,
             out,
             sinks,
-            troubles: Troubles::default(),
+            troubles: super::troubles::Troubles::default(),
         }
     }
 
@@ -409,7 +338,12 @@ impl Writer {
     /// An operation failed for `frame`: said (once per run of failures)
     /// and told to the subscribers when it starts failing.
     fn fails(&mut self, what: &'static str, e: &str, frame: &Path) {
-        if self.troubles.fail(what, e, frame) {
+        if self.troubles.fail(
+            what,
+            e,
+            frame,
+            "frames stay in the inbox and are tried again, less often each time",
+        ) {
             self.tell(&Finished::Trouble {
                 what,
                 error: Some(e),
