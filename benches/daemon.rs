@@ -25,7 +25,13 @@
 //!    resident memory, open files and the logs' and archive's size every
 //!    10,000.
 //!
-//! Environment: `BURLWATCH_BENCH_ONLY=daemon`, `status` or `soak` runs one
+//! 5. with `BURLWATCH_BENCH_ONLY=big` alone: eight 8192 x 8192 frames
+//!    (loom frames tiled) dropped at once for 4 workers, with the default
+//!    `detection.max_pixels_at_once` (one such frame at a time) and with a
+//!    budget of four (as before the budget): the daemon's peak resident
+//!    memory and the time to archive all eight, in alternating runs.
+//!
+//! Environment: `BURLWATCH_BENCH_ONLY=daemon`, `status`, `soak` or `big` runs one
 //! part; `BURLWATCH_BENCH_FRAMES` (default 5000) for the
 //! throughput runs.
 
@@ -35,7 +41,7 @@ use std::sync::atomic::Ordering;
 use std::time::{Duration, Instant};
 
 mod support;
-use support::{percentile, rss_kib, Arrivals};
+use support::{peak_rss_kib, percentile, rss_kib, Arrivals};
 
 use burlwatch::codec::DecodeLimits;
 use burlwatch::learn::{self, TrainParams};
@@ -195,6 +201,68 @@ fn main() {
     }
     if only == "soak" {
         soak(&model, &frames);
+    }
+    if only == "big" {
+        big_frames(&model, &frames);
+    }
+}
+
+/// Eight 8192 x 8192 frames at once for 4 workers: peak resident memory
+/// and seconds to archive them, with the default pixel budget (one such
+/// frame) and with room for four, in three alternating pairs of runs.
+fn big_frames(model: &str, frames: &[Vec<u8>]) {
+    let limits = DecodeLimits::default();
+    let side = 8192;
+    let big: Vec<Vec<u8>> = frames
+        .iter()
+        .take(8)
+        .map(|bytes| {
+            let tile = burlwatch::codec::decode(bytes, &limits).unwrap();
+            let (w, h) = (tile.width(), tile.height());
+            let f = burlwatch::frame::BitFrame::from_fn(side, side, |x, y| tile.get(x % w, y % h));
+            burlwatch::codec::encode_pbm(&f)
+        })
+        .collect();
+    let mut results: Vec<(&str, Vec<(f64, f64)>)> = vec![
+        ("one at a time", Vec::new()),
+        ("four at a time", Vec::new()),
+    ];
+    for run in 0..3 {
+        for (k, budget) in [1u64, 4].into_iter().enumerate() {
+            let b = start(
+                model,
+                &format!(
+                    "[detection]\nworkers = 4\nmax_pixels_at_once = {}\n[drift]\nenabled = false\n[status]\nenabled = false\n",
+                    budget * 8192 * 8192
+                ),
+                &format!("big{run}-{budget}"),
+            );
+            let arrivals = Arrivals::watch(&b.root.join("archive"));
+            let stage = b.root.join("stage");
+            std::fs::create_dir_all(&stage).unwrap();
+            for (i, bytes) in big.iter().enumerate() {
+                std::fs::write(stage.join(format!("big{i}.pbm")), bytes).unwrap();
+            }
+            let t0 = Instant::now();
+            for i in 0..big.len() {
+                let name = format!("big{i}.pbm");
+                std::fs::rename(stage.join(&name), b.root.join("inbox").join(&name)).unwrap();
+            }
+            arrivals.wait_count(big.len(), 600);
+            let secs = t0.elapsed().as_secs_f64();
+            let peak = peak_rss_kib(b.child.id()) as f64 / 1024.0;
+            results[k].1.push((peak, secs));
+        }
+    }
+    for (what, runs) in results {
+        let mut peaks: Vec<f64> = runs.iter().map(|r| r.0).collect();
+        let mut secs: Vec<f64> = runs.iter().map(|r| r.1).collect();
+        println!(
+            "8 frames of 8192x8192, 4 workers, {what}: peak RSS median {:.0} MB (runs {:?}), {:.1} s median",
+            percentile(&mut peaks, 0.5),
+            runs.iter().map(|r| r.0.round()).collect::<Vec<_>>(),
+            percentile(&mut secs, 0.5)
+        );
     }
 }
 

@@ -76,6 +76,27 @@ pub fn sniff(bytes: &[u8]) -> Result<Format> {
     }
 }
 
+/// The width and height a PBM or PNG file's header states, read without
+/// decoding anything (for planning memory before the decode, which checks
+/// the header again). `None` for bytes that are neither.
+pub fn stated_size(bytes: &[u8]) -> Option<(u64, u64)> {
+    match sniff(bytes).ok()? {
+        Format::PbmPlain | Format::PbmRaw => {
+            let mut h = Header { bytes, pos: 2 };
+            Some((h.number("width").ok()?, h.number("height").ok()?))
+        }
+        // The IHDR chunk comes first: length, type, then width and height
+        // as 4-byte big-endian numbers (PNG specification, 11.2.2).
+        Format::Png => {
+            let be = |at: usize| -> Option<u64> {
+                Some(u32::from_be_bytes(bytes.get(at..at + 4)?.try_into().ok()?) as u64)
+            };
+            (bytes.get(12..16) == Some(b"IHDR")).then_some(())?;
+            Some((be(16)?, be(20)?))
+        }
+    }
+}
+
 /// Decodes a PBM or PNG file's bytes.
 pub fn decode(bytes: &[u8], limits: &DecodeLimits) -> Result<BitFrame> {
     match sniff(bytes)? {
@@ -526,6 +547,24 @@ mod tests {
             let plain = encode_pbm_plain(&f);
             assert_eq!(decode(&plain, &lim()).unwrap(), f, "plain width {w}");
         }
+    }
+
+    #[test]
+    fn the_stated_size_is_read_from_the_header_alone() {
+        // Netpbm PBM: comments may stand between the header's numbers.
+        assert_eq!(
+            stated_size(b"P1\n# a comment\n3 # width\n\t2\n"),
+            Some((3, 2))
+        );
+        // A header stating more than the limits is still read (the decode
+        // refuses it); the raster need not be there.
+        assert_eq!(stated_size(b"P4 100000 7\n"), Some((100_000, 7)));
+        // PNG: width and height from IHDR (PNG specification, 11.2.2).
+        let f = BitFrame::from_fn(37, 5, |x, _| x % 2 == 0);
+        assert_eq!(stated_size(&encode_png(&f).unwrap()), Some((37, 5)));
+        assert_eq!(stated_size(b"\x89PNG\r\n\x1a\n"), None);
+        assert_eq!(stated_size(b"GIF89a"), None);
+        assert_eq!(stated_size(b"P4\n"), None);
     }
 
     #[test]

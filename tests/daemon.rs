@@ -914,7 +914,9 @@ fn a_detection_log_deleted_or_renamed_while_running_loses_no_record() {
     logged_once(&read(&moved), second);
     logged_once(&read(&log), third);
     assert_eq!(
-        s.stderr().matches("deleted, renamed or replaced").count(),
+        s.stderr()
+            .matches("the detection log was deleted, renamed or replaced")
+            .count(),
         2,
         "{}",
         s.stderr()

@@ -94,6 +94,14 @@ pub fn rss_kib(pid: u32) -> u64 {
     l.split_whitespace().nth(1).unwrap().parse().unwrap()
 }
 
+/// A process's peak resident memory so far (VmHWM), KiB.
+#[allow(dead_code)]
+pub fn peak_rss_kib(pid: u32) -> u64 {
+    let s = std::fs::read_to_string(format!("/proc/{pid}/status")).unwrap();
+    let l = s.lines().find(|l| l.starts_with("VmHWM:")).unwrap();
+    l.split_whitespace().nth(1).unwrap().parse().unwrap()
+}
+
 /// The `q` quantile of `v` (sorted in place), nearest rank.
 pub fn percentile(v: &mut [f64], q: f64) -> f64 {
     v.sort_by(f64::total_cmp);

@@ -117,6 +117,9 @@ pub struct StartConfig {
     pub folders: Folders,
     /// Detection threads; 0 means one per processor.
     pub workers: usize,
+    /// Most pixels in detection at once over all workers: bounds detection
+    /// memory whatever the number of workers (a larger frame runs alone).
+    pub max_pixels_at_once: u64,
     /// Frames read but not yet logged, at most (`watch.queue`).
     pub queue: usize,
     /// `watch.settle_millis`.
@@ -170,6 +173,10 @@ impl StartConfig {
             }
         };
         differs("detection.workers", self.workers != new.workers);
+        differs(
+            "detection.max_pixels_at_once",
+            self.max_pixels_at_once != new.max_pixels_at_once,
+        );
         differs("watch.queue", self.queue != new.queue);
         differs(
             "watch.settle_millis",

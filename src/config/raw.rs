@@ -70,9 +70,16 @@ pub struct RawDetection {
     pub merge_distance: Option<u32>,
     /// Detection threads (default 0: one per processor).
     pub workers: Option<usize>,
+    /// Most pixels in detection at once, over all workers (default
+    /// 67,108,864: one 8192 x 8192 frame).
+    pub max_pixels_at_once: Option<u64>,
     /// When set, a model with another window is refused.
     pub window: Option<u8>,
 }
+
+/// The default of `detection.max_pixels_at_once`: one frame of the
+/// default largest size, 8192 x 8192.
+pub const DEFAULT_PIXELS_AT_ONCE: u64 = 8192 * 8192;
 
 /// `[folders]`: where the daemon reads and writes.
 #[derive(Debug, Default, Deserialize)]
@@ -385,6 +392,13 @@ impl RawConfig {
                 format!("{workers} is over the limit of 256"),
             ));
         }
+        let max_pixels_at_once = det.max_pixels_at_once.unwrap_or(DEFAULT_PIXELS_AT_ONCE);
+        if max_pixels_at_once < 65_536 {
+            return Err(invalid(
+                "detection.max_pixels_at_once",
+                format!("{max_pixels_at_once} is under the least of 65536 (256 x 256)"),
+            ));
+        }
         let window = match det.window {
             None => None,
             Some(s) => Some(Window::new(s).ok_or_else(|| {
@@ -521,6 +535,7 @@ impl RawConfig {
             start: StartConfig {
                 folders,
                 workers,
+                max_pixels_at_once,
                 queue,
                 settle_millis,
                 events: w.events.unwrap_or(true),

@@ -242,6 +242,12 @@ impl<T> DetectionLog<T> {
                 self.file = file;
                 self.size = size;
                 self.synced_size = size;
+                // An incident, said each time it happens (the failing sync
+                // it causes is said as a run of failures).
+                tracing::warn!(
+                    "the detection log was deleted, renamed or replaced: {}; a new one is started there",
+                    path.display()
+                );
                 Err(io::Error::other(format!(
                     "{} was deleted, renamed or replaced while the daemon wrote to it; \
                      a new log is started there and the records not yet durable are written again",

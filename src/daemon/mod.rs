@@ -298,13 +298,15 @@ pub fn run_with(
     // Stopping asks the writer to sync now rather than at its batch deadline.
     let (flush_tx, flush_rx) = bounded::<()>(1);
     let mut threads = Vec::new();
+    let budget = Arc::new(worker::PixelBudget::new(start.max_pixels_at_once));
     for k in 0..workers {
         let (rx, tx, run) = (work_rx.clone(), res_tx.clone(), running.clone());
+        let budget = budget.clone();
         let faults = hooks.faults.clone();
         threads.push(
             thread::Builder::new()
                 .name(format!("burlwatch-worker-{k}"))
-                .spawn(move || worker::work(rx, tx, run, faults))
+                .spawn(move || worker::work(rx, tx, run, budget, faults))
                 .map_err(Error::from)?,
         );
     }

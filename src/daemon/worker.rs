@@ -1,10 +1,19 @@
 //! A detection worker: reads the frame it is handed, runs the detector
 //! that is in service at that moment, and passes the outcome to the
-//! writer. Workers share nothing but the swappable [`Running`] state; each
-//! keeps its own scratch buffers.
+//! writer. Workers share the swappable [`Running`] state and the
+//! [`PixelBudget`]; each keeps its own scratch buffers.
+//!
+//! Memory: detection needs about 1.7 bytes a pixel of working planes. A
+//! worker takes its frame's pixels from the shared budget
+//! (`detection.max_pixels_at_once`) before detecting and gives them back
+//! after, so the planes of all workers together stay within the budget
+//! whatever the number of workers; a frame larger than the whole budget
+//! waits for the others and runs alone. After a frame larger than
+//! [`KEEP_SCRATCH_PIXELS`] the worker lets its planes go, so a rare huge
+//! frame does not hold memory until the next one.
 
 use std::path::PathBuf;
-use std::sync::Arc;
+use std::sync::{Arc, Condvar, Mutex};
 use std::time::{Instant, SystemTime};
 
 use arc_swap::ArcSwap;
@@ -44,6 +53,65 @@ impl Running {
     }
 }
 
+/// A worker keeps its scratch planes between frames up to this size (4
+/// Mpx, about 7 MB of planes); past it they are let go after the frame.
+pub const KEEP_SCRATCH_PIXELS: u64 = 1 << 22;
+
+/// Pixels in detection at once, shared by the workers (see the module
+/// docs).
+#[derive(Debug)]
+pub struct PixelBudget {
+    capacity: u64,
+    used: Mutex<u64>,
+    freed: Condvar,
+}
+
+/// Pixels taken from a [`PixelBudget`], given back when dropped.
+#[derive(Debug)]
+pub struct Taken<'a> {
+    budget: &'a PixelBudget,
+    pixels: u64,
+}
+
+impl PixelBudget {
+    pub fn new(capacity: u64) -> PixelBudget {
+        PixelBudget {
+            capacity: capacity.max(1),
+            used: Mutex::new(0),
+            freed: Condvar::new(),
+        }
+    }
+
+    /// Waits until `pixels` (at most the whole budget) are free and takes
+    /// them.
+    pub fn take(&self, pixels: u64) -> Taken<'_> {
+        let pixels = pixels.clamp(1, self.capacity);
+        let mut used = self.used.lock().unwrap_or_else(|p| p.into_inner());
+        while *used + pixels > self.capacity {
+            used = self.freed.wait(used).unwrap_or_else(|p| p.into_inner());
+        }
+        *used += pixels;
+        Taken {
+            budget: self,
+            pixels,
+        }
+    }
+
+    /// Pixels taken now.
+    #[cfg(test)]
+    fn used(&self) -> u64 {
+        *self.used.lock().unwrap_or_else(|p| p.into_inner())
+    }
+}
+
+impl Drop for Taken<'_> {
+    fn drop(&mut self) {
+        let mut used = self.budget.used.lock().unwrap_or_else(|p| p.into_inner());
+        *used -= self.pixels;
+        self.budget.freed.notify_all();
+    }
+}
+
 /// A frame handed to the workers: its place in hand-out order and path.
 #[derive(Debug)]
 pub(super) struct Job {
@@ -69,6 +137,7 @@ pub(super) fn work(
     jobs: Receiver<Job>,
     results: Sender<(Job, Outcome)>,
     running: Arc<ArcSwap<Running>>,
+    budget: Arc<PixelBudget>,
     faults: super::faults::Faults,
 ) {
     let mut scratch = Scratch::default();
@@ -85,7 +154,7 @@ pub(super) fn work(
             std::thread::sleep(std::time::Duration::from_millis(5));
         }
         let run = running.load_full();
-        let outcome = detect_one(&job, &run, &mut scratch, &mut clock);
+        let outcome = detect_one(&job, &run, &budget, &mut scratch, &mut clock);
         if results.send((job, outcome)).is_err() {
             return;
         }
@@ -95,6 +164,7 @@ pub(super) fn work(
 fn detect_one(
     job: &Job,
     run: &Running,
+    budget: &PixelBudget,
     scratch: &mut Scratch,
     clock: &mut dyn FnMut() -> (SystemTime, f64),
 ) -> Outcome {
@@ -122,11 +192,19 @@ fn detect_one(
             };
         }
     };
+    // The pixels the header states (the decode checks them against the
+    // limits); bytes that state none take the least share.
+    let pixels = crate::codec::stated_size(&bytes).map_or(1, |(w, h)| w.saturating_mul(h));
+    let taken = budget.take(pixels);
     // A bug in detection must cost one frame, not the daemon: the frame is
     // rejected with the panic's message.
     let result = std::panic::catch_unwind(std::panic::AssertUnwindSafe(|| {
         run.detector.process(&name, &bytes, limits, scratch, clock)
     }));
+    if pixels > KEEP_SCRATCH_PIXELS {
+        *scratch = Scratch::default();
+    }
+    drop(taken);
     match result {
         Ok(Ok(d)) => {
             let stats = match &run.probe {
@@ -157,5 +235,34 @@ fn detect_one(
                 Some(stamp),
             )
         }
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use std::time::Duration;
+
+    #[test]
+    fn the_budget_holds_pixels_until_they_are_given_back() {
+        let b = Arc::new(PixelBudget::new(100));
+        let a = b.take(60);
+        // 60 + 50 > 100: the second waits until the first is given back.
+        let (tx, rx) = crossbeam_channel::bounded(1);
+        let b2 = b.clone();
+        let t = std::thread::spawn(move || {
+            let _t = b2.take(50);
+            tx.send(()).unwrap();
+        });
+        assert!(rx.recv_timeout(Duration::from_millis(200)).is_err());
+        drop(a);
+        rx.recv_timeout(Duration::from_secs(10)).unwrap();
+        t.join().unwrap();
+        assert_eq!(b.used(), 0);
+        // Larger than the whole budget: takes all of it, and runs alone.
+        let big = b.take(1_000);
+        assert_eq!(b.used(), 100);
+        drop(big);
+        assert_eq!(b.used(), 0);
     }
 }

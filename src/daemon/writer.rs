@@ -180,7 +180,11 @@ impl Writer {
     fn handle(&mut self, job: Job, outcome: Outcome) {
         match outcome {
             Outcome::Gone => {
-                info!(frame = %job.path.display(), "gone from the inbox before it was read: not inspected");
+                // (A frame still there could not be read for a passing
+                // reason, which the worker said.)
+                if gone(&job.path) {
+                    info!(frame = %job.path.display(), "gone from the inbox before it was read: not inspected");
+                }
                 self.left(job.path)
             }
             Outcome::Reject(reason, stamp) => {
