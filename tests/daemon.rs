@@ -923,6 +923,43 @@ fn a_detection_log_deleted_or_renamed_while_running_loses_no_record() {
     );
 }
 
+/// Issue 14, "the logs folder deleted (or replaced) while running": the
+/// whole logs folder removed under a running daemon. At the next sync the
+/// daemon makes it again, starts a new log there, locks it anew (a second
+/// daemon cannot take it) and goes on: the frames whose records went with
+/// the folder stayed in the inbox and are logged once in the new log; the
+/// daemon keeps running (before, the writer stopped, and the daemon with it).
+#[test]
+fn a_logs_folder_deleted_while_running_is_made_again() {
+    let s = Setup::new("[watch]\nrescan_seconds = 0.2\n[status]\nenabled = false\n");
+    let mut d = s.start_watching();
+    let all = frames(40, 52);
+    let (first, second) = all.split_at(20);
+    for (n, b) in first {
+        s.drop_frame(n, b);
+    }
+    wait_for("the first frames to be archived", 60, || {
+        s.names_in("archive").len() == 20
+    });
+    std::fs::remove_dir_all(s.dir.join("logs")).unwrap();
+    for (n, b) in second {
+        s.drop_frame(n, b);
+    }
+    wait_for("the second frames to be archived", 60, || {
+        s.names_in("archive").len() == 40
+    });
+    assert!(
+        s.stderr().contains("was gone: made again"),
+        "{}",
+        s.stderr()
+    );
+    // The folder made again is locked, so a second daemon refuses it.
+    assert!(burlwatch::daemon::files::folder_in_use(&s.dir.join("logs")));
+    signal(&d, libc::SIGTERM);
+    assert_eq!(exit_code(&mut d, 20), 0, "{}", s.stderr());
+    logged_once(&s.records(), second);
+}
+
 /// Regression (a fault probe found 1,000 of 1,000 frames logged twice): a
 /// second daemon with its own state folder but the same inbox, corrections
 /// and logs folders refuses to start, naming the folder, and `check` says

@@ -81,6 +81,18 @@ pub struct DetectionLog<T> {
     /// failed write or sync failed, or a rotation stopped half-way): every
     /// later append fails, and the daemon must stop and open the log again.
     broken: Option<String>,
+    /// The logs folder's device and inode as last seen, and the lock on a
+    /// folder made again (or put in its place) while running: the one
+    /// taken at start stays with the folder it was taken on.
+    dir_id: (u64, u64),
+    relocked: Option<super::files::FolderLocks>,
+}
+
+/// A folder's device and inode.
+fn dir_id(dir: &Path) -> io::Result<(u64, u64)> {
+    use std::os::unix::fs::MetadataExt;
+    let m = fs::metadata(dir)?;
+    Ok((m.dev(), m.ino()))
 }
 
 impl<T> DetectionLog<T> {
@@ -122,6 +134,8 @@ impl<T> DetectionLog<T> {
                 settled: Settled::default(),
                 faults,
                 broken: None,
+                dir_id: dir_id(dir)?,
+                relocked: None,
             },
             keys,
         ))
@@ -217,6 +231,40 @@ impl<T> DetectionLog<T> {
         (std::mem::take(&mut self.settled), error)
     }
 
+    /// The logs folder deleted (or replaced) while running: made again if
+    /// gone, and locked anew if it is not the folder locked before. Said.
+    fn folder_back(&mut self) {
+        if let Err(e) = fs::symlink_metadata(&self.dir) {
+            if e.kind() == io::ErrorKind::NotFound {
+                match fs::create_dir_all(&self.dir) {
+                    Ok(()) => tracing::warn!(
+                        "the logs folder {} was gone: made again",
+                        self.dir.display()
+                    ),
+                    Err(e) => {
+                        tracing::error!(
+                            "the logs folder {} is gone and cannot be made again: {e}",
+                            self.dir.display()
+                        );
+                        return;
+                    }
+                }
+            }
+        }
+        let Ok(id) = dir_id(&self.dir) else { return };
+        if id == self.dir_id {
+            return;
+        }
+        self.dir_id = id;
+        match super::files::FolderLocks::acquire(&[("folders.logs", &self.dir)]) {
+            Ok(lock) => {
+                self.relocked = Some(lock);
+                tracing::info!("the logs folder {} is locked anew", self.dir.display());
+            }
+            Err(e) => tracing::error!("{e}"),
+        }
+    }
+
     /// Checks that the log's path still names the open file; when it does
     /// not (deleted, renamed or replaced), starts a new file there and
     /// fails, so the caller cuts the records since the last check off the
@@ -237,6 +285,7 @@ impl<T> DetectionLog<T> {
         // The records since the last good sync are cut off the old file
         // (still open, wherever it went) before the handle is replaced.
         self.cut_unsynced_back();
+        self.folder_back();
         match open_current(&self.dir) {
             Ok((file, size)) => {
                 self.file = file;
