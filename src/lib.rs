@@ -66,6 +66,7 @@ pub mod render;
 pub mod report;
 pub mod review;
 pub mod score;
+pub mod suite;
 pub mod synth;
 pub mod window;
 

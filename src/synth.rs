@@ -7,7 +7,12 @@
 //! slowly along its length, optionally with plain-weave crossing marks.
 //! Holes, knots and broken threads are painted in, a mask frame marks
 //! exactly their pixels, and salt-and-pepper sensor noise is applied last to
-//! the frame (never to the mask).
+//! the frame (never to the mask). The evaluation suite's settings
+//! ([`LoomParams::suite`]) add a twill-like diagonal of crossing marks,
+//! smaller or larger defects, defects cut off by the frame's edge, and
+//! uneven light that thickens or thins the threads in broad patches.
+//! Options that are off draw no random number, so frames made without them
+//! keep their bits.
 //!
 //! Key design decision: a frame is a pure function of its parameters and
 //! seed. The random numbers come from a hand-written PRNG ([`Rng`]:
@@ -27,6 +32,8 @@ pub const DEFECT_GAP: usize = 12;
 pub const DEFECT_MARGIN: usize = 4;
 /// Pixels on each side of a broken thread's bed that belong to its defect region.
 pub const BED_MARGIN: usize = 2;
+/// Least pixels of a defect cut off by the frame's edge.
+pub const EDGE_DEFECT_PIXELS: usize = 8;
 /// Placement attempts per defect before it is left out of the frame.
 const PLACEMENT_TRIES: usize = 64;
 /// SplitMix64's increment (2^64 divided by the golden ratio).
@@ -150,6 +157,24 @@ pub struct LoomParams {
     /// warp (every other crossing, checkerboard-wise), the one-pixel lines
     /// along the warp's edges are cleared.
     pub weave_marks: bool,
+    /// A twill-like weave: with `weave_marks`, the marks fall at the
+    /// crossings where (warp + weft) mod `twill` is 0, which lines them up
+    /// in diagonals. 0 (or 1, 2): plain weave, as above.
+    pub twill: usize,
+    /// Inclusive range of a knot's radius, pixels (default 3 to 5).
+    pub knot_radius: (usize, usize),
+    /// Inclusive range of a hole's radius, pixels (default 4 to 8).
+    pub hole_radius: (usize, usize),
+    /// Inclusive range of a broken thread's gap length (default 12 to 30).
+    pub break_length: (usize, usize),
+    /// Defects may run into the frame's edge and be cut off by it (half of
+    /// them are put across an edge), instead of keeping [`DEFECT_MARGIN`]
+    /// pixels away from it.
+    pub edge_defects: bool,
+    /// Uneven light: this many broad light or dark patches, which the
+    /// binarization turns into thinner or thicker threads (by one pixel at
+    /// the patch's rim, two at its middle). 0: even light.
+    pub light_patches: usize,
 }
 
 impl LoomParams {
@@ -166,7 +191,83 @@ impl LoomParams {
             defects_per_frame: (1, 4),
             clean_frame_share: 0.15,
             weave_marks: true,
+            twill: 0,
+            knot_radius: (3, 5),
+            hole_radius: (4, 8),
+            break_length: (12, 30),
+            edge_defects: false,
+            light_patches: 0,
         }
+    }
+
+    /// The settings of the evaluation suite (`burlwatch suite`): fabrics
+    /// and cameras that differ the way real lines differ, each 512 x 512.
+    /// Names are the `generate --preset` names.
+    pub fn suite() -> Vec<(&'static str, LoomParams)> {
+        let base = LoomParams {
+            width: 512,
+            height: 512,
+            ..LoomParams::standard()
+        };
+        vec![
+            (
+                "plain-fine",
+                LoomParams {
+                    period: 6,
+                    thread_width: 2,
+                    ..base
+                },
+            ),
+            (
+                "plain-coarse",
+                LoomParams {
+                    period: 13,
+                    thread_width: 5,
+                    jitter: 2,
+                    ..base
+                },
+            ),
+            (
+                "twill",
+                LoomParams {
+                    period: 8,
+                    thread_width: 4,
+                    twill: 3,
+                    ..base
+                },
+            ),
+            (
+                "thin-noisy",
+                LoomParams {
+                    thread_width: 2,
+                    noise: 0.05,
+                    ..base
+                },
+            ),
+            (
+                "patchy-light",
+                LoomParams {
+                    light_patches: 6,
+                    ..base
+                },
+            ),
+            (
+                "small-defects",
+                LoomParams {
+                    knot_radius: (1, 2),
+                    hole_radius: (2, 3),
+                    break_length: (6, 8),
+                    ..base
+                },
+            ),
+            (
+                "edge-defects",
+                LoomParams {
+                    edge_defects: true,
+                    ..base
+                },
+            ),
+        ]
     }
 
     /// A coarser, noisier fabric, for checking that detector defaults are
@@ -201,6 +302,12 @@ impl LoomParams {
         );
         let (lo, hi) = self.defects_per_frame;
         assert!(lo <= hi, "defects_per_frame range is reversed");
+        for (lo, hi) in [self.knot_radius, self.hole_radius, self.break_length] {
+            assert!(
+                1 <= lo && lo <= hi,
+                "a defect size range is empty or reversed"
+            );
+        }
         for p in [self.waviness, self.noise, self.clean_frame_share] {
             assert!((0.0..=1.0).contains(&p), "probability {p} out of [0, 1]");
         }
@@ -320,7 +427,7 @@ impl Weave {
     }
 
     /// The clean fabric picture.
-    fn render(&self, height: usize, weave_marks: bool) -> BitFrame {
+    fn render(&self, height: usize, weave_marks: bool, twill: usize) -> BitFrame {
         let w = self.width;
         let mut frame = BitFrame::from_fn(w, height, |x, y| {
             self.warp_owner[y * w + x] != NONE || self.weft_owner[y * w + x] != NONE
@@ -335,7 +442,12 @@ impl Weave {
                         }
                         let k = y * w + x as usize;
                         let j = self.weft_owner[k];
-                        if j != NONE && self.warp_owner[k] == NONE && (i + j as usize) & 1 == 0 {
+                        let marked = if twill >= 3 {
+                            (i + j as usize).is_multiple_of(twill)
+                        } else {
+                            (i + j as usize) & 1 == 0
+                        };
+                        if j != NONE && self.warp_owner[k] == NONE && marked {
                             frame.set(x as usize, y, false);
                         }
                     }
@@ -377,14 +489,15 @@ fn separated(a: (usize, usize, usize, usize), b: (usize, usize, usize, usize)) -
 }
 
 /// Pixel offsets of a hole or knot shape around its centre.
-fn blob(kind: DefectKind, rng: &mut Rng) -> Vec<(isize, isize)> {
+fn blob(kind: DefectKind, p: &LoomParams, rng: &mut Rng) -> Vec<(isize, isize)> {
     if kind == DefectKind::Hole {
-        let r = rng.range(4, 9) as isize;
-        let ry = (r + rng.offset(1)).clamp(4, 8);
+        let (lo, hi) = p.hole_radius;
+        let r = rng.range(lo, hi + 1) as isize;
+        let ry = (r + rng.offset(1)).clamp(lo as isize, hi as isize);
         return ellipse(r, ry);
     }
     // A knot: a disc with up to two small bumps centred on its rim.
-    let r = rng.range(3, 6) as isize;
+    let r = rng.range(p.knot_radius.0, p.knot_radius.1 + 1) as isize;
     let d = (r * 707 + 500) / 1000; // r / sqrt(2), rounded
     let rim = [
         (r, 0),
@@ -415,7 +528,8 @@ fn candidate(
     p: &LoomParams,
     rng: &mut Rng,
 ) -> Option<Vec<(usize, usize, Option<bool>)>> {
-    let (w, h, m) = (p.width as isize, p.height as isize, DEFECT_MARGIN as isize);
+    let margin = if p.edge_defects { 0 } else { DEFECT_MARGIN };
+    let (w, h, m) = (p.width as isize, p.height as isize, margin as isize);
     // (x, y, Some(value)) paints the frame and marks the mask; (x, y, None)
     // marks the mask only.
     let painted: Vec<(isize, isize, Option<bool>)> = if kind == DefectKind::BrokenThread {
@@ -431,8 +545,19 @@ fn candidate(
             &weave.weft_top
         };
         let path = &paths[rng.range(0, paths.len())];
-        let len = rng.range(12, 31);
-        let start = rng.range(0, (path.len() + 1).checked_sub(len)?);
+        let len = rng.range(p.break_length.0, p.break_length.1 + 1);
+        let last = (path.len() + 1).checked_sub(len)?;
+        // Across the frame's edge: the gap starts at the first or ends at
+        // the last pixel of the thread.
+        let start = if p.edge_defects && rng.chance(0.5) {
+            if rng.chance(0.5) {
+                0
+            } else {
+                last - 1
+            }
+        } else {
+            rng.range(0, last)
+        };
         let (crossing, parallel) = if vertical {
             (&weave.weft_owner, &weave.warp_owner)
         } else {
@@ -471,20 +596,41 @@ fn candidate(
         }
         px
     } else {
-        let shape = blob(kind, rng);
+        let shape = blob(kind, p, rng);
         let (x0, y0, x1, y1) = bounds(&shape);
         let (lo_x, hi_x, lo_y, hi_y) = (m - x0, w - 1 - m - x1, m - y0, h - 1 - m - y1);
         if lo_x > hi_x || lo_y > hi_y {
             return None;
         }
-        let cx = lo_x + rng.range(0, (hi_x - lo_x + 1) as usize) as isize;
-        let cy = lo_y + rng.range(0, (hi_y - lo_y + 1) as usize) as isize;
+        let mut cx = lo_x + rng.range(0, (hi_x - lo_x + 1) as usize) as isize;
+        let mut cy = lo_y + rng.range(0, (hi_y - lo_y + 1) as usize) as isize;
+        // Across an edge: up to half the shape's extent outside the frame.
+        if p.edge_defects && rng.chance(0.5) {
+            let out_x = 1 + rng.range(0, ((x1 - x0 + 1) / 2).max(1) as usize) as isize;
+            let out_y = 1 + rng.range(0, ((y1 - y0 + 1) / 2).max(1) as usize) as isize;
+            match rng.range(0, 4) {
+                0 => cx = -x0 - out_x,
+                1 => cx = w - 1 - x1 + out_x,
+                2 => cy = -y0 - out_y,
+                _ => cy = h - 1 - y1 + out_y,
+            }
+        }
         let ink = kind == DefectKind::Knot;
         shape
             .into_iter()
             .map(|(x, y)| (cx + x, cy + y, Some(ink)))
             .collect()
     };
+    if p.edge_defects {
+        // Cut off by the frame's edge; what is left must still be a defect
+        // a neighbourhood can see.
+        let kept: Vec<(usize, usize, Option<bool>)> = painted
+            .into_iter()
+            .filter(|&(x, y, _)| (0..w).contains(&x) && (0..h).contains(&y))
+            .map(|(x, y, v)| (x as usize, y as usize, v))
+            .collect();
+        return (kept.len() >= EDGE_DEFECT_PIXELS).then_some(kept);
+    }
     let inside =
         |&(x, y, _): &(isize, isize, Option<bool>)| x >= m && y >= m && x < w - m && y < h - m;
     painted.iter().all(inside).then(|| {
@@ -492,6 +638,56 @@ fn candidate(
             .iter()
             .map(|&(x, y, v)| (x as usize, y as usize, v))
             .collect()
+    })
+}
+
+/// The frame as binarized under uneven light: `light_patches` round
+/// patches, each light or dark, their strength falling off from the middle
+/// as 1 - (d/r)^2 (integer arithmetic, in thousandths) and adding up where
+/// they overlap. Where it is dark, threads grow by one pixel (on their
+/// left and upper sides; on every side past twice the rim's strength);
+/// where it is light, they shrink the same way. The mask is untouched:
+/// lighting is not a defect.
+fn uneven_light(frame: &BitFrame, p: &LoomParams, rng: &mut Rng) -> BitFrame {
+    const RIM: i64 = 300;
+    let (w, h) = (p.width as i64, p.height as i64);
+    let side = w.min(h) as usize;
+    let patches: Vec<(i64, i64, i64, i64)> = (0..p.light_patches)
+        .map(|_| {
+            let cx = rng.range(0, p.width) as i64;
+            let cy = rng.range(0, p.height) as i64;
+            let r = rng.range((side / 8).max(2), (side / 3).max(3)) as i64;
+            let sign = if rng.chance(0.5) { 1 } else { -1 };
+            (cx, cy, r, sign)
+        })
+        .collect();
+    let strength = |x: i64, y: i64| -> i64 {
+        patches
+            .iter()
+            .map(|&(cx, cy, r, sign)| {
+                let d2 = (x - cx) * (x - cx) + (y - cy) * (y - cy);
+                sign * ((r * r - d2).max(0) * 1000 / (r * r))
+            })
+            .sum()
+    };
+    let at = |x: i64, y: i64| frame.get_signed(x as isize, y as isize);
+    BitFrame::from_fn(p.width, p.height, |x, y| {
+        let (x, y) = (x as i64, y as i64);
+        let s = strength(x, y);
+        let here = at(x, y);
+        if s > RIM {
+            // Dark: ink spreads from the right and lower neighbours, and
+            // from every side in the patch's middle.
+            here || at(x + 1, y) || at(x, y + 1) || (s > 2 * RIM && (at(x - 1, y) || at(x, y - 1)))
+        } else if s < -RIM {
+            // Light: ink with clear on its left or upper side goes, and in
+            // the middle with clear on any side.
+            here && at(x - 1, y)
+                && at(x, y - 1)
+                && (s >= -2 * RIM || (at(x + 1, y) && at(x, y + 1)))
+        } else {
+            here
+        }
     })
 }
 
@@ -510,9 +706,12 @@ pub fn generate(params: &LoomParams, seed: u64) -> LoomFrame {
     let mut texture_rng = Rng::new(master.next_u64());
     let mut defect_rng = Rng::new(master.next_u64());
     let mut noise_rng = Rng::new(master.next_u64());
+    // Drawn after the others, so frames without uneven light keep the
+    // bits they always had.
+    let mut light_rng = Rng::new(master.next_u64());
 
     let weave = Weave::new(params, &mut texture_rng);
-    let mut frame = weave.render(params.height, params.weave_marks);
+    let mut frame = weave.render(params.height, params.weave_marks, params.twill);
     let mut mask = BitFrame::new(params.width, params.height);
     let mut defects: Vec<Defect> = Vec::new();
 
@@ -544,6 +743,9 @@ pub fn generate(params: &LoomParams, seed: u64) -> LoomFrame {
         }
     }
 
+    if params.light_patches > 0 {
+        frame = uneven_light(&frame, params, &mut light_rng);
+    }
     if params.noise > 0.0 {
         for y in 0..params.height {
             for x in 0..params.width {
@@ -715,6 +917,73 @@ mod tests {
                 }
             }
         }
+    }
+
+    /// The suite's settings keep the ground truth's promises: one
+    /// 8-connected component per defect, separated by [`DEFECT_GAP`]; away
+    /// from the edge unless the setting puts defects across it, and then
+    /// some do touch it; small defects are small.
+    #[test]
+    fn the_suite_settings_keep_their_ground_truth() {
+        for (name, p) in LoomParams::suite() {
+            let mut touching = 0;
+            for f in generate_set(&p, 2, 12) {
+                let comps = components(&f.mask);
+                assert_eq!(comps.len(), f.defects.len(), "{name}");
+                for d in &f.defects {
+                    let (x0, y0, x1, y1) = d.bbox;
+                    let own: Vec<_> = comps.iter().filter(|c| bounds(c) == d.bbox).collect();
+                    assert_eq!(own.len(), 1, "{name} {d:?}");
+                    assert!(own[0].len() >= 5, "{name} {d:?}: {} px", own[0].len());
+                    let edge = x0 == 0 || y0 == 0 || x1 + 1 == p.width || y1 + 1 == p.height;
+                    touching += edge as usize;
+                    if !p.edge_defects {
+                        assert!(x0 >= DEFECT_MARGIN && y0 >= DEFECT_MARGIN, "{name}");
+                        assert!(x1 + DEFECT_MARGIN < p.width && y1 + DEFECT_MARGIN < p.height);
+                    }
+                    if name == "small-defects" && d.kind != DefectKind::BrokenThread {
+                        // Radius at most 2 plus bumps of radius at most 2.
+                        assert!(x1 - x0 < 10 && y1 - y0 < 10, "{d:?}");
+                    }
+                }
+                for (i, a) in f.defects.iter().enumerate() {
+                    for b in &f.defects[i + 1..] {
+                        assert!(separated(a.bbox, b.bbox), "{name}: {a:?} {b:?}");
+                    }
+                }
+            }
+            if p.edge_defects {
+                assert!(
+                    touching >= 5,
+                    "{name}: only {touching} defects touch the edge"
+                );
+            } else {
+                assert_eq!(touching, 0, "{name}");
+            }
+        }
+    }
+
+    #[test]
+    fn twill_and_uneven_light_change_the_fabric_not_the_defects() {
+        let plain = LoomParams {
+            noise: 0.0,
+            ..LoomParams::standard()
+        };
+        let twill = LoomParams { twill: 3, ..plain };
+        let lit = LoomParams {
+            light_patches: 6,
+            ..plain
+        };
+        let (a, b, c) = (generate(&plain, 9), generate(&twill, 9), generate(&lit, 9));
+        assert_ne!(a.frame, b.frame);
+        assert_ne!(a.frame, c.frame);
+        // Same defects and mask: the texture and defect streams are the
+        // same, and lighting draws from its own stream after them.
+        assert_eq!((&a.mask, &a.defects), (&c.mask, &c.defects));
+        let ink = |f: &BitFrame| f.iter_set().count() as f64 / (f.width() * f.height()) as f64;
+        // Dark patches thicken threads more than light ones thin them, or
+        // the reverse; either way the ink share moves.
+        assert!((ink(&a.frame) - ink(&c.frame)).abs() > 0.002);
     }
 
     #[test]

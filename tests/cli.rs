@@ -653,3 +653,94 @@ fn earlier_output_is_kept_unless_forced() {
     assert_eq!(r.code, 1);
     assert!(r.stderr.contains("NAME.mask.pbm"), "{}", r.stderr);
 }
+
+/// The evaluation suite: per-setting results and their macro average
+/// (each setting weighs the same: macro-averaging as defined by Sokolova
+/// and Lapalme, "A systematic analysis of performance measures for
+/// classification tasks", 2009), and every figure reproduced by hand with
+/// the frames `--out` writes, `train` and `eval`.
+#[test]
+fn the_suite_scores_each_setting_and_its_figures_are_reproducible() {
+    let d = Dir::new();
+    let out = d.join("suite");
+    let r = burlwatch(
+        d.path(),
+        &[
+            "suite",
+            "--only",
+            "twill,small-defects",
+            "--train",
+            "3",
+            "--test",
+            "2",
+            "--size",
+            "128",
+            "--json",
+            "--out",
+            out.to_str().unwrap(),
+        ],
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let v: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
+    let settings = v["settings"].as_array().unwrap();
+    let names: Vec<&str> = settings
+        .iter()
+        .map(|s| s["setting"].as_str().unwrap())
+        .collect();
+    assert_eq!(names, ["twill", "small-defects"]);
+    let f1 = |s: &serde_json::Value, level: &str| s[format!("{level}_f1")].as_f64().unwrap();
+    let mean = |level: &str| settings.iter().map(|s| f1(s, level)).sum::<f64>() / 2.0;
+    assert!((v["macro_object_f1"].as_f64().unwrap() - mean("object")).abs() < 1e-12);
+    assert!((v["macro_pixel_f1"].as_f64().unwrap() - mean("pixel")).abs() < 1e-12);
+    for s in settings {
+        let name = s["setting"].as_str().unwrap();
+        // F1 = 2 TP / (2 TP + FP + FN) (van Rijsbergen's F-measure with
+        // beta = 1), from the counts printed beside it.
+        let o = &s["object"];
+        let (tp, fp, fn_) = (
+            o["tp"].as_f64().unwrap(),
+            o["fp"].as_f64().unwrap(),
+            o["fn"].as_f64().unwrap(),
+        );
+        if tp + fp + fn_ > 0.0 {
+            assert!((f1(s, "object") - 2.0 * tp / (2.0 * tp + fp + fn_)).abs() < 1e-9);
+        }
+        // The same figure by hand: train on the written training frames,
+        // evaluate on the written test frames.
+        let model = d.join(&format!("{name}.json"));
+        let train_dir = out.join(name).join("train");
+        let t = burlwatch(
+            d.path(),
+            &[
+                "train",
+                "--data",
+                train_dir.to_str().unwrap(),
+                "--out",
+                model.to_str().unwrap(),
+            ],
+        );
+        assert_eq!(t.code, 0, "{}", t.stderr);
+        let test_dir = out.join(name).join("test");
+        let e = burlwatch(
+            d.path(),
+            &[
+                "eval",
+                "--data",
+                test_dir.to_str().unwrap(),
+                "--model",
+                model.to_str().unwrap(),
+                "--json",
+            ],
+        );
+        assert_eq!(e.code, 0, "{}", e.stderr);
+        let ev: serde_json::Value = serde_json::from_str(&e.stdout).unwrap();
+        assert_eq!(ev["object"]["tp"], o["tp"], "{name}: {}", e.stdout);
+        assert_eq!(ev["object"]["fp"], o["fp"], "{name}");
+        assert_eq!(ev["object"]["fn"], o["fn"], "{name}");
+        assert_eq!(ev["pixel"]["tp"], s["pixel"]["tp"], "{name}");
+    }
+    // A name that is not a setting is refused, naming the settings.
+    let bad = burlwatch(d.path(), &["suite", "--only", "satin"]);
+    assert_ne!(bad.code, 0);
+    assert!(bad.stderr.contains("plain-fine"), "{}", bad.stderr);
+}

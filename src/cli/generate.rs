@@ -20,7 +20,9 @@ pub struct GenerateArgs {
     /// Seed: the same seed and preset always give the same frames.
     #[arg(long, default_value_t = 1)]
     seed: u64,
-    /// Loom setting: standard, alternate or drifted.
+    /// Loom setting: standard, alternate or drifted, or one of the
+    /// evaluation suite's (plain-fine, plain-coarse, twill, thin-noisy,
+    /// patchy-light, small-defects, edge-defects; see `burlwatch suite`).
     #[arg(long, default_value = "standard")]
     preset: String,
     /// Frame width in pixels (default: the preset's).
@@ -46,7 +48,16 @@ pub fn run(a: GenerateArgs) -> Result<i32> {
         "standard" => LoomParams::standard(),
         "alternate" => LoomParams::alternate(),
         "drifted" => LoomParams::drifted(),
-        other => bail!("--preset {other:?} must be standard, alternate or drifted"),
+        other => match LoomParams::suite().into_iter().find(|(n, _)| *n == other) {
+            Some((_, p)) => p,
+            None => {
+                let suite: Vec<&str> = LoomParams::suite().iter().map(|(n, _)| *n).collect();
+                bail!(
+                    "--preset {other:?} must be standard, alternate, drifted or one of the suite's: {}",
+                    suite.join(", ")
+                )
+            }
+        },
     };
     if let Some(w) = a.width {
         params.width = w;

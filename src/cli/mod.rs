@@ -3,7 +3,7 @@
 //! and prints either a human-readable table (default) or JSON (`--json`).
 //! Errors go to stderr.
 //!
-//! - offline: `train`, `scan`, `eval`, `rules`, `generate`, `bench`;
+//! - offline: `train`, `scan`, `eval`, `rules`, `generate`, `suite`, `bench`;
 //! - the daemon: `run` (with `notify` for systemd), `check`, `demo`;
 //! - the learning loop: `mark` (a correction file), `changeover`,
 //!   `retrain`, `models`; `state` is how they reach a running daemon
@@ -50,6 +50,7 @@ mod rules;
 mod run;
 mod scan;
 mod state;
+mod suite;
 mod train;
 
 use std::path::{Path, PathBuf};
@@ -88,6 +89,8 @@ enum Command {
     Rules(rules::RulesArgs),
     /// Write seeded synthetic loom frames with their masks.
     Generate(generate::GenerateArgs),
+    /// Train and score a model on each setting of the evaluation suite.
+    Suite(suite::SuiteArgs),
     /// Measure how fast this box runs a model (one thread).
     Bench(bench::BenchArgs),
     /// Run the detector unattended: watch the inbox, log every frame.
@@ -210,6 +213,7 @@ pub fn run(args: Args) -> Result<i32> {
         Command::Eval(a) => eval::run(a),
         Command::Rules(a) => rules::run(a),
         Command::Generate(a) => generate::run(a),
+        Command::Suite(a) => suite::run(a),
         Command::Bench(a) => bench::run(a),
         Command::Run(a) => run::run(a),
         Command::Check(a) => check::run(a),
