@@ -108,12 +108,30 @@ pub fn truth_objects(truth: &BitFrame) -> Vec<Object> {
 /// object was not already claimed by a higher-scored detection, otherwise a
 /// false positive. Unclaimed ground-truth objects are false negatives.
 pub fn object_confusion(detected: &[Object], truth: &[Object]) -> Confusion {
-    let mut order: Vec<&Object> = detected.iter().collect();
+    let claims = match_objects(detected, truth);
+    let tp = claims.iter().filter(|c| c.is_some()).count() as u64;
+    Confusion {
+        tp,
+        fp: detected.len() as u64 - tp,
+        fn_: truth.len() as u64 - tp,
+        tn: 0,
+    }
+}
+
+/// The matching [`object_confusion`] counts: for each detection, in the
+/// order given, the index of the ground-truth object it claimed, or `None`
+/// (a false positive).
+pub fn match_objects(detected: &[Object], truth: &[Object]) -> Vec<Option<usize>> {
+    let mut order: Vec<usize> = (0..detected.len()).collect();
     // Highest score first; ties by id so the result is deterministic.
-    order.sort_by(|a, b| b.score.total_cmp(&a.score).then(a.id.cmp(&b.id)));
+    order.sort_by(|&a, &b| {
+        let (a, b) = (&detected[a], &detected[b]);
+        b.score.total_cmp(&a.score).then(a.id.cmp(&b.id))
+    });
     let mut taken = vec![false; truth.len()];
-    let mut c = Confusion::default();
-    for d in order {
+    let mut claims = vec![None; detected.len()];
+    for k in order {
+        let d = &detected[k];
         let mut best: Option<(usize, f64)> = None;
         for (i, t) in truth.iter().enumerate() {
             let iou = d.bbox.iou(&t.bbox);
@@ -121,16 +139,14 @@ pub fn object_confusion(detected: &[Object], truth: &[Object]) -> Confusion {
                 best = Some((i, iou));
             }
         }
-        match best {
-            Some((i, iou)) if iou >= IOU_MATCH && !taken[i] => {
+        if let Some((i, iou)) = best {
+            if iou >= IOU_MATCH && !taken[i] {
                 taken[i] = true;
-                c.tp += 1;
+                claims[k] = Some(i);
             }
-            _ => c.fp += 1,
         }
     }
-    c.fn_ = taken.iter().filter(|t| !**t).count() as u64;
-    c
+    claims
 }
 
 /// Pixel and object confusion together, for one frame or summed over many.

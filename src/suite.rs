@@ -17,7 +17,7 @@ use serde::Serialize;
 
 use crate::detect::Detector;
 use crate::error::Result;
-use crate::frame::LabelledFrame;
+use crate::frame::{BitFrame, LabelledFrame};
 use crate::learn::{self, TrainParams};
 use crate::score::{self, Confusion};
 use crate::synth::{self, LoomParams};
@@ -35,7 +35,7 @@ impl Default for Sizes {
     fn default() -> Sizes {
         Sizes {
             train: 20,
-            test: 20,
+            test: 60,
             seed: 1,
         }
     }
@@ -55,7 +55,32 @@ pub struct Outcome {
     /// Labelled pixels trained on, and the seconds training took.
     pub train_pixels: u64,
     pub train_seconds: f64,
+    /// The standard error of the object F1: the spread of the F1 of the
+    /// test frames drawn again with replacement ([`BOOTSTRAP`] times; the
+    /// bootstrap, Efron and Tibshirani 1993), so two figures closer than
+    /// about twice this are not told apart by the suite.
+    pub object_f1_se: f64,
+    /// Where the object errors are (see [`Errors`]).
+    pub errors: Errors,
 }
+
+/// The object-level errors of a setting, by kind.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Eq, Serialize)]
+pub struct Errors {
+    /// Defects no detected pixel touches.
+    pub missed: u64,
+    /// Defects detected pixels touch but no detection matches (found in
+    /// fragments, or in a box too large or too small for IoU 0.5).
+    pub unmatched: u64,
+    /// Detections that touch a defect but match none (a fragment, or a
+    /// defect merged with its surroundings).
+    pub partial: u64,
+    /// Detections that touch no defect pixel.
+    pub false_alarms: u64,
+}
+
+/// Resamples of the test frames for [`Outcome::object_f1_se`].
+pub const BOOTSTRAP: usize = 1000;
 
 /// The settings, by name (the `generate --preset` names).
 pub fn settings() -> Vec<(&'static str, LoomParams)> {
@@ -82,13 +107,54 @@ pub fn evaluate(name: &str, p: &LoomParams, sizes: Sizes, params: &TrainParams) 
     let (nodes, depth) = (model.tree.nodes().len(), model.tree.depth());
     let settings = model.settings();
     let detector = Detector::new(model, settings);
-    let report = score::score_frames(&detector, &test, false, &mut |_, _| {})?;
+    // As `score::score_frame` counts (generated frames have no unknown
+    // pixels), keeping each frame's matching for the error kinds.
+    let mut scratch = crate::detect::compile::Scratch::default();
+    let mut object = Confusion::default();
+    let mut pixel = Confusion::default();
+    let mut errors = Errors::default();
+    let mut per_frame = Vec::with_capacity(test.len());
+    for f in &test {
+        let r = detector.detect(&f.frame, &mut scratch);
+        let truth = score::truth_objects(&f.mask);
+        let claims = score::match_objects(&r.objects, &truth);
+        let o = score::object_confusion(&r.objects, &truth);
+        object.add(&o);
+        pixel.add(&score::pixel_confusion(&r.mask, &f.mask));
+        per_frame.push(o);
+        let touches = |b: &crate::detect::group::BBox, a: &BitFrame, c: &BitFrame| {
+            (b.y0..=b.y1).any(|y| {
+                (b.x0..=b.x1)
+                    .any(|x| a.get(x as usize, y as usize) && c.get(x as usize, y as usize))
+            })
+        };
+        for (i, t) in truth.iter().enumerate() {
+            if !claims.contains(&Some(i)) {
+                if touches(&t.bbox, &f.mask, &r.mask) {
+                    errors.unmatched += 1;
+                } else {
+                    errors.missed += 1;
+                }
+            }
+        }
+        for (d, claim) in r.objects.iter().zip(&claims) {
+            if claim.is_none() {
+                if touches(&d.bbox, &f.mask, &r.mask) {
+                    errors.partial += 1;
+                } else {
+                    errors.false_alarms += 1;
+                }
+            }
+        }
+    }
     Ok(Outcome {
         setting: name.to_string(),
-        object_f1: report.total.object.f1(),
-        pixel_f1: report.total.pixel.f1(),
-        object: report.total.object,
-        pixel: report.total.pixel,
+        object_f1: object.f1(),
+        pixel_f1: pixel.f1(),
+        object,
+        pixel,
+        object_f1_se: bootstrap_se(&per_frame, sizes.seed),
+        errors,
         nodes,
         depth,
         train_pixels: train
@@ -97,6 +163,41 @@ pub fn evaluate(name: &str, p: &LoomParams, sizes: Sizes, params: &TrainParams) 
             .sum(),
         train_seconds,
     })
+}
+
+/// The bootstrap standard error of the F1 of summed counts: frames drawn
+/// with replacement, [`BOOTSTRAP`] times, from a generator seeded by `seed`
+/// (so the figure is repeatable).
+pub fn bootstrap_se(frames: &[Confusion], seed: u64) -> f64 {
+    if frames.len() < 2 {
+        return 0.0;
+    }
+    let mut rng = synth::Rng::new(seed ^ 0x5EED_B007);
+    let f1s: Vec<f64> = (0..BOOTSTRAP)
+        .map(|_| {
+            let mut c = Confusion::default();
+            for _ in 0..frames.len() {
+                c.add(&frames[rng.range(0, frames.len())]);
+            }
+            c.f1()
+        })
+        .collect();
+    let mean = f1s.iter().sum::<f64>() / f1s.len() as f64;
+    (f1s.iter().map(|f| (f - mean) * (f - mean)).sum::<f64>() / (f1s.len() - 1) as f64).sqrt()
+}
+
+/// The standard error of the macro object F1: the settings' frames are
+/// independent, so their errors add in quadrature over the count.
+pub fn macro_se(outcomes: &[Outcome]) -> f64 {
+    if outcomes.is_empty() {
+        return 0.0;
+    }
+    outcomes
+        .iter()
+        .map(|o| o.object_f1_se * o.object_f1_se)
+        .sum::<f64>()
+        .sqrt()
+        / outcomes.len() as f64
 }
 
 /// The macro averages (each setting counts once) of object and pixel F1.
@@ -144,8 +245,28 @@ mod tests {
             depth: 0,
             train_pixels: 0,
             train_seconds: 0.0,
+            object_f1_se: 0.0,
+            errors: Errors::default(),
         };
         assert_eq!(macro_f1(&[o(1.0, 0.5), o(0.5, 0.25)]), (0.75, 0.375));
         assert_eq!(macro_f1(&[]), (0.0, 0.0));
+    }
+
+    #[test]
+    fn the_bootstrap_error_shrinks_with_more_frames_and_is_zero_without_spread() {
+        let c = |tp, fp, fn_| Confusion { tp, fp, fn_, tn: 0 };
+        // Every frame alike: every resample has the same F1.
+        assert_eq!(bootstrap_se(&vec![c(3, 1, 1); 10], 1), 0.0);
+        // Frames that differ: a spread, smaller with four times the frames
+        // (about half: the standard error falls as one over the square
+        // root of the sample size, common practice).
+        let few: Vec<Confusion> = (0..10)
+            .map(|i| if i % 2 == 0 { c(4, 0, 0) } else { c(0, 2, 2) })
+            .collect();
+        let many: Vec<Confusion> = few.iter().cycle().take(40).copied().collect();
+        let (a, b) = (bootstrap_se(&few, 1), bootstrap_se(&many, 1));
+        assert!(a > 0.05 && b < a * 0.7 && b > a * 0.3, "{a} {b}");
+        // Repeatable for a seed.
+        assert_eq!(bootstrap_se(&few, 1), a);
     }
 }

@@ -705,6 +705,12 @@ fn the_suite_scores_each_setting_and_its_figures_are_reproducible() {
         if tp + fp + fn_ > 0.0 {
             assert!((f1(s, "object") - 2.0 * tp / (2.0 * tp + fp + fn_)).abs() < 1e-9);
         }
+        // Every object error is of exactly one kind.
+        let e = &s["errors"];
+        let n = |k: &str| e[k].as_f64().unwrap();
+        assert_eq!(n("missed") + n("unmatched"), fn_, "{name}: {e}");
+        assert_eq!(n("partial") + n("false_alarms"), fp, "{name}: {e}");
+        assert!(s["object_f1_se"].as_f64().unwrap() >= 0.0);
         // The same figure by hand: train on the written training frames,
         // evaluate on the written test frames.
         let model = d.join(&format!("{name}.json"));
