@@ -55,6 +55,9 @@ pub struct Outcome {
     /// Labelled pixels trained on, and the seconds training took.
     pub train_pixels: u64,
     pub train_seconds: f64,
+    /// Test pixels the compiled detector went through per second (one
+    /// thread, grouping included): the speed side of a model's size.
+    pub detect_mpx_s: f64,
     /// The standard error of the object F1: the spread of the F1 of the
     /// test frames drawn again with replacement ([`BOOTSTRAP`] times; the
     /// bootstrap, Efron and Tibshirani 1993), so two figures closer than
@@ -114,8 +117,11 @@ pub fn evaluate(name: &str, p: &LoomParams, sizes: Sizes, params: &TrainParams) 
     let mut pixel = Confusion::default();
     let mut errors = Errors::default();
     let mut per_frame = Vec::with_capacity(test.len());
+    let mut detecting = std::time::Duration::ZERO;
     for f in &test {
+        let t0 = Instant::now();
         let r = detector.detect(&f.frame, &mut scratch);
+        detecting += t0.elapsed();
         let truth = score::truth_objects(&f.mask);
         let claims = score::match_objects(&r.objects, &truth);
         let o = score::object_confusion(&r.objects, &truth);
@@ -154,6 +160,9 @@ pub fn evaluate(name: &str, p: &LoomParams, sizes: Sizes, params: &TrainParams) 
         object,
         pixel,
         object_f1_se: bootstrap_se(&per_frame, sizes.seed),
+        detect_mpx_s: test.iter().map(|f| f.frame.len() as f64).sum::<f64>()
+            / detecting.as_secs_f64().max(1e-9)
+            / 1e6,
         errors,
         nodes,
         depth,
@@ -246,6 +255,7 @@ mod tests {
             train_pixels: 0,
             train_seconds: 0.0,
             object_f1_se: 0.0,
+            detect_mpx_s: 0.0,
             errors: Errors::default(),
         };
         assert_eq!(macro_f1(&[o(1.0, 0.5), o(0.5, 0.25)]), (0.75, 0.375));

@@ -80,7 +80,7 @@ pub fn run(a: SuiteArgs) -> Result<i32> {
     let mut outcomes = Vec::new();
     if !a.json {
         out!(
-            "{:<14} {:>6} {:>6} {:>13} {:>6} {:>6} {:>9} {:>7} {:>6} {:>6} {:>5} {:>7}",
+            "{:<14} {:>6} {:>6} {:>13} {:>6} {:>6} {:>9} {:>7} {:>6} {:>6} {:>5} {:>6} {:>7}",
             "setting",
             "obj P",
             "obj R",
@@ -92,6 +92,7 @@ pub fn run(a: SuiteArgs) -> Result<i32> {
             "false",
             "nodes",
             "depth",
+            "Mpx/s",
             "train s"
         );
     }
@@ -122,7 +123,7 @@ pub fn run(a: SuiteArgs) -> Result<i32> {
             suite::evaluate(name, &p, sizes, &params).with_context(|| format!("setting {name}"))?;
         if !a.json {
             out!(
-                "{:<14} {:>6.3} {:>6.3} {:>6.3} ({:.3}) {:>6.3} {:>6} {:>9} {:>7} {:>6} {:>6} {:>5} {:>7.1}",
+                "{:<14} {:>6.3} {:>6.3} {:>6.3} ({:.3}) {:>6.3} {:>6} {:>9} {:>7} {:>6} {:>6} {:>5} {:>6.0} {:>7.1}",
                 o.setting,
                 o.object.precision(),
                 o.object.recall(),
@@ -135,6 +136,7 @@ pub fn run(a: SuiteArgs) -> Result<i32> {
                 o.errors.false_alarms,
                 o.nodes,
                 o.depth,
+                o.detect_mpx_s,
                 o.train_seconds
             );
         }
