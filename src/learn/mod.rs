@@ -563,6 +563,86 @@ mod tests {
         )
     }
 
+    /// Tuning over several trees judges each candidate on all their
+    /// frames together: two copies of one tree, each with the same two
+    /// held-out frames, choose exactly what one tree does with the frames
+    /// twice over (the same candidates on the same pixels), with the leaves
+    /// of both trees counted.
+    #[test]
+    fn tuning_over_folds_sums_their_frames() {
+        use crate::synth::{self, LoomParams};
+        let p = LoomParams {
+            width: 64,
+            height: 64,
+            ..LoomParams::standard()
+        };
+        let frames: Vec<LabelledFrame> = synth::generate_set(&p, 4, 8)
+            .into_iter()
+            .enumerate()
+            .map(|(i, g)| LabelledFrame::new(format!("f{i}"), g.frame, g.mask))
+            .collect();
+        let params = TrainParams::default();
+        let mut store = LabelStore::new(params.window);
+        for f in &frames[..6] {
+            store.add_labelled(f).unwrap();
+        }
+        let weights = params.class_weight.weights(store.totals());
+        let mut entries = store.into_entries();
+        let gp = GrowParams {
+            criterion: params.criterion,
+            max_depth: params.max_depth,
+            min_leaf: params.min_leaf,
+            min_gain: params.min_gain,
+            weights,
+            max_nodes: params.max_nodes,
+        };
+        let tree =
+            grow::grow_until(&mut entries, params.window.features(), &gp, &|| false).unwrap();
+        let pruning = prune::prune_sequence(&tree, params.criterion, weights);
+        let hold = |i: usize| {
+            tune::HoldoutFrame::new(
+                &tree,
+                params.window,
+                &frames[i].frame,
+                &frames[i].mask,
+                None,
+            )
+        };
+        let fixed = tune::Fixed::default();
+        let one = tune::choose(
+            &tree,
+            &pruning,
+            weights,
+            &[hold(6), hold(7), hold(6), hold(7)],
+            &fixed,
+        )
+        .unwrap();
+        let n = tree.nodes.len() as u32;
+        let two = tune::choose_folds(
+            &[(&tree, &pruning, weights), (&tree, &pruning, weights)],
+            &[hold(6), hold(7), hold(6).offset(n), hold(7).offset(n)],
+            &fixed,
+        )
+        .unwrap();
+        assert_eq!(
+            (
+                one.alpha,
+                one.threshold,
+                one.grouping,
+                one.object,
+                one.pixel
+            ),
+            (
+                two.alpha,
+                two.threshold,
+                two.grouping,
+                two.object,
+                two.pixel
+            )
+        );
+        assert_eq!(two.leaves, 2 * one.leaves);
+    }
+
     #[test]
     fn holdout_is_stratified_and_keeps_targets_for_growing() {
         // Only one frame has targets: it must be grown on, whatever the hashes.

@@ -77,6 +77,17 @@ impl HoldoutFrame {
         }
     }
 
+    /// The same frame with its leaf ids moved up by `by`: the frames of
+    /// several trees (the folds of [`choose_folds`]) share one id space.
+    pub fn offset(mut self, by: u32) -> HoldoutFrame {
+        if by > 0 {
+            for l in &mut self.leaf {
+                *l += by;
+            }
+        }
+        self
+    }
+
     fn is_unknown(&self, x: usize, y: usize) -> bool {
         self.unknown.as_ref().is_some_and(|u| u.get(x, y))
     }
@@ -164,17 +175,22 @@ pub fn node_scores(tree: &GrownTree, weights: [f64; 2]) -> Vec<f64> {
 
 /// Evaluates one pruning strength; returns its best choice.
 fn try_alpha(
-    tree: &GrownTree,
-    pruning: &Pruning,
+    folds: &[(&GrownTree, &Pruning)],
     alpha: f64,
     scores: &[f64],
     frames: &[HoldoutFrame],
     fixed: &Fixed,
 ) -> Option<Choice> {
-    let eff = pruning.effective(tree, alpha);
-    let leaves = pruning.leaves_at(tree, alpha);
+    // The folds' trees side by side in one id space (see `choose_folds`).
+    let mut eff: Vec<u32> = Vec::with_capacity(scores.len());
+    let mut leaves = 0;
+    for (tree, pruning) in folds {
+        let base = eff.len() as u32;
+        eff.extend(pruning.effective(tree, alpha).into_iter().map(|e| e + base));
+        leaves += pruning.leaves_at(tree, alpha);
+    }
     // Held-out pixel histogram per effective leaf, for pixel F1 per threshold.
-    let n = tree.nodes.len();
+    let n = eff.len();
     let mut hist = vec![[0u64; 2]; n];
     for f in frames {
         for y in 0..f.height {
@@ -363,18 +379,41 @@ pub fn choose(
     frames: &[HoldoutFrame],
     fixed: &Fixed,
 ) -> Option<Choice> {
-    let scores = node_scores(tree, weights);
-    let alphas = spread(&pruning.alphas, MAX_ALPHAS);
+    choose_folds(&[(tree, pruning, weights)], frames, fixed)
+}
+
+/// [`choose`] over several trees at once, each with its own held-out
+/// frames (cross-fitting: each tree grown without its frames). Frames of
+/// fold `k` carry leaf ids offset by the node counts of the folds before
+/// it ([`HoldoutFrame::offset`]); a candidate's scores are summed over all
+/// frames, so it is judged on every fold's frames together.
+pub fn choose_folds(
+    folds: &[(&GrownTree, &Pruning, [f64; 2])],
+    frames: &[HoldoutFrame],
+    fixed: &Fixed,
+) -> Option<Choice> {
+    let scores: Vec<f64> = folds
+        .iter()
+        .flat_map(|(t, _, w)| node_scores(t, *w))
+        .collect();
+    let trees: Vec<(&GrownTree, &Pruning)> = folds.iter().map(|(t, p, _)| (*t, *p)).collect();
+    let mut every: Vec<f64> = folds
+        .iter()
+        .flat_map(|(_, p, _)| p.alphas.iter().copied())
+        .collect();
+    every.sort_by(f64::total_cmp);
+    every.dedup();
+    let alphas = spread(&every, MAX_ALPHAS);
     let results: Vec<Option<Choice>> = std::thread::scope(|s| {
         let handles: Vec<_> = (0..2)
             .map(|k| {
-                let (alphas, scores) = (&alphas, &scores);
+                let (alphas, scores, trees) = (&alphas, &scores, &trees);
                 s.spawn(move || {
                     alphas
                         .iter()
                         .enumerate()
                         .filter(|(i, _)| i % 2 == k)
-                        .map(|(_, &a)| (a, try_alpha(tree, pruning, a, scores, frames, fixed)))
+                        .map(|(_, &a)| (a, try_alpha(trees, a, scores, frames, fixed)))
                         .collect::<Vec<_>>()
                 })
             })
