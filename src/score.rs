@@ -346,6 +346,7 @@ mod tests {
                 grown_leaves: 2,
                 pruned_leaves: 2,
                 refit: false,
+                folds: 0,
                 overridden: Vec::new(),
             },
             data: DataSummary::default(),

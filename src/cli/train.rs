@@ -49,6 +49,10 @@ pub struct TrainArgs {
     /// Share of frames held out to choose pruning, threshold and grouping [default: 0.2].
     #[arg(long)]
     holdout: Option<f64>,
+    /// Cross-fitted tuning over this many shares of the frames (0: tune on
+    /// the holdout share).
+    #[arg(long)]
+    folds: Option<usize>,
     /// Grow the final tree again on all frames once the holdout has chosen.
     #[arg(long)]
     refit: bool,
@@ -116,6 +120,7 @@ pub fn run(a: TrainArgs) -> Result<i32> {
         class_weight,
         holdout: a.holdout.unwrap_or(base.holdout),
         refit: a.refit || base.refit,
+        folds: a.folds.unwrap_or(base.folds),
         threshold: fixed.threshold,
         min_area: fixed.min_area,
         merge_distance: fixed.merge_distance,

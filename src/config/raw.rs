@@ -56,6 +56,9 @@ pub struct RawTraining {
     pub holdout: Option<f64>,
     /// Grow the final tree again on all frames after tuning (default false).
     pub refit: Option<bool>,
+    /// Cross-fitted tuning over this many shares of the frames (default
+    /// 0: tune on the holdout share).
+    pub folds: Option<usize>,
 }
 
 /// `[detection]`: overrides of the settings a model carries.
@@ -361,6 +364,7 @@ impl RawConfig {
             class_weight,
             holdout: t.holdout.unwrap_or(dt.holdout),
             refit: t.refit.unwrap_or(dt.refit),
+            folds: t.folds.unwrap_or(dt.folds),
             ..dt
         };
         training

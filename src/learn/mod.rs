@@ -91,6 +91,9 @@ impl ClassWeight {
     }
 }
 
+/// The most shares cross-fitted tuning splits the frames into.
+pub const MAX_FOLDS: usize = 10;
+
 /// Everything `train` can be told.
 #[derive(Clone, Debug, PartialEq)]
 pub struct TrainParams {
@@ -107,6 +110,12 @@ pub struct TrainParams {
     /// grow the final tree again on all frames (holdout included) and prune
     /// it at the chosen strength.
     pub refit: bool,
+    /// Cross-fitted tuning when 2 or more: the frames are split in this
+    /// many shares (stratified by content hash), a tree is grown without
+    /// each share and scored on it, and the pruning strength, threshold
+    /// and grouping are chosen on all frames' scores together; the final
+    /// tree is then grown on all frames. 0: tune on the `holdout` share.
+    pub folds: usize,
     /// Fixed by the user instead of tuned.
     pub threshold: Option<f64>,
     pub min_area: Option<u32>,
@@ -125,6 +134,7 @@ impl Default for TrainParams {
             holdout: 0.2,
             max_nodes: 1 << 20,
             refit: false,
+            folds: 0,
             threshold: None,
             min_area: None,
             merge_distance: None,
@@ -138,6 +148,12 @@ impl TrainParams {
             return Err(Error::training(format!(
                 "holdout share {} must be at least 0 and below 1",
                 self.holdout
+            )));
+        }
+        if self.folds == 1 || self.folds > MAX_FOLDS {
+            return Err(Error::training(format!(
+                "folds {} must be 0 (tune on the holdout share) or 2 to {MAX_FOLDS}",
+                self.folds
             )));
         }
         if !(self.min_leaf >= 0.0 && self.min_leaf.is_finite()) {
@@ -230,6 +246,24 @@ pub fn split_holdout(frames: &[LabelledFrame], share: f64) -> (Vec<usize>, Vec<u
     hold.sort();
     grow.sort();
     (grow, hold)
+}
+
+/// Splits frames into `k` shares for cross-fitted tuning: frames with
+/// targets first, then those without, each sorted by content hash and
+/// dealt out in turn, so every share gets frames with defects. Returns each
+/// frame's share.
+pub fn split_folds(frames: &[LabelledFrame], k: usize) -> Vec<usize> {
+    let mut order: Vec<(bool, [u8; 32], usize)> = frames
+        .iter()
+        .enumerate()
+        .map(|(i, f)| (f.mask.count_set() == 0, f.content_hash(), i))
+        .collect();
+    order.sort();
+    let mut fold = vec![0; frames.len()];
+    for (r, &(_, _, i)) in order.iter().enumerate() {
+        fold[i] = r % k.max(1);
+    }
+    fold
 }
 
 /// Freezes the grown tree pruned at `alpha` into the evaluator's tree.
@@ -357,9 +391,21 @@ fn train_inner(
             .with_path(&f.name));
         }
     }
-    let (grow_idx, hold_idx) = split_holdout(frames, params.holdout);
+    let cross = params.folds >= 2 && frames.len() >= params.folds;
+    let (grow_idx, hold_idx) = if cross {
+        // Every frame is held out once, by its fold's tree; the final
+        // tree grows on all of them.
+        ((0..frames.len()).collect(), Vec::new())
+    } else {
+        split_holdout(frames, params.holdout)
+    };
     let mut stored = 0usize;
-    let total_store = grow_idx.len() + if params.refit { hold_idx.len() } else { 0 };
+    let total_store = if cross {
+        // Each fold's tree, then the final one on all frames.
+        frames.len() * params.folds
+    } else {
+        grow_idx.len() + if params.refit { hold_idx.len() } else { 0 }
+    };
     // A store given holds every frame: the held-out ones are taken out.
     if let Some(store) = given.as_mut() {
         for &i in &hold_idx {
@@ -419,16 +465,67 @@ fn train_inner(
             unique,
         })
     };
-    let first = grow_on(&grow_idx, given, progress)?;
-    if stop() {
-        return Err(stopped());
-    }
-    progress(Stage::Tune);
     let fixed = tune::Fixed {
         threshold: params.threshold,
         min_area: params.min_area,
         merge_distance: params.merge_distance,
     };
+    // Cross-fitted: each fold's tree, grown without its frames (from a
+    // copy of the whole store with them taken out, when one was given),
+    // scores them; the choice is made on all frames' scores together.
+    let mut cross_choice = None;
+    if cross {
+        let fold = split_folds(frames, params.folds);
+        let mut grown = Vec::with_capacity(params.folds);
+        for j in 0..params.folds {
+            let out: Vec<usize> = (0..frames.len()).filter(|&i| fold[i] != j).collect();
+            let copy = match &given {
+                Some(all) => {
+                    let mut s = all.clone();
+                    for i in (0..frames.len()).filter(|&i| fold[i] == j) {
+                        s.remove_labelled(&frames[i])?;
+                    }
+                    Some(s)
+                }
+                None => None,
+            };
+            grown.push(grow_on(&out, copy, progress)?);
+            if stop() {
+                return Err(stopped());
+            }
+        }
+        progress(Stage::Tune);
+        let mut scored = Vec::with_capacity(frames.len());
+        let mut base = 0u32;
+        for (j, g) in grown.iter().enumerate() {
+            for i in (0..frames.len()).filter(|&i| fold[i] == j) {
+                scored.push(
+                    tune::HoldoutFrame::new(
+                        &g.tree,
+                        params.window,
+                        &frames[i].frame,
+                        &frames[i].mask,
+                        frames[i].unknown.as_ref(),
+                    )
+                    .offset(base),
+                );
+            }
+            base += g.tree.nodes.len() as u32;
+        }
+        let folds: Vec<_> = grown
+            .iter()
+            .map(|g| (&g.tree, &g.pruning, g.weights))
+            .collect();
+        cross_choice = tune::choose_folds(&folds, &scored, &fixed);
+        if stop() {
+            return Err(stopped());
+        }
+    }
+    let first = grow_on(&grow_idx, given, progress)?;
+    if stop() {
+        return Err(stopped());
+    }
+    progress(Stage::Tune);
     let holdout: Vec<tune::HoldoutFrame> = hold_idx
         .iter()
         .map(|&i| {
@@ -441,7 +538,9 @@ fn train_inner(
             )
         })
         .collect();
-    let choice = if holdout.is_empty() {
+    let choice = if cross {
+        cross_choice
+    } else if holdout.is_empty() {
         None
     } else {
         tune::choose(&first.tree, &first.pruning, first.weights, &holdout, &fixed)
@@ -450,7 +549,7 @@ fn train_inner(
     if stop() {
         return Err(stopped());
     }
-    let refit = params.refit && choice.is_some();
+    let refit = params.refit && !cross && choice.is_some();
     let (final_grown, used_idx) = if refit {
         let all: Vec<usize> = (0..frames.len()).collect();
         (grow_on(&all, None, progress)?, all)
@@ -523,11 +622,16 @@ fn train_inner(
             grown_leaves: grown.leaves() as u64,
             pruned_leaves: tree.leaves() as u64,
             refit,
+            folds: if cross { params.folds as u32 } else { 0 },
             overridden,
         },
         data: DataSummary {
             frames: used_idx.len() as u64,
-            holdout_frames: hold_idx.len() as u64,
+            holdout_frames: if cross {
+                frames.len() as u64
+            } else {
+                hold_idx.len() as u64
+            },
             pixels: totals[0] + totals[1],
             unique_patterns: unique,
             clear_pixels: totals[0],
@@ -675,6 +779,59 @@ mod tests {
         assert_eq!(a.to_json(), b.to_json());
         // A store that does not hold the frames given is refused.
         assert!(train_from_store(&frames[1..], all, &p, &mut |_| {}, &|| false).is_err());
+    }
+
+    /// Cross-fitted tuning: every frame is scored once by a tree grown
+    /// without it, the final tree grows on all frames, the model says so,
+    /// and it is the same model whether trained from frames or from a
+    /// store holding them (the daemon's retrain), and the same every time.
+    #[test]
+    fn cross_fitted_tuning_uses_every_frame_once() {
+        use crate::synth::{self, LoomParams};
+        let lp = LoomParams {
+            width: 64,
+            height: 64,
+            ..LoomParams::standard()
+        };
+        let frames: Vec<LabelledFrame> = synth::generate_set(&lp, 6, 9)
+            .into_iter()
+            .enumerate()
+            .map(|(i, g)| LabelledFrame::new(format!("f{i}"), g.frame, g.mask))
+            .collect();
+        let p = TrainParams {
+            folds: 3,
+            ..TrainParams::default()
+        };
+        let a = train(&frames, &p, &mut |_| {}).unwrap();
+        assert_eq!(a.training.folds, 3);
+        assert!(a.training.tuned);
+        assert_eq!(a.data.frames, 9);
+        assert_eq!(a.data.holdout_frames, 9);
+        // The three shares each hold frames with defects.
+        let fold = split_folds(&frames, 3);
+        for j in 0..3 {
+            assert!((0..9).any(|i| fold[i] == j && frames[i].mask.count_set() > 0));
+        }
+        let mut all = LabelStore::new(p.window);
+        for f in frames.iter().rev() {
+            all.add_labelled(f).unwrap();
+        }
+        let b = train_from_store(&frames, all, &p, &mut |_| {}, &|| false).unwrap();
+        assert_eq!(a.to_json(), b.to_json());
+        assert_eq!(
+            train(&frames, &p, &mut |_| {}).unwrap().to_json(),
+            a.to_json()
+        );
+        // A model tuned on the holdout share does not write the field, so
+        // earlier models keep their bytes and hashes.
+        let plain = train(&frames, &TrainParams::default(), &mut |_| {}).unwrap();
+        assert!(!plain.to_json().contains("folds"));
+        // One share cannot hold anything out.
+        let one = TrainParams {
+            folds: 1,
+            ..TrainParams::default()
+        };
+        assert!(one.validate().is_err());
     }
 
     #[test]

@@ -28,6 +28,10 @@ use crate::window::{Offset, Window};
 pub use settings::{GroupParams, Overrides, Prf, Settings, MAX_MERGE_DISTANCE};
 pub use tree::{leaf_score, Leaf, Node, Tree, MAX_NODES};
 
+fn is_zero(v: &u32) -> bool {
+    *v == 0
+}
+
 /// How the model was trained (copied into the file for the record).
 #[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
 #[serde(deny_unknown_fields)]
@@ -57,6 +61,12 @@ pub struct TrainingInfo {
     /// included, after the holdout chose the settings.
     #[serde(default)]
     pub refit: bool,
+    /// Cross-fitted tuning: this many trees, each grown without one share
+    /// of the frames, chose the settings on all frames (0: a holdout
+    /// share did). Not written when 0, so earlier models keep their bytes
+    /// and hashes.
+    #[serde(default, skip_serializing_if = "is_zero")]
+    pub folds: u32,
     /// Which of threshold / min_area / merge_distance the user fixed.
     #[serde(default)]
     pub overridden: Vec<String>,
