@@ -143,6 +143,18 @@ impl Default for TrainParams {
 }
 
 impl TrainParams {
+    /// What growing a tree is told, with the class weights of its store.
+    pub fn grow_params(&self, weights: [f64; 2]) -> GrowParams {
+        GrowParams {
+            criterion: self.criterion,
+            max_depth: self.max_depth,
+            min_leaf: self.min_leaf,
+            min_gain: self.min_gain,
+            weights,
+            max_nodes: self.max_nodes,
+        }
+    }
+
     pub fn validate(&self) -> Result<()> {
         if !(0.0..1.0).contains(&self.holdout) {
             return Err(Error::training(format!(
@@ -445,14 +457,7 @@ fn train_inner(
         let mut entries = store.into_entries();
         let unique = entries.len() as u64;
         progress(Stage::Grow);
-        let gp = GrowParams {
-            criterion: params.criterion,
-            max_depth: params.max_depth,
-            min_leaf: params.min_leaf,
-            min_gain: params.min_gain,
-            weights,
-            max_nodes: params.max_nodes,
-        };
+        let gp = params.grow_params(weights);
         let tree = grow::grow_until(&mut entries, params.window.features(), &gp, stop)
             .ok_or_else(stopped)?;
         progress(Stage::Prune);
@@ -674,17 +679,13 @@ mod tests {
     /// of both trees counted.
     #[test]
     fn tuning_over_folds_sums_their_frames() {
-        use crate::synth::{self, LoomParams};
+        use crate::synth::LoomParams;
         let p = LoomParams {
             width: 64,
             height: 64,
             ..LoomParams::standard()
         };
-        let frames: Vec<LabelledFrame> = synth::generate_set(&p, 4, 8)
-            .into_iter()
-            .enumerate()
-            .map(|(i, g)| LabelledFrame::new(format!("f{i}"), g.frame, g.mask))
-            .collect();
+        let frames = crate::suite::frames("f", &p, 4, 8);
         let params = TrainParams::default();
         let mut store = LabelStore::new(params.window);
         for f in &frames[..6] {
@@ -692,14 +693,7 @@ mod tests {
         }
         let weights = params.class_weight.weights(store.totals());
         let mut entries = store.into_entries();
-        let gp = GrowParams {
-            criterion: params.criterion,
-            max_depth: params.max_depth,
-            min_leaf: params.min_leaf,
-            min_gain: params.min_gain,
-            weights,
-            max_nodes: params.max_nodes,
-        };
+        let gp = params.grow_params(weights);
         let tree =
             grow::grow_until(&mut entries, params.window.features(), &gp, &|| false).unwrap();
         let pruning = prune::prune_sequence(&tree, params.criterion, weights);
@@ -787,17 +781,13 @@ mod tests {
     /// store holding them (the daemon's retrain), and the same every time.
     #[test]
     fn cross_fitted_tuning_uses_every_frame_once() {
-        use crate::synth::{self, LoomParams};
+        use crate::synth::LoomParams;
         let lp = LoomParams {
             width: 64,
             height: 64,
             ..LoomParams::standard()
         };
-        let frames: Vec<LabelledFrame> = synth::generate_set(&lp, 6, 9)
-            .into_iter()
-            .enumerate()
-            .map(|(i, g)| LabelledFrame::new(format!("f{i}"), g.frame, g.mask))
-            .collect();
+        let frames = crate::suite::frames("f", &lp, 6, 9);
         let p = TrainParams {
             folds: 3,
             ..TrainParams::default()
