@@ -332,6 +332,7 @@ mod tests {
                 min_area,
                 merge_distance: 0,
             },
+            smoothing: crate::model::Smoothing::OFF,
             model_version: 1,
             training: TrainingInfo {
                 criterion: "entropy".into(),
@@ -347,6 +348,7 @@ mod tests {
                 pruned_leaves: 2,
                 refit: false,
                 folds: 0,
+                smaller: None,
                 overridden: Vec::new(),
             },
             data: DataSummary::default(),

@@ -82,8 +82,7 @@ pub struct Errors {
     pub false_alarms: u64,
 }
 
-/// Resamples of the test frames for [`Outcome::object_f1_se`].
-pub const BOOTSTRAP: usize = 1000;
+pub use crate::learn::tune::BOOTSTRAP;
 
 /// The settings, by name (the `generate --preset` names).
 pub fn settings() -> Vec<(&'static str, LoomParams)> {
@@ -174,26 +173,7 @@ pub fn evaluate(name: &str, p: &LoomParams, sizes: Sizes, params: &TrainParams) 
     })
 }
 
-/// The bootstrap standard error of the F1 of summed counts: frames drawn
-/// with replacement, [`BOOTSTRAP`] times, from a generator seeded by `seed`
-/// (so the figure is repeatable).
-pub fn bootstrap_se(frames: &[Confusion], seed: u64) -> f64 {
-    if frames.len() < 2 {
-        return 0.0;
-    }
-    let mut rng = synth::Rng::new(seed ^ 0x5EED_B007);
-    let f1s: Vec<f64> = (0..BOOTSTRAP)
-        .map(|_| {
-            let mut c = Confusion::default();
-            for _ in 0..frames.len() {
-                c.add(&frames[rng.range(0, frames.len())]);
-            }
-            c.f1()
-        })
-        .collect();
-    let mean = f1s.iter().sum::<f64>() / f1s.len() as f64;
-    (f1s.iter().map(|f| (f - mean) * (f - mean)).sum::<f64>() / (f1s.len() - 1) as f64).sqrt()
-}
+pub use crate::learn::tune::bootstrap_se;
 
 /// The standard error of the macro object F1: the settings' frames are
 /// independent, so their errors add in quadrature over the count.

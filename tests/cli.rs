@@ -289,6 +289,8 @@ fn untuned_training_warns_and_folder_out_is_refused() {
             "train",
             "--out",
             "m.json",
+            "--folds",
+            "0",
             "--holdout",
             "0",
         ],

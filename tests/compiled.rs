@@ -248,3 +248,50 @@ fn no_allocation_per_frame_after_warm_up() {
         }
     }
 }
+
+proptest! {
+    #![proptest_config(ProptestConfig { cases: 32, failure_persistence: None, ..ProptestConfig::default() })]
+
+    /// The whole detection with smoothing: the compiled program and the
+    /// word-parallel votes against the walker and the pixel-by-pixel votes
+    /// (`walker::run`), mask and objects alike, for every smoothing
+    /// training may choose and its extremes (one vote: dilation; all
+    /// votes: erosion).
+    #[test]
+    fn smoothed_detection_equals_the_walkers(
+        depth in 0u32..10,
+        seed in any::<u64>(),
+        wi in 0usize..5,
+        hi in 0usize..4,
+        si in 0usize..14,
+        md in 0u32..4,
+        area in 1u32..6,
+    ) {
+        use burlwatch::detect::smooth::Smoothing;
+        use burlwatch::learn::tune::SMOOTHINGS;
+        use burlwatch::model::{GroupParams, Settings};
+        let window = Window::new(5).unwrap();
+        let tree = random_tree(window, depth, seed, false);
+        let w = [1usize, 63, 64, 65, 130][wi];
+        let h = [1usize, 2, 17, 65][hi];
+        let frame = random_frame(w, h, 0.4, seed ^ 0xF00D);
+        let mut choices: Vec<Smoothing> = SMOOTHINGS.to_vec();
+        choices.extend([
+            Smoothing::OFF,
+            Smoothing { radius: 1, votes: 9 },
+            Smoothing { radius: 2, votes: 1 },
+            Smoothing { radius: 2, votes: 25 },
+        ]);
+        let settings = Settings {
+            threshold: 0.5,
+            grouping: GroupParams { min_area: area, merge_distance: md },
+            smoothing: choices[si],
+        };
+        let program = Program::compile(&tree, settings.threshold);
+        let mut scratch = Scratch::default();
+        let got = compile::run(&program, &tree, &settings, &frame, &mut scratch);
+        let want = walker::run(&tree, &settings, &frame);
+        prop_assert_eq!(&got.mask, &want.mask, "{:?} {}x{}", settings.smoothing, w, h);
+        prop_assert_eq!(got.objects, want.objects);
+    }
+}

@@ -50,9 +50,13 @@ pub struct TrainArgs {
     #[arg(long)]
     holdout: Option<f64>,
     /// Cross-fitted tuning over this many shares of the frames (0: tune on
-    /// the holdout share).
+    /// the holdout share) [default: 3].
     #[arg(long)]
     folds: Option<usize>,
+    /// Let tuning try smoothing the detection mask by neighbourhood votes
+    /// (kept only when it wins on the held-out frames).
+    #[arg(long)]
+    smoothing: bool,
     /// Grow the final tree again on all frames once the holdout has chosen.
     #[arg(long)]
     refit: bool,
@@ -85,6 +89,9 @@ struct TrainSummary<'a> {
     threshold: f64,
     min_area: u32,
     merge_distance: u32,
+    smoothing: model::Smoothing,
+    /// The size rule's trade, when it kept a smaller tree.
+    smaller: Option<model::SizeTrade>,
     holdout: &'a Option<model::HoldoutMetrics>,
 }
 
@@ -121,6 +128,7 @@ pub fn run(a: TrainArgs) -> Result<i32> {
         holdout: a.holdout.unwrap_or(base.holdout),
         refit: a.refit || base.refit,
         folds: a.folds.unwrap_or(base.folds),
+        smoothing: a.smoothing || base.smoothing,
         threshold: fixed.threshold,
         min_area: fixed.min_area,
         merge_distance: fixed.merge_distance,
@@ -161,7 +169,7 @@ pub fn run(a: TrainArgs) -> Result<i32> {
         .with_context(|| format!("cannot write {}", a.out.display()))?;
     if !m.training.tuned {
         let why = if m.data.holdout_frames == 0 {
-            "no frame was held out (--holdout 0, or too few frames)".to_string()
+            "no frame was held out (--folds 0 with --holdout 0, or too few frames)".to_string()
         } else {
             format!(
                 "no pixel of the {} held-out frame(s) scored above 0",
@@ -190,6 +198,8 @@ pub fn run(a: TrainArgs) -> Result<i32> {
             threshold: m.threshold,
             min_area: m.grouping.min_area,
             merge_distance: m.grouping.merge_distance,
+            smoothing: m.smoothing,
+            smaller: m.training.smaller,
             holdout: &m.holdout,
         };
         out!("{}", serde_json::to_string_pretty(&s)?);
@@ -209,11 +219,22 @@ pub fn run(a: TrainArgs) -> Result<i32> {
             m.tree.depth()
         );
         out!(
-            "settings: threshold {:.4}, min_area {}, merge_distance {}",
+            "settings: threshold {:.4}, min_area {}, merge_distance {}, smoothing {}",
             m.threshold,
             m.grouping.min_area,
-            m.grouping.merge_distance
+            m.grouping.merge_distance,
+            m.smoothing.name()
         );
+        if let Some(t) = &m.training.smaller {
+            out!(
+                "size rule: kept {} leaves over the best candidate's {} (held-out object F1 {:.3}, \
+                 within one standard error, {:.3})",
+                m.training.pruned_leaves,
+                t.best_leaves,
+                t.best_object_f1,
+                t.object_f1_se
+            );
+        }
         match &m.holdout {
             Some(h) => out!(
                 "held-out frames: objects P {:.3} R {:.3} F1 {:.3}; pixels P {:.3} R {:.3} F1 {:.3}",

@@ -57,8 +57,10 @@ pub struct RawTraining {
     /// Grow the final tree again on all frames after tuning (default false).
     pub refit: Option<bool>,
     /// Cross-fitted tuning over this many shares of the frames (default
-    /// 0: tune on the holdout share).
+    /// 3; 0: tune on the holdout share).
     pub folds: Option<usize>,
+    /// Let tuning try smoothing the detection mask (default false).
+    pub smoothing: Option<bool>,
 }
 
 /// `[detection]`: overrides of the settings a model carries.
@@ -365,6 +367,7 @@ impl RawConfig {
             holdout: t.holdout.unwrap_or(dt.holdout),
             refit: t.refit.unwrap_or(dt.refit),
             folds: t.folds.unwrap_or(dt.folds),
+            smoothing: t.smoothing.unwrap_or(dt.smoothing),
             ..dt
         };
         training

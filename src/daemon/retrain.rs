@@ -262,7 +262,7 @@ pub fn challenge(
     running: &Model,
     live: &LiveConfig,
     changeover_since: bool,
-    stop: &dyn Fn() -> bool,
+    stop: &(dyn Fn() -> bool + Sync),
 ) -> Result<Challenge> {
     let running_f1 = object_f1(running, live, &plan.gate)?;
     let running_older = if plan.older_gate.is_empty() {

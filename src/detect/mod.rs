@@ -9,6 +9,7 @@
 
 pub mod compile;
 pub mod group;
+pub mod smooth;
 pub mod walker;
 
 use crate::codec::{self, DecodeLimits};
@@ -141,8 +142,8 @@ pub fn model_hash(model: &Model) -> String {
     sha256_hex(model.to_json().as_bytes())[..12].to_string()
 }
 
-/// Groups a raw detection mask (from any evaluator) into the frame's
-/// result: objects scored by the walker on the detected pixels only, and
+/// Groups a detection mask (from any evaluator, smoothed by the caller
+/// when the settings smooth) into the frame's result: objects scored by the walker on the detected pixels only, and
 /// the mask of the pixels of the objects `min_area` kept.
 pub fn finish(tree: &Tree, settings: &Settings, frame: &BitFrame, raw: BitFrame) -> FrameResult {
     let (objects, mask) =

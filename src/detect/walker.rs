@@ -42,6 +42,8 @@ pub fn score_at(tree: &Tree, frame: &BitFrame, x: usize, y: usize) -> f64 {
 /// Detection and grouping of one frame.
 pub fn run(tree: &Tree, settings: &Settings, frame: &BitFrame) -> FrameResult {
     let raw = detect(tree, settings.threshold, frame);
+    // Smoothing pixel by pixel: the reference for the word-parallel votes.
+    let raw = crate::detect::smooth::apply_naive(&settings.smoothing, &raw);
     finish(tree, settings, frame, raw)
 }
 

@@ -32,11 +32,14 @@ pub mod tune;
 pub use criterion::Criterion;
 
 use crate::detect::group::GroupParams;
+use crate::detect::smooth::Smoothing;
 use crate::detect::walker;
 use crate::error::{Error, Result};
 pub use crate::frame::LabelledFrame;
 use crate::learn::store::LabelStore;
-use crate::model::{DataSummary, HoldoutMetrics, Leaf, Model, Node, Reference, TrainingInfo, Tree};
+use crate::model::{
+    DataSummary, HoldoutMetrics, Leaf, Model, Node, Reference, SizeTrade, TrainingInfo, Tree,
+};
 use crate::score;
 use crate::window::Window;
 
@@ -116,6 +119,14 @@ pub struct TrainParams {
     /// and grouping are chosen on all frames' scores together; the final
     /// tree is then grown on all frames. 0: tune on the `holdout` share.
     pub folds: usize,
+    /// The size rule: among tuning candidates within one standard error of
+    /// the best held-out object F1, keep the smallest tree (see
+    /// [`tune::choose_folds`]). Off only to measure what it trades.
+    pub prefer_smaller: bool,
+    /// Also try smoothing the detection mask by neighbourhood votes
+    /// ([`crate::detect::smooth`]), kept only when it beats no smoothing on
+    /// the held-out frames by more than one standard error.
+    pub smoothing: bool,
     /// Fixed by the user instead of tuned.
     pub threshold: Option<f64>,
     pub min_area: Option<u32>,
@@ -134,7 +145,9 @@ impl Default for TrainParams {
             holdout: 0.2,
             max_nodes: 1 << 20,
             refit: false,
-            folds: 0,
+            folds: 3,
+            prefer_smaller: true,
+            smoothing: false,
             threshold: None,
             min_area: None,
             merge_distance: None,
@@ -152,6 +165,14 @@ impl TrainParams {
             min_gain: self.min_gain,
             weights,
             max_nodes: self.max_nodes,
+        }
+    }
+
+    /// What tuning may prefer or add beyond the best-scoring candidate.
+    pub fn rules(&self) -> tune::Rules {
+        tune::Rules {
+            prefer_smaller: self.prefer_smaller,
+            smoothing: self.smoothing,
         }
     }
 
@@ -224,6 +245,156 @@ struct Grown {
     weights: [f64; 2],
     totals: [u64; 2],
     unique: u64,
+}
+
+/// One tree to grow: the frames it grows on, and a store that already
+/// holds exactly their windows (`None`: they are read from the frames).
+struct GrowJob {
+    idx: Vec<usize>,
+    store: Option<LabelStore>,
+}
+
+/// Grows one tree: fills its store when none was given, then grows and
+/// prunes. `say` reports each frame stored.
+fn grow_job(
+    frames: &[LabelledFrame],
+    job: GrowJob,
+    params: &TrainParams,
+    say: &mut dyn FnMut(Stage),
+    stop: &(dyn Fn() -> bool + Sync),
+) -> Result<Grown> {
+    let store = match job.store {
+        Some(s) => s,
+        None => {
+            let mut s = LabelStore::new(params.window);
+            for &i in &job.idx {
+                s.add_labelled(&frames[i])?;
+                say(Stage::Store { done: 1, total: 0 });
+            }
+            s
+        }
+    };
+    let totals = store.totals();
+    if totals[1] == 0 {
+        return Err(Error::training(
+            "the growing frames have no target pixels: every mask is empty",
+        ));
+    }
+    let weights = params.class_weight.weights(totals);
+    let mut entries = store.into_entries();
+    let unique = entries.len() as u64;
+    say(Stage::Grow);
+    let gp = params.grow_params(weights);
+    let tree = grow::grow_until(&mut entries, params.window.features(), &gp, stop)
+        .ok_or_else(|| Error::training(STOPPED))?;
+    drop(entries);
+    let pruning = prune::prune_sequence(&tree, params.criterion, weights);
+    Ok(Grown {
+        tree,
+        pruning,
+        weights,
+        totals,
+        unique,
+    })
+}
+
+/// Threads [`grow_all`] grows trees on: two, or one on a one-core machine.
+fn growing_threads() -> usize {
+    std::thread::available_parallelism().map_or(1, |n| n.get().min(2))
+}
+
+/// Grows every job's tree, results in the jobs' order. Several jobs (the
+/// trees of cross-fitting) are shared out over [`growing_threads`] threads,
+/// each taking the next job left; each tree is grown alone from its own
+/// store, so the results do not depend on which thread took which job.
+/// Progress is reported from the calling thread: frames stored out of all
+/// the jobs' frames to store, then growing.
+fn grow_all(
+    frames: &[LabelledFrame],
+    jobs: Vec<GrowJob>,
+    params: &TrainParams,
+    progress: &mut dyn FnMut(Stage),
+    stop: &(dyn Fn() -> bool + Sync),
+) -> Result<Vec<Grown>> {
+    let total: usize = jobs.iter().map(|j| j.idx.len()).sum();
+    let mut done: usize = jobs
+        .iter()
+        .filter(|j| j.store.is_some())
+        .map(|j| j.idx.len())
+        .sum();
+    let mut growing = false;
+    let mut forward = |s: Stage| match s {
+        Stage::Store { .. } => {
+            done += 1;
+            progress(Stage::Store { done, total });
+        }
+        Stage::Grow if !growing => {
+            growing = true;
+            progress(Stage::Store { done, total });
+            progress(Stage::Grow);
+        }
+        _ => {}
+    };
+    let n = jobs.len();
+    let threads = growing_threads().min(n);
+    if threads <= 1 {
+        let mut out = Vec::with_capacity(n);
+        for job in jobs {
+            out.push(grow_job(frames, job, params, &mut forward, stop)?);
+            if stop() {
+                return Err(Error::training(STOPPED));
+            }
+        }
+        progress(Stage::Prune);
+        return Ok(out);
+    }
+    let queue: std::sync::Mutex<Vec<(usize, GrowJob)>> =
+        std::sync::Mutex::new(jobs.into_iter().enumerate().rev().collect());
+    let results: std::sync::Mutex<Vec<Option<Result<Grown>>>> =
+        std::sync::Mutex::new((0..n).map(|_| None).collect());
+    let (tx, rx) = crossbeam_channel::unbounded::<Stage>();
+    std::thread::scope(|s| {
+        for _ in 0..threads {
+            let (queue, results, tx) = (&queue, &results, tx.clone());
+            s.spawn(move || loop {
+                let Some((k, job)) = queue.lock().expect("growing queue").pop() else {
+                    break;
+                };
+                let r = grow_job(
+                    frames,
+                    job,
+                    params,
+                    &mut |st| {
+                        let _ = tx.send(st);
+                    },
+                    stop,
+                );
+                let failed = r.is_err();
+                results.lock().expect("growing results")[k] = Some(r);
+                if failed {
+                    // The other jobs are of no use once one has failed.
+                    queue.lock().expect("growing queue").clear();
+                }
+            });
+        }
+        drop(tx);
+        for st in rx.iter() {
+            forward(st);
+        }
+    });
+    progress(Stage::Prune);
+    let mut out = Vec::with_capacity(n);
+    for r in results.into_inner().expect("growing results") {
+        match r {
+            Some(r) => out.push(r?),
+            // Left in the queue after another job failed.
+            None => continue,
+        }
+    }
+    if out.len() < n {
+        return Err(Error::training("growing a tree failed"));
+    }
+    Ok(out)
 }
 
 /// Splits frames into (growing, holdout) index lists by content hash,
@@ -346,7 +517,7 @@ pub fn train_with(
     frames: &[LabelledFrame],
     params: &TrainParams,
     progress: &mut dyn FnMut(Stage),
-    stop: &dyn Fn() -> bool,
+    stop: &(dyn Fn() -> bool + Sync),
 ) -> Result<Model> {
     train_inner(frames, None, params, progress, stop)
 }
@@ -361,7 +532,7 @@ pub fn train_from_store(
     all: LabelStore,
     params: &TrainParams,
     progress: &mut dyn FnMut(Stage),
-    stop: &dyn Fn() -> bool,
+    stop: &(dyn Fn() -> bool + Sync),
 ) -> Result<Model> {
     if all.window() != params.window {
         return Err(Error::training(format!(
@@ -385,7 +556,7 @@ fn train_inner(
     mut given: Option<LabelStore>,
     params: &TrainParams,
     progress: &mut dyn FnMut(Stage),
-    stop: &dyn Fn() -> bool,
+    stop: &(dyn Fn() -> bool + Sync),
 ) -> Result<Model> {
     let stopped = || Error::training(STOPPED);
     params.validate()?;
@@ -403,7 +574,10 @@ fn train_inner(
             .with_path(&f.name));
         }
     }
-    let cross = params.folds >= 2 && frames.len() >= params.folds;
+    // Cross-fitting needs every fold's tree to see defects: two frames
+    // with targets at least (the shares deal them out in turn).
+    let with_targets = frames.iter().filter(|f| f.mask.count_set() > 0).count();
+    let cross = params.folds >= 2 && frames.len() >= params.folds && with_targets >= 2;
     let (grow_idx, hold_idx) = if cross {
         // Every frame is held out once, by its fold's tree; the final
         // tree grows on all of them.
@@ -411,65 +585,12 @@ fn train_inner(
     } else {
         split_holdout(frames, params.holdout)
     };
-    let mut stored = 0usize;
-    let total_store = if cross {
-        // Each fold's tree, then the final one on all frames.
-        frames.len() * params.folds
-    } else {
-        grow_idx.len() + if params.refit { hold_idx.len() } else { 0 }
-    };
     // A store given holds every frame: the held-out ones are taken out.
     if let Some(store) = given.as_mut() {
         for &i in &hold_idx {
             store.remove_labelled(&frames[i])?;
         }
-        stored = grow_idx.len();
     }
-    let mut grow_on = |idx: &[usize],
-                       given: Option<LabelStore>,
-                       progress: &mut dyn FnMut(Stage)|
-     -> Result<Grown> {
-        let mut store = match given {
-            Some(s) => s,
-            None => LabelStore::new(params.window),
-        };
-        if store.frames() == 0 {
-            for &i in idx {
-                progress(Stage::Store {
-                    done: stored,
-                    total: total_store,
-                });
-                store.add_labelled(&frames[i])?;
-                stored += 1;
-            }
-        }
-        progress(Stage::Store {
-            done: stored,
-            total: total_store,
-        });
-        let totals = store.totals();
-        if totals[1] == 0 {
-            return Err(Error::training(
-                "the growing frames have no target pixels: every mask is empty",
-            ));
-        }
-        let weights = params.class_weight.weights(totals);
-        let mut entries = store.into_entries();
-        let unique = entries.len() as u64;
-        progress(Stage::Grow);
-        let gp = params.grow_params(weights);
-        let tree = grow::grow_until(&mut entries, params.window.features(), &gp, stop)
-            .ok_or_else(stopped)?;
-        progress(Stage::Prune);
-        let pruning = prune::prune_sequence(&tree, params.criterion, weights);
-        Ok(Grown {
-            tree,
-            pruning,
-            weights,
-            totals,
-            unique,
-        })
-    };
     let fixed = tune::Fixed {
         threshold: params.threshold,
         min_area: params.min_area,
@@ -479,12 +600,18 @@ fn train_inner(
     // copy of the whole store with them taken out, when one was given),
     // scores them; the choice is made on all frames' scores together.
     let mut cross_choice = None;
-    if cross {
+    let first = if cross {
         let fold = split_folds(frames, params.folds);
-        let mut grown = Vec::with_capacity(params.folds);
+        let mut jobs = Vec::with_capacity(params.folds + 1);
+        // The final tree first: it is the largest job, and two threads
+        // finish sooner when it does not come last.
+        jobs.push(GrowJob {
+            idx: grow_idx.clone(),
+            store: given.take(),
+        });
         for j in 0..params.folds {
             let out: Vec<usize> = (0..frames.len()).filter(|&i| fold[i] != j).collect();
-            let copy = match &given {
+            let store = match &jobs[0].store {
                 Some(all) => {
                     let mut s = all.clone();
                     for i in (0..frames.len()).filter(|&i| fold[i] == j) {
@@ -494,16 +621,19 @@ fn train_inner(
                 }
                 None => None,
             };
-            grown.push(grow_on(&out, copy, progress)?);
-            if stop() {
-                return Err(stopped());
-            }
+            jobs.push(GrowJob { idx: out, store });
+        }
+        let mut grown = grow_all(frames, jobs, params, progress, stop)?;
+        if stop() {
+            return Err(stopped());
         }
         progress(Stage::Tune);
         let mut scored = Vec::with_capacity(frames.len());
+        let mut fold_order = Vec::with_capacity(frames.len());
         let mut base = 0u32;
-        for (j, g) in grown.iter().enumerate() {
+        for (j, g) in grown[1..].iter().enumerate() {
             for i in (0..frames.len()).filter(|&i| fold[i] == j) {
+                fold_order.push(i);
                 scored.push(
                     tune::HoldoutFrame::new(
                         &g.tree,
@@ -517,21 +647,39 @@ fn train_inner(
             }
             base += g.tree.nodes.len() as u32;
         }
-        let folds: Vec<_> = grown
+        // Tuning sees the frames in content-hash order, whatever order
+        // they were given in: its standard errors resample by position.
+        let mut order: Vec<([u8; 32], tune::HoldoutFrame)> = fold_order
+            .iter()
+            .map(|&i| frames[i].content_hash())
+            .zip(scored)
+            .collect();
+        order.sort_by_key(|a| a.0);
+        let scored: Vec<tune::HoldoutFrame> = order.into_iter().map(|x| x.1).collect();
+        let folds: Vec<_> = grown[1..]
             .iter()
             .map(|g| (&g.tree, &g.pruning, g.weights))
             .collect();
-        cross_choice = tune::choose_folds(&folds, &scored, &fixed);
+        cross_choice = tune::choose_folds(&folds, &scored, &fixed, params.rules());
         if stop() {
             return Err(stopped());
         }
-    }
-    let first = grow_on(&grow_idx, given, progress)?;
+        grown.swap_remove(0)
+    } else {
+        let job = GrowJob {
+            idx: grow_idx.clone(),
+            store: given.take(),
+        };
+        grow_all(frames, vec![job], params, progress, stop)?.remove(0)
+    };
     if stop() {
         return Err(stopped());
     }
     progress(Stage::Tune);
-    let holdout: Vec<tune::HoldoutFrame> = hold_idx
+    // In content-hash order, as above.
+    let mut hold_sorted = hold_idx.clone();
+    hold_sorted.sort_by_key(|&i| frames[i].content_hash());
+    let holdout: Vec<tune::HoldoutFrame> = hold_sorted
         .iter()
         .map(|&i| {
             tune::HoldoutFrame::new(
@@ -548,7 +696,14 @@ fn train_inner(
     } else if holdout.is_empty() {
         None
     } else {
-        tune::choose(&first.tree, &first.pruning, first.weights, &holdout, &fixed)
+        tune::choose(
+            &first.tree,
+            &first.pruning,
+            first.weights,
+            &holdout,
+            &fixed,
+            params.rules(),
+        )
     };
     drop(holdout);
     if stop() {
@@ -557,7 +712,14 @@ fn train_inner(
     let refit = params.refit && !cross && choice.is_some();
     let (final_grown, used_idx) = if refit {
         let all: Vec<usize> = (0..frames.len()).collect();
-        (grow_on(&all, None, progress)?, all)
+        let job = GrowJob {
+            idx: all.clone(),
+            store: None,
+        };
+        (
+            grow_all(frames, vec![job], params, progress, stop)?.remove(0),
+            all,
+        )
     } else {
         (first, grow_idx.clone())
     };
@@ -613,6 +775,7 @@ fn train_inner(
     Ok(Model {
         threshold,
         grouping,
+        smoothing: choice.map_or(Smoothing::OFF, |c| c.smoothing),
         model_version: 1,
         training: TrainingInfo {
             criterion: params.criterion.name().into(),
@@ -628,6 +791,12 @@ fn train_inner(
             pruned_leaves: tree.leaves() as u64,
             refit,
             folds: if cross { params.folds as u32 } else { 0 },
+            smaller: choice.and_then(|c| c.passed_over).map(|p| SizeTrade {
+                best_alpha: p.alpha,
+                best_leaves: pruning.leaves_at(&grown, p.alpha) as u64,
+                best_object_f1: p.object.f1(),
+                object_f1_se: p.object_se,
+            }),
             overridden,
         },
         data: DataSummary {
@@ -713,6 +882,7 @@ mod tests {
             weights,
             &[hold(6), hold(7), hold(6), hold(7)],
             &fixed,
+            tune::Rules::default(),
         )
         .unwrap();
         let n = tree.nodes.len() as u32;
@@ -720,6 +890,7 @@ mod tests {
             &[(&tree, &pruning, weights), (&tree, &pruning, weights)],
             &[hold(6), hold(7), hold(6).offset(n), hold(7).offset(n)],
             &fixed,
+            tune::Rules::default(),
         )
         .unwrap();
         assert_eq!(
@@ -814,7 +985,11 @@ mod tests {
         );
         // A model tuned on the holdout share does not write the field, so
         // earlier models keep their bytes and hashes.
-        let plain = train(&frames, &TrainParams::default(), &mut |_| {}).unwrap();
+        let holdout = TrainParams {
+            folds: 0,
+            ..TrainParams::default()
+        };
+        let plain = train(&frames, &holdout, &mut |_| {}).unwrap();
         assert!(!plain.to_json().contains("folds"));
         // One share cannot hold anything out.
         let one = TrainParams {
@@ -824,11 +999,55 @@ mod tests {
         assert!(one.validate().is_err());
     }
 
+    /// The size rule keeps a smaller tree only within one standard error
+    /// of the best candidate, records what it passed over, and the best
+    /// candidate is the one training without the rule keeps.
+    #[test]
+    fn the_size_rule_trades_within_one_standard_error() {
+        use crate::synth::LoomParams;
+        let mut traded = 0;
+        for seed in 1..=3u64 {
+            let lp = LoomParams {
+                width: 96,
+                height: 96,
+                ..LoomParams::suite()[3].1
+            };
+            let frames = crate::suite::frames("f", &lp, seed, 12);
+            let with = train(&frames, &TrainParams::default(), &mut |_| {}).unwrap();
+            let without = TrainParams {
+                prefer_smaller: false,
+                ..TrainParams::default()
+            };
+            let best = train(&frames, &without, &mut |_| {}).unwrap();
+            assert!(best.training.smaller.is_none());
+            assert!(with.training.pruned_leaves <= best.training.pruned_leaves);
+            let Some(t) = with.training.smaller else {
+                assert_eq!(with.to_json(), best.to_json());
+                continue;
+            };
+            traded += 1;
+            assert!(with.training.pruning_alpha > best.training.pruning_alpha);
+            assert_eq!(t.best_alpha, best.training.pruning_alpha);
+            assert_eq!(t.best_leaves, best.training.pruned_leaves);
+            let (kept, top) = (
+                with.holdout.as_ref().unwrap().object.f1,
+                best.holdout.as_ref().unwrap().object.f1,
+            );
+            assert_eq!(t.best_object_f1, top);
+            assert!(t.object_f1_se >= 0.0);
+            assert!(kept >= top - t.object_f1_se - 1e-12, "{kept} {top} {t:?}");
+            assert!(with.to_json().contains("\"smaller\""));
+            break;
+        }
+        assert!(traded > 0, "no seed made the rule choose a smaller tree");
+    }
+
     #[test]
     fn untuned_training_says_so() {
         let frames: Vec<_> = (0..4).map(|i| lf("f", true, i)).collect();
         let p = TrainParams {
             holdout: 0.0,
+            folds: 0,
             ..TrainParams::default()
         };
         let m = train(&frames, &p, &mut |_| {}).unwrap();

@@ -14,6 +14,7 @@
 //! distance, smaller minimum area, higher threshold).
 
 use crate::detect::group::{self, GroupParams, Object};
+use crate::detect::smooth::Smoothing;
 use crate::frame::BitFrame;
 use crate::score::{self, Confusion};
 use crate::window::{self, Window};
@@ -106,15 +107,39 @@ pub struct Fixed {
     pub merge_distance: Option<u32>,
 }
 
+/// What tuning may do beyond taking the best-scoring candidate.
+#[derive(Clone, Copy, Debug, Default)]
+pub struct Rules {
+    /// The size rule: the smallest tree within one standard error.
+    pub prefer_smaller: bool,
+    /// Try smoothing the masks, kept when better by one standard error.
+    pub smoothing: bool,
+}
+
 /// The chosen settings and their held-out scores.
 #[derive(Clone, Copy, Debug, PartialEq)]
 pub struct Choice {
     pub alpha: f64,
     pub threshold: f64,
     pub grouping: GroupParams,
+    pub smoothing: Smoothing,
     pub leaves: usize,
     pub pixel: Confusion,
     pub object: Confusion,
+    /// The size rule's trade (see [`choose_folds`]): when it took a smaller
+    /// tree than the best-scoring candidate, that candidate's leaves and
+    /// held-out object F1, and the standard error that allowed it.
+    pub passed_over: Option<PassedOver>,
+}
+
+/// The best-scoring candidate a smaller tree was preferred to.
+#[derive(Clone, Copy, Debug, PartialEq)]
+pub struct PassedOver {
+    pub alpha: f64,
+    pub leaves: usize,
+    pub object: Confusion,
+    /// Bootstrap standard error of its object F1 over the held-out frames.
+    pub object_se: f64,
 }
 
 impl Choice {
@@ -173,22 +198,188 @@ pub fn node_scores(tree: &GrownTree, weights: [f64; 2]) -> Vec<f64> {
         .collect()
 }
 
-/// Evaluates one pruning strength; returns its best choice.
-fn try_alpha(
-    folds: &[(&GrownTree, &Pruning)],
-    alpha: f64,
-    scores: &[f64],
-    frames: &[HoldoutFrame],
-    fixed: &Fixed,
-) -> Option<Choice> {
-    // The folds' trees side by side in one id space (see `choose_folds`).
-    let mut eff: Vec<u32> = Vec::with_capacity(scores.len());
+/// The folds' trees side by side in one id space (see [`choose_folds`]):
+/// each grown node's node in the tree pruned at `alpha`, and the pruned
+/// trees' leaves together.
+fn effective(folds: &[(&GrownTree, &Pruning)], alpha: f64) -> (Vec<u32>, usize) {
+    let mut eff: Vec<u32> = Vec::new();
     let mut leaves = 0;
     for (tree, pruning) in folds {
         let base = eff.len() as u32;
         eff.extend(pruning.effective(tree, alpha).into_iter().map(|e| e + base));
         leaves += pruning.leaves_at(tree, alpha);
     }
+    (eff, leaves)
+}
+
+/// Pixels of each frame that reach `lowest`, with their score: detections
+/// are rare, so masks are built from these lists.
+fn above(frames: &[HoldoutFrame], score: &dyn Fn(u32) -> f64, lowest: f64) -> Vec<Vec<(u32, f64)>> {
+    frames
+        .iter()
+        .map(|f| {
+            f.leaf
+                .iter()
+                .enumerate()
+                .filter_map(|(i, &l)| {
+                    let s = score(l);
+                    let known = || !f.is_unknown(i % f.width, i / f.width);
+                    (s >= lowest && known()).then_some((i as u32, s))
+                })
+                .collect()
+        })
+        .collect()
+}
+
+/// Each frame's mask at threshold `thr`, smoothed.
+fn masks_at(
+    frames: &[HoldoutFrame],
+    above: &[Vec<(u32, f64)>],
+    thr: f64,
+    smoothing: Smoothing,
+) -> Vec<BitFrame> {
+    frames
+        .iter()
+        .zip(above)
+        .map(|(f, cand)| {
+            let mut m = BitFrame::new(f.width, f.height);
+            for &(i, s) in cand {
+                if s >= thr {
+                    let (x, y) = (i as usize % f.width, i as usize / f.width);
+                    m.row_mut(y)[x / 64] |= 1 << (x % 64);
+                }
+            }
+            if smoothing.is_off() {
+                m
+            } else {
+                // Smoothing may reach pixels of unknown label: they stay out.
+                let m = smoothing.apply(&m);
+                match &f.unknown {
+                    Some(u) => m.and_not(u),
+                    None => m,
+                }
+            }
+        })
+        .collect()
+}
+
+/// The best grouping of one candidate's masks: for each merge distance,
+/// every minimum area is scored from one labelling, and the row's plateau
+/// centre competes. `base` carries the candidate's strength, threshold,
+/// leaves and smoothing.
+fn best_grouping(
+    masks: &[BitFrame],
+    frames: &[HoldoutFrame],
+    score: &dyn Fn(u32) -> f64,
+    fixed: &Fixed,
+    base: Choice,
+) -> Option<Choice> {
+    let mds: Vec<u32> = fixed
+        .merge_distance
+        .map_or_else(|| MERGE_DISTANCES.to_vec(), |m| vec![m]);
+    let areas: Vec<u32> = fixed
+        .min_area
+        .map_or_else(|| MIN_AREAS.to_vec(), |a| vec![a]);
+    let truth_total: u64 = frames.iter().map(|f| f.truth_mask.count_set()).sum();
+    // Merging is the costliest step on dense masks (many runs, each
+    // joined to many within reach), and where a threshold detects many
+    // times more pixels than there are targets, merging them further
+    // cannot help: such masks are grouped with the smallest distance only.
+    let detected: u64 = masks.iter().map(BitFrame::count_set).sum();
+    let dense = detected > MAX_DETECTED_RATIO * truth_total.max(1) + 1000;
+    let mds: &[u32] = if dense { &mds[..1] } else { &mds };
+    let pixel_all = frames.iter().map(HoldoutFrame::known_pixels).sum::<u64>();
+    let mut best: Option<Choice> = None;
+    for &md in mds {
+        // Objects (all sizes) and, per object, its area and how many of
+        // its pixels are targets: enough to score every min_area.
+        let grouped: Vec<(Vec<Object>, Vec<u64>)> = masks
+            .iter()
+            .zip(frames)
+            .map(|(m, f)| {
+                let (runs, comp, n) = group::label(m, md);
+                let mut hits = vec![0u64; n];
+                for (r, &c) in runs.iter().zip(&comp) {
+                    let trow = f.truth_mask.row(r.y as usize);
+                    for x in r.x0..=r.x1 {
+                        hits[c as usize] += (trow[x as usize / 64] >> (x % 64)) & 1;
+                    }
+                }
+                // With min_area 1 object k is component k, as `hits`.
+                let objs =
+                    group::objects_of(&runs, &comp, n, 1, |x, y| score(f.leaf[y * f.width + x]));
+                (objs, hits)
+            })
+            .collect();
+        let mut row: Vec<Choice> = Vec::with_capacity(areas.len());
+        for &area in &areas {
+            let mut object = Confusion::default();
+            let mut pixel = Confusion::default();
+            for ((objs, hits), f) in grouped.iter().zip(frames) {
+                let kept: Vec<Object> = objs
+                    .iter()
+                    .filter(|o| o.area >= area as u64)
+                    .cloned()
+                    .collect();
+                object.add(&score::object_confusion(&kept, &f.truth));
+                for (o, &h) in objs.iter().zip(hits) {
+                    if o.area >= area as u64 {
+                        pixel.tp += h;
+                        pixel.fp += o.area - h;
+                    }
+                }
+            }
+            pixel.fn_ = truth_total - pixel.tp;
+            pixel.tn = pixel_all - pixel.tp - pixel.fp - pixel.fn_;
+            row.push(Choice {
+                grouping: GroupParams {
+                    min_area: area,
+                    merge_distance: md,
+                },
+                pixel,
+                object,
+                ..base
+            });
+        }
+        let c = plateau_centre(&row);
+        if best.as_ref().is_none_or(|b| c.better_than(b)) {
+            best = Some(c);
+        }
+    }
+    best
+}
+
+/// Each frame's object counts for one choice: the size rule's standard
+/// error is over frames, the unit new data comes in.
+fn per_frame(frames: &[HoldoutFrame], score: &dyn Fn(u32) -> f64, c: &Choice) -> Vec<Confusion> {
+    let lists = above(frames, score, c.threshold);
+    masks_at(frames, &lists, c.threshold, c.smoothing)
+        .iter()
+        .zip(frames)
+        .map(|(m, f)| {
+            let objs = group::group(m, c.grouping, |x, y| score(f.leaf[y * f.width + x]));
+            score::object_confusion(&objs, &f.truth)
+        })
+        .collect()
+}
+
+/// What one pruning strength gave: its best choice, that choice's counts
+/// per frame, and the best choice at each threshold tried.
+struct Tried {
+    best: Choice,
+    per_frame: Vec<Confusion>,
+    by_threshold: Vec<Choice>,
+}
+
+/// Evaluates one pruning strength without smoothing.
+fn try_alpha(
+    folds: &[(&GrownTree, &Pruning)],
+    alpha: f64,
+    scores: &[f64],
+    frames: &[HoldoutFrame],
+    fixed: &Fixed,
+) -> Option<Tried> {
+    let (eff, leaves) = effective(folds, alpha);
     // Held-out pixel histogram per effective leaf, for pixel F1 per threshold.
     let n = eff.len();
     let mut hist = vec![[0u64; 2]; n];
@@ -259,115 +450,166 @@ fn try_alpha(
             t
         }
     };
-    let mds: Vec<u32> = fixed
-        .merge_distance
-        .map_or_else(|| MERGE_DISTANCES.to_vec(), |m| vec![m]);
-    let areas: Vec<u32> = fixed
-        .min_area
-        .map_or_else(|| MIN_AREAS.to_vec(), |a| vec![a]);
-    // Pixels that reach the lowest candidate threshold, per frame, with
-    // their score: detections are rare, so masks are built from this list.
+    let score = |l: u32| scores[eff[l as usize] as usize];
     let lowest = thresholds.iter().copied().fold(f64::INFINITY, f64::min);
-    let candidates: Vec<Vec<(u32, f64)>> = frames
-        .iter()
-        .map(|f| {
-            f.leaf
-                .iter()
-                .enumerate()
-                .filter_map(|(i, &l)| {
-                    let s = scores[eff[l as usize] as usize];
-                    let known = || !f.is_unknown(i % f.width, i / f.width);
-                    (s >= lowest && known()).then_some((i as u32, s))
-                })
-                .collect()
-        })
-        .collect();
-    let mut best: Option<Choice> = None;
+    let lists = above(frames, &score, lowest);
+    let mut by_threshold = Vec::with_capacity(thresholds.len());
     for &thr in &thresholds {
-        let masks: Vec<BitFrame> = frames
-            .iter()
-            .zip(&candidates)
-            .map(|(f, cand)| {
-                let mut m = BitFrame::new(f.width, f.height);
-                for &(i, s) in cand {
-                    if s >= thr {
-                        let (x, y) = (i as usize % f.width, i as usize / f.width);
-                        m.row_mut(y)[x / 64] |= 1 << (x % 64);
-                    }
-                }
-                m
-            })
-            .collect();
-        let truth_total: u64 = frames.iter().map(|f| f.truth_mask.count_set()).sum();
-        // Merging is the costliest step on dense masks (many runs, each
-        // joined to many within reach), and where a threshold detects many
-        // times more pixels than there are targets, merging them further
-        // cannot help: such masks are grouped with the smallest distance only.
-        let detected: u64 = masks.iter().map(BitFrame::count_set).sum();
-        let dense = detected > MAX_DETECTED_RATIO * truth_total.max(1) + 1000;
-        let mds: &[u32] = if dense { &mds[..1] } else { &mds };
-        let pixel_all = frames.iter().map(HoldoutFrame::known_pixels).sum::<u64>();
-        for &md in mds {
-            // Objects (all sizes) and, per object, its area and how many of
-            // its pixels are targets: enough to score every min_area.
-            let grouped: Vec<(Vec<Object>, Vec<u64>)> = masks
-                .iter()
-                .zip(frames)
-                .map(|(m, f)| {
-                    let (runs, comp, n) = group::label(m, md);
-                    let mut hits = vec![0u64; n];
-                    for (r, &c) in runs.iter().zip(&comp) {
-                        let trow = f.truth_mask.row(r.y as usize);
-                        for x in r.x0..=r.x1 {
-                            hits[c as usize] += (trow[x as usize / 64] >> (x % 64)) & 1;
-                        }
-                    }
-                    // With min_area 1 object k is component k, as `hits`.
-                    let objs = group::objects_of(&runs, &comp, n, 1, |x, y| {
-                        scores[eff[f.leaf[y * f.width + x] as usize] as usize]
-                    });
-                    (objs, hits)
-                })
-                .collect();
-            let mut row: Vec<Choice> = Vec::with_capacity(areas.len());
-            for &area in &areas {
-                let mut object = Confusion::default();
-                let mut pixel = Confusion::default();
-                for ((objs, hits), f) in grouped.iter().zip(frames) {
-                    let kept: Vec<Object> = objs
-                        .iter()
-                        .filter(|o| o.area >= area as u64)
-                        .cloned()
-                        .collect();
-                    object.add(&score::object_confusion(&kept, &f.truth));
-                    for (o, &h) in objs.iter().zip(hits) {
-                        if o.area >= area as u64 {
-                            pixel.tp += h;
-                            pixel.fp += o.area - h;
-                        }
-                    }
-                }
-                pixel.fn_ = truth_total - pixel.tp;
-                pixel.tn = pixel_all - pixel.tp - pixel.fp - pixel.fn_;
-                row.push(Choice {
-                    alpha,
-                    threshold: thr,
-                    grouping: GroupParams {
-                        min_area: area,
-                        merge_distance: md,
-                    },
-                    leaves,
-                    pixel,
-                    object,
-                });
-            }
-            let c = plateau_centre(&row);
-            if best.as_ref().is_none_or(|b| c.better_than(b)) {
-                best = Some(c);
-            }
+        let masks = masks_at(frames, &lists, thr, Smoothing::OFF);
+        let base = Choice {
+            alpha,
+            threshold: thr,
+            grouping: GroupParams::default(),
+            smoothing: Smoothing::OFF,
+            leaves,
+            pixel: Confusion::default(),
+            object: Confusion::default(),
+            passed_over: None,
+        };
+        if let Some(c) = best_grouping(&masks, frames, &score, fixed, base) {
+            by_threshold.push(c);
         }
     }
-    best
+    let mut best: Option<Choice> = None;
+    for c in &by_threshold {
+        if best.as_ref().is_none_or(|b| c.better_than(b)) {
+            best = Some(*c);
+        }
+    }
+    let best = best?;
+    Some(Tried {
+        per_frame: per_frame(frames, &score, &best),
+        best,
+        by_threshold,
+    })
+}
+
+/// The smoothings tried: the 3x3 square at one to six votes (a dilation,
+/// joins, the majority) and the 5x5 square at a few.
+pub const SMOOTHINGS: &[Smoothing] = &[
+    Smoothing {
+        radius: 1,
+        votes: 1,
+    },
+    Smoothing {
+        radius: 1,
+        votes: 2,
+    },
+    Smoothing {
+        radius: 1,
+        votes: 3,
+    },
+    Smoothing {
+        radius: 1,
+        votes: 4,
+    },
+    Smoothing {
+        radius: 1,
+        votes: 5,
+    },
+    Smoothing {
+        radius: 1,
+        votes: 6,
+    },
+    Smoothing {
+        radius: 2,
+        votes: 3,
+    },
+    Smoothing {
+        radius: 2,
+        votes: 6,
+    },
+    Smoothing {
+        radius: 2,
+        votes: 9,
+    },
+    Smoothing {
+        radius: 2,
+        votes: 13,
+    },
+];
+/// Thresholds of the chosen strength that smoothing is tried at: its best
+/// ones without smoothing.
+const SMOOTHING_THRESHOLDS: usize = 4;
+
+/// Tries smoothing the masks of the chosen strength at its best
+/// thresholds, on two threads; returns the best smoothed choice if it
+/// beats `chosen` (which is unsmoothed).
+fn try_smoothing(
+    folds: &[(&GrownTree, &Pruning)],
+    scores: &[f64],
+    frames: &[HoldoutFrame],
+    fixed: &Fixed,
+    chosen: &Choice,
+    by_threshold: &[Choice],
+) -> Option<Choice> {
+    let (eff, _) = effective(folds, chosen.alpha);
+    let score = |l: u32| scores[eff[l as usize] as usize];
+    let mut ranked: Vec<&Choice> = by_threshold.iter().collect();
+    ranked.sort_by(|a, b| {
+        if a.better_than(b) {
+            std::cmp::Ordering::Less
+        } else if b.better_than(a) {
+            std::cmp::Ordering::Greater
+        } else {
+            b.threshold.total_cmp(&a.threshold)
+        }
+    });
+    let thresholds: Vec<f64> = ranked
+        .iter()
+        .take(SMOOTHING_THRESHOLDS)
+        .map(|c| c.threshold)
+        .collect();
+    let lowest = thresholds.iter().copied().fold(f64::INFINITY, f64::min);
+    let lists = above(frames, &score, lowest);
+    let jobs: Vec<(f64, Smoothing)> = thresholds
+        .iter()
+        .flat_map(|&t| SMOOTHINGS.iter().map(move |&s| (t, s)))
+        .collect();
+    let found: Vec<Option<Choice>> = std::thread::scope(|s| {
+        let handles: Vec<_> = (0..2)
+            .map(|k| {
+                let (jobs, lists, score) = (&jobs, &lists, &score);
+                s.spawn(move || {
+                    jobs.iter()
+                        .enumerate()
+                        .filter(|(i, _)| i % 2 == k)
+                        .map(|(i, &(thr, sm))| {
+                            let masks = masks_at(frames, lists, thr, sm);
+                            let base = Choice {
+                                threshold: thr,
+                                smoothing: sm,
+                                ..*chosen
+                            };
+                            (i, best_grouping(&masks, frames, score, fixed, base))
+                        })
+                        .collect::<Vec<_>>()
+                })
+            })
+            .collect();
+        let mut all: Vec<(usize, Option<Choice>)> = handles
+            .into_iter()
+            .flat_map(|h| h.join().expect("smoothing thread"))
+            .collect();
+        all.sort_by_key(|x| x.0);
+        all.into_iter().map(|x| x.1).collect()
+    });
+    let mut best: Option<Choice> = None;
+    for c in found.into_iter().flatten() {
+        if best.as_ref().is_none_or(|b| c.better_than(b)) {
+            best = Some(c);
+        }
+    }
+    // Smoothing costs time on every frame: as with the tree's size, it is
+    // kept only when it scores better than the unsmoothed choice by more
+    // than one standard error of the difference.
+    let best = best?;
+    let se = paired_se(
+        &per_frame(frames, &score, &best),
+        &per_frame(frames, &score, chosen),
+        SE_SEED,
+    );
+    (best.object.f1() > chosen.object.f1() + se).then_some(best)
 }
 
 /// Tries the pruning strengths (spread over the sequence, at most
@@ -378,8 +620,9 @@ pub fn choose(
     weights: [f64; 2],
     frames: &[HoldoutFrame],
     fixed: &Fixed,
+    rules: Rules,
 ) -> Option<Choice> {
-    choose_folds(&[(tree, pruning, weights)], frames, fixed)
+    choose_folds(&[(tree, pruning, weights)], frames, fixed, rules)
 }
 
 /// [`choose`] over several trees at once, each with its own held-out
@@ -391,6 +634,7 @@ pub fn choose_folds(
     folds: &[(&GrownTree, &Pruning, [f64; 2])],
     frames: &[HoldoutFrame],
     fixed: &Fixed,
+    rules: Rules,
 ) -> Option<Choice> {
     let scores: Vec<f64> = folds
         .iter()
@@ -404,7 +648,7 @@ pub fn choose_folds(
     every.sort_by(f64::total_cmp);
     every.dedup();
     let alphas = spread(&every, MAX_ALPHAS);
-    let results: Vec<Option<Choice>> = std::thread::scope(|s| {
+    let results: Vec<Option<Tried>> = std::thread::scope(|s| {
         let handles: Vec<_> = (0..2)
             .map(|k| {
                 let (alphas, scores, trees) = (&alphas, &scores, &trees);
@@ -418,25 +662,136 @@ pub fn choose_folds(
                 })
             })
             .collect();
-        let mut all: Vec<(f64, Option<Choice>)> = handles
+        let mut all: Vec<(f64, Option<Tried>)> = handles
             .into_iter()
             .flat_map(|h| h.join().expect("tuning thread"))
             .collect();
         all.sort_by(|a, b| a.0.total_cmp(&b.0));
         all.into_iter().map(|x| x.1).collect()
     });
+    let results: Vec<Tried> = results.into_iter().flatten().collect();
     // Larger alpha (smaller tree) wins ties: visit from the largest.
-    let mut best: Option<Choice> = None;
-    for c in results.into_iter().rev().flatten() {
-        if best.as_ref().is_none_or(|b| c.better_than(b)) {
-            best = Some(c);
+    let mut best: Option<&Tried> = None;
+    for r in results.iter().rev() {
+        if best.is_none_or(|b| r.best.better_than(&b.best)) {
+            best = Some(r);
         }
     }
-    best
+    let top = best?;
+    // The one-standard-error rule (Breiman et al. 1984, section 3.4.3):
+    // a candidate whose object F1 is within one standard error of the
+    // best's is taken as equally good, and the smallest tree among those is
+    // kept. The candidates are scored on the same frames, so the error is
+    // that of their difference, resampled in pairs (Efron & Tibshirani
+    // 1993, chapter 6): a tree that is worse on every frame is not equal
+    // however noisy the frames are.
+    // The pruned trees are nested (each strength's tree is a subtree of the
+    // weaker strengths' trees), so fewer leaves means the compiled program
+    // evaluates a subset of the nodes: never slower, usually faster.
+    let mut kept: (&Tried, Option<f64>) = (top, None);
+    if rules.prefer_smaller {
+        for r in &results {
+            let (c, k) = (&r.best, &kept.0.best);
+            if c.leaves >= top.best.leaves {
+                continue;
+            }
+            let se = paired_se(&top.per_frame, &r.per_frame, SE_SEED);
+            if c.object.f1() >= top.best.object.f1() - se
+                && (c.leaves < k.leaves || (c.leaves == k.leaves && c.better_than(k)))
+            {
+                kept = (r, Some(se));
+            }
+        }
+    }
+    let (tried, se) = kept;
+    let mut choice = tried.best;
+    if let Some(se) = se {
+        choice.passed_over = Some(PassedOver {
+            alpha: top.best.alpha,
+            leaves: top.best.leaves,
+            object: top.best.object,
+            object_se: se,
+        });
+    }
+    // Smoothing is tried on the kept strength only: it changes which
+    // pixels form objects, not which tree is needed.
+    if rules.smoothing {
+        if let Some(smoothed) =
+            try_smoothing(&trees, &scores, frames, fixed, &choice, &tried.by_threshold)
+        {
+            choice = smoothed;
+        }
+    }
+    Some(choice)
+}
+
+/// The bootstrap standard error of F1(a) - F1(b), where `a` and `b` are
+/// two candidates' counts on the same frames: the frames are drawn with
+/// replacement, the same draw for both.
+pub fn paired_se(a: &[Confusion], b: &[Confusion], seed: u64) -> f64 {
+    let n = a.len().min(b.len());
+    if n < 2 {
+        return 0.0;
+    }
+    let mut rng = crate::synth::Rng::new(seed ^ 0x5EED_B007);
+    let d: Vec<f64> = (0..BOOTSTRAP)
+        .map(|_| {
+            let (mut ca, mut cb) = (Confusion::default(), Confusion::default());
+            for _ in 0..n {
+                let k = rng.range(0, n);
+                ca.add(&a[k]);
+                cb.add(&b[k]);
+            }
+            ca.f1() - cb.f1()
+        })
+        .collect();
+    let mean = d.iter().sum::<f64>() / d.len() as f64;
+    (d.iter().map(|f| (f - mean) * (f - mean)).sum::<f64>() / (d.len() - 1) as f64).sqrt()
+}
+
+/// Resamples of [`bootstrap_se`].
+pub const BOOTSTRAP: usize = 1000;
+/// The size rule's resampling seed: training stays deterministic.
+const SE_SEED: u64 = 0x5EED;
+
+/// The bootstrap standard error (Efron & Tibshirani 1993, chapter 6) of
+/// the F1 of summed counts: frames drawn with replacement, [`BOOTSTRAP`]
+/// times, from a generator seeded by `seed` (so the figure is repeatable).
+pub fn bootstrap_se(frames: &[Confusion], seed: u64) -> f64 {
+    if frames.len() < 2 {
+        return 0.0;
+    }
+    let mut rng = crate::synth::Rng::new(seed ^ 0x5EED_B007);
+    let f1s: Vec<f64> = (0..BOOTSTRAP)
+        .map(|_| {
+            let mut c = Confusion::default();
+            for _ in 0..frames.len() {
+                c.add(&frames[rng.range(0, frames.len())]);
+            }
+            c.f1()
+        })
+        .collect();
+    let mean = f1s.iter().sum::<f64>() / f1s.len() as f64;
+    (f1s.iter().map(|f| (f - mean) * (f - mean)).sum::<f64>() / (f1s.len() - 1) as f64).sqrt()
 }
 
 #[cfg(test)]
 mod tests {
+
+    #[test]
+    fn paired_errors_vanish_for_equal_candidates_and_not_for_noisy_ones() {
+        use super::{bootstrap_se, paired_se};
+        use crate::score::Confusion;
+        let c = |tp, fp, fn_| Confusion { tp, fp, fn_, tn: 0 };
+        let a: Vec<Confusion> = (0..20).map(|i| c(3 + i % 3, i % 2, 1)).collect();
+        assert_eq!(paired_se(&a, &a, 1), 0.0);
+        // A candidate one object worse on every frame differs by a steady
+        // amount: its paired error is below its own.
+        let b: Vec<Confusion> = a.iter().map(|x| c(x.tp - 1, x.fp, x.fn_ + 1)).collect();
+        let (pair, own) = (paired_se(&a, &b, 1), bootstrap_se(&a, 1));
+        assert!(pair > 0.0 && pair < own, "{pair} {own}");
+        assert_eq!(paired_se(&a, &b, 1), pair, "repeatable");
+    }
 
     #[test]
     fn equal_proportions_score_equally() {

@@ -6,11 +6,17 @@
 use super::*;
 
 pub const FORMAT: &str = "burlwatch-model";
-/// The version written. Version 3 added `reference.patterns` (the 2x2
-/// pattern shares of the training frames, for the drift monitors).
+/// The version written for a model without smoothing. Version 3 added
+/// `reference.patterns` (the 2x2 pattern shares of the training frames,
+/// for the drift monitors).
 pub const FORMAT_VERSION: u32 = 3;
+/// The version written for a model with smoothing (version 4 added
+/// `smoothing`); models without it are still written as version 3, so
+/// builds that read version 3 keep reading them and their bytes (and
+/// hashes) stay as they were.
+pub const SMOOTHING_VERSION: u32 = 4;
 /// The versions read: version 2 files load with no pattern references.
-pub const READS: [u32; 2] = [2, 3];
+pub const READS: [u32; 3] = [2, 3, 4];
 /// The split criteria a model may name.
 pub const CRITERIA: [&str; 3] = ["gini", "entropy", "gain-ratio"];
 const MAX_RADIUS: u8 = crate::window::MAX_SIZE / 2;
@@ -61,6 +67,9 @@ pub struct ModelFile {
     pub threshold: f64,
     pub min_area: u32,
     pub merge_distance: u32,
+    /// Neighbourhood votes on the detection mask; absent when off.
+    #[serde(default, skip_serializing_if = "Smoothing::is_off")]
+    pub smoothing: Smoothing,
     pub training: TrainingInfo,
     pub data: DataSummary,
     pub holdout: Option<HoldoutMetrics>,
@@ -204,12 +213,17 @@ impl ModelFile {
         let w = m.tree.window();
         ModelFile {
             format: FORMAT.into(),
-            format_version: FORMAT_VERSION,
+            format_version: if m.smoothing.is_off() {
+                FORMAT_VERSION
+            } else {
+                SMOOTHING_VERSION
+            },
             model_version: m.model_version,
             window: w.size(),
             threshold: m.threshold,
             min_area: m.grouping.min_area,
             merge_distance: m.grouping.merge_distance,
+            smoothing: m.smoothing,
             training: m.training.clone(),
             data: m.data.clone(),
             holdout: m.holdout.clone(),
@@ -272,9 +286,16 @@ impl ModelFile {
             min_area: self.min_area,
             merge_distance: self.merge_distance,
         };
+        if self.format_version < SMOOTHING_VERSION && !self.smoothing.is_off() {
+            return Err(Error::bad_model(format!(
+                "smoothing came with format_version {SMOOTHING_VERSION}, but the file says {}",
+                self.format_version
+            )));
+        }
         Settings {
             threshold: self.threshold,
             grouping,
+            smoothing: self.smoothing,
         }
         .validate()
         .map_err(|e| Error::bad_model(e.kind().to_string()))?;
@@ -298,6 +319,7 @@ impl ModelFile {
             tree,
             threshold: self.threshold,
             grouping,
+            smoothing: self.smoothing,
             model_version: self.model_version,
             training: self.training,
             data: self.data,

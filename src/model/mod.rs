@@ -25,7 +25,7 @@ use serde::{Deserialize, Serialize};
 
 use crate::error::{Error, Result};
 use crate::window::{Offset, Window};
-pub use settings::{GroupParams, Overrides, Prf, Settings, MAX_MERGE_DISTANCE};
+pub use settings::{GroupParams, Overrides, Prf, Settings, Smoothing, MAX_MERGE_DISTANCE};
 pub use tree::{leaf_score, Leaf, Node, Tree, MAX_NODES};
 
 fn is_zero(v: &u32) -> bool {
@@ -67,9 +67,29 @@ pub struct TrainingInfo {
     /// and hashes.
     #[serde(default, skip_serializing_if = "is_zero")]
     pub folds: u32,
+    /// The size rule's trade, when it kept a smaller tree than the
+    /// best-scoring candidate (not written otherwise).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub smaller: Option<SizeTrade>,
     /// Which of threshold / min_area / merge_distance the user fixed.
     #[serde(default)]
     pub overridden: Vec<String>,
+}
+
+/// What the size rule gave up for speed: the best-scoring candidate it
+/// passed over, whose held-out object F1 was within one standard error of
+/// the kept one's.
+#[derive(Clone, Copy, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct SizeTrade {
+    /// The best candidate's pruning strength, and the leaves the final
+    /// tree would have kept at it.
+    pub best_alpha: f64,
+    pub best_leaves: u64,
+    /// The best candidate's held-out object F1.
+    pub best_object_f1: f64,
+    /// Standard error of the difference in object F1 between the two.
+    pub object_f1_se: f64,
 }
 
 /// What the training data looked like.
@@ -121,6 +141,9 @@ pub struct Model {
     /// A pixel is a detection when its score reaches this.
     pub threshold: f64,
     pub grouping: GroupParams,
+    /// Votes that smooth the detection mask before grouping (chosen by
+    /// training; off in models trained before it).
+    pub smoothing: Smoothing,
     /// Increases by one with each model a box adopts; detection records carry it.
     pub model_version: u64,
     pub training: TrainingInfo,
@@ -155,6 +178,7 @@ impl Model {
         Settings {
             threshold: self.threshold,
             grouping: self.grouping,
+            smoothing: self.smoothing,
         }
     }
 }
@@ -184,6 +208,31 @@ mod tests {
     }
 
     #[test]
+    fn smoothing_is_written_as_version_4_and_read_back() {
+        let plain = Model::from_json(&edited(|_| {})).unwrap();
+        assert!(!plain.to_json().contains("smoothing"));
+        assert!(plain.to_json().contains("\"format_version\": 3"));
+        let smoothed = Model {
+            smoothing: Smoothing {
+                radius: 1,
+                votes: 5,
+            },
+            ..plain
+        };
+        let text = smoothed.to_json();
+        assert!(text.contains("\"format_version\": 4"), "{text}");
+        let back = Model::from_json(&text).unwrap();
+        assert_eq!(back, smoothed);
+        assert_eq!(
+            back.settings().smoothing,
+            Smoothing {
+                radius: 1,
+                votes: 5
+            }
+        );
+    }
+
+    #[test]
     fn damaged_model_files_say_what_is_wrong() {
         assert!(Model::from_json(&edited(|_| {})).is_ok());
         let first_leaf = |v: &serde_json::Value| {
@@ -208,16 +257,37 @@ mod tests {
                 "training.criterion",
             ),
             (
-                edited(|v| v["format_version"] = 4.into()),
-                "format_version 4 is not known",
+                edited(|v| v["format_version"] = 5.into()),
+                "format_version 5 is not known",
+            ),
+            (
+                edited(|v| {
+                    v["format_version"] = 5.into();
+                    v["new_thing"] = 1.into();
+                    v.as_object_mut().unwrap().remove("reference");
+                }),
+                "format_version 5 is not known",
+            ),
+            (
+                edited(|v| {
+                    v["format_version"] = 3.into();
+                    v["smoothing"] = serde_json::json!({"radius": 1, "votes": 5});
+                }),
+                "smoothing came with format_version 4, but the file says 3",
             ),
             (
                 edited(|v| {
                     v["format_version"] = 4.into();
-                    v["new_thing"] = 1.into();
-                    v.as_object_mut().unwrap().remove("reference");
+                    v["smoothing"] = serde_json::json!({"radius": 1, "votes": 10});
                 }),
-                "format_version 4 is not known",
+                "smoothing votes 10 must be 1 to 9 for radius 1",
+            ),
+            (
+                edited(|v| {
+                    v["format_version"] = 4.into();
+                    v["smoothing"] = serde_json::json!({"radius": 3, "votes": 1});
+                }),
+                "smoothing radius 3 is over the limit of 2",
             ),
             (
                 edited(|v| {

@@ -10,6 +10,7 @@
 
 use serde::{Deserialize, Serialize};
 
+pub use crate::detect::smooth::Smoothing;
 use crate::error::{Error, ErrorKind, Result};
 
 /// Largest accepted merge distance (keeps grouping's look-back bounded).
@@ -39,6 +40,8 @@ pub struct Settings {
     /// Score a pixel must reach to be a detection, in [0, 1].
     pub threshold: f64,
     pub grouping: GroupParams,
+    /// Neighbourhood votes on the mask between the threshold and grouping.
+    pub smoothing: Smoothing,
 }
 
 impl Settings {
@@ -47,6 +50,9 @@ impl Settings {
         let bad = |m: String| Err(Error::new(ErrorKind::Settings(m)));
         if !(0.0..=1.0).contains(&self.threshold) {
             return bad(format!("threshold {} is outside [0, 1]", self.threshold));
+        }
+        if let Some(p) = self.smoothing.problem() {
+            return bad(p);
         }
         if self.grouping.min_area == 0 {
             return bad("min_area must be at least 1".into());
@@ -88,6 +94,7 @@ impl Overrides {
                 min_area: self.min_area.unwrap_or(own.grouping.min_area),
                 merge_distance: self.merge_distance.unwrap_or(own.grouping.merge_distance),
             },
+            smoothing: own.smoothing,
         };
         s.validate()?;
         Ok(s)
@@ -115,6 +122,7 @@ mod tests {
                 min_area: 9,
                 merge_distance: 2,
             },
+            smoothing: Smoothing::OFF,
         };
         let cli = Overrides {
             threshold: Some(0.9),

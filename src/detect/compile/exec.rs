@@ -406,7 +406,10 @@ pub fn run(
     frame: &BitFrame,
     scratch: &mut Scratch,
 ) -> FrameResult {
-    let raw = program.detect(frame, scratch);
+    let mut raw = program.detect(frame, scratch);
+    if !settings.smoothing.is_off() {
+        raw = settings.smoothing.apply(&raw);
+    }
     crate::detect::finish(tree, settings, frame, raw)
 }
 
