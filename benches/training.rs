@@ -3,7 +3,10 @@
 //! 1. Speed: training with the default parameters on the first 30 frames of
 //!    `demo-frames/train` (256x256, about 2 million labelled pixels); median
 //!    wall time of each stage over several runs (the machine is shared and
-//!    noisy, so medians, not means).
+//!    noisy, so medians, not means). With cross-fitting (the default) the
+//!    four trees' stores and growth overlap on two threads: "store" is the
+//!    time until the first tree starts growing, "grow" until the last one
+//!    is grown and pruned.
 //! 2. Label store: time per labelled pixel for 10, 30 and 60 frames (it
 //!    should stay flat: building the store is linear in pixels).
 //! 3. Quality: a model trained with the defaults on all of

@@ -204,10 +204,17 @@ pub fn run(a: TrainArgs) -> Result<i32> {
         };
         out!("{}", serde_json::to_string_pretty(&s)?);
     } else {
+        let held = if m.training.folds > 0 {
+            format!(
+                "each held out once, over {} shares, to choose the settings",
+                m.training.folds
+            )
+        } else {
+            format!("{} held out", m.data.holdout_frames)
+        };
         out!(
-            "trained on {} frames ({} held out), {} pixels, {} distinct patterns",
+            "trained on {} frames ({held}), {} pixels, {} distinct patterns",
             m.data.frames,
-            m.data.holdout_frames,
             m.data.pixels,
             m.data.unique_patterns
         );

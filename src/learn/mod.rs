@@ -628,25 +628,39 @@ fn train_inner(
             return Err(stopped());
         }
         progress(Stage::Tune);
-        let mut scored = Vec::with_capacity(frames.len());
-        let mut fold_order = Vec::with_capacity(frames.len());
+        // Each frame walked through its share's tree, ids offset by the
+        // trees before it; two threads share the frames.
+        let mut bases = Vec::with_capacity(params.folds);
         let mut base = 0u32;
-        for (j, g) in grown[1..].iter().enumerate() {
-            for i in (0..frames.len()).filter(|&i| fold[i] == j) {
-                fold_order.push(i);
-                scored.push(
-                    tune::HoldoutFrame::new(
-                        &g.tree,
-                        params.window,
-                        &frames[i].frame,
-                        &frames[i].mask,
-                        frames[i].unknown.as_ref(),
-                    )
-                    .offset(base),
-                );
-            }
+        for g in &grown[1..] {
+            bases.push(base);
             base += g.tree.nodes.len() as u32;
         }
+        let fold_ref = &fold;
+        let fold_order: Vec<usize> = (0..params.folds)
+            .flat_map(|j| (0..frames.len()).filter(move |&i| fold_ref[i] == j))
+            .collect();
+        let prepare = |i: usize| {
+            let (f, j) = (&frames[i], fold[i]);
+            tune::HoldoutFrame::new(
+                &grown[1 + j].tree,
+                params.window,
+                &f.frame,
+                &f.mask,
+                f.unknown.as_ref(),
+            )
+            .offset(bases[j])
+        };
+        let mut scored: Vec<Option<tune::HoldoutFrame>> = Vec::new();
+        std::thread::scope(|s| {
+            let half = fold_order.len() / 2;
+            let (a, b) = fold_order.split_at(half);
+            let prepare = &prepare;
+            let other = s.spawn(move || b.iter().map(|&i| prepare(i)).collect::<Vec<_>>());
+            scored.extend(a.iter().map(|&i| Some(prepare(i))));
+            scored.extend(other.join().expect("holdout thread").into_iter().map(Some));
+        });
+        let scored: Vec<tune::HoldoutFrame> = scored.into_iter().flatten().collect();
         // Tuning sees the frames in content-hash order, whatever order
         // they were given in: its standard errors resample by position.
         let mut order: Vec<([u8; 32], tune::HoldoutFrame)> = fold_order
@@ -675,7 +689,9 @@ fn train_inner(
     if stop() {
         return Err(stopped());
     }
-    progress(Stage::Tune);
+    if !cross {
+        progress(Stage::Tune);
+    }
     // In content-hash order, as above.
     let mut hold_sorted = hold_idx.clone();
     hold_sorted.sort_by_key(|&i| frames[i].content_hash());

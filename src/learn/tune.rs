@@ -351,9 +351,15 @@ fn best_grouping(
 
 /// Each frame's object counts for one choice: the size rule's standard
 /// error is over frames, the unit new data comes in.
-fn per_frame(frames: &[HoldoutFrame], score: &dyn Fn(u32) -> f64, c: &Choice) -> Vec<Confusion> {
-    let lists = above(frames, score, c.threshold);
-    masks_at(frames, &lists, c.threshold, c.smoothing)
+/// `lists` are the frames' pixels at or above a threshold no higher than
+/// the choice's ([`above`]).
+fn per_frame(
+    frames: &[HoldoutFrame],
+    lists: &[Vec<(u32, f64)>],
+    score: &dyn Fn(u32) -> f64,
+    c: &Choice,
+) -> Vec<Confusion> {
+    masks_at(frames, lists, c.threshold, c.smoothing)
         .iter()
         .zip(frames)
         .map(|(m, f)| {
@@ -478,7 +484,7 @@ fn try_alpha(
     }
     let best = best?;
     Some(Tried {
-        per_frame: per_frame(frames, &score, &best),
+        per_frame: per_frame(frames, &lists, &score, &best),
         best,
         by_threshold,
     })
@@ -560,7 +566,7 @@ fn try_smoothing(
         .take(SMOOTHING_THRESHOLDS)
         .map(|c| c.threshold)
         .collect();
-    let lowest = thresholds.iter().copied().fold(f64::INFINITY, f64::min);
+    let lowest = thresholds.iter().copied().fold(chosen.threshold, f64::min);
     let lists = above(frames, &score, lowest);
     let jobs: Vec<(f64, Smoothing)> = thresholds
         .iter()
@@ -605,8 +611,8 @@ fn try_smoothing(
     // than one standard error of the difference.
     let best = best?;
     let se = paired_se(
-        &per_frame(frames, &score, &best),
-        &per_frame(frames, &score, chosen),
+        &per_frame(frames, &lists, &score, &best),
+        &per_frame(frames, &lists, &score, chosen),
         SE_SEED,
     );
     (best.object.f1() > chosen.object.f1() + se).then_some(best)
