@@ -247,11 +247,33 @@ struct Grown {
     unique: u64,
 }
 
-/// One tree to grow: the frames it grows on, and a store that already
-/// holds exactly their windows (`None`: they are read from the frames).
+/// One tree to grow: the frames it grows on, and where their windows come
+/// from.
 struct GrowJob {
     idx: Vec<usize>,
-    store: Option<LabelStore>,
+    store: Source,
+}
+
+/// Where a tree's label store comes from.
+enum Source {
+    /// Read from the frames.
+    Frames,
+    /// A store that holds exactly the job's frames.
+    Store(LabelStore),
+    /// The whole store given to training, shared: taken when no other job
+    /// still needs it, copied otherwise.
+    Whole(std::sync::Arc<LabelStore>),
+    /// A copy of the whole store with these frames taken out (a fold's
+    /// tree). The copy is made when the job starts, so no more copies
+    /// exist at once than trees grow at once.
+    Without(std::sync::Arc<LabelStore>, Vec<usize>),
+}
+
+impl Source {
+    /// Whether the job's frames are already in a store (nothing to read).
+    fn stored(&self) -> bool {
+        !matches!(self, Source::Frames)
+    }
 }
 
 /// Grows one tree: fills its store when none was given, then grows and
@@ -264,8 +286,17 @@ fn grow_job(
     stop: &(dyn Fn() -> bool + Sync),
 ) -> Result<Grown> {
     let store = match job.store {
-        Some(s) => s,
-        None => {
+        Source::Store(s) => s,
+        Source::Whole(all) => std::sync::Arc::try_unwrap(all).unwrap_or_else(|a| (*a).clone()),
+        Source::Without(all, out) => {
+            let mut s = (*all).clone();
+            drop(all);
+            for i in out {
+                s.remove_labelled(&frames[i])?;
+            }
+            s
+        }
+        Source::Frames => {
             let mut s = LabelStore::new(params.window);
             for &i in &job.idx {
                 s.add_labelled(&frames[i])?;
@@ -319,14 +350,18 @@ fn grow_all(
     let total: usize = jobs.iter().map(|j| j.idx.len()).sum();
     let mut done: usize = jobs
         .iter()
-        .filter(|j| j.store.is_some())
+        .filter(|j| j.store.stored())
         .map(|j| j.idx.len())
         .sum();
     let mut growing = false;
     let mut forward = |s: Stage| match s {
         Stage::Store { .. } => {
             done += 1;
-            progress(Stage::Store { done, total });
+            // Once a tree grows, the display says so; the other thread's
+            // stores still count.
+            if !growing {
+                progress(Stage::Store { done, total });
+            }
         }
         Stage::Grow if !growing => {
             growing = true;
@@ -603,27 +638,27 @@ fn train_inner(
     let first = if cross {
         let fold = split_folds(frames, params.folds);
         let mut jobs = Vec::with_capacity(params.folds + 1);
-        // The final tree first: it is the largest job, and two threads
-        // finish sooner when it does not come last.
-        jobs.push(GrowJob {
-            idx: grow_idx.clone(),
-            store: given.take(),
-        });
+        let whole = given.take().map(std::sync::Arc::new);
         for j in 0..params.folds {
             let out: Vec<usize> = (0..frames.len()).filter(|&i| fold[i] != j).collect();
-            let store = match &jobs[0].store {
+            let store = match &whole {
                 Some(all) => {
-                    let mut s = all.clone();
-                    for i in (0..frames.len()).filter(|&i| fold[i] == j) {
-                        s.remove_labelled(&frames[i])?;
-                    }
-                    Some(s)
+                    let fold_frames = (0..frames.len()).filter(|&i| fold[i] == j).collect();
+                    Source::Without(all.clone(), fold_frames)
                 }
-                None => None,
+                None => Source::Frames,
             };
             jobs.push(GrowJob { idx: out, store });
         }
+        // The final tree last: by the time it starts, the folds' copies
+        // of a given store are (nearly always) made, so it takes the store
+        // itself. Two threads: folds 0 and 1, then fold 2 and the final.
+        jobs.push(GrowJob {
+            idx: grow_idx.clone(),
+            store: whole.map_or(Source::Frames, Source::Whole),
+        });
         let mut grown = grow_all(frames, jobs, params, progress, stop)?;
+        let last = grown.pop().expect("the final tree");
         if stop() {
             return Err(stopped());
         }
@@ -632,7 +667,7 @@ fn train_inner(
         // trees before it; two threads share the frames.
         let mut bases = Vec::with_capacity(params.folds);
         let mut base = 0u32;
-        for g in &grown[1..] {
+        for g in &grown {
             bases.push(base);
             base += g.tree.nodes.len() as u32;
         }
@@ -643,7 +678,7 @@ fn train_inner(
         let prepare = |i: usize| {
             let (f, j) = (&frames[i], fold[i]);
             tune::HoldoutFrame::new(
-                &grown[1 + j].tree,
+                &grown[j].tree,
                 params.window,
                 &f.frame,
                 &f.mask,
@@ -670,19 +705,20 @@ fn train_inner(
             .collect();
         order.sort_by_key(|a| a.0);
         let scored: Vec<tune::HoldoutFrame> = order.into_iter().map(|x| x.1).collect();
-        let folds: Vec<_> = grown[1..]
+        let folds: Vec<_> = grown
             .iter()
             .map(|g| (&g.tree, &g.pruning, g.weights))
             .collect();
-        cross_choice = tune::choose_folds(&folds, &scored, &fixed, params.rules());
+        let size = |a: f64| last.pruning.leaves_at(&last.tree, a);
+        cross_choice = tune::choose_folds(&folds, &scored, &fixed, params.rules(), &size);
         if stop() {
             return Err(stopped());
         }
-        grown.swap_remove(0)
+        last
     } else {
         let job = GrowJob {
             idx: grow_idx.clone(),
-            store: given.take(),
+            store: given.take().map_or(Source::Frames, Source::Store),
         };
         grow_all(frames, vec![job], params, progress, stop)?.remove(0)
     };
@@ -730,7 +766,7 @@ fn train_inner(
         let all: Vec<usize> = (0..frames.len()).collect();
         let job = GrowJob {
             idx: all.clone(),
-            store: None,
+            store: Source::Frames,
         };
         (
             grow_all(frames, vec![job], params, progress, stop)?.remove(0),
@@ -907,6 +943,7 @@ mod tests {
             &[hold(6), hold(7), hold(6).offset(n), hold(7).offset(n)],
             &fixed,
             tune::Rules::default(),
+            &|a| pruning.leaves_at(&tree, a),
         )
         .unwrap();
         assert_eq!(

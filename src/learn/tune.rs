@@ -213,7 +213,9 @@ fn effective(folds: &[(&GrownTree, &Pruning)], alpha: f64) -> (Vec<u32>, usize) 
 }
 
 /// Pixels of each frame that reach `lowest`, with their score: detections
-/// are rare, so masks are built from these lists.
+/// are rare, so masks are built from these lists. Pixels of unknown label
+/// are listed too: they vote in smoothing, as in detection, and
+/// [`masks_at`] takes them out after.
 fn above(frames: &[HoldoutFrame], score: &dyn Fn(u32) -> f64, lowest: f64) -> Vec<Vec<(u32, f64)>> {
     frames
         .iter()
@@ -223,15 +225,16 @@ fn above(frames: &[HoldoutFrame], score: &dyn Fn(u32) -> f64, lowest: f64) -> Ve
                 .enumerate()
                 .filter_map(|(i, &l)| {
                     let s = score(l);
-                    let known = || !f.is_unknown(i % f.width, i / f.width);
-                    (s >= lowest && known()).then_some((i as u32, s))
+                    (s >= lowest).then_some((i as u32, s))
                 })
                 .collect()
         })
         .collect()
 }
 
-/// Each frame's mask at threshold `thr`, smoothed.
+/// Each frame's mask at threshold `thr`, smoothed, without the pixels of
+/// unknown label: what detection gives and scoring counts
+/// (`score::score_frame` smooths the whole mask, then leaves them out).
 fn masks_at(
     frames: &[HoldoutFrame],
     above: &[Vec<(u32, f64)>],
@@ -249,15 +252,12 @@ fn masks_at(
                     m.row_mut(y)[x / 64] |= 1 << (x % 64);
                 }
             }
-            if smoothing.is_off() {
-                m
-            } else {
-                // Smoothing may reach pixels of unknown label: they stay out.
-                let m = smoothing.apply(&m);
-                match &f.unknown {
-                    Some(u) => m.and_not(u),
-                    None => m,
-                }
+            if !smoothing.is_off() {
+                m = smoothing.apply(&m);
+            }
+            match &f.unknown {
+                Some(u) => m.and_not(u),
+                None => m,
             }
         })
         .collect()
@@ -628,19 +628,23 @@ pub fn choose(
     fixed: &Fixed,
     rules: Rules,
 ) -> Option<Choice> {
-    choose_folds(&[(tree, pruning, weights)], frames, fixed, rules)
+    let size = |a: f64| pruning.leaves_at(tree, a);
+    choose_folds(&[(tree, pruning, weights)], frames, fixed, rules, &size)
 }
 
 /// [`choose`] over several trees at once, each with its own held-out
 /// frames (cross-fitting: each tree grown without its frames). Frames of
 /// fold `k` carry leaf ids offset by the node counts of the folds before
 /// it ([`HoldoutFrame::offset`]); a candidate's scores are summed over all
-/// frames, so it is judged on every fold's frames together.
+/// frames, so it is judged on every fold's frames together. `final_leaves`
+/// gives the leaves of the tree that will be kept, pruned at a strength:
+/// the size rule compares those.
 pub fn choose_folds(
     folds: &[(&GrownTree, &Pruning, [f64; 2])],
     frames: &[HoldoutFrame],
     fixed: &Fixed,
     rules: Rules,
+    final_leaves: &dyn Fn(f64) -> usize,
 ) -> Option<Choice> {
     let scores: Vec<f64> = folds
         .iter()
@@ -695,17 +699,24 @@ pub fn choose_folds(
     // weaker strengths' trees), so fewer leaves means the compiled program
     // evaluates a subset of the nodes: never slower, usually faster.
     let mut kept: (&Tried, Option<f64>) = (top, None);
+    // Sizes are the kept tree's (the final one, with cross-fitting): two
+    // strengths that prune it alike are the same tree, and then nothing is
+    // given up for speed.
     if rules.prefer_smaller {
+        let top_size = final_leaves(top.best.alpha);
+        let mut kept_size = top_size;
         for r in &results {
-            let (c, k) = (&r.best, &kept.0.best);
-            if c.leaves >= top.best.leaves {
+            let c = &r.best;
+            let size = final_leaves(c.alpha);
+            if size >= top_size {
                 continue;
             }
             let se = paired_se(&top.per_frame, &r.per_frame, SE_SEED);
             if c.object.f1() >= top.best.object.f1() - se
-                && (c.leaves < k.leaves || (c.leaves == k.leaves && c.better_than(k)))
+                && (size < kept_size || (size == kept_size && c.better_than(&kept.0.best)))
             {
                 kept = (r, Some(se));
+                kept_size = size;
             }
         }
     }

@@ -10,10 +10,10 @@ pub const FORMAT: &str = "burlwatch-model";
 /// `reference.patterns` (the 2x2 pattern shares of the training frames,
 /// for the drift monitors).
 pub const FORMAT_VERSION: u32 = 3;
-/// The version written for a model with smoothing (version 4 added
-/// `smoothing`); models without it are still written as version 3, so
-/// builds that read version 3 keep reading them and their bytes (and
-/// hashes) stay as they were.
+/// The version written for a model with smoothing or a size rule's trade
+/// (version 4 added `smoothing` and `training.smaller`); models with
+/// neither are still written as version 3, so builds that read version 3
+/// keep reading them and their bytes (and hashes) stay as they were.
 pub const SMOOTHING_VERSION: u32 = 4;
 /// The versions read: version 2 files load with no pattern references.
 pub const READS: [u32; 3] = [2, 3, 4];
@@ -213,7 +213,7 @@ impl ModelFile {
         let w = m.tree.window();
         ModelFile {
             format: FORMAT.into(),
-            format_version: if m.smoothing.is_off() {
+            format_version: if m.smoothing.is_off() && m.training.smaller.is_none() {
                 FORMAT_VERSION
             } else {
                 SMOOTHING_VERSION
@@ -286,11 +286,20 @@ impl ModelFile {
             min_area: self.min_area,
             merge_distance: self.merge_distance,
         };
-        if self.format_version < SMOOTHING_VERSION && !self.smoothing.is_off() {
-            return Err(Error::bad_model(format!(
-                "smoothing came with format_version {SMOOTHING_VERSION}, but the file says {}",
-                self.format_version
-            )));
+        if self.format_version < SMOOTHING_VERSION {
+            let newer = if !self.smoothing.is_off() {
+                Some("smoothing")
+            } else if self.training.smaller.is_some() {
+                Some("training.smaller")
+            } else {
+                None
+            };
+            if let Some(what) = newer {
+                return Err(Error::bad_model(format!(
+                    "{what} came with format_version {SMOOTHING_VERSION}, but the file says {}",
+                    self.format_version
+                )));
+            }
         }
         Settings {
             threshold: self.threshold,

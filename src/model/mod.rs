@@ -4,8 +4,9 @@
 //! - [`Tree`] (`tree.rs`): the evaluator's flat node array, frozen once
 //!   built (its invariants are in that file's docs);
 //! - [`json`]: the model file, JSON (`format = "burlwatch-model"`,
-//!   `format_version` 3; version 2 files, without pattern references, are
-//!   read too), whose serde structs are kept apart from the
+//!   `format_version` 3, or 4 for a model with smoothing or a size rule's
+//!   trade; version 2 files, without pattern references, are read too),
+//!   whose serde structs are kept apart from the
 //!   domain types so the file can stay stable while the code changes;
 //!   loading validates every field and turns any inconsistency into an
 //!   error naming it. A feature is written as its offset from the centre
@@ -274,6 +275,16 @@ mod tests {
                     v["smoothing"] = serde_json::json!({"radius": 1, "votes": 5});
                 }),
                 "smoothing came with format_version 4, but the file says 3",
+            ),
+            (
+                edited(|v| {
+                    v["format_version"] = 3.into();
+                    v["training"]["smaller"] = serde_json::json!({
+                        "best_alpha": 0.0, "best_leaves": 9,
+                        "best_object_f1": 1.0, "object_f1_se": 0.0
+                    });
+                }),
+                "training.smaller came with format_version 4",
             ),
             (
                 edited(|v| {
