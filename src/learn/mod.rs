@@ -2,10 +2,12 @@
 //!
 //! The pipeline, each stage with its cost:
 //!
-//! 1. **Split** the labelled frames into a growing set and a holdout set,
-//!    deterministically by frame content hash (sorted by hash, the first
-//!    `holdout` share held out): the same frames always split the same way,
-//!    whatever their names or order.
+//! 1. **Split** the labelled frames, deterministically by frame content
+//!    hash, so the same frames always split the same way whatever their
+//!    names or order: by default into `folds` shares for cross-fitting (a
+//!    tree is grown without each share and scores it; the final tree grows
+//!    on all frames; the trees grow two at a time), with
+//!    `folds = 0` into a growing set and a `holdout` share.
 //! 2. **Label store** of the growing set ([`crate::learn::store`]): linear in
 //!    pixels, one hash-map update per pixel.
 //! 3. **Grow** ([`grow`]): greedy top-down induction over the store's
@@ -14,7 +16,9 @@
 //!    smaller child only.
 //! 4. **Prune** ([`prune`]): the minimal cost-complexity sequence.
 //! 5. **Tune** ([`tune`]): pruning strength, score threshold, `min_area` and
-//!    `merge_distance` chosen on the holdout by object-level F1.
+//!    `merge_distance` chosen on the held-out scores by object-level F1;
+//!    then the size rule keeps the smallest tree within one standard error
+//!    of the best, and, when asked, smoothing is tried.
 //! 6. **Freeze** into the evaluator's immutable [`Tree`] and wrap it in a
 //!    [`Model`] with the training summary and drift reference statistics.
 //!
