@@ -11,7 +11,9 @@
 //!
 //! Selection is deterministic: highest object F1, then highest pixel F1,
 //! then the smaller tree, then the earlier candidate (smaller merge
-//! distance, smaller minimum area, higher threshold).
+//! distance, smaller minimum area, higher threshold). Then the size rule
+//! (one standard error, Breiman et al. 1984) may keep a smaller tree, and
+//! smoothing may be tried (see [`choose_folds`]).
 
 use crate::detect::group::{self, GroupParams, Object};
 use crate::detect::smooth::Smoothing;
@@ -25,7 +27,9 @@ use super::prune::Pruning;
 /// The candidate values tried when the user fixes none.
 pub const MERGE_DISTANCES: &[u32] = &[0, 1, 2, 3, 4, 6];
 pub const MIN_AREAS: &[u32] = &[1, 2, 3, 4, 5, 6, 8, 10, 12, 16, 20, 25, 32];
-/// At most this many pruning strengths are tried, spread over the sequence.
+/// At most this many pruning strengths are considered, spread over the
+/// sequence; the coarse-to-fine search of [`choose_folds`] tries every other
+/// one, then the neighbours of the best three.
 pub const MAX_ALPHAS: usize = 24;
 /// Thresholds detecting more than this many times the held-out target
 /// pixels are grouped with the smallest merge distance only.
@@ -658,27 +662,64 @@ pub fn choose_folds(
     every.sort_by(f64::total_cmp);
     every.dedup();
     let alphas = spread(&every, MAX_ALPHAS);
-    let results: Vec<Option<Tried>> = std::thread::scope(|s| {
-        let handles: Vec<_> = (0..2)
-            .map(|k| {
-                let (alphas, scores, trees) = (&alphas, &scores, &trees);
-                s.spawn(move || {
-                    alphas
-                        .iter()
-                        .enumerate()
-                        .filter(|(i, _)| i % 2 == k)
-                        .map(|(_, &a)| (a, try_alpha(trees, a, scores, frames, fixed)))
-                        .collect::<Vec<_>>()
+    // Strengths by index into `alphas`, two threads sharing them.
+    let run = |idx: &[usize]| -> Vec<(usize, Option<Tried>)> {
+        std::thread::scope(|s| {
+            let handles: Vec<_> = (0..2)
+                .map(|k| {
+                    let (alphas, scores, trees) = (&alphas, &scores, &trees);
+                    s.spawn(move || {
+                        idx.iter()
+                            .enumerate()
+                            .filter(|(j, _)| j % 2 == k)
+                            .map(|(_, &i)| (i, try_alpha(trees, alphas[i], scores, frames, fixed)))
+                            .collect::<Vec<_>>()
+                    })
                 })
-            })
-            .collect();
-        let mut all: Vec<(f64, Option<Tried>)> = handles
-            .into_iter()
-            .flat_map(|h| h.join().expect("tuning thread"))
-            .collect();
-        all.sort_by(|a, b| a.0.total_cmp(&b.0));
-        all.into_iter().map(|x| x.1).collect()
+                .collect();
+            handles
+                .into_iter()
+                .flat_map(|h| h.join().expect("tuning thread"))
+                .collect()
+        })
+    };
+    // Coarse to fine: every other strength of the spread first (the
+    // weakest and strongest included), then the untried neighbours of the
+    // three best: the best of the whole spread is nearly always among
+    // them, at two thirds of the cost.
+    let n = alphas.len();
+    let coarse: Vec<usize> = (0..n).filter(|&i| i % 2 == 0 || i + 1 == n).collect();
+    let mut slots: Vec<Option<Option<Tried>>> = (0..n).map(|_| None).collect();
+    for (i, t) in run(&coarse) {
+        slots[i] = Some(t);
+    }
+    let mut ranked: Vec<(usize, &Choice)> = slots
+        .iter()
+        .enumerate()
+        .filter_map(|(i, t)| t.as_ref().and_then(|t| t.as_ref()).map(|t| (i, &t.best)))
+        .collect();
+    // Best first; ties to the smaller tree (the larger index).
+    ranked.sort_by(|a, b| {
+        if a.1.better_than(b.1) {
+            std::cmp::Ordering::Less
+        } else if b.1.better_than(a.1) {
+            std::cmp::Ordering::Greater
+        } else {
+            b.0.cmp(&a.0)
+        }
     });
+    let mut fine: Vec<usize> = ranked
+        .iter()
+        .take(3)
+        .flat_map(|&(i, _)| [i.wrapping_sub(1), i + 1])
+        .filter(|&j| j < n && slots[j].is_none())
+        .collect();
+    fine.sort_unstable();
+    fine.dedup();
+    for (i, t) in run(&fine) {
+        slots[i] = Some(t);
+    }
+    let results: Vec<Option<Tried>> = slots.into_iter().flatten().collect();
     let results: Vec<Tried> = results.into_iter().flatten().collect();
     // Larger alpha (smaller tree) wins ties: visit from the largest.
     let mut best: Option<&Tried> = None;
