@@ -414,19 +414,40 @@ fn the_demo_session_on_the_drifted_frames_goes_through_the_gate() {
 
 /// Real defects marked as false alarms: the challenger learns to miss
 /// them, the gate refuses it, and the running model stays.
+///
+/// Only frames that fall to training are marked wrongly: a wrong label on
+/// a gate frame would reward the challenger for missing that defect, and
+/// the gate can only judge by the labels it has (README, the cautions).
+/// Which way the gate goes still turns on how many wrong labels outweigh
+/// the 40 seed frames, and the figure moved with each change of tuning
+/// (with wrong labels on gate frames too: 16 frames fed passed the gate by
+/// 0.70 against 0.63, 32 by 0.574 against 0.565, 64 was refused and then
+/// passed; marking training frames only, 64 passed by 0.867 against 0.787
+/// and 96 is refused). Training is deterministic, so the outcome is too.
 #[test]
 fn a_wrong_batch_of_corrections_is_refused_by_the_gate() {
     let b = Box_::new("");
     let d = b.start();
-    // Enough wrongly marked frames to outweigh the 40 seed frames: with
-    // 16 fed (about 8 marked) the challenger still learned the defects
-    // from the seed frames and passed the gate (object F1 0.70 against
-    // the running model's 0.63 on 20 held-out frames).
-    let same = generated(&params(LoomParams::standard()), 7, 64, "std");
+    // Enough wrongly marked frames to outweigh the 40 seed frames.
+    let same = generated(&params(LoomParams::standard()), 7, 96, "std");
     b.feed(&same);
+    let gate_share = b.cfg().live.retrain.gate_share;
+    let trains: HashSet<&str> = same
+        .iter()
+        .filter(|(_, _, lf)| {
+            burlwatch::daemon::labels::role_of(
+                &burlwatch::daemon::labels::role_key(&lf.frame),
+                gate_share,
+            ) == burlwatch::daemon::labels::Role::Train
+        })
+        .map(|(name, _, _)| name.as_str())
+        .collect();
     let records = b.records();
     let mut marked = 0;
-    for r in records.iter().filter(|r| !r.objects.is_empty()) {
+    for r in records
+        .iter()
+        .filter(|r| !r.objects.is_empty() && trains.contains(r.frame.as_str()))
+    {
         let mut args = vec!["mark".to_string(), r.frame.clone(), "--wrong".to_string()];
         args.extend(r.objects.iter().map(|o| o.id.to_string()));
         let a: Vec<&str> = args.iter().map(String::as_str).collect();

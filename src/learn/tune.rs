@@ -160,6 +160,18 @@ impl Choice {
     }
 }
 
+/// Orders choices best first ([`Choice::better_than`]); equal ones compare
+/// equal, for the caller to break the tie.
+fn best_first(a: &Choice, b: &Choice) -> std::cmp::Ordering {
+    if a.better_than(b) {
+        std::cmp::Ordering::Less
+    } else if b.better_than(a) {
+        std::cmp::Ordering::Greater
+    } else {
+        std::cmp::Ordering::Equal
+    }
+}
+
 /// Picks up to `k` items spread evenly over `v` (always the first and last).
 fn spread<T: Copy>(v: &[T], k: usize) -> Vec<T> {
     if v.len() <= k {
@@ -556,15 +568,7 @@ fn try_smoothing(
     let (eff, _) = effective(folds, chosen.alpha);
     let score = |l: u32| scores[eff[l as usize] as usize];
     let mut ranked: Vec<&Choice> = by_threshold.iter().collect();
-    ranked.sort_by(|a, b| {
-        if a.better_than(b) {
-            std::cmp::Ordering::Less
-        } else if b.better_than(a) {
-            std::cmp::Ordering::Greater
-        } else {
-            b.threshold.total_cmp(&a.threshold)
-        }
-    });
+    ranked.sort_by(|a, b| best_first(a, b).then(b.threshold.total_cmp(&a.threshold)));
     let thresholds: Vec<f64> = ranked
         .iter()
         .take(SMOOTHING_THRESHOLDS)
@@ -699,15 +703,7 @@ pub fn choose_folds(
         .filter_map(|(i, t)| t.as_ref().and_then(|t| t.as_ref()).map(|t| (i, &t.best)))
         .collect();
     // Best first; ties to the smaller tree (the larger index).
-    ranked.sort_by(|a, b| {
-        if a.1.better_than(b.1) {
-            std::cmp::Ordering::Less
-        } else if b.1.better_than(a.1) {
-            std::cmp::Ordering::Greater
-        } else {
-            b.0.cmp(&a.0)
-        }
-    });
+    ranked.sort_by(|a, b| best_first(a.1, b.1).then(b.0.cmp(&a.0)));
     let mut fine: Vec<usize> = ranked
         .iter()
         .take(3)
