@@ -2,8 +2,9 @@
 //! evaluation suite ([`burlwatch::suite`]) with the configuration's
 //! training settings, and prints per-setting and macro-averaged object and
 //! pixel F1, the object F1's standard error, and the object errors by kind
-//! (missed, unmatched, partial, false alarms). `--out` also writes each setting's frames (as `generate`
-//! would), so `train` and `eval` reproduce any one of them by hand.
+//! (missed, unmatched, partial, false alarms). `--out` also writes each
+//! setting's frames (as `generate` would), so `train` and `eval` reproduce
+//! any one of them by hand.
 
 use std::path::PathBuf;
 

@@ -96,16 +96,18 @@ impl Smoothing {
         let stride = mask.stride();
         let h = mask.height() as isize;
         let nplanes = planes_for(self.square());
+        let mut rows: [&[u64]; 2 * MAX_RADIUS as usize + 1] = Default::default();
         for y in 0..mask.height() {
-            let rows: Vec<&[u64]> = (-r..=r)
-                .map(|dy| y as isize + dy)
-                .filter(|yy| (0..h).contains(yy))
-                .map(|yy| mask.row(yy as usize))
-                .collect();
+            // The square's rows inside the frame (rows outside vote no).
+            let mut nrows = 0;
+            for yy in (y as isize - r..=y as isize + r).filter(|yy| (0..h).contains(yy)) {
+                rows[nrows] = mask.row(yy as usize);
+                nrows += 1;
+            }
             let orow = out.row_mut(y);
             for i in 0..stride {
                 planes[..nplanes].fill(0);
-                for row in &rows {
+                for row in &rows[..nrows] {
                     let prev = if i > 0 { row[i - 1] } else { 0 };
                     let next = if i + 1 < stride { row[i + 1] } else { 0 };
                     let cur = row[i];

@@ -317,6 +317,25 @@ fn grow_job(
     })
 }
 
+/// `f` over `items` on two threads (the calling one and one scoped
+/// helper, taking alternate items), results in the items' order: the one
+/// way training's stages share the two cores.
+pub(crate) fn on_two_threads<T: Sync, R: Send>(items: &[T], f: impl Fn(&T) -> R + Sync) -> Vec<R> {
+    std::thread::scope(|s| {
+        let f = &f;
+        let odd = s.spawn(move || items.iter().skip(1).step_by(2).map(f).collect::<Vec<_>>());
+        let even: Vec<R> = items.iter().step_by(2).map(f).collect();
+        let odd = odd.join().expect("training thread");
+        let mut out = Vec::with_capacity(items.len());
+        let mut odd = odd.into_iter();
+        for r in even {
+            out.push(r);
+            out.extend(odd.next());
+        }
+        out
+    })
+}
+
 /// Threads [`grow_all`] grows trees on: two, or one on a one-core machine.
 fn growing_threads() -> usize {
     std::thread::available_parallelism().map_or(1, |n| n.get().min(2))
@@ -406,18 +425,14 @@ fn grow_all(
         }
     });
     progress(Stage::Prune);
-    let mut out = Vec::with_capacity(n);
-    for r in results.into_inner().expect("growing results") {
-        match r {
-            Some(r) => out.push(r?),
-            // Left in the queue after another job failed.
-            None => continue,
-        }
-    }
-    if out.len() < n {
-        return Err(Error::training("growing a tree failed"));
-    }
-    Ok(out)
+    // A job is missing only when another failed and cleared the queue, so
+    // the first error in the jobs' order is what is returned.
+    results
+        .into_inner()
+        .expect("growing results")
+        .into_iter()
+        .flatten()
+        .collect()
 }
 
 /// Splits frames into (growing, holdout) index lists by content hash,
@@ -619,9 +634,8 @@ fn train_inner(
         min_area: params.min_area,
         merge_distance: params.merge_distance,
     };
-    // Cross-fitted: each fold's tree, grown without its frames (from a
-    // copy of the whole store with them taken out, when one was given),
-    // scores them; the choice is made on all frames' scores together.
+    // Cross-fitted: each fold's tree, grown without its frames, scores
+    // them; the choice is made on all frames' scores together.
     let mut cross_choice = None;
     let first = if cross {
         let fold = split_folds(frames, params.folds);
@@ -650,18 +664,18 @@ fn train_inner(
         }
         progress(Stage::Tune);
         // Each frame walked through its share's tree, ids offset by the
-        // trees before it; two threads share the frames.
+        // trees before it. Tuning sees the frames in content-hash order
+        // (then by share), whatever order they were given in: its standard
+        // errors resample by position.
         let mut bases = Vec::with_capacity(params.folds);
         let mut base = 0u32;
         for g in &grown {
             bases.push(base);
             base += g.tree.nodes.len() as u32;
         }
-        let fold_ref = &fold;
-        let fold_order: Vec<usize> = (0..params.folds)
-            .flat_map(|j| (0..frames.len()).filter(move |&i| fold_ref[i] == j))
-            .collect();
-        let prepare = |i: usize| {
+        let mut order: Vec<usize> = (0..frames.len()).collect();
+        order.sort_by_cached_key(|&i| (frames[i].content_hash(), fold[i]));
+        let scored = on_two_threads(&order, |&i| {
             let (f, j) = (&frames[i], fold[i]);
             tune::HoldoutFrame::new(
                 &grown[j].tree,
@@ -671,26 +685,7 @@ fn train_inner(
                 f.unknown.as_ref(),
             )
             .offset(bases[j])
-        };
-        let mut scored: Vec<Option<tune::HoldoutFrame>> = Vec::new();
-        std::thread::scope(|s| {
-            let half = fold_order.len() / 2;
-            let (a, b) = fold_order.split_at(half);
-            let prepare = &prepare;
-            let other = s.spawn(move || b.iter().map(|&i| prepare(i)).collect::<Vec<_>>());
-            scored.extend(a.iter().map(|&i| Some(prepare(i))));
-            scored.extend(other.join().expect("holdout thread").into_iter().map(Some));
         });
-        let scored: Vec<tune::HoldoutFrame> = scored.into_iter().flatten().collect();
-        // Tuning sees the frames in content-hash order, whatever order
-        // they were given in: its standard errors resample by position.
-        let mut order: Vec<([u8; 32], tune::HoldoutFrame)> = fold_order
-            .iter()
-            .map(|&i| frames[i].content_hash())
-            .zip(scored)
-            .collect();
-        order.sort_by_key(|a| a.0);
-        let scored: Vec<tune::HoldoutFrame> = order.into_iter().map(|x| x.1).collect();
         let folds: Vec<_> = grown
             .iter()
             .map(|g| (&g.tree, &g.pruning, g.weights))
@@ -716,7 +711,7 @@ fn train_inner(
     }
     // In content-hash order, as above.
     let mut hold_sorted = hold_idx.clone();
-    hold_sorted.sort_by_key(|&i| frames[i].content_hash());
+    hold_sorted.sort_by_cached_key(|&i| frames[i].content_hash());
     let holdout: Vec<tune::HoldoutFrame> = hold_sorted
         .iter()
         .map(|&i| {

@@ -22,6 +22,7 @@ use crate::score::{self, Confusion};
 use crate::window::{self, Window};
 
 use super::grow::GrownTree;
+use super::on_two_threads;
 use super::prune::Pruning;
 
 /// The candidate values tried when the user fixes none.
@@ -556,15 +557,16 @@ const SMOOTHING_THRESHOLDS: usize = 4;
 
 /// Tries smoothing the masks of the chosen strength at its best
 /// thresholds, on two threads; returns the best smoothed choice if it
-/// beats `chosen` (which is unsmoothed).
+/// beats `chosen` (the unsmoothed best of `tried`).
 fn try_smoothing(
     folds: &[(&GrownTree, &Pruning)],
     scores: &[f64],
     frames: &[HoldoutFrame],
     fixed: &Fixed,
     chosen: &Choice,
-    by_threshold: &[Choice],
+    tried: &Tried,
 ) -> Option<Choice> {
+    let by_threshold = &tried.by_threshold;
     let (eff, _) = effective(folds, chosen.alpha);
     let score = |l: u32| scores[eff[l as usize] as usize];
     let mut ranked: Vec<&Choice> = by_threshold.iter().collect();
@@ -580,33 +582,14 @@ fn try_smoothing(
         .iter()
         .flat_map(|&t| SMOOTHINGS.iter().map(move |&s| (t, s)))
         .collect();
-    let found: Vec<Option<Choice>> = std::thread::scope(|s| {
-        let handles: Vec<_> = (0..2)
-            .map(|k| {
-                let (jobs, lists, score) = (&jobs, &lists, &score);
-                s.spawn(move || {
-                    jobs.iter()
-                        .enumerate()
-                        .filter(|(i, _)| i % 2 == k)
-                        .map(|(i, &(thr, sm))| {
-                            let masks = masks_at(frames, lists, thr, sm);
-                            let base = Choice {
-                                threshold: thr,
-                                smoothing: sm,
-                                ..*chosen
-                            };
-                            (i, best_grouping(&masks, frames, score, fixed, base))
-                        })
-                        .collect::<Vec<_>>()
-                })
-            })
-            .collect();
-        let mut all: Vec<(usize, Option<Choice>)> = handles
-            .into_iter()
-            .flat_map(|h| h.join().expect("smoothing thread"))
-            .collect();
-        all.sort_by_key(|x| x.0);
-        all.into_iter().map(|x| x.1).collect()
+    let found: Vec<Option<Choice>> = on_two_threads(&jobs, |&(thr, sm)| {
+        let masks = masks_at(frames, &lists, thr, sm);
+        let base = Choice {
+            threshold: thr,
+            smoothing: sm,
+            ..*chosen
+        };
+        best_grouping(&masks, frames, &score, fixed, base)
     });
     let mut best: Option<Choice> = None;
     for c in found.into_iter().flatten() {
@@ -620,7 +603,7 @@ fn try_smoothing(
     let best = best?;
     let se = paired_se(
         &per_frame(frames, &lists, &score, &best),
-        &per_frame(frames, &lists, &score, chosen),
+        &tried.per_frame,
         SE_SEED,
     );
     (best.object.f1() > chosen.object.f1() + se).then_some(best)
@@ -668,23 +651,8 @@ pub fn choose_folds(
     let alphas = spread(&every, MAX_ALPHAS);
     // Strengths by index into `alphas`, two threads sharing them.
     let run = |idx: &[usize]| -> Vec<(usize, Option<Tried>)> {
-        std::thread::scope(|s| {
-            let handles: Vec<_> = (0..2)
-                .map(|k| {
-                    let (alphas, scores, trees) = (&alphas, &scores, &trees);
-                    s.spawn(move || {
-                        idx.iter()
-                            .enumerate()
-                            .filter(|(j, _)| j % 2 == k)
-                            .map(|(_, &i)| (i, try_alpha(trees, alphas[i], scores, frames, fixed)))
-                            .collect::<Vec<_>>()
-                    })
-                })
-                .collect();
-            handles
-                .into_iter()
-                .flat_map(|h| h.join().expect("tuning thread"))
-                .collect()
+        on_two_threads(idx, |&i| {
+            (i, try_alpha(&trees, alphas[i], &scores, frames, fixed))
         })
     };
     // Coarse to fine: every other strength of the spread first (the
@@ -770,9 +738,7 @@ pub fn choose_folds(
     // Smoothing is tried on the kept strength only: it changes which
     // pixels form objects, not which tree is needed.
     if rules.smoothing {
-        if let Some(smoothed) =
-            try_smoothing(&trees, &scores, frames, fixed, &choice, &tried.by_threshold)
-        {
+        if let Some(smoothed) = try_smoothing(&trees, &scores, frames, fixed, &choice, tried) {
             choice = smoothed;
         }
     }
@@ -783,24 +749,14 @@ pub fn choose_folds(
 /// two candidates' counts on the same frames: the frames are drawn with
 /// replacement, the same draw for both.
 pub fn paired_se(a: &[Confusion], b: &[Confusion], seed: u64) -> f64 {
-    let n = a.len().min(b.len());
-    if n < 2 {
-        return 0.0;
-    }
-    let mut rng = crate::synth::Rng::new(seed ^ 0x5EED_B007);
-    let d: Vec<f64> = (0..BOOTSTRAP)
-        .map(|_| {
-            let (mut ca, mut cb) = (Confusion::default(), Confusion::default());
-            for _ in 0..n {
-                let k = rng.range(0, n);
-                ca.add(&a[k]);
-                cb.add(&b[k]);
-            }
-            ca.f1() - cb.f1()
-        })
-        .collect();
-    let mean = d.iter().sum::<f64>() / d.len() as f64;
-    (d.iter().map(|f| (f - mean) * (f - mean)).sum::<f64>() / (d.len() - 1) as f64).sqrt()
+    resampled_sd(a.len().min(b.len()), seed, |draw| {
+        let (mut ca, mut cb) = (Confusion::default(), Confusion::default());
+        for &k in draw {
+            ca.add(&a[k]);
+            cb.add(&b[k]);
+        }
+        ca.f1() - cb.f1()
+    })
 }
 
 /// Resamples of [`bootstrap_se`].
@@ -812,21 +768,34 @@ const SE_SEED: u64 = 0x5EED;
 /// the F1 of summed counts: frames drawn with replacement, [`BOOTSTRAP`]
 /// times, from a generator seeded by `seed` (so the figure is repeatable).
 pub fn bootstrap_se(frames: &[Confusion], seed: u64) -> f64 {
-    if frames.len() < 2 {
+    resampled_sd(frames.len(), seed, |draw| {
+        let mut c = Confusion::default();
+        for &k in draw {
+            c.add(&frames[k]);
+        }
+        c.f1()
+    })
+}
+
+/// The standard deviation of `stat` over [`BOOTSTRAP`] draws of `n` frame
+/// indices with replacement, from a generator seeded by `seed`; 0 for
+/// fewer than two frames.
+fn resampled_sd(n: usize, seed: u64, mut stat: impl FnMut(&[usize]) -> f64) -> f64 {
+    if n < 2 {
         return 0.0;
     }
     let mut rng = crate::synth::Rng::new(seed ^ 0x5EED_B007);
-    let f1s: Vec<f64> = (0..BOOTSTRAP)
+    let mut draw = vec![0usize; n];
+    let values: Vec<f64> = (0..BOOTSTRAP)
         .map(|_| {
-            let mut c = Confusion::default();
-            for _ in 0..frames.len() {
-                c.add(&frames[rng.range(0, frames.len())]);
+            for k in draw.iter_mut() {
+                *k = rng.range(0, n);
             }
-            c.f1()
+            stat(&draw)
         })
         .collect();
-    let mean = f1s.iter().sum::<f64>() / f1s.len() as f64;
-    (f1s.iter().map(|f| (f - mean) * (f - mean)).sum::<f64>() / (f1s.len() - 1) as f64).sqrt()
+    let mean = values.iter().sum::<f64>() / values.len() as f64;
+    (values.iter().map(|f| (f - mean) * (f - mean)).sum::<f64>() / (values.len() - 1) as f64).sqrt()
 }
 
 #[cfg(test)]
