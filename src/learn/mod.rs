@@ -775,6 +775,14 @@ fn train_inner(
         ),
     };
     let tree = freeze(&grown, &pruning, alpha, params.window, weights)?;
+    let smoothing = choice.map_or(Smoothing::OFF, |c| c.smoothing);
+    // What detection keeps, as the daemon counts it for its output
+    // monitor: smoothed, grouped, objects below `min_area` let go.
+    let settings = crate::detect::Settings {
+        threshold,
+        grouping,
+        smoothing,
+    };
     // Reference statistics over the growing frames.
     let mut set_pixels = 0u64;
     let mut detected = 0u64;
@@ -791,7 +799,7 @@ fn train_inner(
             *p += c;
         }
         pixels += f.frame.len() as u64;
-        detected += walker::detect(&tree, threshold, &f.frame).count_set();
+        detected += walker::run(&tree, &settings, &f.frame).mask.count_set();
         objects += score::truth_objects(&f.truth()).len() as u64;
     }
     let share = |a: u64, b: u64| if b == 0 { 0.0 } else { a as f64 / b as f64 };
@@ -808,7 +816,7 @@ fn train_inner(
     Ok(Model {
         threshold,
         grouping,
-        smoothing: choice.map_or(Smoothing::OFF, |c| c.smoothing),
+        smoothing,
         model_version: 1,
         training: TrainingInfo {
             criterion: params.criterion.name().into(),
@@ -978,6 +986,36 @@ mod tests {
         assert_eq!(a.to_json(), b.to_json());
         // A store that does not hold the frames given is refused.
         assert!(train_from_store(&frames[1..], all, &p, &mut |_| {}, &|| false).is_err());
+    }
+
+    /// The drift reference's detected share counts what the daemon
+    /// counts on a frame: pixels of the objects kept (the compiled
+    /// detector's mask), not every pixel over the threshold.
+    #[test]
+    fn the_reference_share_counts_the_objects_kept() {
+        use crate::synth::LoomParams;
+        let lp = LoomParams {
+            width: 96,
+            height: 96,
+            ..LoomParams::standard()
+        };
+        let frames = crate::suite::frames("f", &lp, 11, 9);
+        let model = train(&frames, &TrainParams::default(), &mut |_| {}).unwrap();
+        assert!(model.training.tuned && model.grouping.min_area > 1);
+        let settings = model.settings();
+        let (threshold, tree) = (model.threshold, model.tree.clone());
+        let reference = model.reference.detected_share;
+        let detector = crate::detect::Detector::new(model, settings);
+        let mut scratch = Default::default();
+        let (mut kept, mut over, mut pixels) = (0u64, 0u64, 0u64);
+        for f in &frames {
+            kept += detector.detect(&f.frame, &mut scratch).mask.count_set();
+            over += walker::detect(&tree, threshold, &f.frame).count_set();
+            pixels += f.frame.len() as u64;
+        }
+        assert_eq!(reference, kept as f64 / pixels as f64);
+        // The check can fail: specks below `min_area` are not counted.
+        assert!(over > kept, "{over} pixels over the threshold, {kept} kept");
     }
 
     /// Cross-fitted tuning: every frame is scored once by a tree grown

@@ -124,7 +124,10 @@ pub struct HoldoutMetrics {
 pub struct Reference {
     /// Share of set pixels in the training frames.
     pub set_density: f64,
-    /// Share of training pixels detected (score at or above the threshold).
+    /// Share of training pixels detected as the daemon counts them: score
+    /// at or above the threshold, smoothed, in objects `min_area` kept.
+    /// (Models written before counted every pixel at or above the
+    /// threshold.)
     pub detected_share: f64,
     /// Target objects per training frame.
     pub objects_per_frame: f64,
