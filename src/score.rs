@@ -349,6 +349,7 @@ mod tests {
                 refit: false,
                 folds: 0,
                 smaller: None,
+                symmetry: None,
                 overridden: Vec::new(),
             },
             data: DataSummary::default(),

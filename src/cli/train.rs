@@ -9,6 +9,7 @@ use anyhow::{bail, Context, Result};
 use serde::Serialize;
 
 use burlwatch::fileio::durable;
+use burlwatch::learn::symmetry::Symmetry;
 use burlwatch::learn::{self, ClassWeight, Criterion, Stage, TrainParams};
 use burlwatch::model;
 use burlwatch::window::Window;
@@ -57,6 +58,11 @@ pub struct TrainArgs {
     /// (kept only when it wins on the held-out frames).
     #[arg(long)]
     smoothing: bool,
+    /// The fabric's symmetries, to take every frame also mirrored and
+    /// turned: none, mirrors (warp and weft differ) or square (alike)
+    /// [default: none].
+    #[arg(long, value_parser = parse_symmetry)]
+    symmetry: Option<Symmetry>,
     /// Grow the final tree again on all frames once the holdout has chosen.
     #[arg(long)]
     refit: bool,
@@ -129,6 +135,7 @@ pub fn run(a: TrainArgs) -> Result<i32> {
         refit: a.refit || base.refit,
         folds: a.folds.unwrap_or(base.folds),
         smoothing: a.smoothing || base.smoothing,
+        symmetry: a.symmetry.unwrap_or(base.symmetry),
         threshold: fixed.threshold,
         min_area: fixed.min_area,
         merge_distance: fixed.merge_distance,
@@ -218,6 +225,9 @@ pub fn run(a: TrainArgs) -> Result<i32> {
             m.data.pixels,
             m.data.unique_patterns
         );
+        if let Some(s) = &m.training.symmetry {
+            out!("symmetry: {s} (every frame also taken mirrored and turned)");
+        }
         out!(
             "tree: {} leaves grown, {} kept after pruning (alpha {:.3e}), depth {}",
             m.training.grown_leaves,
@@ -260,4 +270,8 @@ pub fn run(a: TrainArgs) -> Result<i32> {
         out!("wrote {} in {seconds:.2} s", a.out.display());
     }
     Ok(if skipped > 0 { super::EXIT_SOME_BAD } else { 0 })
+}
+
+fn parse_symmetry(s: &str) -> std::result::Result<Symmetry, String> {
+    Symmetry::parse(s).ok_or_else(|| format!("{s:?} is not none, mirrors or square"))
 }

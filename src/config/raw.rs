@@ -13,6 +13,7 @@ use super::{
 };
 use crate::codec::DecodeLimits;
 use crate::error::{Error, Result};
+use crate::learn::symmetry::Symmetry;
 use crate::learn::{ClassWeight, Criterion, TrainParams};
 use crate::model::{Overrides, MAX_MERGE_DISTANCE};
 use crate::window::Window;
@@ -61,6 +62,8 @@ pub struct RawTraining {
     pub folds: Option<usize>,
     /// Let tuning try smoothing the detection mask (default false).
     pub smoothing: Option<bool>,
+    /// The fabric's symmetries: "none", "mirrors" or "square".
+    pub symmetry: Option<String>,
 }
 
 /// `[detection]`: overrides of the settings a model carries.
@@ -356,6 +359,15 @@ impl RawConfig {
                 )
             })?,
         };
+        let symmetry = match t.symmetry.as_deref() {
+            None => dt.symmetry,
+            Some(s) => Symmetry::parse(s).ok_or_else(|| {
+                invalid(
+                    "training.symmetry",
+                    format!("{s:?} is not \"none\", \"mirrors\" or \"square\""),
+                )
+            })?,
+        };
         let det = self.detection;
         let training = TrainParams {
             window,
@@ -368,6 +380,7 @@ impl RawConfig {
             refit: t.refit.unwrap_or(dt.refit),
             folds: t.folds.unwrap_or(dt.folds),
             smoothing: t.smoothing.unwrap_or(dt.smoothing),
+            symmetry,
             ..dt
         };
         training
@@ -891,6 +904,18 @@ mod tests {
             .unwrap_err()
             .to_string();
         assert!(e.contains("training.criterion"), "{e}");
+        let e = from_str("[training]\nsymmetry = \"round\"\n")
+            .unwrap_err()
+            .to_string();
+        assert!(
+            e.contains("training.symmetry") && e.contains("square"),
+            "{e}"
+        );
+        let c = from_str("[training]\nsymmetry = \"mirrors\"\n").unwrap();
+        assert_eq!(
+            c.live.training.symmetry,
+            crate::learn::symmetry::Symmetry::Mirrors
+        );
         let e = from_str("[detection]\nthreshold = 2.0\n")
             .unwrap_err()
             .to_string();

@@ -31,6 +31,7 @@ pub mod criterion;
 pub mod grow;
 pub mod prune;
 pub mod store;
+pub mod symmetry;
 pub mod tune;
 
 pub use criterion::Criterion;
@@ -41,6 +42,7 @@ use crate::detect::walker;
 use crate::error::{Error, Result};
 pub use crate::frame::LabelledFrame;
 use crate::learn::store::LabelStore;
+use crate::learn::symmetry::{Symmetry, Transform};
 use crate::model::{
     DataSummary, HoldoutMetrics, Leaf, Model, Node, Reference, SizeTrade, TrainingInfo, Tree,
 };
@@ -131,6 +133,9 @@ pub struct TrainParams {
     /// ([`crate::detect::smooth`]), kept only when it beats no smoothing on
     /// the held-out frames by more than one standard error.
     pub smoothing: bool,
+    /// The fabric's symmetries: every frame is also taken mirrored and
+    /// turned this way, for growing and for tuning ([`symmetry`]).
+    pub symmetry: Symmetry,
     /// Fixed by the user instead of tuned.
     pub threshold: Option<f64>,
     pub min_area: Option<u32>,
@@ -152,6 +157,7 @@ impl Default for TrainParams {
             folds: 3,
             prefer_smaller: true,
             smoothing: false,
+            symmetry: Symmetry::None,
             threshold: None,
             min_area: None,
             merge_distance: None,
@@ -293,6 +299,7 @@ fn grow_job(
             s
         }
     };
+    let store = params.symmetry.store(store)?;
     let totals = store.totals();
     if totals[1] == 0 {
         return Err(Error::training(
@@ -315,6 +322,34 @@ fn grow_job(
         totals,
         unique,
     })
+}
+
+/// Each frame of `order` under each transform of `symmetry`, in turn.
+fn with_transforms(order: &[usize], symmetry: Symmetry) -> Vec<(usize, Transform)> {
+    let transforms = symmetry.transforms();
+    order
+        .iter()
+        .flat_map(|&i| transforms.iter().map(move |&t| (i, t)))
+        .collect()
+}
+
+/// A held-out frame walked through `tree`, under a transform, in a group
+/// with its other transforms: tuning's standard errors resample frames,
+/// not their transforms, which are not independent of each other.
+fn held_out(
+    tree: &GrownTree,
+    window: Window,
+    f: &LabelledFrame,
+    index: usize,
+    t: Transform,
+) -> tune::HoldoutFrame {
+    let h = if t == Transform::IDENTITY {
+        tune::HoldoutFrame::new(tree, window, &f.frame, &f.mask, f.unknown.as_ref())
+    } else {
+        let g = t.labelled(f);
+        tune::HoldoutFrame::new(tree, window, &g.frame, &g.mask, g.unknown.as_ref())
+    };
+    h.group(index as u32)
 }
 
 /// `f` over `items` on two threads (the calling one and one scoped
@@ -675,16 +710,12 @@ fn train_inner(
         }
         let mut order: Vec<usize> = (0..frames.len()).collect();
         order.sort_by_cached_key(|&i| (frames[i].content_hash(), fold[i]));
-        let scored = on_two_threads(&order, |&i| {
-            let (f, j) = (&frames[i], fold[i]);
-            tune::HoldoutFrame::new(
-                &grown[j].tree,
-                params.window,
-                &f.frame,
-                &f.mask,
-                f.unknown.as_ref(),
-            )
-            .offset(bases[j])
+        // Under a symmetry, each frame is also scored transformed, by
+        // the same share's tree (its transforms never helped grow it).
+        let jobs = with_transforms(&order, params.symmetry);
+        let scored = on_two_threads(&jobs, |&(i, t)| {
+            let j = fold[i];
+            held_out(&grown[j].tree, params.window, &frames[i], i, t).offset(bases[j])
         });
         let folds: Vec<_> = grown
             .iter()
@@ -712,17 +743,9 @@ fn train_inner(
     // In content-hash order, as above.
     let mut hold_sorted = hold_idx.clone();
     hold_sorted.sort_by_cached_key(|&i| frames[i].content_hash());
-    let holdout: Vec<tune::HoldoutFrame> = hold_sorted
+    let holdout: Vec<tune::HoldoutFrame> = with_transforms(&hold_sorted, params.symmetry)
         .iter()
-        .map(|&i| {
-            tune::HoldoutFrame::new(
-                &first.tree,
-                params.window,
-                &frames[i].frame,
-                &frames[i].mask,
-                frames[i].unknown.as_ref(),
-            )
-        })
+        .map(|&(i, t)| held_out(&first.tree, params.window, &frames[i], i, t))
         .collect();
     let choice = if cross {
         cross_choice
@@ -763,6 +786,10 @@ fn train_inner(
         totals,
         unique,
     } = final_grown;
+    // A symmetrised store holds each labelled pixel once per transform;
+    // the model reports the pixels labelled.
+    let per = params.symmetry.transforms().len() as u64;
+    let totals = [totals[0] / per, totals[1] / per];
     let (alpha, threshold, grouping) = match &choice {
         Some(c) => (c.alpha, c.threshold, c.grouping),
         None => (
@@ -832,6 +859,7 @@ fn train_inner(
             pruned_leaves: tree.leaves() as u64,
             refit,
             folds: if cross { params.folds as u32 } else { 0 },
+            symmetry: (!params.symmetry.is_none()).then(|| params.symmetry.name().into()),
             smaller: choice.and_then(|c| c.passed_over).map(|p| SizeTrade {
                 best_alpha: p.alpha,
                 best_leaves: pruning.leaves_at(&grown, p.alpha) as u64,
@@ -1016,6 +1044,53 @@ mod tests {
         assert_eq!(reference, kept as f64 / pixels as f64);
         // The check can fail: specks below `min_area` are not counted.
         assert!(over > kept, "{over} pixels over the threshold, {kept} kept");
+    }
+
+    /// Under a symmetry every frame also grows and tunes transformed: the
+    /// model says so and reports the pixels labelled, not their copies;
+    /// from frames or from a store of them (the daemon's retrain) it is
+    /// the same model; and the file is a version 4 one that loads back.
+    #[test]
+    fn symmetric_training_is_the_same_from_frames_or_a_store() {
+        use crate::synth::LoomParams;
+        // Frames wider than tall: a transpose swaps their sides.
+        let lp = LoomParams {
+            width: 80,
+            height: 56,
+            ..LoomParams::standard()
+        };
+        let frames = crate::suite::frames("f", &lp, 6, 6);
+        let p = TrainParams {
+            symmetry: Symmetry::Square,
+            ..TrainParams::default()
+        };
+        let a = train(&frames, &p, &mut |_| {}).unwrap();
+        let mut all = LabelStore::new(p.window);
+        for f in &frames {
+            all.add_labelled(f).unwrap();
+        }
+        let b = train_from_store(&frames, all, &p, &mut |_| {}, &|| false).unwrap();
+        assert_eq!(a.to_json(), b.to_json());
+        assert_eq!(a.training.symmetry.as_deref(), Some("square"));
+        assert_eq!(a.training.folds, 3);
+        let plain = train(&frames, &TrainParams::default(), &mut |_| {}).unwrap();
+        assert_eq!(plain.training.symmetry, None);
+        assert_eq!(
+            (a.data.pixels, a.data.target_pixels),
+            (plain.data.pixels, plain.data.target_pixels)
+        );
+        assert!(a.data.unique_patterns > plain.data.unique_patterns);
+        let text = a.to_json();
+        assert!(text.contains("\"format_version\": 4"), "{text}");
+        assert_eq!(crate::model::Model::from_json(&text).unwrap(), a);
+        // The holdout share (no cross-fitting) takes its frames
+        // transformed too.
+        let held = TrainParams {
+            folds: 0,
+            ..p.clone()
+        };
+        let c = train(&frames, &held, &mut |_| {}).unwrap();
+        assert!(c.training.tuned && c.training.symmetry.is_some());
     }
 
     /// Cross-fitted tuning: every frame is scored once by a tree grown

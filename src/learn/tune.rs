@@ -50,6 +50,10 @@ pub struct HoldoutFrame {
     truth: Vec<Object>,
     /// Pixels of unknown label: never counted, never detected.
     unknown: Option<BitFrame>,
+    /// Frames of one group (a frame and its transforms, which are not
+    /// independent) count as one frame in the standard errors; `None`:
+    /// a group of its own. A group's frames stand next to each other.
+    group: Option<u32>,
 }
 
 impl HoldoutFrame {
@@ -80,7 +84,14 @@ impl HoldoutFrame {
             truth: score::truth_objects(&truth_mask),
             truth_mask,
             unknown: unknown.filter(|u| u.count_set() > 0).cloned(),
+            group: None,
         }
+    }
+
+    /// The same frame as a member of group `g` (see [`HoldoutFrame`]).
+    pub fn group(mut self, g: u32) -> HoldoutFrame {
+        self.group = Some(g);
+        self
     }
 
     /// The same frame with its leaf ids moved up by `by`: the frames of
@@ -376,14 +387,20 @@ fn per_frame(
     score: &dyn Fn(u32) -> f64,
     c: &Choice,
 ) -> Vec<Confusion> {
-    masks_at(frames, lists, c.threshold, c.smoothing)
-        .iter()
-        .zip(frames)
-        .map(|(m, f)| {
-            let objs = group::group(m, c.grouping, |x, y| score(f.leaf[y * f.width + x]));
-            score::object_confusion(&objs, &f.truth)
-        })
-        .collect()
+    let mut out: Vec<Confusion> = Vec::with_capacity(frames.len());
+    let masks = masks_at(frames, lists, c.threshold, c.smoothing);
+    for (k, (m, f)) in masks.iter().zip(frames).enumerate() {
+        let objs = group::group(m, c.grouping, |x, y| score(f.leaf[y * f.width + x]));
+        let counts = score::object_confusion(&objs, &f.truth);
+        // A frame of the group before it adds to that group's counts.
+        match out.last_mut() {
+            Some(last) if k > 0 && f.group.is_some() && f.group == frames[k - 1].group => {
+                last.add(&counts)
+            }
+            _ => out.push(counts),
+        }
+    }
+    out
 }
 
 /// What one pruning strength gave: its best choice, that choice's counts

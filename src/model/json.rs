@@ -10,9 +10,10 @@ pub const FORMAT: &str = "burlwatch-model";
 /// `reference.patterns` (the 2x2 pattern shares of the training frames,
 /// for the drift monitors).
 pub const FORMAT_VERSION: u32 = 3;
-/// The version written for a model with smoothing or a size rule's trade
-/// (version 4 added `smoothing` and `training.smaller`); models with
-/// neither are still written as version 3, so builds that read version 3
+/// The version written for a model with smoothing, a size rule's trade or
+/// a symmetry (version 4 added `smoothing`, `training.smaller` and
+/// `training.symmetry`); models with none of them are still written as
+/// version 3, so builds that read version 3
 /// keep reading them and their bytes (and hashes) stay as they were.
 pub const SMOOTHING_VERSION: u32 = 4;
 /// The versions read: version 2 files load with no pattern references.
@@ -213,7 +214,10 @@ impl ModelFile {
         let w = m.tree.window();
         ModelFile {
             format: FORMAT.into(),
-            format_version: if m.smoothing.is_off() && m.training.smaller.is_none() {
+            format_version: if m.smoothing.is_off()
+                && m.training.smaller.is_none()
+                && m.training.symmetry.is_none()
+            {
                 FORMAT_VERSION
             } else {
                 SMOOTHING_VERSION
@@ -291,6 +295,8 @@ impl ModelFile {
                 Some("smoothing")
             } else if self.training.smaller.is_some() {
                 Some("training.smaller")
+            } else if self.training.symmetry.is_some() {
+                Some("training.symmetry")
             } else {
                 None
             };

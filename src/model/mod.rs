@@ -4,8 +4,8 @@
 //! - [`Tree`] (`tree.rs`): the evaluator's flat node array, frozen once
 //!   built (its invariants are in that file's docs);
 //! - [`json`]: the model file, JSON (`format = "burlwatch-model"`,
-//!   `format_version` 3, or 4 for a model with smoothing or a size rule's
-//!   trade; version 2 files, without pattern references, are read too),
+//!   `format_version` 3, or 4 for a model with smoothing, a size rule's
+//!   trade or a symmetry; version 2 files, without pattern references, are read too),
 //!   whose serde structs are kept apart from the
 //!   domain types so the file can stay stable while the code changes;
 //!   loading validates every field and turns any inconsistency into an
@@ -72,6 +72,10 @@ pub struct TrainingInfo {
     /// best-scoring candidate (not written otherwise).
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub smaller: Option<SizeTrade>,
+    /// The fabric's symmetries the frames were also taken under
+    /// (`mirrors` or `square`, `learn::symmetry`); not written when none.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub symmetry: Option<String>,
     /// Which of threshold / min_area / merge_distance the user fixed.
     #[serde(default)]
     pub overridden: Vec<String>,
@@ -288,6 +292,13 @@ mod tests {
                     });
                 }),
                 "training.smaller came with format_version 4",
+            ),
+            (
+                edited(|v| {
+                    v["format_version"] = 3.into();
+                    v["training"]["symmetry"] = "square".into();
+                }),
+                "training.symmetry came with format_version 4",
             ),
             (
                 edited(|v| {
