@@ -219,8 +219,13 @@ pub fn run(a: TrainArgs) -> Result<i32> {
         } else {
             format!("{} held out", m.data.holdout_frames)
         };
+        let transforms = if m.training.symmetry.is_some() {
+            " (with their transforms)"
+        } else {
+            ""
+        };
         out!(
-            "trained on {} frames ({held}), {} pixels, {} distinct patterns",
+            "trained on {} frames ({held}), {} pixels, {} distinct patterns{transforms}",
             m.data.frames,
             m.data.pixels,
             m.data.unique_patterns

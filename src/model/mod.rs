@@ -107,7 +107,8 @@ pub struct DataSummary {
     pub holdout_frames: u64,
     /// Labelled pixels in the growing set.
     pub pixels: u64,
-    /// Distinct window patterns in the growing set.
+    /// Distinct window patterns the final tree grew on (with their
+    /// transforms, under a symmetry).
     pub unique_patterns: u64,
     pub clear_pixels: u64,
     pub target_pixels: u64,
