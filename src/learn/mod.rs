@@ -299,15 +299,15 @@ fn grow_job(
             s
         }
     };
-    let store = params.symmetry.store(store)?;
-    let totals = store.totals();
+    // Under a symmetry, the entries of the store of the frames and all
+    // their transforms (the totals count each pixel once per transform).
+    let (mut entries, totals) = params.symmetry.entries(store)?;
     if totals[1] == 0 {
         return Err(Error::training(
             "the growing frames have no target pixels: every mask is empty",
         ));
     }
     let weights = params.class_weight.weights(totals);
-    let mut entries = store.into_entries();
     let unique = entries.len() as u64;
     say(Stage::Grow);
     let gp = params.grow_params(weights);

@@ -14,19 +14,20 @@
 //! Each transform is a [`Transform`]: a transpose (applied first), then a
 //! mirror of columns, then a mirror of rows. The same transform is applied
 //! to frames ([`Transform::frame`]), for the held-out frames that tuning
-//! scores, and to window patterns ([`Transform::pattern`]), for label
-//! stores, which then hold what the transformed frames would have given.
+//! scores, and to window patterns ([`Transform::pattern`]), for the
+//! entries a label store hands the learner ([`Symmetry::entries`]), which
+//! then are what the transformed frames would have given.
 //!
 //! Invariant: for an odd square window `w`, a frame `f`, a pixel `(x, y)`
 //! and a transform `t`, the pattern of `t.frame(f)` at `t.point(x, y)` is
 //! `t.pattern(w, pattern of f at (x, y))` (pixels outside a frame read
-//! clear on both sides). So a store symmetrised entry by entry equals the
-//! store of the transformed frames, and training from frames or from a
-//! store gives the same model.
+//! clear on both sides). So a store's entries symmetrised one by one
+//! equal the store of the transformed frames, and training from frames or
+//! from a store gives the same model.
 
 use crate::error::{Error, Result};
 use crate::frame::{BitFrame, LabelledFrame};
-use crate::learn::store::LabelStore;
+use crate::learn::store::{Counts, LabelStore};
 use crate::window::{Offset, Window};
 
 /// One symmetry of the square.
@@ -181,11 +182,26 @@ impl Symmetry {
         }
     }
 
-    /// The store with every entry also added under each other transform:
-    /// the store of the frames and all their transforms.
-    pub fn store(self, store: LabelStore) -> Result<LabelStore> {
+    /// The store's entries, sorted by pattern, each also added under each
+    /// other transform, and their totals: what the store of the frames
+    /// and all their transforms would hand the learner. Built in one
+    /// vector (sorted, then equal patterns merged), so the peak is the
+    /// store plus its entries times the transforms, with no table.
+    pub fn entries(self, store: LabelStore) -> Result<(Vec<(u128, Counts)>, Counts)> {
+        let k = self.transforms().len() as u64;
+        let overflow = || {
+            Error::training(format!(
+                "symmetry {}: pixel counts overflow 64 bits",
+                self.name()
+            ))
+        };
+        let t = store.totals();
+        let totals = [
+            t[0].checked_mul(k).ok_or_else(overflow)?,
+            t[1].checked_mul(k).ok_or_else(overflow)?,
+        ];
         if self.is_none() {
-            return Ok(store);
+            return Ok((store.into_entries(), totals));
         }
         let window = store.window();
         let maps: Vec<Vec<usize>> = self
@@ -193,14 +209,30 @@ impl Symmetry {
             .into_iter()
             .map(|t| t.feature_map(window))
             .collect();
-        let mut out = LabelStore::new(window);
-        for (pattern, counts) in store.entries() {
+        let source = store.into_entries();
+        let mut out: Vec<(u128, Counts)> = Vec::with_capacity(source.len() * maps.len());
+        for &(pattern, counts) in &source {
             for map in &maps {
-                out.add(Transform::pattern(map, pattern), counts)
-                    .map_err(|e| Error::training(format!("symmetry {}: {e}", self.name())))?;
+                out.push((Transform::pattern(map, pattern), counts));
             }
         }
-        Ok(out)
+        drop(source);
+        out.sort_unstable_by_key(|e| e.0);
+        // Equal patterns merged in place; no sum exceeds the totals,
+        // which did not overflow.
+        let mut kept = 0;
+        for i in 0..out.len() {
+            if kept > 0 && out[kept - 1].0 == out[i].0 {
+                let c = out[i].1;
+                out[kept - 1].1[0] += c[0];
+                out[kept - 1].1[1] += c[1];
+            } else {
+                out[kept] = out[i];
+                kept += 1;
+            }
+        }
+        out.truncate(kept);
+        Ok((out, totals))
     }
 }
 
@@ -298,9 +330,9 @@ mod tests {
             for t in symmetry.transforms() {
                 each.add_labelled(&t.labelled(&lf)).unwrap();
             }
-            let sym = symmetry.store(one).unwrap();
-            prop_assert_eq!(sym.entries(), each.entries());
-            prop_assert_eq!(sym.totals(), each.totals());
+            let (entries, totals) = symmetry.entries(one).unwrap();
+            prop_assert_eq!(entries, each.entries());
+            prop_assert_eq!(totals, each.totals());
         }
     }
 }
