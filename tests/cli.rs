@@ -306,6 +306,48 @@ fn untuned_training_warns_and_folder_out_is_refused() {
     assert!(r.stderr.contains("is a folder"), "{}", r.stderr);
 }
 
+/// `--symmetry` trains on the frames mirrored and turned, says so and
+/// records it; a symmetry not known is refused, naming the choices.
+#[test]
+fn training_under_a_symmetry_says_so() {
+    let dir = Dir::new();
+    small_data(&dir, "train", "6", "3");
+    let r = burlwatch(
+        dir.path(),
+        &[
+            "train",
+            "--data",
+            "train",
+            "--out",
+            "m.json",
+            "--symmetry",
+            "square",
+        ],
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    assert!(
+        r.stdout.contains("symmetry: square") && r.stdout.contains("with their transforms"),
+        "{}",
+        r.stdout
+    );
+    let model = std::fs::read_to_string(dir.join("m.json")).unwrap();
+    assert!(model.contains("\"symmetry\": \"square\""), "{model}");
+    let r = burlwatch(
+        dir.path(),
+        &[
+            "train",
+            "--data",
+            "train",
+            "--out",
+            "n.json",
+            "--symmetry",
+            "round",
+        ],
+    );
+    assert_eq!(r.code, 2, "{}", r.stderr);
+    assert!(r.stderr.contains("none, mirrors or square"), "{}", r.stderr);
+}
+
 #[test]
 fn bad_models_and_options_are_clear_errors() {
     let dir = Dir::new();

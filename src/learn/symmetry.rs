@@ -276,6 +276,22 @@ mod tests {
         assert_eq!(Symmetry::None.transforms(), vec![Transform::IDENTITY]);
     }
 
+    /// Counts that would overflow once taken under every transform are an
+    /// error naming the symmetry, not a wrapped count.
+    #[test]
+    fn overflowing_counts_are_an_error() {
+        let window = Window::new(3).unwrap();
+        let mut store = LabelStore::new(window);
+        // The top-left pixel: the mirrors take it to all four corners.
+        store.add(0b1, [u64::MAX / 4, 1]).unwrap();
+        let e = Symmetry::Square.entries(store.clone()).unwrap_err();
+        assert!(e.to_string().contains("symmetry square"), "{e}");
+        // Four transforms fit.
+        let (entries, totals) = Symmetry::Mirrors.entries(store).unwrap();
+        assert_eq!(totals, [u64::MAX / 4 * 4, 4]);
+        assert_eq!(entries.len(), 4);
+    }
+
     #[test]
     fn names_round_trip() {
         for s in [Symmetry::None, Symmetry::Mirrors, Symmetry::Square] {
