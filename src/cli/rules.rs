@@ -46,6 +46,12 @@ pub(super) fn print(m: &burlwatch::model::Model) -> Result<()> {
         "a pixel is a detection when its rule's score is at least {:.4}",
         m.threshold
     );
+    // Under a symmetry a leaf counts each training pixel once per
+    // transform it was also taken under.
+    let pixels = match &m.training.symmetry {
+        Some(s) => format!("training pixel copies, each pixel once per {s} transform"),
+        None => "training pixels".to_string(),
+    };
     for (k, r) in rules.iter().enumerate() {
         let conds: Vec<String> = r
             .conditions
@@ -58,7 +64,7 @@ pub(super) fn print(m: &burlwatch::model::Model) -> Result<()> {
             format!("if {}", conds.join(" and "))
         };
         out!(
-            "rule {:>4}: {cond}\n           then score {:.4} (from {} background and {} defect training pixels){}",
+            "rule {:>4}: {cond}\n           then score {:.4} (from {} background and {} defect {pixels}){}",
             k + 1,
             r.score,
             r.counts[0],

@@ -98,6 +98,9 @@ struct TrainSummary<'a> {
     smoothing: model::Smoothing,
     /// The size rule's trade, when it kept a smaller tree.
     smaller: Option<model::SizeTrade>,
+    /// The symmetry trained under, when one was.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    symmetry: Option<String>,
     holdout: &'a Option<model::HoldoutMetrics>,
 }
 
@@ -207,6 +210,7 @@ pub fn run(a: TrainArgs) -> Result<i32> {
             merge_distance: m.grouping.merge_distance,
             smoothing: m.smoothing,
             smaller: m.training.smaller,
+            symmetry: m.training.symmetry.clone(),
             holdout: &m.holdout,
         };
         out!("{}", serde_json::to_string_pretty(&s)?);

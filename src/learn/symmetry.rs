@@ -20,8 +20,8 @@
 //!
 //! Invariant: for an odd square window `w`, a frame `f`, a pixel `(x, y)`
 //! and a transform `t`, the pattern of `t.frame(f)` at `t.point(x, y)` is
-//! `t.pattern(w, pattern of f at (x, y))` (pixels outside a frame read
-//! clear on both sides). So a store's entries symmetrised one by one
+//! `Transform::pattern(&t.feature_map(w), pattern of f at (x, y))`
+//! (pixels outside a frame read clear on both sides). So a store's entries symmetrised one by one
 //! equal the store of the transformed frames, and training from frames or
 //! from a store gives the same model.
 
@@ -200,6 +200,8 @@ impl Symmetry {
             t[0].checked_mul(k).ok_or_else(overflow)?,
             t[1].checked_mul(k).ok_or_else(overflow)?,
         ];
+        // The learner adds the two classes: that sum must fit too.
+        totals[0].checked_add(totals[1]).ok_or_else(overflow)?;
         if self.is_none() {
             return Ok((store.into_entries(), totals));
         }
@@ -283,12 +285,12 @@ mod tests {
         let window = Window::new(3).unwrap();
         let mut store = LabelStore::new(window);
         // The top-left pixel: the mirrors take it to all four corners.
-        store.add(0b1, [u64::MAX / 4, 1]).unwrap();
+        store.add(0b1, [u64::MAX / 8, 1]).unwrap();
         let e = Symmetry::Square.entries(store.clone()).unwrap_err();
         assert!(e.to_string().contains("symmetry square"), "{e}");
         // Four transforms fit.
         let (entries, totals) = Symmetry::Mirrors.entries(store).unwrap();
-        assert_eq!(totals, [u64::MAX / 4 * 4, 4]);
+        assert_eq!(totals, [u64::MAX / 8 * 4, 4]);
         assert_eq!(entries.len(), 4);
     }
 

@@ -20,6 +20,8 @@ pub const SMOOTHING_VERSION: u32 = 4;
 pub const READS: [u32; 3] = [2, 3, 4];
 /// The split criteria a model may name.
 pub const CRITERIA: [&str; 3] = ["gini", "entropy", "gain-ratio"];
+/// The symmetries a model may record (`none` is never written).
+const SYMMETRIES: [&str; 2] = ["mirrors", "square"];
 const MAX_RADIUS: u8 = crate::window::MAX_SIZE / 2;
 
 /// Leaf scores must follow from their counts and the class weights, and
@@ -271,6 +273,13 @@ impl ModelFile {
                 "training.criterion {:?} is not one of {CRITERIA:?}",
                 self.training.criterion
             )));
+        }
+        if let Some(s) = &self.training.symmetry {
+            if !SYMMETRIES.contains(&s.as_str()) {
+                return Err(Error::bad_model(format!(
+                    "training.symmetry {s:?} is not one of {SYMMETRIES:?}"
+                )));
+            }
         }
         let weights = self.training.class_weights;
         if !weights.iter().all(|w| w.is_finite() && *w > 0.0) {

@@ -74,6 +74,10 @@ pub struct TrainingInfo {
     pub smaller: Option<SizeTrade>,
     /// The fabric's symmetries the frames were also taken under
     /// (`mirrors` or `square`, `learn::symmetry`); not written when none.
+    /// Under one, leaf counts (and `min_leaf`) count each training pixel
+    /// once per transform, and the held-out scores (`holdout`,
+    /// `smaller.best_object_f1`) are over each held-out frame and its
+    /// transforms.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub symmetry: Option<String>,
     /// Which of threshold / min_area / merge_distance the user fixed.
@@ -300,6 +304,20 @@ mod tests {
                     v["training"]["symmetry"] = "square".into();
                 }),
                 "training.symmetry came with format_version 4",
+            ),
+            (
+                edited(|v| {
+                    v["format_version"] = 4.into();
+                    v["training"]["symmetry"] = "round".into();
+                }),
+                "training.symmetry \"round\" is not one of",
+            ),
+            (
+                edited(|v| {
+                    v["format_version"] = 4.into();
+                    v["training"]["symmetry"] = "none".into();
+                }),
+                "training.symmetry \"none\" is not one of",
             ),
             (
                 edited(|v| {
