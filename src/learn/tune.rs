@@ -818,6 +818,55 @@ fn resampled_sd(n: usize, seed: u64, mut stat: impl FnMut(&[usize]) -> f64) -> f
 #[cfg(test)]
 mod tests {
 
+    /// Held-out frames of one group (a frame and its transforms) count as
+    /// one frame in the per-frame counts the standard errors resample: the
+    /// group's counts are the sum of its frames', and frames of different
+    /// groups, or of none, stay apart.
+    #[test]
+    fn a_group_of_held_out_frames_counts_as_one_frame() {
+        use super::{node_scores, try_alpha, Fixed, HoldoutFrame};
+        use crate::learn::{grow, prune, store::LabelStore, TrainParams};
+        let lp = crate::synth::LoomParams {
+            width: 64,
+            height: 64,
+            ..crate::synth::LoomParams::standard()
+        };
+        let frames = crate::suite::frames("f", &lp, 4, 8);
+        let params = TrainParams::default();
+        let mut store = LabelStore::new(params.window);
+        for f in &frames[..6] {
+            store.add_labelled(f).unwrap();
+        }
+        let weights = params.class_weight.weights(store.totals());
+        let mut entries = store.into_entries();
+        let gp = params.grow_params(weights);
+        let tree =
+            grow::grow_until(&mut entries, params.window.features(), &gp, &|| false).unwrap();
+        let pruning = prune::prune_sequence(&tree, params.criterion, weights);
+        let scores = node_scores(&tree, weights);
+        let hold = |i: usize| {
+            let f = &frames[i];
+            HoldoutFrame::new(&tree, params.window, &f.frame, &f.mask, None)
+        };
+        let fixed = Fixed::default();
+        let tried = |held: &[HoldoutFrame]| {
+            try_alpha(&[(&tree, &pruning)], 0.0, &scores, held, &fixed).unwrap()
+        };
+        let apart = tried(&[hold(6), hold(6), hold(7)]);
+        let grouped = tried(&[hold(6).group(6), hold(6).group(6), hold(7).group(7)]);
+        assert_eq!(apart.per_frame.len(), 3);
+        assert_eq!(grouped.per_frame.len(), 2);
+        let mut twice = apart.per_frame[0];
+        twice.add(&apart.per_frame[1]);
+        assert_eq!(grouped.per_frame[0], twice);
+        assert_eq!(grouped.per_frame[1], apart.per_frame[2]);
+        // Grouping moves no choice: the summed counts are the same.
+        assert_eq!(grouped.best.object, apart.best.object);
+        // Equal ids merge only when side by side.
+        let split = tried(&[hold(6).group(6), hold(7).group(7), hold(6).group(6)]);
+        assert_eq!(split.per_frame.len(), 3);
+    }
+
     #[test]
     fn paired_errors_vanish_for_equal_candidates_and_not_for_noisy_ones() {
         use super::{bootstrap_se, paired_se};
