@@ -898,8 +898,27 @@ fn train_inner(
 }
 
 #[cfg(test)]
-mod tests {
+pub(crate) mod tests {
     use super::*;
+
+    /// A tree grown on `frames` and its pruning sequence, with the class
+    /// weights used: what tuning's tests score held-out frames with.
+    pub(crate) fn grown_on(
+        frames: &[LabelledFrame],
+        params: &TrainParams,
+    ) -> (GrownTree, Pruning, [f64; 2]) {
+        let mut store = LabelStore::new(params.window);
+        for f in frames {
+            store.add_labelled(f).unwrap();
+        }
+        let weights = params.class_weight.weights(store.totals());
+        let mut entries = store.into_entries();
+        let gp = params.grow_params(weights);
+        let tree =
+            grow::grow_until(&mut entries, params.window.features(), &gp, &|| false).unwrap();
+        let pruning = prune::prune_sequence(&tree, params.criterion, weights);
+        (tree, pruning, weights)
+    }
     use crate::frame::BitFrame;
 
     fn lf(name: &str, targets: bool, seed: usize) -> LabelledFrame {
@@ -925,16 +944,7 @@ mod tests {
         };
         let frames = crate::suite::frames("f", &p, 4, 8);
         let params = TrainParams::default();
-        let mut store = LabelStore::new(params.window);
-        for f in &frames[..6] {
-            store.add_labelled(f).unwrap();
-        }
-        let weights = params.class_weight.weights(store.totals());
-        let mut entries = store.into_entries();
-        let gp = params.grow_params(weights);
-        let tree =
-            grow::grow_until(&mut entries, params.window.features(), &gp, &|| false).unwrap();
-        let pruning = prune::prune_sequence(&tree, params.criterion, weights);
+        let (tree, pruning, weights) = grown_on(&frames[..6], &params);
         let hold = |i: usize| {
             tune::HoldoutFrame::new(
                 &tree,

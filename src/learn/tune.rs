@@ -825,7 +825,7 @@ mod tests {
     #[test]
     fn a_group_of_held_out_frames_counts_as_one_frame() {
         use super::{node_scores, try_alpha, Fixed, HoldoutFrame};
-        use crate::learn::{grow, prune, store::LabelStore, TrainParams};
+        use crate::learn::TrainParams;
         let lp = crate::synth::LoomParams {
             width: 64,
             height: 64,
@@ -833,16 +833,7 @@ mod tests {
         };
         let frames = crate::suite::frames("f", &lp, 4, 8);
         let params = TrainParams::default();
-        let mut store = LabelStore::new(params.window);
-        for f in &frames[..6] {
-            store.add_labelled(f).unwrap();
-        }
-        let weights = params.class_weight.weights(store.totals());
-        let mut entries = store.into_entries();
-        let gp = params.grow_params(weights);
-        let tree =
-            grow::grow_until(&mut entries, params.window.features(), &gp, &|| false).unwrap();
-        let pruning = prune::prune_sequence(&tree, params.criterion, weights);
+        let (tree, pruning, weights) = crate::learn::tests::grown_on(&frames[..6], &params);
         let scores = node_scores(&tree, weights);
         let hold = |i: usize| {
             let f = &frames[i];
