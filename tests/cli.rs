@@ -348,6 +348,49 @@ fn training_under_a_symmetry_says_so() {
     assert!(r.stderr.contains("none, mirrors or square"), "{}", r.stderr);
 }
 
+/// Training over `--memory-mb` stops before it grows, with the bound, the
+/// limit and how to change it; a limit outside 16..=1048576 MiB is a usage
+/// error. (Four frames of 256x256 under `square`: at least 288 bytes for
+/// each of some 196,000 growing pixels, over 16 MiB.)
+#[test]
+fn training_over_its_memory_limit_stops_before_growing() {
+    let dir = Dir::new();
+    let r = burlwatch(
+        dir.path(),
+        &[
+            "generate", "--out", "big", "--count", "4", "--seed", "2", "--width", "256",
+            "--height", "256",
+        ],
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let train = |extra: &[&str]| {
+        let mut args = vec![
+            "train",
+            "--data",
+            "big",
+            "--out",
+            "m.json",
+            "--symmetry",
+            "square",
+        ];
+        args.extend_from_slice(extra);
+        burlwatch(dir.path(), &args)
+    };
+    let r = train(&["--memory-mb", "16"]);
+    assert_eq!(r.code, 1, "{}", r.stderr);
+    assert!(
+        r.stderr.contains("over the memory limit of 16 MiB")
+            && r.stderr.contains("--memory-mb")
+            && r.stderr.contains("8 transforms"),
+        "{}",
+        r.stderr
+    );
+    assert!(!dir.join("m.json").exists());
+    let r = train(&["--memory-mb", "8"]);
+    assert_eq!(r.code, 2, "{}", r.stderr);
+    assert!(r.stderr.contains("from 16 to 1048576"), "{}", r.stderr);
+}
+
 #[test]
 fn bad_models_and_options_are_clear_errors() {
     let dir = Dir::new();

@@ -63,6 +63,11 @@ pub struct TrainArgs {
     /// [default: none].
     #[arg(long, value_parser = parse_symmetry)]
     symmetry: Option<Symmetry>,
+    /// Most memory growing the trees may take, in MiB: over it for two
+    /// trees at once they grow one at a time, and over it for one training
+    /// stops before growing [default: training.memory_mb, 2048].
+    #[arg(long, value_parser = parse_memory_mb)]
+    memory_mb: Option<u64>,
     /// Grow the final tree again on all frames once the holdout has chosen.
     #[arg(long)]
     refit: bool,
@@ -139,6 +144,7 @@ pub fn run(a: TrainArgs) -> Result<i32> {
         folds: a.folds.unwrap_or(base.folds),
         smoothing: a.smoothing || base.smoothing,
         symmetry: a.symmetry.unwrap_or(base.symmetry),
+        memory_limit: a.memory_mb.map(|m| m << 20).or(base.memory_limit),
         threshold: fixed.threshold,
         min_area: fixed.min_area,
         merge_distance: fixed.merge_distance,
@@ -279,6 +285,16 @@ pub fn run(a: TrainArgs) -> Result<i32> {
         out!("wrote {} in {seconds:.2} s", a.out.display());
     }
     Ok(if skipped > 0 { super::EXIT_SOME_BAD } else { 0 })
+}
+
+fn parse_memory_mb(s: &str) -> std::result::Result<u64, String> {
+    use burlwatch::config::raw::{MAX_MEMORY_MB, MIN_MEMORY_MB};
+    match s.parse::<u64>() {
+        Ok(m) if (MIN_MEMORY_MB..=MAX_MEMORY_MB).contains(&m) => Ok(m),
+        _ => Err(format!(
+            "{s:?} is not a whole number of MiB from {MIN_MEMORY_MB} to {MAX_MEMORY_MB}"
+        )),
+    }
 }
 
 fn parse_symmetry(s: &str) -> std::result::Result<Symmetry, String> {

@@ -18,6 +18,14 @@ use crate::learn::{ClassWeight, Criterion, TrainParams};
 use crate::model::{Overrides, MAX_MERGE_DISTANCE};
 use crate::window::Window;
 
+/// `training.memory_mb` when not given: what growing the trees may take on
+/// a small box, above the demo's 120 frames (bounded at 630 MiB) and the
+/// daemon's retrain of 2 million labelled pixels.
+pub const DEFAULT_MEMORY_MB: u64 = 2048;
+/// The range `training.memory_mb` must fall in (1 TiB at most).
+pub const MIN_MEMORY_MB: u64 = 16;
+pub const MAX_MEMORY_MB: u64 = 1 << 20;
+
 /// `[frames]`: how frame files are decoded.
 #[derive(Debug, Default, Deserialize)]
 #[serde(deny_unknown_fields)]
@@ -64,6 +72,8 @@ pub struct RawTraining {
     pub smoothing: Option<bool>,
     /// The fabric's symmetries: "none", "mirrors" or "square".
     pub symmetry: Option<String>,
+    /// Most memory growing the trees may take, in MiB (default 2048).
+    pub memory_mb: Option<u64>,
 }
 
 /// `[detection]`: overrides of the settings a model carries.
@@ -368,6 +378,13 @@ impl RawConfig {
                 )
             })?,
         };
+        let memory_mb = t.memory_mb.unwrap_or(DEFAULT_MEMORY_MB);
+        if !(MIN_MEMORY_MB..=MAX_MEMORY_MB).contains(&memory_mb) {
+            return Err(invalid(
+                "training.memory_mb",
+                format!("{memory_mb} is outside {MIN_MEMORY_MB}..={MAX_MEMORY_MB}"),
+            ));
+        }
         let det = self.detection;
         let training = TrainParams {
             window,
@@ -381,6 +398,7 @@ impl RawConfig {
             folds: t.folds.unwrap_or(dt.folds),
             smoothing: t.smoothing.unwrap_or(dt.smoothing),
             symmetry,
+            memory_limit: Some(memory_mb << 20),
             ..dt
         };
         training
@@ -911,6 +929,32 @@ mod tests {
             e.contains("training.symmetry") && e.contains("square"),
             "{e}"
         );
+        // The memory bound: 2 GiB unless given, in MiB, within 16 MiB..1 TiB.
+        assert_eq!(
+            from_str("").unwrap().live.training.memory_limit,
+            Some(2048 << 20)
+        );
+        assert_eq!(
+            from_str("[training]\nmemory_mb = 512\n")
+                .unwrap()
+                .live
+                .training
+                .memory_limit,
+            Some(512 << 20)
+        );
+        for bad in ["0", "8", "2000000"] {
+            let e = from_str(&format!("[training]\nmemory_mb = {bad}\n"))
+                .unwrap_err()
+                .to_string();
+            assert!(
+                e.contains("training.memory_mb") && e.contains("16..=1048576"),
+                "{e}"
+            );
+        }
+        let e = from_str("[training]\nmemory_mb = -5\n")
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("memory_mb"), "{e}");
         let c = from_str("[training]\nsymmetry = \"mirrors\"\n").unwrap();
         assert_eq!(
             c.live.training.symmetry,

@@ -421,4 +421,26 @@ mod tests {
         assert_eq!(ch.gate.f1, ch.gate.running_f1);
         assert_eq!(ch.gate.frames, 4);
     }
+
+    /// A retrain whose trees would not fit `training.memory_mb` grows no
+    /// challenger and says why; the running model stays, and the daemon
+    /// with it (the error is the retrain's outcome, not a failure).
+    #[test]
+    fn a_retrain_over_the_memory_limit_grows_no_challenger_and_says_why() {
+        // The default 11x11 window: nearly every pixel of these frames is
+        // a pattern of its own, so 8 frames of 64x64 need over 1 MiB.
+        let mut live = crate::config::Config::default().live;
+        let running = learn::train(&frames(1, 8), &live.training, &mut |_| {}).unwrap();
+        live.training.memory_limit = Some(1 << 20);
+        let p = plan(frames(2, 8), frames(3, 4));
+        let ch = challenge(&p, &running, &live, false, &|| false).unwrap();
+        assert!(ch.model.is_err() && !ch.passed, "{}", ch.reason);
+        assert!(
+            ch.reason.starts_with("no challenger")
+                && ch.reason.contains("memory limit of 1 MiB")
+                && ch.reason.contains("training.memory_mb"),
+            "{}",
+            ch.reason
+        );
+    }
 }

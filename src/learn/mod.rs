@@ -136,6 +136,12 @@ pub struct TrainParams {
     /// The fabric's symmetries: every frame is also taken mirrored and
     /// turned this way, for growing and for tuning ([`symmetry`]).
     pub symmetry: Symmetry,
+    /// Most memory, in bytes, that growing the trees may take, by the
+    /// estimate of [`growing_bytes`]: trees that would not fit two at a
+    /// time grow one at a time, and training that would not fit even so
+    /// stops before it grows with an error naming the estimate. `None`: no
+    /// limit.
+    pub memory_limit: Option<u64>,
     /// Fixed by the user instead of tuned.
     pub threshold: Option<f64>,
     pub min_area: Option<u32>,
@@ -158,6 +164,7 @@ impl Default for TrainParams {
             prefer_smaller: true,
             smoothing: false,
             symmetry: Symmetry::None,
+            memory_limit: None,
             threshold: None,
             min_area: None,
             merge_distance: None,
@@ -222,6 +229,9 @@ impl TrainParams {
         if self.min_area == Some(0) {
             return Err(Error::training("min_area must be at least 1"));
         }
+        if self.memory_limit == Some(0) {
+            return Err(Error::training("the memory limit must be above 0"));
+        }
         if self
             .merge_distance
             .is_some_and(|m| m > crate::detect::group::MAX_MERGE_DISTANCE)
@@ -262,6 +272,9 @@ struct Grown {
 struct GrowJob {
     idx: Vec<usize>,
     store: Source,
+    /// The most distinct window patterns its store can hold (for
+    /// [`growing_bytes`]).
+    patterns: u64,
 }
 
 /// Where a tree's label store comes from.
@@ -376,6 +389,55 @@ fn growing_threads() -> usize {
     std::thread::available_parallelism().map_or(1, |n| n.get().min(2))
 }
 
+const MIB: u64 = 1 << 20;
+
+/// Bytes of one pattern's entry: the pattern (16) and its two counts (16).
+const ENTRY_BYTES: u64 = 32;
+
+/// An upper bound of the memory growing one tree takes, from the most
+/// distinct patterns its store can hold: without a symmetry, the store
+/// while it fills (its sorted entries, the table of recent additions and
+/// a merge's lists, at most half as much again as the entries); under a
+/// symmetry of `transforms`, the store's entries and the vector of all
+/// their transforms side by side ([`Symmetry::entries`]). Growth itself
+/// partitions the entries in place. A store filled from frames is
+/// bounded by their labelled pixels, so the bound can be well above what
+/// repetitive fabrics need (the demo's 120 frames hold 0.74 distinct
+/// patterns per pixel).
+pub fn growing_bytes(patterns: u64, transforms: u64) -> u64 {
+    let per = if transforms <= 1 {
+        ENTRY_BYTES * 3 / 2
+    } else {
+        ENTRY_BYTES * (1 + transforms)
+    };
+    patterns.saturating_mul(per)
+}
+
+/// How many of `threads` to grow trees on so that the trees growing at
+/// once fit `limit`, given each tree's bound in `need`: all of them when
+/// the largest `threads` bounds fit together, else one. `Err` with the
+/// largest bound when even that alone does not fit.
+fn threads_within(
+    need: &[u64],
+    threads: usize,
+    limit: Option<u64>,
+) -> std::result::Result<usize, u64> {
+    let Some(limit) = limit else {
+        return Ok(threads);
+    };
+    let mut sorted = need.to_vec();
+    sorted.sort_unstable_by(|a, b| b.cmp(a));
+    let largest = sorted.first().copied().unwrap_or(0);
+    if largest > limit {
+        return Err(largest);
+    }
+    let together = sorted
+        .iter()
+        .take(threads.max(1))
+        .fold(0u64, |a, &b| a.saturating_add(b));
+    Ok(if together <= limit { threads } else { 1 })
+}
+
 /// Grows every job's tree, results in the jobs' order. Several jobs (the
 /// trees of cross-fitting) are shared out over [`growing_threads`] threads,
 /// each taking the next job left; each tree is grown alone from its own
@@ -413,7 +475,31 @@ fn grow_all(
         _ => {}
     };
     let n = jobs.len();
-    let threads = growing_threads().min(n);
+    let transforms = params.symmetry.transforms().len() as u64;
+    let need: Vec<u64> = jobs
+        .iter()
+        .map(|j| growing_bytes(j.patterns, transforms))
+        .collect();
+    let threads =
+        threads_within(&need, growing_threads().min(n), params.memory_limit).map_err(
+            |largest| {
+                let patterns = jobs.iter().map(|j| j.patterns).max().unwrap_or(0);
+                let limit = params.memory_limit.unwrap_or(0);
+                Error::training(format!(
+                "growing would need up to {} MiB for its largest tree ({patterns} window patterns \
+                 at most{}), over the memory limit of {} MiB: raise the limit (training.memory_mb, \
+                 train --memory-mb) or train on fewer frames{}",
+                largest.div_ceil(MIB),
+                if transforms > 1 {
+                    format!(", each under {transforms} transforms")
+                } else {
+                    String::new()
+                },
+                limit / MIB,
+                if transforms > 1 { ", or without the symmetry" } else { "" },
+            ))
+            },
+        )?;
     if threads <= 1 {
         let mut out = Vec::with_capacity(n);
         for job in jobs {
@@ -664,6 +750,14 @@ fn train_inner(
             store.remove_labelled(&frames[i])?;
         }
     }
+    // The most distinct patterns a tree's store can hold: its frames'
+    // labelled pixels, and no more than the given store of all growing
+    // frames, which holds every pattern of theirs.
+    let given_patterns = given.as_ref().map(|s| s.unique() as u64);
+    let patterns = |idx: &[usize]| -> u64 {
+        let pixels: u64 = idx.iter().map(|&i| frames[i].known_pixels()).sum();
+        given_patterns.map_or(pixels, |g| pixels.min(g))
+    };
     let fixed = tune::Fixed {
         threshold: params.threshold,
         min_area: params.min_area,
@@ -681,6 +775,7 @@ fn train_inner(
         jobs.push(GrowJob {
             idx: grow_idx.clone(),
             store: given.take().map_or(Source::Frames, Source::Store),
+            patterns: patterns(&grow_idx),
         });
         // A fold's store is read from its frames even when a whole store
         // was given: a copy of the whole store with a share taken out
@@ -688,6 +783,7 @@ fn train_inner(
         for j in 0..params.folds {
             let out: Vec<usize> = (0..frames.len()).filter(|&i| fold[i] != j).collect();
             jobs.push(GrowJob {
+                patterns: patterns(&out),
                 idx: out,
                 store: Source::Frames,
             });
@@ -731,6 +827,7 @@ fn train_inner(
         let job = GrowJob {
             idx: grow_idx.clone(),
             store: given.take().map_or(Source::Frames, Source::Store),
+            patterns: patterns(&grow_idx),
         };
         grow_all(frames, vec![job], params, progress, stop)?.remove(0)
     };
@@ -768,7 +865,9 @@ fn train_inner(
     let refit = params.refit && !cross && choice.is_some();
     let (final_grown, used_idx) = if refit {
         let all: Vec<usize> = (0..frames.len()).collect();
+        // Held-out frames too: bounded by the pixels alone.
         let job = GrowJob {
+            patterns: all.iter().map(|&i| frames[i].known_pixels()).sum(),
             idx: all.clone(),
             store: Source::Frames,
         };
@@ -1058,6 +1157,82 @@ pub(crate) mod tests {
 
     /// Under a symmetry every frame also grows and tunes transformed: the
     /// model says so and reports the pixels labelled, not their copies;
+    /// The memory bound: each tree's bound is its most distinct patterns
+    /// times the bytes it holds per pattern (an entry is 32 bytes: the
+    /// store file format above); trees grow two at a time only when the
+    /// two largest bounds fit the limit together, one at a time when only
+    /// the largest fits alone, and not at all otherwise.
+    #[test]
+    fn the_memory_limit_chooses_how_many_trees_grow_at_once() {
+        assert_eq!(growing_bytes(1000, 1), 48_000);
+        assert_eq!(growing_bytes(1000, 8), 288_000);
+        assert_eq!(growing_bytes(u64::MAX, 8), u64::MAX);
+        let need = [300, 200, 200, 100];
+        assert_eq!(threads_within(&need, 2, None), Ok(2));
+        assert_eq!(threads_within(&need, 2, Some(500)), Ok(2));
+        assert_eq!(threads_within(&need, 2, Some(499)), Ok(1));
+        assert_eq!(threads_within(&need, 2, Some(300)), Ok(1));
+        assert_eq!(threads_within(&need, 2, Some(299)), Err(300));
+        assert_eq!(threads_within(&need, 1, Some(300)), Ok(1));
+        assert_eq!(threads_within(&[], 2, Some(1)), Ok(2));
+    }
+
+    /// Under a limit that lets only one tree grow at a time, training
+    /// gives the same model byte for byte, from frames and from a store;
+    /// under one that no tree fits, it stops before growing with an error
+    /// that names the estimate and the limit, and a limit of 0 is refused.
+    #[test]
+    fn a_memory_limit_grows_one_tree_at_a_time_or_stops_with_a_clear_error() {
+        use crate::synth::LoomParams;
+        let lp = LoomParams {
+            width: 64,
+            height: 64,
+            ..LoomParams::standard()
+        };
+        let frames = crate::suite::frames("m", &lp, 4, 6);
+        let free = train(&frames, &TrainParams::default(), &mut |_| {}).unwrap();
+        // 6 frames of 64x64: the final tree's bound is 6 x 4096 x 48
+        // bytes, a fold's 4 x 4096 x 48; together they exceed it.
+        let alone = growing_bytes(6 * 4096, 1);
+        let one = TrainParams {
+            memory_limit: Some(alone),
+            ..TrainParams::default()
+        };
+        let a = train(&frames, &one, &mut |_| {}).unwrap();
+        assert_eq!(a.to_json(), free.to_json());
+        let mut all = LabelStore::new(one.window);
+        for f in &frames {
+            all.add_labelled(f).unwrap();
+        }
+        let b = train_from_store(&frames, all, &one, &mut |_| {}, &|| false).unwrap();
+        assert_eq!(b.to_json(), free.to_json());
+        let tight = TrainParams {
+            memory_limit: Some(alone - 1),
+            ..TrainParams::default()
+        };
+        let e = train(&frames, &tight, &mut |_| {}).unwrap_err().to_string();
+        assert!(
+            e.contains("memory limit") && e.contains("24576 window patterns"),
+            "{e}"
+        );
+        let square = TrainParams {
+            symmetry: Symmetry::Square,
+            ..tight
+        };
+        let e = train(&frames, &square, &mut |_| {})
+            .unwrap_err()
+            .to_string();
+        assert!(
+            e.contains("8 transforms") && e.contains("without the symmetry"),
+            "{e}"
+        );
+        let zero = TrainParams {
+            memory_limit: Some(0),
+            ..TrainParams::default()
+        };
+        assert!(train(&frames, &zero, &mut |_| {}).is_err());
+    }
+
     /// from frames or from a store of them (the daemon's retrain) it is
     /// the same model; and the file is a version 4 one that loads back.
     #[test]
