@@ -103,6 +103,7 @@ fn main() {
             match s {
                 Stage::Store { .. } => {}
                 Stage::Grow => marks[0] = t,
+                Stage::OneAtATime { .. } => {}
                 Stage::Prune => marks[1] = t,
                 Stage::Tune => marks[2] = t,
             }

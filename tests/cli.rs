@@ -350,8 +350,11 @@ fn training_under_a_symmetry_says_so() {
 
 /// Training over `--memory-mb` stops before it grows, with the bound, the
 /// limit and how to change it; a limit outside 16..=1048576 MiB is a usage
-/// error. (Four frames of 256x256 under `square`: at least 288 bytes for
-/// each of some 196,000 growing pixels, over 16 MiB.)
+/// error; and a limit that only one tree at a time fits is said. (Four
+/// frames of 256x256 under `square`: 288 bytes for each of 262,144 pixels
+/// in the final tree's store alone, over 16 MiB. Six of 96x96: the trees'
+/// bound is 21 MB, the final store's 20 MB and a fold's 19 MB, so 45 MiB
+/// fits one at a time and not two.)
 #[test]
 fn training_over_its_memory_limit_stops_before_growing() {
     let dir = Dir::new();
@@ -389,6 +392,28 @@ fn training_over_its_memory_limit_stops_before_growing() {
     let r = train(&["--memory-mb", "8"]);
     assert_eq!(r.code, 2, "{}", r.stderr);
     assert!(r.stderr.contains("from 16 to 1048576"), "{}", r.stderr);
+    small_data(&dir, "small", "6", "3");
+    let r = burlwatch(
+        dir.path(),
+        &[
+            "train",
+            "--data",
+            "small",
+            "--out",
+            "s.json",
+            "--memory-mb",
+            "45",
+        ],
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    if std::thread::available_parallelism().map_or(1, |n| n.get()) > 1 {
+        assert!(
+            r.stdout.contains("the trees grew one at a time")
+                && r.stdout.contains("limit of 45 MiB"),
+            "{}",
+            r.stdout
+        );
+    }
 }
 
 #[test]

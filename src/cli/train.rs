@@ -106,6 +106,8 @@ struct TrainSummary<'a> {
     /// The symmetry trained under, when one was.
     #[serde(skip_serializing_if = "Option::is_none")]
     symmetry: Option<String>,
+    /// The trees grew one at a time to stay within the memory limit.
+    one_at_a_time: bool,
     holdout: &'a Option<model::HoldoutMetrics>,
 }
 
@@ -170,12 +172,14 @@ pub fn run(a: TrainArgs) -> Result<i32> {
         .context("no data folder: pass --data DIR or set training.seed_data in --config")?;
     let (folder, skipped) = read_data(&data_dir, &a.decode.limits(&cfg), a.skip_bad)?;
     let mut bar = Progress::new(folder.frames.len(), 10);
+    let mut one_at_a_time = None;
     let m = learn::train(&folder.frames, &params, &mut |s| match s {
         Stage::Store { done, total } => {
             bar.set_label("building label store");
             bar.update(done, total)
         }
         Stage::Grow => bar.stage("growing tree"),
+        Stage::OneAtATime { limit } => one_at_a_time = Some(limit),
         Stage::Prune => bar.stage("pruning"),
         Stage::Tune => bar.stage("choosing threshold and grouping on held-out frames"),
     })
@@ -217,6 +221,7 @@ pub fn run(a: TrainArgs) -> Result<i32> {
             smoothing: m.smoothing,
             smaller: m.training.smaller,
             symmetry: m.training.symmetry.clone(),
+            one_at_a_time: one_at_a_time.is_some(),
             holdout: &m.holdout,
         };
         out!("{}", serde_json::to_string_pretty(&s)?);
@@ -242,6 +247,13 @@ pub fn run(a: TrainArgs) -> Result<i32> {
         );
         if let Some(s) = &m.training.symmetry {
             out!("symmetry: {s} (every frame also taken mirrored and turned)");
+        }
+        if let Some(limit) = one_at_a_time {
+            out!(
+                "memory: the trees grew one at a time, since two at once could need more than \
+                 the limit of {} MiB (--memory-mb, training.memory_mb)",
+                limit >> 20
+            );
         }
         out!(
             "tree: {} leaves grown, {} kept after pruning (alpha {:.3e}), depth {}",

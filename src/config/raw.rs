@@ -19,8 +19,9 @@ use crate::model::{Overrides, MAX_MERGE_DISTANCE};
 use crate::window::Window;
 
 /// `training.memory_mb` when not given: what growing the trees may take on
-/// a small box, above the demo's 120 frames (bounded at 630 MiB) and the
-/// daemon's retrain of 2 million labelled pixels.
+/// a small box, above the bound of the demo's 120 frames (1,088 MiB, two
+/// trees at a time) and of the daemon's retrain of 2 million labelled
+/// pixels.
 pub const DEFAULT_MEMORY_MB: u64 = 2048;
 /// The range `training.memory_mb` must fall in (1 TiB at most).
 pub const MIN_MEMORY_MB: u64 = 16;

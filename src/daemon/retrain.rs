@@ -423,8 +423,8 @@ mod tests {
     }
 
     /// A retrain whose trees would not fit `training.memory_mb` grows no
-    /// challenger and says why; the running model stays, and the daemon
-    /// with it (the error is the retrain's outcome, not a failure).
+    /// challenger and says why: the error is the retrain's outcome, which
+    /// passes nothing (so the model in service stays), not a failure.
     #[test]
     fn a_retrain_over_the_memory_limit_grows_no_challenger_and_says_why() {
         // The default 11x11 window: nearly every pixel of these frames is

@@ -254,6 +254,11 @@ pub enum Stage {
         total: usize,
     },
     Grow,
+    /// The trees grow one at a time: two at once would not fit the
+    /// memory limit of `limit` bytes.
+    OneAtATime {
+        limit: u64,
+    },
     Prune,
     Tune,
 }
@@ -394,48 +399,110 @@ const MIB: u64 = 1 << 20;
 /// Bytes of one pattern's entry: the pattern (16) and its two counts (16).
 const ENTRY_BYTES: u64 = 32;
 
-/// An upper bound of the memory growing one tree takes, from the most
-/// distinct patterns its store can hold: without a symmetry, the store
-/// while it fills (its sorted entries, the table of recent additions and
-/// a merge's lists, at most half as much again as the entries); under a
-/// symmetry of `transforms`, the store's entries and the vector of all
-/// their transforms side by side ([`Symmetry::entries`]). Growth itself
-/// partitions the entries in place. A store filled from frames is
-/// bounded by their labelled pixels, so the bound can be well above what
-/// repetitive fabrics need (the demo's 120 frames hold 0.74 distinct
-/// patterns per pixel).
+/// Bytes per distinct pattern of a store while it fills: its sorted
+/// entries (32), and during a merge the table of recent additions (up to a
+/// quarter of the entries, a hash table a little over half full) and the
+/// merge's two lists (`learn::store`), about 46 to 66 in all.
+const STORE_BYTES: u64 = 64;
+
+/// What a store's table of recent additions may take whatever the
+/// store's size: at least 2^17 patterns wait there before a merge.
+const STORE_FIXED: u64 = 16 * MIB;
+
+/// Bytes per node of a grown tree with its pruning sequence (the node
+/// about 40, the sequence's entries 8 to 16).
+const NODE_BYTES: u64 = 64;
+
+/// An upper bound of the memory a tree's store and entries take while it
+/// grows, from the most distinct patterns its store can hold: the store
+/// while it fills (64 bytes a pattern and 16 MiB for its table), and
+/// under a symmetry of `transforms` the store's entries and the vector of
+/// all their transforms side by side ([`Symmetry::entries`]), whichever is
+/// more. Growth partitions the entries in place. A store filled from
+/// frames is bounded by their labelled pixels, so the bound can be well
+/// above what repetitive fabrics need (the demo's 120 frames hold 0.74
+/// distinct patterns per pixel).
 pub fn growing_bytes(patterns: u64, transforms: u64) -> u64 {
-    let per = if transforms <= 1 {
-        ENTRY_BYTES * 3 / 2
+    let store = patterns
+        .saturating_mul(STORE_BYTES)
+        .saturating_add(STORE_FIXED);
+    if transforms <= 1 {
+        store
     } else {
-        ENTRY_BYTES * (1 + transforms)
-    };
-    patterns.saturating_mul(per)
+        store.max(patterns.saturating_mul(ENTRY_BYTES * (1 + transforms)))
+    }
 }
 
-/// How many of `threads` to grow trees on so that the trees growing at
-/// once fit `limit`, given each tree's bound in `need`: all of them when
-/// the largest `threads` bounds fit together, else one. `Err` with the
-/// largest bound when even that alone does not fit.
+/// An upper bound of a grown tree's memory, held from its growth to the
+/// end of training: a leaf has at least one pattern, so a tree has fewer
+/// than twice its patterns' nodes, and at most `max_nodes`.
+pub fn tree_bytes(patterns: u64, max_nodes: usize) -> u64 {
+    patterns
+        .saturating_mul(2)
+        .min(max_nodes as u64)
+        .saturating_mul(NODE_BYTES)
+}
+
+/// How many of `threads` to grow trees on, given each tree's store bound
+/// in `stores` and the trees' bound `held` (every tree grown stays until
+/// training ends): all of them when the largest `threads` stores fit
+/// `limit` beside the trees, else one. `Err` with the bound of the
+/// largest store beside the trees when even that does not fit.
 fn threads_within(
-    need: &[u64],
+    stores: &[u64],
+    held: u64,
     threads: usize,
     limit: Option<u64>,
 ) -> std::result::Result<usize, u64> {
     let Some(limit) = limit else {
         return Ok(threads);
     };
-    let mut sorted = need.to_vec();
+    let mut sorted = stores.to_vec();
     sorted.sort_unstable_by(|a, b| b.cmp(a));
-    let largest = sorted.first().copied().unwrap_or(0);
-    if largest > limit {
-        return Err(largest);
+    let alone = held.saturating_add(sorted.first().copied().unwrap_or(0));
+    if alone > limit {
+        return Err(alone);
     }
     let together = sorted
         .iter()
         .take(threads.max(1))
-        .fold(0u64, |a, &b| a.saturating_add(b));
+        .fold(held, |a, &b| a.saturating_add(b));
     Ok(if together <= limit { threads } else { 1 })
+}
+
+/// [`threads_within`] for trees of at most `patterns` distinct patterns
+/// each, beside `held` bytes of trees grown before: the threads, or the
+/// error a user reads, with the bound, the limit and what to change.
+fn memory_plan(patterns: &[u64], held: u64, threads: usize, params: &TrainParams) -> Result<usize> {
+    let transforms = params.symmetry.transforms().len() as u64;
+    let stores: Vec<u64> = patterns
+        .iter()
+        .map(|&p| growing_bytes(p, transforms))
+        .collect();
+    let held = patterns.iter().fold(held, |a, &p| {
+        a.saturating_add(tree_bytes(p, params.max_nodes))
+    });
+    threads_within(&stores, held, threads, params.memory_limit).map_err(|need| {
+        let most = patterns.iter().copied().max().unwrap_or(0);
+        let limit = params.memory_limit.unwrap_or(0);
+        Error::training(format!(
+            "growing would need up to {} MiB ({most} window patterns at most for the largest \
+             tree{}, and the trees grown), over the memory limit of {} MiB: raise the limit \
+             (training.memory_mb, train --memory-mb) or train on fewer frames{}",
+            need.div_ceil(MIB),
+            if transforms > 1 {
+                format!(", each under {transforms} transforms")
+            } else {
+                String::new()
+            },
+            limit / MIB,
+            if transforms > 1 {
+                ", or without the symmetry"
+            } else {
+                ""
+            },
+        ))
+    })
 }
 
 /// Grows every job's tree, results in the jobs' order. Several jobs (the
@@ -443,14 +510,29 @@ fn threads_within(
 /// each taking the next job left; each tree is grown alone from its own
 /// store, so the results do not depend on which thread took which job.
 /// Progress is reported from the calling thread: frames stored out of all
-/// the jobs' frames to store, then growing.
+/// the jobs' frames to store, then growing. Before anything, the memory
+/// plan ([`memory_plan`]) for these trees beside `held` bytes of trees
+/// grown before: one thread when two would not fit the memory limit, or an
+/// error when one would not.
 fn grow_all(
     frames: &[LabelledFrame],
     jobs: Vec<GrowJob>,
+    held: u64,
     params: &TrainParams,
     progress: &mut dyn FnMut(Stage),
     stop: &(dyn Fn() -> bool + Sync),
 ) -> Result<Vec<Grown>> {
+    // The memory plan first: nothing is stored or grown when it does not
+    // fit, and the trees grow one at a time when two at once would not.
+    let n = jobs.len();
+    let patterns: Vec<u64> = jobs.iter().map(|j| j.patterns).collect();
+    let wanted = growing_threads().min(n);
+    let threads = memory_plan(&patterns, held, wanted, params)?;
+    if threads < wanted {
+        progress(Stage::OneAtATime {
+            limit: params.memory_limit.unwrap_or(0),
+        });
+    }
     let total: usize = jobs.iter().map(|j| j.idx.len()).sum();
     let mut done: usize = jobs
         .iter()
@@ -474,32 +556,6 @@ fn grow_all(
         }
         _ => {}
     };
-    let n = jobs.len();
-    let transforms = params.symmetry.transforms().len() as u64;
-    let need: Vec<u64> = jobs
-        .iter()
-        .map(|j| growing_bytes(j.patterns, transforms))
-        .collect();
-    let threads =
-        threads_within(&need, growing_threads().min(n), params.memory_limit).map_err(
-            |largest| {
-                let patterns = jobs.iter().map(|j| j.patterns).max().unwrap_or(0);
-                let limit = params.memory_limit.unwrap_or(0);
-                Error::training(format!(
-                "growing would need up to {} MiB for its largest tree ({patterns} window patterns \
-                 at most{}), over the memory limit of {} MiB: raise the limit (training.memory_mb, \
-                 train --memory-mb) or train on fewer frames{}",
-                largest.div_ceil(MIB),
-                if transforms > 1 {
-                    format!(", each under {transforms} transforms")
-                } else {
-                    String::new()
-                },
-                limit / MIB,
-                if transforms > 1 { ", or without the symmetry" } else { "" },
-            ))
-            },
-        )?;
     if threads <= 1 {
         let mut out = Vec::with_capacity(n);
         for job in jobs {
@@ -788,7 +844,7 @@ fn train_inner(
                 store: Source::Frames,
             });
         }
-        let mut grown = grow_all(frames, jobs, params, progress, stop)?;
+        let mut grown = grow_all(frames, jobs, 0, params, progress, stop)?;
         let last = grown.remove(0);
         if stop() {
             return Err(stopped());
@@ -829,7 +885,14 @@ fn train_inner(
             store: given.take().map_or(Source::Frames, Source::Store),
             patterns: patterns(&grow_idx),
         };
-        grow_all(frames, vec![job], params, progress, stop)?.remove(0)
+        if params.refit {
+            // The refit tree grows on every frame beside this one: it must
+            // fit too, before anything grows.
+            let all: u64 = frames.iter().map(|f| f.known_pixels()).sum();
+            let first = tree_bytes(patterns(&grow_idx), params.max_nodes);
+            memory_plan(&[all], first, 1, params)?;
+        }
+        grow_all(frames, vec![job], 0, params, progress, stop)?.remove(0)
     };
     if stop() {
         return Err(stopped());
@@ -872,7 +935,15 @@ fn train_inner(
             store: Source::Frames,
         };
         (
-            grow_all(frames, vec![job], params, progress, stop)?.remove(0),
+            grow_all(
+                frames,
+                vec![job],
+                first.tree.nodes.len() as u64 * NODE_BYTES,
+                params,
+                progress,
+                stop,
+            )?
+            .remove(0),
             all,
         )
     } else {
@@ -1155,32 +1226,36 @@ pub(crate) mod tests {
         assert!(over > kept, "{over} pixels over the threshold, {kept} kept");
     }
 
-    /// Under a symmetry every frame also grows and tunes transformed: the
-    /// model says so and reports the pixels labelled, not their copies;
-    /// The memory bound: each tree's bound is its most distinct patterns
-    /// times the bytes it holds per pattern (an entry is 32 bytes: the
-    /// store file format above); trees grow two at a time only when the
-    /// two largest bounds fit the limit together, one at a time when only
-    /// the largest fits alone, and not at all otherwise.
+    /// The memory bound: a store's bound is its most distinct patterns
+    /// times the bytes it holds per pattern, plus the fixed table (an entry
+    /// is 32 bytes: the store file format above); a tree's, twice its
+    /// patterns (a leaf has one at least) in nodes, at most `max_nodes`.
+    /// Trees grow two at a time only when the two largest stores fit the
+    /// limit together beside the trees, one at a time when only the
+    /// largest fits, and not at all otherwise.
     #[test]
     fn the_memory_limit_chooses_how_many_trees_grow_at_once() {
-        assert_eq!(growing_bytes(1000, 1), 48_000);
-        assert_eq!(growing_bytes(1000, 8), 288_000);
+        assert_eq!(growing_bytes(1000, 1), 64_000 + 16 * MIB);
+        assert_eq!(growing_bytes(1000, 8), 64_000 + 16 * MIB);
+        assert_eq!(growing_bytes(10_000_000, 8), 2_880_000_000);
         assert_eq!(growing_bytes(u64::MAX, 8), u64::MAX);
-        let need = [300, 200, 200, 100];
-        assert_eq!(threads_within(&need, 2, None), Ok(2));
-        assert_eq!(threads_within(&need, 2, Some(500)), Ok(2));
-        assert_eq!(threads_within(&need, 2, Some(499)), Ok(1));
-        assert_eq!(threads_within(&need, 2, Some(300)), Ok(1));
-        assert_eq!(threads_within(&need, 2, Some(299)), Err(300));
-        assert_eq!(threads_within(&need, 1, Some(300)), Ok(1));
-        assert_eq!(threads_within(&[], 2, Some(1)), Ok(2));
+        assert_eq!(tree_bytes(1000, 1 << 20), 128_000);
+        assert_eq!(tree_bytes(10_000_000, 1 << 20), 64 * MIB);
+        let stores = [300, 200, 200, 100];
+        assert_eq!(threads_within(&stores, 50, 2, None), Ok(2));
+        assert_eq!(threads_within(&stores, 50, 2, Some(550)), Ok(2));
+        assert_eq!(threads_within(&stores, 50, 2, Some(549)), Ok(1));
+        assert_eq!(threads_within(&stores, 50, 2, Some(350)), Ok(1));
+        assert_eq!(threads_within(&stores, 50, 2, Some(349)), Err(350));
+        assert_eq!(threads_within(&stores, 50, 1, Some(350)), Ok(1));
+        assert_eq!(threads_within(&[], 0, 2, Some(1)), Ok(2));
     }
 
     /// Under a limit that lets only one tree grow at a time, training
-    /// gives the same model byte for byte, from frames and from a store;
-    /// under one that no tree fits, it stops before growing with an error
-    /// that names the estimate and the limit, and a limit of 0 is refused.
+    /// says so and gives the same model byte for byte, from frames and
+    /// from a store; under one that no tree fits, it stops before growing
+    /// with an error that names the bound and the limit; a limit of 0 is
+    /// refused.
     #[test]
     fn a_memory_limit_grows_one_tree_at_a_time_or_stops_with_a_clear_error() {
         use crate::synth::LoomParams;
@@ -1189,17 +1264,34 @@ pub(crate) mod tests {
             height: 64,
             ..LoomParams::standard()
         };
+        // Every one of these frames has defects: cross-fitting, four trees.
         let frames = crate::suite::frames("m", &lp, 4, 6);
-        let free = train(&frames, &TrainParams::default(), &mut |_| {}).unwrap();
-        // 6 frames of 64x64: the final tree's bound is 6 x 4096 x 48
-        // bytes, a fold's 4 x 4096 x 48; together they exceed it.
-        let alone = growing_bytes(6 * 4096, 1);
+        let stages = |p: &TrainParams| {
+            let mut limits = Vec::new();
+            let m = train(&frames, p, &mut |s| {
+                if let Stage::OneAtATime { limit } = s {
+                    limits.push(limit);
+                }
+            });
+            (m, limits)
+        };
+        let (free, limits) = stages(&TrainParams::default());
+        let free = free.unwrap();
+        assert!(limits.is_empty());
+        // The final tree's store holds at most its 6 x 4096 pixels; every
+        // frame grows in the final tree and in two of the three folds'.
+        let px = 6 * 4096;
+        let held = tree_bytes(3 * px, TrainParams::default().max_nodes);
+        let alone = held + growing_bytes(px, 1);
         let one = TrainParams {
             memory_limit: Some(alone),
             ..TrainParams::default()
         };
-        let a = train(&frames, &one, &mut |_| {}).unwrap();
-        assert_eq!(a.to_json(), free.to_json());
+        let (a, limits) = stages(&one);
+        assert_eq!(a.unwrap().to_json(), free.to_json());
+        if growing_threads() > 1 {
+            assert_eq!(limits, vec![alone]);
+        }
         let mut all = LabelStore::new(one.window);
         for f in &frames {
             all.add_labelled(f).unwrap();
@@ -1212,7 +1304,9 @@ pub(crate) mod tests {
         };
         let e = train(&frames, &tight, &mut |_| {}).unwrap_err().to_string();
         assert!(
-            e.contains("memory limit") && e.contains("24576 window patterns"),
+            e.contains(&format!("need up to {} MiB", alone.div_ceil(MIB)))
+                && e.contains("24576 window patterns")
+                && e.contains("memory limit"),
             "{e}"
         );
         let square = TrainParams {
@@ -1226,13 +1320,37 @@ pub(crate) mod tests {
             e.contains("8 transforms") && e.contains("without the symmetry"),
             "{e}"
         );
+        // Tuned on a holdout share (one frame of six) and grown again on
+        // all: the refit tree is checked before the first tree grows, which
+        // alone fits.
+        let first =
+            tree_bytes(5 * 4096, TrainParams::default().max_nodes) + growing_bytes(5 * 4096, 1);
+        let refit = TrainParams {
+            folds: 0,
+            refit: true,
+            memory_limit: Some(first),
+            ..TrainParams::default()
+        };
+        let mut grew = false;
+        let e = train(&frames, &refit, &mut |s| grew |= matches!(s, Stage::Grow))
+            .unwrap_err()
+            .to_string();
+        assert!(e.contains("memory limit") && !grew, "{e}");
+        let no_refit = TrainParams {
+            refit: false,
+            ..refit
+        };
+        assert!(train(&frames, &no_refit, &mut |_| {}).is_ok());
         let zero = TrainParams {
             memory_limit: Some(0),
             ..TrainParams::default()
         };
-        assert!(train(&frames, &zero, &mut |_| {}).is_err());
+        let e = train(&frames, &zero, &mut |_| {}).unwrap_err().to_string();
+        assert!(e.contains("memory limit must be above 0"), "{e}");
     }
 
+    /// Under a symmetry every frame also grows and tunes transformed: the
+    /// model says so and reports the pixels labelled, not their copies;
     /// from frames or from a store of them (the daemon's retrain) it is
     /// the same model; and the file is a version 4 one that loads back.
     #[test]
