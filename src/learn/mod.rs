@@ -137,7 +137,7 @@ pub struct TrainParams {
     /// turned this way, for growing and for tuning ([`symmetry`]).
     pub symmetry: Symmetry,
     /// Most memory, in bytes, that growing the trees may take, by the
-    /// estimate of [`growing_bytes`]: trees that would not fit two at a
+    /// bounds of [`growing_bytes`] and [`tree_bytes`]: trees that would not fit two at a
     /// time grow one at a time, and training that would not fit even so
     /// stops before it grows with an error naming the estimate. `None`: no
     /// limit.
@@ -810,10 +810,10 @@ fn train_inner(
     // labelled pixels, and no more than the given store of all growing
     // frames, which holds every pattern of theirs.
     let given_patterns = given.as_ref().map(|s| s.unique() as u64);
-    let patterns = |idx: &[usize]| -> u64 {
-        let pixels: u64 = idx.iter().map(|&i| frames[i].known_pixels()).sum();
-        given_patterns.map_or(pixels, |g| pixels.min(g))
-    };
+    let pixels = |idx: &[usize]| -> u64 { idx.iter().map(|&i| frames[i].known_pixels()).sum() };
+    let patterns =
+        |idx: &[usize]| -> u64 { given_patterns.map_or(pixels(idx), |g| pixels(idx).min(g)) };
+    let every: Vec<usize> = (0..frames.len()).collect();
     let fixed = tune::Fixed {
         threshold: params.threshold,
         min_area: params.min_area,
@@ -888,9 +888,8 @@ fn train_inner(
         if params.refit {
             // The refit tree grows on every frame beside this one: it must
             // fit too, before anything grows.
-            let all: u64 = frames.iter().map(|f| f.known_pixels()).sum();
             let first = tree_bytes(patterns(&grow_idx), params.max_nodes);
-            memory_plan(&[all], first, 1, params)?;
+            memory_plan(&[pixels(&every)], first, 1, params)?;
         }
         grow_all(frames, vec![job], 0, params, progress, stop)?.remove(0)
     };
@@ -927,11 +926,10 @@ fn train_inner(
     }
     let refit = params.refit && !cross && choice.is_some();
     let (final_grown, used_idx) = if refit {
-        let all: Vec<usize> = (0..frames.len()).collect();
         // Held-out frames too: bounded by the pixels alone.
         let job = GrowJob {
-            patterns: all.iter().map(|&i| frames[i].known_pixels()).sum(),
-            idx: all.clone(),
+            patterns: pixels(&every),
+            idx: every.clone(),
             store: Source::Frames,
         };
         (
@@ -944,7 +942,7 @@ fn train_inner(
                 stop,
             )?
             .remove(0),
-            all,
+            every,
         )
     } else {
         (first, grow_idx.clone())
