@@ -10,6 +10,14 @@
 //! are pure functions of `(setting, seed, count)` ([`crate::synth`]), so a
 //! figure reported from the suite is reproduced bit for bit by the same
 //! command. Pure computation: files are the command's business.
+//!
+//! One draw of frames is not enough to tell two trainings apart: with 20
+//! training frames a setting's object F1 moves by up to 0.2 from one draw
+//! to the next, more than its bootstrap standard error over the test
+//! frames says, since that error holds the model fixed. [`draw_seeds`] and
+//! [`summarise`] repeat the suite on independent draws (training and test
+//! frames new each time, never shared between draws) and report the mean
+//! and spread, so the spread of training itself is in the figure.
 
 use std::time::Instant;
 
@@ -175,6 +183,110 @@ pub fn evaluate(name: &str, p: &LoomParams, sizes: Sizes, params: &TrainParams) 
 
 pub use crate::learn::tune::bootstrap_se;
 
+/// The training seeds of `draws` independent draws from `seed`: draw `i`
+/// trains on seed `seed + 2i` and tests on the next, so no two draws share
+/// a frame, and draw 0 is the single-draw suite's.
+pub fn draw_seeds(seed: u64, draws: usize) -> Vec<u64> {
+    (0..draws as u64)
+        .map(|i| seed.wrapping_add(2 * i))
+        .collect()
+}
+
+/// Mean and spread of one figure over the draws.
+#[derive(Clone, Copy, Debug, PartialEq, Serialize)]
+pub struct Spread {
+    pub mean: f64,
+    /// The sample standard deviation (divisor n - 1); 0 for one value.
+    pub sd: f64,
+    pub min: f64,
+    pub max: f64,
+}
+
+impl Spread {
+    /// The spread of `values`; all zero when there are none.
+    pub fn of(values: &[f64]) -> Spread {
+        if values.is_empty() {
+            return Spread {
+                mean: 0.0,
+                sd: 0.0,
+                min: 0.0,
+                max: 0.0,
+            };
+        }
+        let n = values.len() as f64;
+        let mean = values.iter().sum::<f64>() / n;
+        let sd = if values.len() > 1 {
+            (values.iter().map(|v| (v - mean) * (v - mean)).sum::<f64>() / (n - 1.0)).sqrt()
+        } else {
+            0.0
+        };
+        Spread {
+            mean,
+            sd,
+            min: values.iter().copied().fold(f64::INFINITY, f64::min),
+            max: values.iter().copied().fold(f64::NEG_INFINITY, f64::max),
+        }
+    }
+}
+
+/// One setting over the draws.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct SettingSpread {
+    pub setting: String,
+    pub object_f1: Spread,
+    pub pixel_f1: Spread,
+}
+
+/// The suite over several draws.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct Summary {
+    pub draws: usize,
+    /// Per setting, in the order of the first draw.
+    pub settings: Vec<SettingSpread>,
+    /// The macro object F1 of each draw, summarised.
+    pub macro_object_f1: Spread,
+    /// The standard error of the mean macro object F1: its spread over the
+    /// draws divided by the square root of their number (0 for one draw).
+    pub macro_object_f1_se: f64,
+    pub macro_pixel_f1: Spread,
+}
+
+/// Summarises the outcomes of several draws, each a run over the same
+/// settings (a setting missing from a draw is summarised over the draws
+/// that have it).
+pub fn summarise(draws: &[Vec<Outcome>]) -> Summary {
+    let first = draws.first().map(|d| d.as_slice()).unwrap_or(&[]);
+    let settings = first
+        .iter()
+        .map(|o| {
+            let of = |f: fn(&Outcome) -> f64| -> Vec<f64> {
+                draws
+                    .iter()
+                    .filter_map(|d| d.iter().find(|x| x.setting == o.setting).map(f))
+                    .collect()
+            };
+            SettingSpread {
+                setting: o.setting.clone(),
+                object_f1: Spread::of(&of(|x| x.object_f1)),
+                pixel_f1: Spread::of(&of(|x| x.pixel_f1)),
+            }
+        })
+        .collect();
+    let macros: Vec<(f64, f64)> = draws.iter().map(|d| macro_f1(d)).collect();
+    let object = Spread::of(&macros.iter().map(|m| m.0).collect::<Vec<_>>());
+    Summary {
+        draws: draws.len(),
+        settings,
+        macro_object_f1_se: if draws.is_empty() {
+            0.0
+        } else {
+            object.sd / (draws.len() as f64).sqrt()
+        },
+        macro_object_f1: object,
+        macro_pixel_f1: Spread::of(&macros.iter().map(|m| m.1).collect::<Vec<_>>()),
+    }
+}
+
 /// The standard error of the macro object F1: the settings' frames are
 /// independent, so their errors add in quadrature over the count.
 pub fn macro_se(outcomes: &[Outcome]) -> f64 {
@@ -240,6 +352,75 @@ mod tests {
         };
         assert_eq!(macro_f1(&[o(1.0, 0.5), o(0.5, 0.25)]), (0.75, 0.375));
         assert_eq!(macro_f1(&[]), (0.0, 0.0));
+    }
+
+    #[test]
+    fn draws_never_share_frames_and_the_first_is_the_single_suite() {
+        assert_eq!(draw_seeds(1, 3), vec![1, 3, 5]);
+        assert_eq!(draw_seeds(7, 1), vec![7]);
+        // Training seed s and test seed s + 1 of every draw are distinct
+        // from every other draw's.
+        let used: Vec<u64> = draw_seeds(1, 5).iter().flat_map(|&s| [s, s + 1]).collect();
+        let mut sorted = used.clone();
+        sorted.sort_unstable();
+        sorted.dedup();
+        assert_eq!(sorted.len(), used.len());
+    }
+
+    #[test]
+    fn the_spread_is_the_sample_standard_deviation() {
+        // The worked example of the standard deviation article of the
+        // English Wikipedia ("Standard deviation", section "Population
+        // standard deviation of grades of eight students", from memory):
+        // 2, 4, 4, 4, 5, 5, 7, 9 have mean 5, population standard deviation
+        // 2 and sample standard deviation sqrt(32 / 7) = 2.138.
+        let s = Spread::of(&[2.0, 4.0, 4.0, 4.0, 5.0, 5.0, 7.0, 9.0]);
+        assert_eq!(s.mean, 5.0);
+        assert!((s.sd - (32.0f64 / 7.0).sqrt()).abs() < 1e-12, "{}", s.sd);
+        assert_eq!((s.min, s.max), (2.0, 9.0));
+        assert_eq!(Spread::of(&[0.7]).sd, 0.0);
+        assert_eq!(Spread::of(&[]).mean, 0.0);
+    }
+
+    #[test]
+    fn a_summary_spreads_each_setting_and_the_macro_figure_over_the_draws() {
+        let o = |name: &str, f: f64| Outcome {
+            setting: name.to_string(),
+            object: Confusion::default(),
+            pixel: Confusion::default(),
+            object_f1: f,
+            pixel_f1: f / 2.0,
+            nodes: 0,
+            depth: 0,
+            train_pixels: 0,
+            train_seconds: 0.0,
+            object_f1_se: 0.0,
+            detect_mpx_s: 0.0,
+            errors: Errors::default(),
+        };
+        let draws = vec![
+            vec![o("a", 0.9), o("b", 0.5)],
+            vec![o("a", 0.7), o("b", 0.7)],
+            vec![o("a", 0.8), o("b", 0.3)],
+        ];
+        let s = summarise(&draws);
+        assert_eq!(s.draws, 3);
+        assert_eq!(s.settings[0].setting, "a");
+        assert!((s.settings[0].object_f1.mean - 0.8).abs() < 1e-12);
+        assert!((s.settings[0].object_f1.sd - 0.1).abs() < 1e-12);
+        assert!((s.settings[1].object_f1.sd - 0.2).abs() < 1e-12);
+        assert!((s.settings[1].pixel_f1.mean - 0.25).abs() < 1e-12);
+        // Macro per draw: 0.7, 0.7, 0.55; mean 0.65, squared deviations
+        // 0.0025, 0.0025, 0.01: sd sqrt(0.015 / 2).
+        assert!((s.macro_object_f1.mean - 0.65).abs() < 1e-12);
+        let sd = (0.015f64 / 2.0).sqrt();
+        assert!((s.macro_object_f1.sd - sd).abs() < 1e-12);
+        assert!((s.macro_object_f1_se - sd / 3f64.sqrt()).abs() < 1e-12);
+        assert_eq!(s.macro_object_f1.min, 0.55);
+        // One draw: no spread.
+        let one = summarise(&draws[..1]);
+        assert_eq!((one.macro_object_f1.sd, one.macro_object_f1_se), (0.0, 0.0));
+        assert_eq!(summarise(&[]).settings, vec![]);
     }
 
     #[test]

@@ -862,3 +862,77 @@ fn the_suite_scores_each_setting_and_its_figures_are_reproducible() {
     assert_ne!(bad.code, 0);
     assert!(bad.stderr.contains("plain-fine"), "{}", bad.stderr);
 }
+
+/// Several draws: each draw is the single-draw suite of its own seeds, the
+/// draws' frames are written apart, and the summary is the mean and the
+/// sample standard deviation (divisor n - 1, as any statistics textbook
+/// defines it) of the draws' figures.
+#[test]
+fn the_suite_over_several_draws_gives_each_draw_and_their_spread() {
+    let d = Dir::new();
+    let out = d.join("draws");
+    let args = |extra: &[&str]| {
+        let mut v = vec![
+            "suite", "--only", "twill", "--train", "3", "--test", "2", "--size", "64", "--json",
+        ];
+        v.extend_from_slice(extra);
+        v.into_iter().map(String::from).collect::<Vec<_>>()
+    };
+    let run = |extra: &[&str]| {
+        let a = args(extra);
+        let a: Vec<&str> = a.iter().map(String::as_str).collect();
+        let r = burlwatch(d.path(), &a);
+        assert_eq!(r.code, 0, "{}", r.stderr);
+        serde_json::from_str::<serde_json::Value>(&r.stdout).unwrap()
+    };
+    let both = run(&["--draws", "2", "--out", out.to_str().unwrap()]);
+    let draws = both["draws"].as_array().unwrap();
+    assert_eq!(draws.len(), 2);
+    let f1 = |v: &serde_json::Value| v["settings"][0]["object_f1"].as_f64().unwrap();
+    for (draw, seed) in draws.iter().zip(["1", "3"]) {
+        assert_eq!(draw["seed"].to_string(), seed);
+        // The same figures as the suite run once from that seed.
+        let single = run(&["--seed", seed]);
+        assert_eq!(single["seed"].to_string(), seed);
+        assert_eq!(
+            draw["settings"][0]["object"],
+            single["settings"][0]["object"]
+        );
+        assert_eq!(draw["settings"][0]["pixel"], single["settings"][0]["pixel"]);
+        assert!(out.join(format!("seed-{seed}/twill/train")).is_dir());
+        assert!(out.join(format!("seed-{seed}/twill/test")).is_dir());
+    }
+    let (a, b) = (f1(&draws[0]), f1(&draws[1]));
+    let s = &both["summary"];
+    assert_eq!(s["draws"], 2);
+    let spread = &s["settings"][0]["object_f1"];
+    assert!((spread["mean"].as_f64().unwrap() - (a + b) / 2.0).abs() < 1e-12);
+    // Two values: the sample standard deviation is |a - b| / sqrt(2).
+    let sd = (a - b).abs() / 2f64.sqrt();
+    assert!((spread["sd"].as_f64().unwrap() - sd).abs() < 1e-12);
+    assert_eq!(spread["min"].as_f64().unwrap(), a.min(b));
+    // One setting: the macro figure of a draw is that setting's.
+    assert!((s["macro_object_f1_se"].as_f64().unwrap() - sd / 2f64.sqrt()).abs() < 1e-12);
+    // The text form ends with the summary.
+    let text = burlwatch(
+        d.path(),
+        &[
+            "suite", "--only", "twill", "--train", "3", "--test", "2", "--size", "64", "--draws",
+            "2",
+        ],
+    );
+    assert_eq!(text.code, 0, "{}", text.stderr);
+    assert!(
+        text.stdout
+            .contains("draw 2 of 2: training seed 3, test seed 4"),
+        "{}",
+        text.stdout
+    );
+    assert!(text.stdout.contains("over 2 draws"), "{}", text.stdout);
+    // Out of range.
+    for n in ["0", "21"] {
+        let bad = burlwatch(d.path(), &["suite", "--draws", n]);
+        assert_ne!(bad.code, 0);
+        assert!(bad.stderr.contains("--draws"), "{}", bad.stderr);
+    }
+}

@@ -4,14 +4,15 @@
 //! pixel F1, the object F1's standard error, and the object errors by kind
 //! (missed, unmatched, partial, false alarms). `--out` also writes each
 //! setting's frames (as `generate` would), so `train` and `eval` reproduce
-//! any one of them by hand.
+//! any one of them by hand. `--draws N` repeats all of it on N independent
+//! draws of frames and adds each figure's mean and spread over them.
 
 use std::path::PathBuf;
 
 use anyhow::{bail, Context, Result};
 use serde::Serialize;
 
-use burlwatch::suite::{self, Outcome, Sizes};
+use burlwatch::suite::{self, Outcome, Sizes, Summary};
 
 use super::ConfigArg;
 
@@ -30,10 +31,16 @@ pub struct SuiteArgs {
     /// Seed of the training frames (the test frames use the next one).
     #[arg(long, default_value_t = 1)]
     seed: u64,
+    /// Independent draws of training and test frames (1 to 20): draw i
+    /// uses seeds SEED + 2i and SEED + 2i + 1. With more than one, each
+    /// figure's mean and spread over the draws follows the draws' tables.
+    #[arg(long, default_value_t = 1)]
+    draws: usize,
     /// Frame width and height in pixels (default: the settings' 512).
     #[arg(long)]
     size: Option<usize>,
-    /// Also write each setting's frames to OUT/NAME/train and OUT/NAME/test.
+    /// Also write each setting's frames to OUT/NAME/train and OUT/NAME/test
+    /// (with several draws, OUT/seed-S/NAME/...).
     #[arg(long)]
     out: Option<PathBuf>,
     /// Print the results as JSON.
@@ -45,11 +52,22 @@ pub struct SuiteArgs {
 
 #[derive(Serialize)]
 struct Json<'a> {
+    /// The draw's training seed (its test frames use the next one).
+    seed: u64,
     settings: &'a [Outcome],
     macro_object_f1: f64,
     macro_object_f1_se: f64,
     macro_pixel_f1: f64,
 }
+
+#[derive(Serialize)]
+struct DrawsJson<'a> {
+    draws: Vec<Json<'a>>,
+    summary: Summary,
+}
+
+/// Most draws one command runs (each is a whole suite).
+const MAX_DRAWS: usize = 20;
 
 pub fn run(a: SuiteArgs) -> Result<i32> {
     let cfg = a.config.load()?;
@@ -68,16 +86,122 @@ pub fn run(a: SuiteArgs) -> Result<i32> {
     if a.train == 0 || a.test == 0 {
         bail!("--train and --test must be at least 1");
     }
+    if !(1..=MAX_DRAWS).contains(&a.draws) {
+        bail!("--draws {} must be between 1 and {MAX_DRAWS}", a.draws);
+    }
     if let Some(s) = a.size {
         if !(32..=4096).contains(&s) {
             bail!("--size {s} must be between 32 and 4096");
         }
     }
-    let sizes = Sizes {
-        train: a.train,
-        test: a.test,
-        seed: a.seed,
-    };
+    let seeds = suite::draw_seeds(a.seed, a.draws);
+    let mut draws = Vec::with_capacity(seeds.len());
+    for &seed in &seeds {
+        if !a.json && seeds.len() > 1 {
+            if !draws.is_empty() {
+                out!("");
+            }
+            out!(
+                "draw {} of {}: training seed {seed}, test seed {}",
+                draws.len() + 1,
+                seeds.len(),
+                seed.wrapping_add(1)
+            );
+        }
+        let out = a.out.as_ref().map(|dir| {
+            if seeds.len() > 1 {
+                dir.join(format!("seed-{seed}"))
+            } else {
+                dir.clone()
+            }
+        });
+        let sizes = Sizes {
+            train: a.train,
+            test: a.test,
+            seed,
+        };
+        draws.push(run_draw(&a, &all, sizes, out.as_deref(), &params)?);
+    }
+    if a.json {
+        fn one<'a>((seed, outcomes): (&u64, &'a Vec<Outcome>)) -> Json<'a> {
+            let (object, pixel) = suite::macro_f1(outcomes);
+            Json {
+                seed: *seed,
+                settings: outcomes,
+                macro_object_f1: object,
+                macro_object_f1_se: suite::macro_se(outcomes),
+                macro_pixel_f1: pixel,
+            }
+        }
+        let text = if draws.len() == 1 {
+            serde_json::to_string_pretty(&one((&seeds[0], &draws[0])))?
+        } else {
+            serde_json::to_string_pretty(&DrawsJson {
+                draws: seeds.iter().zip(&draws).map(one).collect(),
+                summary: suite::summarise(&draws),
+            })?
+        };
+        out!("{text}");
+    } else if draws.len() > 1 {
+        print_summary(&suite::summarise(&draws))?;
+    }
+    Ok(0)
+}
+
+/// Over the draws: each setting's object F1 (mean, sample standard
+/// deviation, lowest, highest) and mean pixel F1, then the macro figure's.
+fn print_summary(s: &Summary) -> Result<()> {
+    out!("");
+    out!(
+        "over {} draws: mean, standard deviation, lowest and highest",
+        s.draws
+    );
+    out!(
+        "{:<14} {:>11} {:>6} {:>6} {:>6} {:>11}",
+        "setting",
+        "obj F1 mean",
+        "sd",
+        "min",
+        "max",
+        "px F1 mean"
+    );
+    for x in &s.settings {
+        out!(
+            "{:<14} {:>11.3} {:>6.3} {:>6.3} {:>6.3} {:>11.3}",
+            x.setting,
+            x.object_f1.mean,
+            x.object_f1.sd,
+            x.object_f1.min,
+            x.object_f1.max,
+            x.pixel_f1.mean
+        );
+    }
+    let m = &s.macro_object_f1;
+    out!(
+        "{:<14} {:>11.3} {:>6.3} {:>6.3} {:>6.3} {:>11.3}",
+        "macro",
+        m.mean,
+        m.sd,
+        m.min,
+        m.max,
+        s.macro_pixel_f1.mean
+    );
+    out!(
+        "standard error of the mean macro object F1: {:.3}",
+        s.macro_object_f1_se
+    );
+    Ok(())
+}
+
+/// One draw: every chosen setting trained and scored, its table printed
+/// unless the output is JSON.
+fn run_draw(
+    a: &SuiteArgs,
+    all: &[(&'static str, burlwatch::synth::LoomParams)],
+    sizes: Sizes,
+    out: Option<&std::path::Path>,
+    params: &burlwatch::learn::TrainParams,
+) -> Result<Vec<Outcome>> {
     let mut outcomes = Vec::new();
     if !a.json {
         out!(
@@ -97,7 +221,7 @@ pub fn run(a: SuiteArgs) -> Result<i32> {
             "train s"
         );
     }
-    for (name, mut p) in all {
+    for &(name, mut p) in all {
         if !a.only.is_empty() && !a.only.iter().any(|n| n == name) {
             continue;
         }
@@ -105,7 +229,7 @@ pub fn run(a: SuiteArgs) -> Result<i32> {
             p.width = s;
             p.height = s;
         }
-        if let Some(dir) = &a.out {
+        if let Some(dir) = out {
             for (part, seed, count) in [
                 ("train", sizes.seed, sizes.train),
                 ("test", sizes.seed.wrapping_add(1), sizes.test),
@@ -121,7 +245,7 @@ pub fn run(a: SuiteArgs) -> Result<i32> {
             }
         }
         let o =
-            suite::evaluate(name, &p, sizes, &params).with_context(|| format!("setting {name}"))?;
+            suite::evaluate(name, &p, sizes, params).with_context(|| format!("setting {name}"))?;
         if !a.json {
             out!(
                 "{:<14} {:>6.3} {:>6.3} {:>6.3} ({:.3}) {:>6.3} {:>6} {:>9} {:>7} {:>6} {:>6} {:>5} {:>6.0} {:>7.1}",
@@ -143,16 +267,8 @@ pub fn run(a: SuiteArgs) -> Result<i32> {
         }
         outcomes.push(o);
     }
-    let (object, pixel) = suite::macro_f1(&outcomes);
-    if a.json {
-        let text = serde_json::to_string_pretty(&Json {
-            settings: &outcomes,
-            macro_object_f1: object,
-            macro_object_f1_se: suite::macro_se(&outcomes),
-            macro_pixel_f1: pixel,
-        })?;
-        out!("{text}");
-    } else {
+    if !a.json {
+        let (object, pixel) = suite::macro_f1(&outcomes);
         out!(
             "{:<14} {:>6} {:>6} {:>6.3} ({:.3}) {:>6.3}",
             "macro",
@@ -163,5 +279,5 @@ pub fn run(a: SuiteArgs) -> Result<i32> {
             pixel
         );
     }
-    Ok(0)
+    Ok(outcomes)
 }
