@@ -12,7 +12,7 @@
 //! command. Pure computation: files are the command's business.
 //!
 //! One draw of frames is not enough to tell two trainings apart: with 20
-//! training frames a setting's object F1 moves by up to 0.2 from one draw
+//! training frames a setting's object F1 moves by up to 0.3 from one draw
 //! to the next, more than its bootstrap standard error over the test
 //! frames says, since that error holds the model fixed. [`draw_seeds`] and
 //! [`summarise`] repeat the suite on independent draws (training and test
@@ -198,6 +198,9 @@ pub struct Spread {
     pub mean: f64,
     /// The sample standard deviation (divisor n - 1); 0 for one value.
     pub sd: f64,
+    /// The standard error of the mean: `sd` over the square root of the
+    /// count (0 for one value).
+    pub se: f64,
     pub min: f64,
     pub max: f64,
 }
@@ -209,6 +212,7 @@ impl Spread {
             return Spread {
                 mean: 0.0,
                 sd: 0.0,
+                se: 0.0,
                 min: 0.0,
                 max: 0.0,
             };
@@ -223,6 +227,7 @@ impl Spread {
         Spread {
             mean,
             sd,
+            se: sd / n.sqrt(),
             min: values.iter().copied().fold(f64::INFINITY, f64::min),
             max: values.iter().copied().fold(f64::NEG_INFINITY, f64::max),
         }
@@ -243,11 +248,9 @@ pub struct Summary {
     pub draws: usize,
     /// Per setting, in the order of the first draw.
     pub settings: Vec<SettingSpread>,
-    /// The macro object F1 of each draw, summarised.
+    /// The macro object F1 of each draw, summarised (its `se` is the
+    /// standard error of the mean over the draws).
     pub macro_object_f1: Spread,
-    /// The standard error of the mean macro object F1: its spread over the
-    /// draws divided by the square root of their number (0 for one draw).
-    pub macro_object_f1_se: f64,
     pub macro_pixel_f1: Spread,
 }
 
@@ -277,11 +280,6 @@ pub fn summarise(draws: &[Vec<Outcome>]) -> Summary {
     Summary {
         draws: draws.len(),
         settings,
-        macro_object_f1_se: if draws.is_empty() {
-            0.0
-        } else {
-            object.sd / (draws.len() as f64).sqrt()
-        },
         macro_object_f1: object,
         macro_pixel_f1: Spread::of(&macros.iter().map(|m| m.1).collect::<Vec<_>>()),
     }
@@ -334,14 +332,14 @@ mod tests {
         assert_eq!(frames(name, &p, 1, 4)[3].frame, a[3].frame);
     }
 
-    #[test]
-    fn the_macro_average_counts_each_setting_once() {
-        let o = |f: f64, p: f64| Outcome {
-            setting: String::new(),
+    /// An outcome with only its name and F1 figures set.
+    fn outcome(setting: &str, object_f1: f64, pixel_f1: f64) -> Outcome {
+        Outcome {
+            setting: setting.to_string(),
             object: Confusion::default(),
             pixel: Confusion::default(),
-            object_f1: f,
-            pixel_f1: p,
+            object_f1,
+            pixel_f1,
             nodes: 0,
             depth: 0,
             train_pixels: 0,
@@ -349,7 +347,12 @@ mod tests {
             object_f1_se: 0.0,
             detect_mpx_s: 0.0,
             errors: Errors::default(),
-        };
+        }
+    }
+
+    #[test]
+    fn the_macro_average_counts_each_setting_once() {
+        let o = |f: f64, p: f64| outcome("", f, p);
         assert_eq!(macro_f1(&[o(1.0, 0.5), o(0.5, 0.25)]), (0.75, 0.375));
         assert_eq!(macro_f1(&[]), (0.0, 0.0));
     }
@@ -373,31 +376,27 @@ mod tests {
         // English Wikipedia ("Standard deviation", section "Population
         // standard deviation of grades of eight students", from memory):
         // 2, 4, 4, 4, 5, 5, 7, 9 have mean 5, population standard deviation
-        // 2 and sample standard deviation sqrt(32 / 7) = 2.138.
+        // 2 and sample standard deviation sqrt(32 / 7) = 2.138 (the divisor
+        // n - 1, as the NIST/SEMATECH e-Handbook of Statistical Methods,
+        // section 1.3.5.6, defines it). The standard error of a mean is the
+        // sample standard deviation over the square root of n (the same
+        // handbook, section 1.3.5.2, from memory).
         let s = Spread::of(&[2.0, 4.0, 4.0, 4.0, 5.0, 5.0, 7.0, 9.0]);
         assert_eq!(s.mean, 5.0);
         assert!((s.sd - (32.0f64 / 7.0).sqrt()).abs() < 1e-12, "{}", s.sd);
+        assert!(
+            (s.se - (32.0f64 / 7.0 / 8.0).sqrt()).abs() < 1e-12,
+            "{}",
+            s.se
+        );
         assert_eq!((s.min, s.max), (2.0, 9.0));
-        assert_eq!(Spread::of(&[0.7]).sd, 0.0);
+        assert_eq!((Spread::of(&[0.7]).sd, Spread::of(&[0.7]).se), (0.0, 0.0));
         assert_eq!(Spread::of(&[]).mean, 0.0);
     }
 
     #[test]
     fn a_summary_spreads_each_setting_and_the_macro_figure_over_the_draws() {
-        let o = |name: &str, f: f64| Outcome {
-            setting: name.to_string(),
-            object: Confusion::default(),
-            pixel: Confusion::default(),
-            object_f1: f,
-            pixel_f1: f / 2.0,
-            nodes: 0,
-            depth: 0,
-            train_pixels: 0,
-            train_seconds: 0.0,
-            object_f1_se: 0.0,
-            detect_mpx_s: 0.0,
-            errors: Errors::default(),
-        };
+        let o = |name: &str, f: f64| outcome(name, f, f / 2.0);
         let draws = vec![
             vec![o("a", 0.9), o("b", 0.5)],
             vec![o("a", 0.7), o("b", 0.7)],
@@ -415,12 +414,18 @@ mod tests {
         assert!((s.macro_object_f1.mean - 0.65).abs() < 1e-12);
         let sd = (0.015f64 / 2.0).sqrt();
         assert!((s.macro_object_f1.sd - sd).abs() < 1e-12);
-        assert!((s.macro_object_f1_se - sd / 3f64.sqrt()).abs() < 1e-12);
-        assert_eq!(s.macro_object_f1.min, 0.55);
+        assert!((s.macro_object_f1.se - sd / 3f64.sqrt()).abs() < 1e-12);
+        assert_eq!((s.macro_object_f1.min, s.macro_object_f1.max), (0.55, 0.7));
         // One draw: no spread.
         let one = summarise(&draws[..1]);
-        assert_eq!((one.macro_object_f1.sd, one.macro_object_f1_se), (0.0, 0.0));
+        assert_eq!((one.macro_object_f1.sd, one.macro_object_f1.se), (0.0, 0.0));
         assert_eq!(summarise(&[]).settings, vec![]);
+        // A setting missing from a draw is summarised over the draws that
+        // have it.
+        let gappy = summarise(&[vec![o("a", 0.9), o("b", 0.5)], vec![o("a", 0.7)]]);
+        assert_eq!(gappy.settings[1].object_f1.mean, 0.5);
+        assert_eq!(gappy.settings[1].object_f1.sd, 0.0);
+        assert!((gappy.settings[0].object_f1.mean - 0.8).abs() < 1e-12);
     }
 
     #[test]

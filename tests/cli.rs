@@ -865,8 +865,8 @@ fn the_suite_scores_each_setting_and_its_figures_are_reproducible() {
 
 /// Several draws: each draw is the single-draw suite of its own seeds, the
 /// draws' frames are written apart, and the summary is the mean and the
-/// sample standard deviation (divisor n - 1, as any statistics textbook
-/// defines it) of the draws' figures.
+/// sample standard deviation (divisor n - 1: NIST/SEMATECH e-Handbook of
+/// Statistical Methods, section 1.3.5.6) of the draws' figures.
 #[test]
 fn the_suite_over_several_draws_gives_each_draw_and_their_spread() {
     let d = Dir::new();
@@ -902,7 +902,43 @@ fn the_suite_over_several_draws_gives_each_draw_and_their_spread() {
         assert!(out.join(format!("seed-{seed}/twill/train")).is_dir());
         assert!(out.join(format!("seed-{seed}/twill/test")).is_dir());
     }
+    // Nothing outside the draws' folders.
+    assert!(!out.join("twill").exists());
+    // Draw 2's test frames are the test seed's (4) frames, as `generate`
+    // writes them.
+    let gen = d.join("gen");
+    let g = burlwatch(
+        d.path(),
+        &[
+            "generate",
+            "--out",
+            gen.to_str().unwrap(),
+            "--count",
+            "2",
+            "--seed",
+            "4",
+            "--preset",
+            "twill",
+            "--width",
+            "64",
+            "--height",
+            "64",
+        ],
+    );
+    assert_eq!(g.code, 0, "{}", g.stderr);
+    let first = |dir: &std::path::Path| {
+        let mut names: Vec<_> = std::fs::read_dir(dir)
+            .unwrap()
+            .map(|e| e.unwrap().path())
+            .filter(|p| p.to_string_lossy().ends_with("0000.pbm"))
+            .collect();
+        names.sort();
+        std::fs::read(&names[0]).unwrap()
+    };
+    assert_eq!(first(&out.join("seed-3/twill/test")), first(&gen));
     let (a, b) = (f1(&draws[0]), f1(&draws[1]));
+    // The two draws differ, so the spread below is not zero by accident.
+    assert_ne!(a, b);
     let s = &both["summary"];
     assert_eq!(s["draws"], 2);
     let spread = &s["settings"][0]["object_f1"];
@@ -911,8 +947,12 @@ fn the_suite_over_several_draws_gives_each_draw_and_their_spread() {
     let sd = (a - b).abs() / 2f64.sqrt();
     assert!((spread["sd"].as_f64().unwrap() - sd).abs() < 1e-12);
     assert_eq!(spread["min"].as_f64().unwrap(), a.min(b));
-    // One setting: the macro figure of a draw is that setting's.
-    assert!((s["macro_object_f1_se"].as_f64().unwrap() - sd / 2f64.sqrt()).abs() < 1e-12);
+    assert_eq!(spread["max"].as_f64().unwrap(), a.max(b));
+    // One setting: the macro figure of a draw is that setting's; its
+    // standard error is the spread over the square root of the draws.
+    let m = &s["macro_object_f1"];
+    assert!((m["sd"].as_f64().unwrap() - sd).abs() < 1e-12);
+    assert!((m["se"].as_f64().unwrap() - sd / 2f64.sqrt()).abs() < 1e-12);
     // The text form ends with the summary.
     let text = burlwatch(
         d.path(),
@@ -931,7 +971,13 @@ fn the_suite_over_several_draws_gives_each_draw_and_their_spread() {
     assert!(text.stdout.contains("over 2 draws"), "{}", text.stdout);
     // Out of range.
     for n in ["0", "21"] {
-        let bad = burlwatch(d.path(), &["suite", "--draws", n]);
+        let bad = burlwatch(
+            d.path(),
+            &[
+                "suite", "--only", "twill", "--train", "1", "--test", "1", "--size", "32",
+                "--draws", n,
+            ],
+        );
         assert_ne!(bad.code, 0);
         assert!(bad.stderr.contains("--draws"), "{}", bad.stderr);
     }

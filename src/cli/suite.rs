@@ -148,18 +148,19 @@ pub fn run(a: SuiteArgs) -> Result<i32> {
     Ok(0)
 }
 
-/// Over the draws: each setting's object F1 (mean, sample standard
-/// deviation, lowest, highest) and mean pixel F1, then the macro figure's.
+/// Over the draws: each setting's object F1 (mean, its standard error,
+/// sample standard deviation, lowest, highest) and mean pixel F1, then the
+/// macro figure's.
 fn print_summary(s: &Summary) -> Result<()> {
     out!("");
     out!(
-        "over {} draws: mean, standard deviation, lowest and highest",
+        "over {} draws: mean (its standard error), standard deviation, lowest and highest",
         s.draws
     );
     out!(
-        "{:<14} {:>11} {:>6} {:>6} {:>6} {:>11}",
+        "{:<14} {:>19} {:>6} {:>6} {:>6} {:>11}",
         "setting",
-        "obj F1 mean",
+        "obj F1 mean (se)",
         "sd",
         "min",
         "max",
@@ -167,9 +168,10 @@ fn print_summary(s: &Summary) -> Result<()> {
     );
     for x in &s.settings {
         out!(
-            "{:<14} {:>11.3} {:>6.3} {:>6.3} {:>6.3} {:>11.3}",
+            "{:<14} {:>11.3} ({:.3}) {:>6.3} {:>6.3} {:>6.3} {:>11.3}",
             x.setting,
             x.object_f1.mean,
+            x.object_f1.se,
             x.object_f1.sd,
             x.object_f1.min,
             x.object_f1.max,
@@ -178,17 +180,14 @@ fn print_summary(s: &Summary) -> Result<()> {
     }
     let m = &s.macro_object_f1;
     out!(
-        "{:<14} {:>11.3} {:>6.3} {:>6.3} {:>6.3} {:>11.3}",
+        "{:<14} {:>11.3} ({:.3}) {:>6.3} {:>6.3} {:>6.3} {:>11.3}",
         "macro",
         m.mean,
+        m.se,
         m.sd,
         m.min,
         m.max,
         s.macro_pixel_f1.mean
-    );
-    out!(
-        "standard error of the mean macro object F1: {:.3}",
-        s.macro_object_f1_se
     );
     Ok(())
 }
