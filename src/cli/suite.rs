@@ -7,6 +7,7 @@
 //! any one of them by hand. `--draws N` repeats all of it on N independent
 //! draws of frames and adds each figure's mean and spread over them.
 
+use std::io::IsTerminal;
 use std::path::PathBuf;
 
 use anyhow::{bail, Context, Result};
@@ -14,6 +15,7 @@ use serde::Serialize;
 
 use burlwatch::suite::{self, Outcome, Sizes, Summary};
 
+use super::progress::Progress;
 use super::ConfigArg;
 
 #[derive(clap::Args, Debug)]
@@ -96,6 +98,15 @@ pub fn run(a: SuiteArgs) -> Result<i32> {
     }
     let seeds = suite::draw_seeds(a.seed, a.draws);
     let mut draws = Vec::with_capacity(seeds.len());
+    // A bar on a terminal's stderr while stdout shows nothing as it goes
+    // (JSON, or the tables sent elsewhere): the tables report each setting
+    // as it ends otherwise.
+    let chosen = all
+        .iter()
+        .filter(|(n, _)| a.only.is_empty() || a.only.iter().any(|o| o == n))
+        .count();
+    let watched = a.json || !std::io::stdout().is_terminal();
+    let mut bar = Progress::new(seeds.len() * chosen, if watched { 1 } else { usize::MAX });
     for &seed in &seeds {
         if !a.json && seeds.len() > 1 {
             if !draws.is_empty() {
@@ -120,8 +131,22 @@ pub fn run(a: SuiteArgs) -> Result<i32> {
             test: a.test,
             seed,
         };
-        draws.push(run_draw(&a, &all, sizes, out.as_deref(), &params)?);
+        let label = format!("draw {} of {}", draws.len() + 1, seeds.len());
+        let done = draws.len() * chosen;
+        let mut step = |i: usize, name: &str| {
+            bar.set_label(&format!("{label}: {name}"));
+            bar.update(done + i, seeds.len() * chosen);
+        };
+        draws.push(run_draw(
+            &a,
+            &all,
+            sizes,
+            out.as_deref(),
+            &params,
+            &mut step,
+        )?);
     }
+    bar.finish();
     if a.json {
         fn one<'a>((seed, outcomes): (&u64, &'a Vec<Outcome>)) -> Json<'a> {
             let (object, pixel) = suite::macro_f1(outcomes);
@@ -200,6 +225,7 @@ fn run_draw(
     sizes: Sizes,
     out: Option<&std::path::Path>,
     params: &burlwatch::learn::TrainParams,
+    step: &mut dyn FnMut(usize, &str),
 ) -> Result<Vec<Outcome>> {
     let mut outcomes = Vec::new();
     if !a.json {
@@ -243,6 +269,7 @@ fn run_draw(
                 )?;
             }
         }
+        step(outcomes.len(), name);
         let o =
             suite::evaluate(name, &p, sizes, params).with_context(|| format!("setting {name}"))?;
         if !a.json {
