@@ -871,16 +871,11 @@ fn the_suite_scores_each_setting_and_its_figures_are_reproducible() {
 fn the_suite_over_several_draws_gives_each_draw_and_their_spread() {
     let d = Dir::new();
     let out = d.join("draws");
-    let args = |extra: &[&str]| {
-        let mut v = vec![
+    let run = |extra: &[&str]| {
+        let mut a = vec![
             "suite", "--only", "twill", "--train", "3", "--test", "2", "--size", "64", "--json",
         ];
-        v.extend_from_slice(extra);
-        v.into_iter().map(String::from).collect::<Vec<_>>()
-    };
-    let run = |extra: &[&str]| {
-        let a = args(extra);
-        let a: Vec<&str> = a.iter().map(String::as_str).collect();
+        a.extend_from_slice(extra);
         let r = burlwatch(d.path(), &a);
         assert_eq!(r.code, 0, "{}", r.stderr);
         serde_json::from_str::<serde_json::Value>(&r.stdout).unwrap()

@@ -14,6 +14,7 @@ use anyhow::{bail, Context, Result};
 use serde::Serialize;
 
 use burlwatch::suite::{self, Outcome, Sizes, Summary};
+use burlwatch::synth::LoomParams;
 
 use super::progress::Progress;
 use super::ConfigArg;
@@ -96,17 +97,26 @@ pub fn run(a: SuiteArgs) -> Result<i32> {
             bail!("--size {s} must be between 32 and 4096");
         }
     }
+    // The settings to run, at their frame size, in the suite's order.
+    let chosen: Vec<(&str, LoomParams)> = all
+        .into_iter()
+        .filter(|(n, _)| a.only.is_empty() || a.only.iter().any(|o| o == n))
+        .map(|(n, mut p)| {
+            if let Some(s) = a.size {
+                p.width = s;
+                p.height = s;
+            }
+            (n, p)
+        })
+        .collect();
     let seeds = suite::draw_seeds(a.seed, a.draws);
     let mut draws = Vec::with_capacity(seeds.len());
     // A bar on a terminal's stderr while stdout shows nothing as it goes
     // (JSON, or the tables sent elsewhere): the tables report each setting
     // as it ends otherwise.
-    let chosen = all
-        .iter()
-        .filter(|(n, _)| a.only.is_empty() || a.only.iter().any(|o| o == n))
-        .count();
+    let total = seeds.len() * chosen.len();
     let watched = a.json || !std::io::stdout().is_terminal();
-    let mut bar = Progress::new(seeds.len() * chosen, if watched { 1 } else { usize::MAX });
+    let mut bar = Progress::new(total, if watched { 1 } else { usize::MAX });
     for &seed in &seeds {
         if !a.json && seeds.len() > 1 {
             if !draws.is_empty() {
@@ -132,14 +142,14 @@ pub fn run(a: SuiteArgs) -> Result<i32> {
             seed,
         };
         let label = format!("draw {} of {}", draws.len() + 1, seeds.len());
-        let done = draws.len() * chosen;
+        let done = draws.len() * chosen.len();
         let mut step = |i: usize, name: &str| {
             bar.set_label(&format!("{label}: {name}"));
-            bar.update(done + i, seeds.len() * chosen);
+            bar.update(done + i, total);
         };
         draws.push(run_draw(
             &a,
-            &all,
+            &chosen,
             sizes,
             out.as_deref(),
             &params,
@@ -221,7 +231,7 @@ fn print_summary(s: &Summary) -> Result<()> {
 /// unless the output is JSON.
 fn run_draw(
     a: &SuiteArgs,
-    all: &[(&'static str, burlwatch::synth::LoomParams)],
+    chosen: &[(&str, LoomParams)],
     sizes: Sizes,
     out: Option<&std::path::Path>,
     params: &burlwatch::learn::TrainParams,
@@ -246,14 +256,7 @@ fn run_draw(
             "train s"
         );
     }
-    for &(name, mut p) in all {
-        if !a.only.is_empty() && !a.only.iter().any(|n| n == name) {
-            continue;
-        }
-        if let Some(s) = a.size {
-            p.width = s;
-            p.height = s;
-        }
+    for &(name, p) in chosen {
         if let Some(dir) = out {
             for (part, seed, count) in [
                 ("train", sizes.seed, sizes.train),

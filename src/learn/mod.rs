@@ -811,8 +811,10 @@ fn train_inner(
     // frames, which holds every pattern of theirs.
     let given_patterns = given.as_ref().map(|s| s.unique() as u64);
     let pixels = |idx: &[usize]| -> u64 { idx.iter().map(|&i| frames[i].known_pixels()).sum() };
-    let patterns =
-        |idx: &[usize]| -> u64 { given_patterns.map_or(pixels(idx), |g| pixels(idx).min(g)) };
+    let patterns = |idx: &[usize]| -> u64 {
+        let p = pixels(idx);
+        given_patterns.map_or(p, |g| p.min(g))
+    };
     let every: Vec<usize> = (0..frames.len()).collect();
     let fixed = tune::Fixed {
         threshold: params.threshold,
