@@ -18,6 +18,9 @@
 //! [`summarise`] repeat the suite on independent draws (training and test
 //! frames new each time, never shared between draws) and report the mean
 //! and spread, so the spread of training itself is in the figure.
+//! [`compare`] pairs two trainings on the same draws: a draw's luck is
+//! shared by both, so the spread of their differences tells them apart
+//! where the two spreads alone would not.
 
 use std::time::Instant;
 
@@ -240,6 +243,36 @@ pub struct SettingSpread {
     pub setting: String,
     pub object_f1: Spread,
     pub pixel_f1: Spread,
+    /// The model's size and speed, and the training time: what a gain in
+    /// F1 costs.
+    pub nodes: Spread,
+    pub detect_mpx_s: Spread,
+    pub train_seconds: Spread,
+    /// The object errors of a draw by kind, on average over the draws.
+    pub errors: ErrorMeans,
+}
+
+/// [`Errors`] averaged over draws.
+#[derive(Clone, Copy, Debug, Default, PartialEq, Serialize)]
+pub struct ErrorMeans {
+    pub missed: f64,
+    pub unmatched: f64,
+    pub partial: f64,
+    pub false_alarms: f64,
+}
+
+impl ErrorMeans {
+    /// The mean of each kind over `errors` (all zero for none).
+    pub fn of(errors: &[Errors]) -> ErrorMeans {
+        let n = errors.len().max(1) as f64;
+        let mean = |f: fn(&Errors) -> u64| errors.iter().map(f).sum::<u64>() as f64 / n;
+        ErrorMeans {
+            missed: mean(|e| e.missed),
+            unmatched: mean(|e| e.unmatched),
+            partial: mean(|e| e.partial),
+            false_alarms: mean(|e| e.false_alarms),
+        }
+    }
 }
 
 /// The suite over several draws.
@@ -262,16 +295,20 @@ pub fn summarise(draws: &[Vec<Outcome>]) -> Summary {
     let settings = first
         .iter()
         .map(|o| {
-            let of = |f: fn(&Outcome) -> f64| -> Vec<f64> {
-                draws
-                    .iter()
-                    .filter_map(|d| d.iter().find(|x| x.setting == o.setting).map(f))
-                    .collect()
-            };
+            let have: Vec<&Outcome> = draws
+                .iter()
+                .filter_map(|d| d.iter().find(|x| x.setting == o.setting))
+                .collect();
+            let of =
+                |f: fn(&Outcome) -> f64| Spread::of(&have.iter().map(|x| f(x)).collect::<Vec<_>>());
             SettingSpread {
                 setting: o.setting.clone(),
-                object_f1: Spread::of(&of(|x| x.object_f1)),
-                pixel_f1: Spread::of(&of(|x| x.pixel_f1)),
+                object_f1: of(|x| x.object_f1),
+                pixel_f1: of(|x| x.pixel_f1),
+                nodes: of(|x| x.nodes as f64),
+                detect_mpx_s: of(|x| x.detect_mpx_s),
+                train_seconds: of(|x| x.train_seconds),
+                errors: ErrorMeans::of(&have.iter().map(|x| x.errors).collect::<Vec<_>>()),
             }
         })
         .collect();
@@ -282,6 +319,99 @@ pub fn summarise(draws: &[Vec<Outcome>]) -> Summary {
         settings,
         macro_object_f1: object,
         macro_pixel_f1: Spread::of(&macros.iter().map(|m| m.1).collect::<Vec<_>>()),
+    }
+}
+
+/// Two trainings on the same draws, one figure: each side's spread, and
+/// the spread of their differences draw by draw (`compared - base`), whose
+/// standard error is the paired one: the draws' own luck, which both sides
+/// share, drops out of it.
+#[derive(Clone, Copy, Debug, PartialEq, Serialize)]
+pub struct PairedSpread {
+    pub base: Spread,
+    pub compared: Spread,
+    pub difference: Spread,
+    /// Draws where the compared training scored higher, and lower.
+    pub gains: usize,
+    pub losses: usize,
+}
+
+impl PairedSpread {
+    /// The pairs `(base, compared)`, one per draw.
+    pub fn of(pairs: &[(f64, f64)]) -> PairedSpread {
+        let side = |f: fn(&(f64, f64)) -> f64| pairs.iter().map(f).collect::<Vec<f64>>();
+        PairedSpread {
+            base: Spread::of(&side(|p| p.0)),
+            compared: Spread::of(&side(|p| p.1)),
+            difference: Spread::of(&side(|p| p.1 - p.0)),
+            gains: pairs.iter().filter(|p| p.1 > p.0).count(),
+            losses: pairs.iter().filter(|p| p.1 < p.0).count(),
+        }
+    }
+}
+
+/// One setting's object F1 under two trainings, over the draws.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct SettingComparison {
+    pub setting: String,
+    pub object_f1: PairedSpread,
+}
+
+/// Two trainings compared on the same draws of frames.
+#[derive(Clone, Debug, PartialEq, Serialize)]
+pub struct Comparison {
+    /// Draws compared: those both sides finished.
+    pub draws: usize,
+    /// Per setting, in the order of the base's first draw; a setting is
+    /// compared over the draws where both sides have it.
+    pub settings: Vec<SettingComparison>,
+    pub macro_object_f1: PairedSpread,
+    pub macro_pixel_f1: PairedSpread,
+}
+
+/// Compares two trainings draw by draw: `base[i]` and `compared[i]` are
+/// the same draw's outcomes (extra draws on either side are left out).
+pub fn compare(base: &[Vec<Outcome>], compared: &[Vec<Outcome>]) -> Comparison {
+    let n = base.len().min(compared.len());
+    let (base, compared) = (&base[..n], &compared[..n]);
+    let settings = base
+        .first()
+        .map(|d| d.as_slice())
+        .unwrap_or(&[])
+        .iter()
+        .map(|o| {
+            let pairs: Vec<(f64, f64)> = base
+                .iter()
+                .zip(compared)
+                .filter_map(|(b, c)| {
+                    let find = |d: &[Outcome]| {
+                        d.iter()
+                            .find(|x| x.setting == o.setting)
+                            .map(|x| x.object_f1)
+                    };
+                    Some((find(b)?, find(c)?))
+                })
+                .collect();
+            SettingComparison {
+                setting: o.setting.clone(),
+                object_f1: PairedSpread::of(&pairs),
+            }
+        })
+        .collect();
+    let macros: Vec<((f64, f64), (f64, f64))> = base
+        .iter()
+        .zip(compared)
+        .map(|(b, c)| (macro_f1(b), macro_f1(c)))
+        .collect();
+    Comparison {
+        draws: n,
+        settings,
+        macro_object_f1: PairedSpread::of(
+            &macros.iter().map(|(b, c)| (b.0, c.0)).collect::<Vec<_>>(),
+        ),
+        macro_pixel_f1: PairedSpread::of(
+            &macros.iter().map(|(b, c)| (b.1, c.1)).collect::<Vec<_>>(),
+        ),
     }
 }
 
@@ -426,6 +556,110 @@ mod tests {
         assert_eq!(gappy.settings[1].object_f1.mean, 0.5);
         assert_eq!(gappy.settings[1].object_f1.sd, 0.0);
         assert!((gappy.settings[0].object_f1.mean - 0.8).abs() < 1e-12);
+    }
+
+    #[test]
+    fn a_summary_carries_size_speed_time_and_errors_over_the_draws() {
+        let o = |nodes: usize, secs: f64, missed: u64, false_alarms: u64| Outcome {
+            nodes,
+            train_seconds: secs,
+            detect_mpx_s: 100.0 * secs,
+            errors: Errors {
+                missed,
+                unmatched: 1,
+                partial: 0,
+                false_alarms,
+            },
+            ..outcome("a", 0.5, 0.5)
+        };
+        let s = summarise(&[vec![o(100, 2.0, 3, 0)], vec![o(300, 4.0, 4, 1)]]);
+        let a = &s.settings[0];
+        assert_eq!(
+            (a.nodes.mean, a.nodes.min, a.nodes.max),
+            (200.0, 100.0, 300.0)
+        );
+        assert_eq!(a.train_seconds.mean, 3.0);
+        assert_eq!(a.detect_mpx_s.mean, 300.0);
+        assert_eq!(
+            a.errors,
+            ErrorMeans {
+                missed: 3.5,
+                unmatched: 1.0,
+                partial: 0.0,
+                false_alarms: 0.5
+            }
+        );
+        assert_eq!(ErrorMeans::of(&[]), ErrorMeans::default());
+    }
+
+    #[test]
+    fn a_paired_comparison_takes_the_spread_of_the_differences() {
+        // Student's sleep data (Cushny and Peebles 1905, as "Student", "The
+        // probable error of a mean", Biometrika 1908, analysed it; the
+        // `sleep` dataset of R's datasets package, values from memory):
+        // extra hours of sleep of ten patients under two drugs. The paired
+        // differences have mean 1.58 and sample standard deviation 1.230,
+        // so a standard error of 0.389 and t = 4.06 on 9 degrees of freedom
+        // (R's `t.test(..., paired = TRUE)` on it, from memory); patient 5
+        // slept the same under both.
+        let one = [0.7, -1.6, -0.2, -1.2, -0.1, 3.4, 3.7, 0.8, 0.0, 2.0];
+        let two = [1.9, 0.8, 1.1, 0.1, -0.1, 4.4, 5.5, 1.6, 4.6, 3.4];
+        let pairs: Vec<(f64, f64)> = one.iter().copied().zip(two).collect();
+        let p = PairedSpread::of(&pairs);
+        assert!(
+            (p.difference.mean - 1.58).abs() < 1e-12,
+            "{}",
+            p.difference.mean
+        );
+        assert!(
+            (p.difference.sd - 1.229995).abs() < 1e-6,
+            "{}",
+            p.difference.sd
+        );
+        assert!(
+            (p.difference.se - 0.3889587).abs() < 1e-6,
+            "{}",
+            p.difference.se
+        );
+        assert!((p.difference.mean / p.difference.se - 4.062128).abs() < 1e-5);
+        assert_eq!((p.gains, p.losses), (9, 0));
+        assert!((p.base.mean - 0.75).abs() < 1e-12);
+        assert!((p.compared.mean - 2.33).abs() < 1e-12);
+        // The unpaired standard errors are larger: the patients' own spread
+        // is in them, and the pairing takes it out.
+        let unpaired = (p.base.se.powi(2) + p.compared.se.powi(2)).sqrt();
+        assert!(unpaired > 2.0 * p.difference.se, "{unpaired}");
+    }
+
+    #[test]
+    fn a_comparison_pairs_each_draw_and_setting_with_its_own() {
+        let o = |name: &str, f: f64| outcome(name, f, f);
+        let base = vec![
+            vec![o("a", 0.5), o("b", 0.7)],
+            vec![o("a", 0.6), o("b", 0.9)],
+        ];
+        // The compared side lists its settings in another order, and has a
+        // third draw with no base to pair with.
+        let compared = vec![
+            vec![o("b", 0.6), o("a", 0.7)],
+            vec![o("b", 0.9), o("a", 0.7)],
+            vec![o("a", 1.0), o("b", 1.0)],
+        ];
+        let c = compare(&base, &compared);
+        assert_eq!(c.draws, 2);
+        assert_eq!(c.settings[0].setting, "a");
+        let a = &c.settings[0].object_f1;
+        assert!((a.difference.mean - 0.15).abs() < 1e-12);
+        assert_eq!((a.gains, a.losses), (2, 0));
+        let b = &c.settings[1].object_f1;
+        assert!((b.difference.mean + 0.05).abs() < 1e-12);
+        assert_eq!((b.gains, b.losses), (0, 1));
+        // Macro per draw: base 0.6, 0.75; compared 0.65, 0.8.
+        let m = &c.macro_object_f1;
+        assert!((m.difference.mean - 0.05).abs() < 1e-12);
+        assert!(m.difference.sd < 1e-12);
+        assert_eq!((m.gains, m.losses), (2, 0));
+        assert_eq!(compare(&[], &compared).draws, 0);
     }
 
     #[test]

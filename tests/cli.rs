@@ -977,3 +977,163 @@ fn the_suite_over_several_draws_gives_each_draw_and_their_spread() {
         assert!(bad.stderr.contains("--draws"), "{}", bad.stderr);
     }
 }
+
+/// Two trainings on the same draws: each side of each draw is the suite run
+/// alone with that side's configuration, and the comparison is the spread
+/// of the differences draw by draw (a paired comparison; the paired
+/// standard error is the differences' sample standard deviation over the
+/// square root of the draws: NIST/SEMATECH e-Handbook of Statistical
+/// Methods, section 1.3.5.6 for the deviation, common practice for the
+/// pairing).
+#[test]
+fn the_suite_compares_two_trainings_draw_by_draw() {
+    let d = Dir::new();
+    let gini = d.join("gini.toml");
+    std::fs::write(&gini, "[training]\ncriterion = \"gini\"\n").unwrap();
+    let base_args = [
+        "suite", "--only", "twill", "--train", "3", "--test", "2", "--size", "64",
+    ];
+    let run = |extra: &[&str]| {
+        let mut a = base_args.to_vec();
+        a.push("--json");
+        a.extend_from_slice(extra);
+        let r = burlwatch(d.path(), &a);
+        assert_eq!(r.code, 0, "{}", r.stderr);
+        serde_json::from_str::<serde_json::Value>(&r.stdout).unwrap()
+    };
+    let both = run(&["--draws", "2", "--compare", gini.to_str().unwrap()]);
+    let draws = both["draws"].as_array().unwrap();
+    assert_eq!(draws.len(), 2);
+    let f1 = |v: &serde_json::Value| v["settings"][0]["object_f1"].as_f64().unwrap();
+    let mut diffs = Vec::new();
+    for (draw, seed) in draws.iter().zip(["1", "3"]) {
+        let alone = run(&["--seed", seed]);
+        let gini_alone = run(&["--seed", seed, "--config", gini.to_str().unwrap()]);
+        assert_eq!(
+            draw["settings"][0]["object"],
+            alone["settings"][0]["object"]
+        );
+        assert_eq!(
+            draw["compared"]["settings"][0]["object"],
+            gini_alone["settings"][0]["object"]
+        );
+        assert_eq!(
+            draw["compared"]["settings"][0]["pixel"],
+            gini_alone["settings"][0]["pixel"]
+        );
+        diffs.push(f1(&draw["compared"]) - f1(draw));
+    }
+    // The two trainings differ somewhere, so the comparison is not of a
+    // training with itself.
+    assert!(
+        draws
+            .iter()
+            .any(|x| x["settings"][0]["pixel"] != x["compared"]["settings"][0]["pixel"]),
+        "{both}"
+    );
+    let c = &both["comparison"];
+    assert_eq!(c["draws"], 2);
+    let p = &c["settings"][0]["object_f1"];
+    let mean = (diffs[0] + diffs[1]) / 2.0;
+    let sd = (diffs[0] - diffs[1]).abs() / 2f64.sqrt();
+    assert!((p["difference"]["mean"].as_f64().unwrap() - mean).abs() < 1e-12);
+    assert!((p["difference"]["sd"].as_f64().unwrap() - sd).abs() < 1e-12);
+    assert!((p["difference"]["se"].as_f64().unwrap() - sd / 2f64.sqrt()).abs() < 1e-12);
+    let gains = diffs.iter().filter(|&&x| x > 0.0).count();
+    let losses = diffs.iter().filter(|&&x| x < 0.0).count();
+    assert_eq!(p["gains"], gains);
+    assert_eq!(p["losses"], losses);
+    // One setting: the macro comparison is that setting's.
+    assert_eq!(c["macro_object_f1"], *p);
+    // Each side has its summary, with what its models cost.
+    let nodes: Vec<f64> = draws
+        .iter()
+        .map(|x| x["compared"]["settings"][0]["nodes"].as_f64().unwrap())
+        .collect();
+    let s = &both["compared_summary"]["settings"][0];
+    assert!((s["nodes"]["mean"].as_f64().unwrap() - (nodes[0] + nodes[1]) / 2.0).abs() < 1e-9);
+    assert!(both["summary"]["settings"][0]["errors"]["missed"].is_number());
+    // One draw compared: the draws' form, with the comparison.
+    let one = run(&["--compare", gini.to_str().unwrap()]);
+    assert_eq!(one["draws"].as_array().unwrap().len(), 1);
+    assert_eq!(one["comparison"]["draws"], 1);
+    // The text form ends with the comparison table.
+    let mut a = base_args.to_vec();
+    a.extend_from_slice(&["--draws", "2", "--compare", gini.to_str().unwrap()]);
+    let text = burlwatch(d.path(), &a);
+    assert_eq!(text.code, 0, "{}", text.stderr);
+    assert!(text.stdout.contains("compared twill"), "{}", text.stdout);
+    assert!(
+        text.stdout.contains("over 2 draws, compared"),
+        "{}",
+        text.stdout
+    );
+    assert!(
+        text.stdout.contains("compared against base over 2 draws"),
+        "{}",
+        text.stdout
+    );
+    // A compared configuration that is missing or bad is refused before
+    // anything is trained, naming the file.
+    let bad = d.join("bad.toml");
+    std::fs::write(&bad, "[training]\ncriterion = \"coin toss\"\n").unwrap();
+    for file in [bad, d.join("missing.toml")] {
+        let mut a = base_args.to_vec();
+        a.extend_from_slice(&["--compare", file.to_str().unwrap()]);
+        let r = burlwatch(d.path(), &a);
+        assert_ne!(r.code, 0);
+        let name = file.file_name().unwrap().to_str().unwrap();
+        assert!(r.stderr.contains(name), "{}", r.stderr);
+        assert!(r.stdout.is_empty(), "{}", r.stdout);
+    }
+}
+
+/// A draw that fails stops the suite without losing the draws before it:
+/// their JSON is printed with the failure, and the exit status says it.
+#[test]
+fn a_failing_draw_keeps_the_finished_ones() {
+    let d = Dir::new();
+    let out = d.join("frames");
+    std::fs::create_dir_all(&out).unwrap();
+    // Draw 2 (seed 3) cannot write its frames: a file stands where its
+    // folder goes.
+    std::fs::write(out.join("seed-3"), b"in the way").unwrap();
+    let args = [
+        "suite", "--only", "twill", "--train", "3", "--test", "2", "--size", "64", "--draws", "3",
+        "--json", "--out",
+    ];
+    let mut a = args.to_vec();
+    a.push(out.to_str().unwrap());
+    let r = burlwatch(d.path(), &a);
+    assert_eq!(r.code, 1, "{}", r.stderr);
+    assert!(r.stderr.contains("draw 2 of 3"), "{}", r.stderr);
+    assert!(r.stderr.contains("seed-3"), "{}", r.stderr);
+    let j: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
+    assert_eq!(j["draws"].as_array().unwrap().len(), 1);
+    assert_eq!(j["draws"][0]["seed"], 1);
+    assert_eq!(j["summary"]["draws"], 1);
+    assert_eq!(j["failed"]["draw"], 2);
+    assert_eq!(j["failed"]["seed"], 3);
+    assert!(j["failed"]["error"].as_str().unwrap().contains("seed-3"));
+    // The finished draw is the one a run of it alone gives.
+    let alone = burlwatch(
+        d.path(),
+        &[
+            "suite", "--only", "twill", "--train", "3", "--test", "2", "--size", "64", "--json",
+        ],
+    );
+    let alone: serde_json::Value = serde_json::from_str(&alone.stdout).unwrap();
+    for part in ["object", "pixel", "errors", "nodes"] {
+        assert_eq!(
+            j["draws"][0]["settings"][0][part],
+            alone["settings"][0][part]
+        );
+    }
+    // The first draw failing leaves nothing to report but the error.
+    std::fs::remove_dir_all(out.join("seed-1")).unwrap();
+    std::fs::write(out.join("seed-1"), b"in the way").unwrap();
+    let r = burlwatch(d.path(), &a);
+    assert_eq!(r.code, 1);
+    assert!(r.stdout.is_empty(), "{}", r.stdout);
+    assert!(r.stderr.contains("seed-1"), "{}", r.stderr);
+}
