@@ -106,6 +106,7 @@ fn main() {
                 Stage::OneAtATime { .. } => {}
                 Stage::Prune => marks[1] = t,
                 Stage::Tune => marks[2] = t,
+                Stage::Symmetry(_) => {}
             }
         })
         .expect("training");

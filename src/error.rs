@@ -57,6 +57,10 @@ pub enum ErrorKind {
     /// Invalid parameters or data for learning.
     #[error("cannot train: {0}")]
     Training(String),
+    /// Growing would not fit the training memory limit, even one tree at a
+    /// time (the message gives the bound and the limit).
+    #[error("cannot train: {0}")]
+    OverMemory(String),
     /// A data folder or file that cannot be used.
     #[error("{0}")]
     Data(String),
@@ -129,6 +133,10 @@ impl Error {
 
     pub(crate) fn training(msg: impl Into<String>) -> Error {
         Error::new(ErrorKind::Training(msg.into()))
+    }
+
+    pub(crate) fn over_memory(msg: impl Into<String>) -> Error {
+        Error::new(ErrorKind::OverMemory(msg.into()))
     }
 
     pub(crate) fn config(key: impl Into<String>, message: impl std::fmt::Display) -> Error {

@@ -350,6 +350,7 @@ mod tests {
                 folds: 0,
                 smaller: None,
                 symmetry: None,
+                symmetry_tried: Vec::new(),
                 overridden: Vec::new(),
             },
             data: DataSummary::default(),

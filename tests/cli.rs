@@ -345,7 +345,61 @@ fn training_under_a_symmetry_says_so() {
         ],
     );
     assert_eq!(r.code, 2, "{}", r.stderr);
-    assert!(r.stderr.contains("none, mirrors or square"), "{}", r.stderr);
+    assert!(
+        r.stderr.contains("none, mirrors, square or choose"),
+        "{}",
+        r.stderr
+    );
+    // `choose`: training tries each, keeps one, and says what each scored.
+    let r = burlwatch(
+        dir.path(),
+        &[
+            "train",
+            "--data",
+            "train",
+            "--out",
+            "c.json",
+            "--symmetry",
+            "choose",
+            "--json",
+        ],
+    );
+    assert_eq!(r.code, 0, "{}", r.stderr);
+    let j: serde_json::Value = serde_json::from_str(&r.stdout).unwrap();
+    let tried = j["symmetry_tried"].as_array().unwrap();
+    let names: Vec<&str> = tried
+        .iter()
+        .map(|t| t["symmetry"].as_str().unwrap())
+        .collect();
+    assert_eq!(names, ["none", "mirrors", "square"]);
+    let kept: Vec<&serde_json::Value> = tried.iter().filter(|t| t["kept"] == true).collect();
+    assert_eq!(kept.len(), 1);
+    let model: serde_json::Value =
+        serde_json::from_str(&std::fs::read_to_string(dir.join("c.json")).unwrap()).unwrap();
+    assert_eq!(model["format_version"], 5);
+    assert_eq!(model["training"]["symmetry_tried"], j["symmetry_tried"]);
+    let trained = model["training"]["symmetry"].as_str().unwrap_or("none");
+    assert_eq!(kept[0]["symmetry"], trained);
+    let text = burlwatch(
+        dir.path(),
+        &[
+            "train",
+            "--data",
+            "train",
+            "--out",
+            "d.json",
+            "--symmetry",
+            "choose",
+        ],
+    );
+    assert_eq!(text.code, 0, "{}", text.stderr);
+    assert!(
+        text.stdout
+            .contains("symmetry chosen on the held-out frames")
+            && text.stdout.contains(" kept"),
+        "{}",
+        text.stdout
+    );
 }
 
 /// Training over `--memory-mb` stops before it grows, with the bound, the

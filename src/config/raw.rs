@@ -370,12 +370,12 @@ impl RawConfig {
                 )
             })?,
         };
-        let symmetry = match t.symmetry.as_deref() {
-            None => dt.symmetry,
-            Some(s) => Symmetry::parse(s).ok_or_else(|| {
+        let (symmetry, choose_symmetry) = match t.symmetry.as_deref() {
+            None => (dt.symmetry, dt.choose_symmetry),
+            Some(s) => Symmetry::parse_setting(s).ok_or_else(|| {
                 invalid(
                     "training.symmetry",
-                    format!("{s:?} is not \"none\", \"mirrors\" or \"square\""),
+                    format!("{s:?} is not \"none\", \"mirrors\", \"square\" or \"choose\""),
                 )
             })?,
         };
@@ -399,6 +399,7 @@ impl RawConfig {
             folds: t.folds.unwrap_or(dt.folds),
             smoothing: t.smoothing.unwrap_or(dt.smoothing),
             symmetry,
+            choose_symmetry,
             memory_limit: Some(memory_mb << 20),
             ..dt
         };
@@ -961,6 +962,10 @@ mod tests {
             c.live.training.symmetry,
             crate::learn::symmetry::Symmetry::Mirrors
         );
+        assert!(!c.live.training.choose_symmetry);
+        let c = from_str("[training]\nsymmetry = \"choose\"\n").unwrap();
+        assert!(c.live.training.choose_symmetry);
+        assert!(!from_str("").unwrap().live.training.choose_symmetry);
         let e = from_str("[detection]\nthreshold = 2.0\n")
             .unwrap_err()
             .to_string();

@@ -39,14 +39,15 @@ pub use criterion::Criterion;
 use crate::detect::group::GroupParams;
 use crate::detect::smooth::Smoothing;
 use crate::detect::walker;
-use crate::error::{Error, Result};
+use crate::error::{Error, ErrorKind, Result};
 pub use crate::frame::LabelledFrame;
 use crate::learn::store::LabelStore;
 use crate::learn::symmetry::{Symmetry, Transform};
 use crate::model::{
-    DataSummary, HoldoutMetrics, Leaf, Model, Node, Reference, SizeTrade, TrainingInfo, Tree,
+    DataSummary, HoldoutMetrics, Leaf, Model, Node, Reference, SizeTrade, SymmetryTried,
+    TrainingInfo, Tree,
 };
-use crate::score;
+use crate::score::{self, Confusion};
 use crate::window::Window;
 
 use grow::{GrowParams, GrownTree};
@@ -136,6 +137,10 @@ pub struct TrainParams {
     /// The fabric's symmetries: every frame is also taken mirrored and
     /// turned this way, for growing and for tuning ([`symmetry`]).
     pub symmetry: Symmetry,
+    /// Train under each symmetry instead (`symmetry` is then ignored), and
+    /// keep the one the held-out frames favour ([`pick_symmetry`]): about
+    /// 13 times the training of `symmetry = none`.
+    pub choose_symmetry: bool,
     /// Most memory, in bytes, that growing the trees may take, by the
     /// bounds of [`growing_bytes`] and [`tree_bytes`]: trees that would not fit two at a
     /// time grow one at a time, and training that would not fit even so
@@ -164,6 +169,7 @@ impl Default for TrainParams {
             prefer_smaller: true,
             smoothing: false,
             symmetry: Symmetry::None,
+            choose_symmetry: false,
             memory_limit: None,
             threshold: None,
             min_area: None,
@@ -261,6 +267,8 @@ pub enum Stage {
     },
     Prune,
     Tune,
+    /// Choosing the symmetry: the stages that follow train under this one.
+    Symmetry(Symmetry),
 }
 
 /// A grown tree with its pruning sequence and the data facts it came from.
@@ -485,7 +493,7 @@ fn memory_plan(patterns: &[u64], held: u64, threads: usize, params: &TrainParams
     threads_within(&stores, held, threads, params.memory_limit).map_err(|need| {
         let most = patterns.iter().copied().max().unwrap_or(0);
         let limit = params.memory_limit.unwrap_or(0);
-        Error::training(format!(
+        Error::over_memory(format!(
             "growing would need up to {} MiB ({most} window patterns at most for the largest \
              tree{}, and the trees grown), over the memory limit of {} MiB: raise the limit \
              (training.memory_mb, train --memory-mb) or train on fewer frames{}",
@@ -734,7 +742,7 @@ pub fn train_with(
     progress: &mut dyn FnMut(Stage),
     stop: &(dyn Fn() -> bool + Sync),
 ) -> Result<Model> {
-    train_inner(frames, None, params, progress, stop)
+    train_choosing(frames, None, params, progress, stop)
 }
 
 /// [`train_with`] from a label store that already holds every frame of
@@ -763,16 +771,153 @@ pub fn train_from_store(
             frames.len()
         )));
     }
-    train_inner(frames, Some(all), params, progress, stop)
+    train_choosing(frames, Some(all), params, progress, stop)
 }
 
-fn train_inner(
+/// Each frame's held-out object counts under the chosen settings, on the
+/// frames as they are (no transform): what [`train_choosing`] compares
+/// the symmetries on.
+type PlainCounts = Vec<Confusion>;
+
+/// Trains under `params.symmetry`, or, with `params.choose_symmetry`, under
+/// each of [`Symmetry::ALL`] in turn and keeps the model the held-out
+/// frames favour ([`pick_symmetry`]), with what each scored recorded in
+/// the model (`training.symmetry_tried`).
+fn train_choosing(
     frames: &[LabelledFrame],
     mut given: Option<LabelStore>,
     params: &TrainParams,
     progress: &mut dyn FnMut(Stage),
     stop: &(dyn Fn() -> bool + Sync),
 ) -> Result<Model> {
+    if !params.choose_symmetry {
+        return Ok(train_inner(frames, given, params, false, 0, progress, stop)?.0);
+    }
+    let mut tried: Vec<(Symmetry, Result<(Model, PlainCounts)>)> = Vec::new();
+    for (k, &symmetry) in Symmetry::ALL.iter().enumerate() {
+        let p = TrainParams {
+            symmetry,
+            choose_symmetry: false,
+            ..params.clone()
+        };
+        progress(Stage::Symmetry(symmetry));
+        // The last candidate takes the store; the others a copy each,
+        // while the store itself is held too, and counts against the
+        // memory limit.
+        let (store, outside) = if k + 1 == Symmetry::ALL.len() {
+            (given.take(), 0)
+        } else {
+            let held = given
+                .as_ref()
+                .map_or(0, |g| growing_bytes(g.unique() as u64, 1));
+            (given.clone(), held)
+        };
+        match train_inner(frames, store, &p, true, outside, progress, stop) {
+            Ok((m, plain)) => tried.push((symmetry, Ok((m, plain.unwrap_or_default())))),
+            // A symmetry over the memory limit is passed over; without one
+            // (the first candidate) nothing can be trained.
+            Err(e) if k > 0 && matches!(e.kind(), ErrorKind::OverMemory(_)) => {
+                tried.push((symmetry, Err(e)))
+            }
+            Err(e) => return Err(e),
+        }
+    }
+    let scored: Vec<(Symmetry, Option<&PlainCounts>)> = tried
+        .iter()
+        .map(|(s, r)| (*s, r.as_ref().ok().map(|(_, p)| p)))
+        .collect();
+    let (kept, record) = pick_symmetry(&scored);
+    let mut record = record;
+    for (r, (_, t)) in record.iter_mut().zip(&tried) {
+        if let Err(e) = t {
+            r.passed_over = Some(e.to_string());
+        }
+    }
+    let (_, chosen) = tried.swap_remove(kept);
+    let (mut model, _) = chosen?;
+    model.training.symmetry_tried = record;
+    Ok(model)
+}
+
+/// Which symmetry to keep, from each candidate's held-out object counts
+/// on the untransformed frames (`None`: not trained), in order of cost
+/// (none, mirrors, square): the cheapest whose object F1 is within one
+/// standard error of the best's, the error that of their difference over
+/// the same frames, resampled in pairs (the size rule's one-standard-error
+/// rule, Breiman et al. 1984, section 3.4.3; Efron and Tibshirani 1993,
+/// chapter 6). A symmetry costs training time and, with its larger trees,
+/// detection speed, so it must earn its place. Returns the index kept and
+/// a record of every candidate.
+pub fn pick_symmetry(
+    candidates: &[(Symmetry, Option<&PlainCounts>)],
+) -> (usize, Vec<SymmetryTried>) {
+    let sum = |c: &PlainCounts| {
+        let mut t = Confusion::default();
+        for x in c {
+            t.add(x);
+        }
+        t.f1()
+    };
+    let best = candidates
+        .iter()
+        .enumerate()
+        .filter_map(|(i, (_, c))| c.map(|c| (i, sum(c))))
+        // The first of equals: the cheaper.
+        .fold(None, |b: Option<(usize, f64)>, (i, f)| match b {
+            Some((_, bf)) if bf >= f => b,
+            _ => Some((i, f)),
+        });
+    let Some((best, best_f1)) = best else {
+        return (0, Vec::new());
+    };
+    let best_counts = candidates[best].1.expect("the best was trained");
+    let mut kept = best;
+    let record = candidates
+        .iter()
+        .enumerate()
+        .map(|(i, &(symmetry, c))| {
+            let (object_f1, object_f1_se) = match c {
+                Some(c) => {
+                    let se = if i == best {
+                        0.0
+                    } else {
+                        tune::paired_se(best_counts, c, tune::SE_SEED)
+                    };
+                    let f = sum(c);
+                    if i < kept && f >= best_f1 - se {
+                        kept = i;
+                    }
+                    (Some(f), Some(se))
+                }
+                None => (None, None),
+            };
+            SymmetryTried {
+                symmetry: symmetry.name().to_string(),
+                object_f1,
+                object_f1_se,
+                kept: false,
+                passed_over: None,
+            }
+        })
+        .collect::<Vec<_>>();
+    let mut record = record;
+    record[kept].kept = true;
+    (kept, record)
+}
+
+/// One training under `params.symmetry`; with `plain`, also each frame's
+/// held-out object counts on the untransformed frames. `outside`: bytes
+/// held elsewhere while it runs (a store kept for the next candidate), which
+/// the memory plan counts beside the trees.
+fn train_inner(
+    frames: &[LabelledFrame],
+    mut given: Option<LabelStore>,
+    params: &TrainParams,
+    plain: bool,
+    outside: u64,
+    progress: &mut dyn FnMut(Stage),
+    stop: &(dyn Fn() -> bool + Sync),
+) -> Result<(Model, Option<PlainCounts>)> {
     let stopped = || Error::training(STOPPED);
     params.validate()?;
     if frames.is_empty() {
@@ -824,6 +969,7 @@ fn train_inner(
     // Cross-fitted: each fold's tree, grown without its frames, scores
     // them; the choice is made on all frames' scores together.
     let mut cross_choice = None;
+    let mut plain_counts = None;
     let first = if cross {
         let fold = split_folds(frames, params.folds);
         // The final tree first: it is the largest job, and a given store
@@ -846,7 +992,7 @@ fn train_inner(
                 store: Source::Frames,
             });
         }
-        let mut grown = grow_all(frames, jobs, 0, params, progress, stop)?;
+        let mut grown = grow_all(frames, jobs, outside, params, progress, stop)?;
         let last = grown.remove(0);
         if stop() {
             return Err(stopped());
@@ -877,6 +1023,17 @@ fn train_inner(
             .collect();
         let size = |a: f64| last.pruning.leaves_at(&last.tree, a);
         cross_choice = tune::choose_folds(&folds, &scored, &fixed, params.rules(), &size);
+        if plain {
+            plain_counts = cross_choice.as_ref().map(|c| {
+                let frames: Vec<tune::HoldoutFrame> = scored
+                    .into_iter()
+                    .zip(&jobs)
+                    .filter(|(_, j)| j.1 == Transform::IDENTITY)
+                    .map(|(f, _)| f)
+                    .collect();
+                tune::counts_of(&folds, &frames, c)
+            });
+        }
         if stop() {
             return Err(stopped());
         }
@@ -891,9 +1048,9 @@ fn train_inner(
             // The refit tree grows on every frame beside this one: it must
             // fit too, before anything grows.
             let first = tree_bytes(patterns(&grow_idx), params.max_nodes);
-            memory_plan(&[pixels(&every)], first, 1, params)?;
+            memory_plan(&[pixels(&every)], first + outside, 1, params)?;
         }
-        grow_all(frames, vec![job], 0, params, progress, stop)?.remove(0)
+        grow_all(frames, vec![job], outside, params, progress, stop)?.remove(0)
     };
     if stop() {
         return Err(stopped());
@@ -904,7 +1061,8 @@ fn train_inner(
     // In content-hash order, as above.
     let mut hold_sorted = hold_idx.clone();
     hold_sorted.sort_by_cached_key(|&i| frames[i].content_hash());
-    let holdout: Vec<tune::HoldoutFrame> = with_transforms(&hold_sorted, params.symmetry)
+    let hold_jobs = with_transforms(&hold_sorted, params.symmetry);
+    let holdout: Vec<tune::HoldoutFrame> = hold_jobs
         .iter()
         .map(|&(i, t)| held_out(&first.tree, params.window, &frames[i], i, t))
         .collect();
@@ -913,16 +1071,27 @@ fn train_inner(
     } else if holdout.is_empty() {
         None
     } else {
-        tune::choose(
+        let c = tune::choose(
             &first.tree,
             &first.pruning,
             first.weights,
             &holdout,
             &fixed,
             params.rules(),
-        )
+        );
+        if plain {
+            plain_counts = c.as_ref().map(|c| {
+                let frames: Vec<tune::HoldoutFrame> = holdout
+                    .into_iter()
+                    .zip(&hold_jobs)
+                    .filter(|(_, j)| j.1 == Transform::IDENTITY)
+                    .map(|(f, _)| f)
+                    .collect();
+                tune::counts_of(&[(&first.tree, &first.pruning, first.weights)], &frames, c)
+            });
+        }
+        c
     };
-    drop(holdout);
     if stop() {
         return Err(stopped());
     }
@@ -938,7 +1107,7 @@ fn train_inner(
             grow_all(
                 frames,
                 vec![job],
-                first.tree.nodes.len() as u64 * NODE_BYTES,
+                first.tree.nodes.len() as u64 * NODE_BYTES + outside,
                 params,
                 progress,
                 stop,
@@ -1010,61 +1179,65 @@ fn train_inner(
     if params.merge_distance.is_some() {
         overridden.push("merge_distance".to_string());
     }
-    Ok(Model {
-        threshold,
-        grouping,
-        smoothing,
-        model_version: 1,
-        training: TrainingInfo {
-            criterion: params.criterion.name().into(),
-            max_depth: params.max_depth,
-            min_leaf: params.min_leaf,
-            min_gain: params.min_gain,
-            class_weight: params.class_weight.name().into(),
-            class_weights: weights,
-            holdout: params.holdout,
-            pruning_alpha: alpha,
-            tuned: choice.is_some(),
-            grown_leaves: grown.leaves() as u64,
-            pruned_leaves: tree.leaves() as u64,
-            refit,
-            folds: if cross { params.folds as u32 } else { 0 },
-            symmetry: (!params.symmetry.is_none()).then(|| params.symmetry.name().into()),
-            smaller: choice.and_then(|c| c.passed_over).map(|p| SizeTrade {
-                best_alpha: p.alpha,
-                best_leaves: pruning.leaves_at(&grown, p.alpha) as u64,
-                best_object_f1: p.object.f1(),
-                object_f1_se: p.object_se,
+    Ok((
+        Model {
+            threshold,
+            grouping,
+            smoothing,
+            model_version: 1,
+            training: TrainingInfo {
+                criterion: params.criterion.name().into(),
+                max_depth: params.max_depth,
+                min_leaf: params.min_leaf,
+                min_gain: params.min_gain,
+                class_weight: params.class_weight.name().into(),
+                class_weights: weights,
+                holdout: params.holdout,
+                pruning_alpha: alpha,
+                tuned: choice.is_some(),
+                grown_leaves: grown.leaves() as u64,
+                pruned_leaves: tree.leaves() as u64,
+                refit,
+                folds: if cross { params.folds as u32 } else { 0 },
+                symmetry: (!params.symmetry.is_none()).then(|| params.symmetry.name().into()),
+                symmetry_tried: Vec::new(),
+                smaller: choice.and_then(|c| c.passed_over).map(|p| SizeTrade {
+                    best_alpha: p.alpha,
+                    best_leaves: pruning.leaves_at(&grown, p.alpha) as u64,
+                    best_object_f1: p.object.f1(),
+                    object_f1_se: p.object_se,
+                }),
+                overridden,
+            },
+            data: DataSummary {
+                frames: used_idx.len() as u64,
+                holdout_frames: if cross {
+                    frames.len() as u64
+                } else {
+                    hold_idx.len() as u64
+                },
+                pixels: totals[0] + totals[1],
+                unique_patterns: unique,
+                clear_pixels: totals[0],
+                target_pixels: totals[1],
+            },
+            holdout: choice.map(|c| HoldoutMetrics {
+                pixel: c.pixel.prf(),
+                object: c.object.prf(),
             }),
-            overridden,
-        },
-        data: DataSummary {
-            frames: used_idx.len() as u64,
-            holdout_frames: if cross {
-                frames.len() as u64
-            } else {
-                hold_idx.len() as u64
+            reference: Reference {
+                set_density: share(set_pixels, pixels),
+                detected_share: share(detected, pixels),
+                objects_per_frame: share(objects, used_idx.len() as u64),
+                patterns: {
+                    let n = patterns.iter().sum();
+                    patterns.iter().map(|&c| share(c, n)).collect()
+                },
             },
-            pixels: totals[0] + totals[1],
-            unique_patterns: unique,
-            clear_pixels: totals[0],
-            target_pixels: totals[1],
+            tree,
         },
-        holdout: choice.map(|c| HoldoutMetrics {
-            pixel: c.pixel.prf(),
-            object: c.object.prf(),
-        }),
-        reference: Reference {
-            set_density: share(set_pixels, pixels),
-            detected_share: share(detected, pixels),
-            objects_per_frame: share(objects, used_idx.len() as u64),
-            patterns: {
-                let n = patterns.iter().sum();
-                patterns.iter().map(|&c| share(c, n)).collect()
-            },
-        },
-        tree,
-    })
+        plain_counts,
+    ))
 }
 
 #[cfg(test)]
@@ -1394,6 +1567,159 @@ pub(crate) mod tests {
         };
         let c = train(&frames, &held, &mut |_| {}).unwrap();
         assert!(c.training.tuned && c.training.symmetry.is_some());
+    }
+
+    /// The symmetry rule: the cheapest candidate within one standard error
+    /// of the best (of their difference, resampled in pairs) is kept.
+    #[test]
+    fn the_cheapest_symmetry_within_one_standard_error_is_kept() {
+        let hit = Confusion {
+            tp: 1,
+            fp: 0,
+            fn_: 0,
+            tn: 0,
+        };
+        let miss = Confusion {
+            tp: 0,
+            fp: 1,
+            fn_: 1,
+            tn: 0,
+        };
+        let all_hit = vec![hit; 20];
+        let all_miss = vec![miss; 20];
+        // Equal: the cheaper wins, with no error between them.
+        let (k, r) = pick_symmetry(&[
+            (Symmetry::None, Some(&all_hit)),
+            (Symmetry::Mirrors, Some(&all_hit)),
+            (Symmetry::Square, Some(&all_hit)),
+        ]);
+        assert_eq!(k, 0);
+        assert!(r[0].kept && !r[1].kept && !r[2].kept);
+        assert_eq!(r[1].object_f1_se, Some(0.0));
+        // Worse on every frame: no resample makes it equal.
+        let (k, r) = pick_symmetry(&[
+            (Symmetry::None, Some(&all_miss)),
+            (Symmetry::Mirrors, None),
+            (Symmetry::Square, Some(&all_hit)),
+        ]);
+        assert_eq!(k, 2);
+        assert_eq!(r[0].object_f1, Some(0.0));
+        assert_eq!((r[1].object_f1, r[1].kept), (None, false));
+        assert_eq!(r[2].object_f1_se, Some(0.0));
+        assert_eq!(
+            r.iter().map(|t| t.symmetry.as_str()).collect::<Vec<_>>(),
+            ["none", "mirrors", "square"]
+        );
+        // One frame of twenty worse: kept exactly when within its error.
+        let mut one_off = all_hit.clone();
+        one_off[7] = miss;
+        let (k, r) = pick_symmetry(&[
+            (Symmetry::None, Some(&one_off)),
+            (Symmetry::Mirrors, None),
+            (Symmetry::Square, Some(&all_hit)),
+        ]);
+        let (f, se) = (r[0].object_f1.unwrap(), r[0].object_f1_se.unwrap());
+        assert!(se > 0.0 && f < 1.0);
+        assert_eq!(k == 0, f >= 1.0 - se, "{f} {se}");
+        // Nothing trained: nothing to record.
+        assert_eq!(pick_symmetry(&[(Symmetry::None, None)]).1, vec![]);
+    }
+
+    /// Choosing the symmetry trains under each and keeps one: the model is
+    /// the one training under that symmetry alone gives, with the record of
+    /// every candidate; the plain candidate's score is the plain model's
+    /// held-out object F1 (its held-out frames are all untransformed); a
+    /// store gives the same model; and a symmetry over the memory limit is
+    /// passed over with the reason, not the whole training.
+    #[test]
+    fn choosing_the_symmetry_keeps_a_candidate_as_trained_alone() {
+        use crate::synth::LoomParams;
+        let lp = LoomParams {
+            width: 80,
+            height: 56,
+            ..LoomParams::standard()
+        };
+        let frames = crate::suite::frames("f", &lp, 6, 6);
+        let p = TrainParams {
+            choose_symmetry: true,
+            ..TrainParams::default()
+        };
+        let mut stages = Vec::new();
+        let m = train(&frames, &p, &mut |s| {
+            if let Stage::Symmetry(y) = s {
+                stages.push(y)
+            }
+        })
+        .unwrap();
+        assert_eq!(stages, Symmetry::ALL);
+        let tried = &m.training.symmetry_tried;
+        assert_eq!(tried.len(), 3);
+        assert!(tried.iter().all(|t| t.object_f1.is_some()));
+        let kept: Vec<&SymmetryTried> = tried.iter().filter(|t| t.kept).collect();
+        assert_eq!(kept.len(), 1);
+        let symmetry = Symmetry::parse(&kept[0].symmetry).unwrap();
+        let mut alone = train(
+            &frames,
+            &TrainParams {
+                symmetry,
+                ..TrainParams::default()
+            },
+            &mut |_| {},
+        )
+        .unwrap();
+        alone.training.symmetry_tried = tried.clone();
+        assert_eq!(alone.to_json(), m.to_json());
+        let plain = train(&frames, &TrainParams::default(), &mut |_| {}).unwrap();
+        let f1 = plain.holdout.as_ref().unwrap().object.f1;
+        assert!((tried[0].object_f1.unwrap() - f1).abs() < 1e-12);
+        // From a store of the frames: the same model.
+        let mut all = LabelStore::new(p.window);
+        for f in &frames {
+            all.add_labelled(f).unwrap();
+        }
+        let b = train_from_store(&frames, all, &p, &mut |_| {}, &|| false).unwrap();
+        assert_eq!(b.to_json(), m.to_json());
+        // A limit between what no symmetry and square need, one tree at a
+        // time: the four trees kept, beside the largest store (the final
+        // tree's, on all frames; each fold's is on four of the six). The
+        // frames are larger, so that square's entries outgrow a plain
+        // store's fixed table.
+        let big = crate::suite::frames(
+            "f",
+            &LoomParams {
+                width: 160,
+                height: 96,
+                ..lp
+            },
+            6,
+            6,
+        );
+        let pixels: u64 = big.iter().map(|f| f.known_pixels()).sum();
+        let held = tree_bytes(pixels, p.max_nodes) + 3 * tree_bytes(pixels * 2 / 3, p.max_nodes);
+        let (plain, mirrors, square) = (
+            held + growing_bytes(pixels, 1),
+            held + growing_bytes(pixels, 4),
+            held + growing_bytes(pixels, 8),
+        );
+        assert!(plain.max(mirrors) < square, "{plain} {mirrors} {square}");
+        let tight = TrainParams {
+            memory_limit: Some((plain.max(mirrors) + square) / 2),
+            ..p.clone()
+        };
+        let c = train(&big, &tight, &mut |_| {}).unwrap();
+        let t = &c.training.symmetry_tried;
+        assert!(t[0].object_f1.is_some() && t[1].object_f1.is_some());
+        assert_eq!((t[2].object_f1, t[2].kept), (None, false));
+        let why = t[2].passed_over.as_deref().unwrap();
+        assert!(why.contains("memory limit"), "{why}");
+        assert_ne!(c.training.symmetry.as_deref(), Some("square"));
+        // Without a symmetry nothing fits: that is an error, as before.
+        let none_fits = TrainParams {
+            memory_limit: Some(1 << 20),
+            ..p.clone()
+        };
+        let e = train(&big, &none_fits, &mut |_| {}).unwrap_err();
+        assert!(e.to_string().contains("memory limit"), "{e}");
     }
 
     /// Cross-fitted tuning: every frame is scored once by a tree grown

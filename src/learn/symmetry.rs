@@ -148,6 +148,10 @@ pub enum Symmetry {
 }
 
 impl Symmetry {
+    /// All of them, cheapest first (the transforms a frame is taken under:
+    /// one, four, eight).
+    pub const ALL: [Symmetry; 3] = [Symmetry::None, Symmetry::Mirrors, Symmetry::Square];
+
     /// Parses `none`, `mirrors` or `square`.
     pub fn parse(s: &str) -> Option<Symmetry> {
         match s {
@@ -155,6 +159,17 @@ impl Symmetry {
             "mirrors" => Some(Symmetry::Mirrors),
             "square" => Some(Symmetry::Square),
             _ => None,
+        }
+    }
+
+    /// Parses a `symmetry` setting: `none`, `mirrors` or `square`, or
+    /// `choose` (training tries each and keeps one; the symmetry returned
+    /// is then `None`, a placeholder training ignores). The second value
+    /// says whether to choose.
+    pub fn parse_setting(s: &str) -> Option<(Symmetry, bool)> {
+        match s {
+            "choose" => Some((Symmetry::None, true)),
+            _ => Symmetry::parse(s).map(|y| (y, false)),
         }
     }
 

@@ -403,6 +403,35 @@ fn per_frame(
     out
 }
 
+/// The folds' node scores in one id space (each tree's after the trees
+/// before it), and their trees with their pruning sequences.
+#[allow(clippy::type_complexity)]
+fn side_by_side<'a>(
+    folds: &[(&'a GrownTree, &'a Pruning, [f64; 2])],
+) -> (Vec<f64>, Vec<(&'a GrownTree, &'a Pruning)>) {
+    let scores = folds
+        .iter()
+        .flat_map(|(t, _, w)| node_scores(t, *w))
+        .collect();
+    (scores, folds.iter().map(|(t, p, _)| (*t, *p)).collect())
+}
+
+/// Each frame's object counts under a choice already made (its strength,
+/// threshold, grouping and smoothing), on `frames` scored by the same
+/// trees: how the choice does on some of the frames it was chosen on,
+/// such as the untransformed ones under a symmetry.
+pub fn counts_of(
+    folds: &[(&GrownTree, &Pruning, [f64; 2])],
+    frames: &[HoldoutFrame],
+    c: &Choice,
+) -> Vec<Confusion> {
+    let (scores, trees) = side_by_side(folds);
+    let (eff, _) = effective(&trees, c.alpha);
+    let score = |l: u32| scores[eff[l as usize] as usize];
+    let lists = above(frames, &score, c.threshold);
+    per_frame(frames, &lists, &score, c)
+}
+
 /// What one pruning strength gave: its best choice, that choice's counts
 /// per frame, and the best choice at each threshold tried.
 struct Tried {
@@ -654,11 +683,7 @@ pub fn choose_folds(
     rules: Rules,
     final_leaves: &dyn Fn(f64) -> usize,
 ) -> Option<Choice> {
-    let scores: Vec<f64> = folds
-        .iter()
-        .flat_map(|(t, _, w)| node_scores(t, *w))
-        .collect();
-    let trees: Vec<(&GrownTree, &Pruning)> = folds.iter().map(|(t, p, _)| (*t, *p)).collect();
+    let (scores, trees) = side_by_side(folds);
     let mut every: Vec<f64> = folds
         .iter()
         .flat_map(|(_, p, _)| p.alphas.iter().copied())
@@ -779,7 +804,7 @@ pub fn paired_se(a: &[Confusion], b: &[Confusion], seed: u64) -> f64 {
 /// Resamples of [`bootstrap_se`].
 pub const BOOTSTRAP: usize = 1000;
 /// The size rule's resampling seed: training stays deterministic.
-const SE_SEED: u64 = 0x5EED;
+pub const SE_SEED: u64 = 0x5EED;
 
 /// The bootstrap standard error (Efron & Tibshirani 1993, chapter 6) of
 /// the F1 of summed counts: frames drawn with replacement, [`BOOTSTRAP`]

@@ -16,8 +16,11 @@ pub const FORMAT_VERSION: u32 = 3;
 /// version 3, so builds that read version 3
 /// keep reading them and their bytes (and hashes) stay as they were.
 pub const SMOOTHING_VERSION: u32 = 4;
+/// The version written for a model whose symmetry training chose
+/// (version 5 added `training.symmetry_tried`).
+pub const CHOSEN_SYMMETRY_VERSION: u32 = 5;
 /// The versions read: version 2 files load with no pattern references.
-pub const READS: [u32; 3] = [2, 3, 4];
+pub const READS: [u32; 4] = [2, 3, 4, 5];
 /// The split criteria a model may name.
 pub const CRITERIA: [&str; 3] = ["gini", "entropy", "gain-ratio"];
 /// The symmetries a model may record (`none` is never written).
@@ -216,7 +219,9 @@ impl ModelFile {
         let w = m.tree.window();
         ModelFile {
             format: FORMAT.into(),
-            format_version: if m.smoothing.is_off()
+            format_version: if !m.training.symmetry_tried.is_empty() {
+                CHOSEN_SYMMETRY_VERSION
+            } else if m.smoothing.is_off()
                 && m.training.smaller.is_none()
                 && m.training.symmetry.is_none()
             {
@@ -278,6 +283,34 @@ impl ModelFile {
             if !SYMMETRIES.contains(&s.as_str()) {
                 return Err(Error::bad_model(format!(
                     "training.symmetry {s:?} is not one of {SYMMETRIES:?}"
+                )));
+            }
+        }
+        let tried = &self.training.symmetry_tried;
+        if !tried.is_empty() {
+            if self.format_version < CHOSEN_SYMMETRY_VERSION {
+                return Err(Error::bad_model(format!(
+                    "training.symmetry_tried came with format_version {CHOSEN_SYMMETRY_VERSION}, but the file says {}",
+                    self.format_version
+                )));
+            }
+            for t in tried {
+                if t.symmetry != "none" && !SYMMETRIES.contains(&t.symmetry.as_str()) {
+                    return Err(Error::bad_model(format!(
+                        "training.symmetry_tried: {:?} is not none, mirrors or square",
+                        t.symmetry
+                    )));
+                }
+            }
+            let kept: Vec<&str> = tried
+                .iter()
+                .filter(|t| t.kept)
+                .map(|t| t.symmetry.as_str())
+                .collect();
+            let trained = self.training.symmetry.as_deref().unwrap_or("none");
+            if kept != [trained] {
+                return Err(Error::bad_model(format!(
+                    "training.symmetry_tried keeps {kept:?}, but the model was trained under {trained:?}"
                 )));
             }
         }

@@ -80,9 +80,36 @@ pub struct TrainingInfo {
     /// transforms.
     #[serde(default, skip_serializing_if = "Option::is_none")]
     pub symmetry: Option<String>,
+    /// When training chose the symmetry (`training.symmetry = "choose"`):
+    /// every candidate with its held-out score, the one kept marked. Not
+    /// written otherwise.
+    #[serde(default, skip_serializing_if = "Vec::is_empty")]
+    pub symmetry_tried: Vec<SymmetryTried>,
     /// Which of threshold / min_area / merge_distance the user fixed.
     #[serde(default)]
     pub overridden: Vec<String>,
+}
+
+/// One symmetry training tried when it chose the symmetry.
+#[derive(Clone, Debug, PartialEq, Serialize, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct SymmetryTried {
+    /// `none`, `mirrors` or `square`.
+    pub symmetry: String,
+    /// Held-out object F1 of its model's chosen settings on the held-out
+    /// frames as they are (not transformed), so the candidates compare;
+    /// absent when it was not trained.
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub object_f1: Option<f64>,
+    /// Bootstrap standard error of the difference between its object F1
+    /// and the best candidate's, over the same frames (0 for the best).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub object_f1_se: Option<f64>,
+    /// Whether this is the symmetry the model was trained under.
+    pub kept: bool,
+    /// Why it was not trained (over the memory limit).
+    #[serde(default, skip_serializing_if = "Option::is_none")]
+    pub passed_over: Option<String>,
 }
 
 /// What the size rule gave up for speed: the best-scoring candidate it
@@ -245,6 +272,43 @@ mod tests {
         );
     }
 
+    /// A model whose symmetry training chose is a version 5 file that
+    /// reads back with its record of the candidates.
+    #[test]
+    fn a_chosen_symmetry_is_written_as_version_5_and_read_back() {
+        let plain = Model::from_json(&edited(|_| {})).unwrap();
+        let mut chosen = plain.clone();
+        chosen.training.symmetry = Some("mirrors".into());
+        chosen.training.symmetry_tried = vec![
+            SymmetryTried {
+                symmetry: "none".into(),
+                object_f1: Some(0.7),
+                object_f1_se: Some(0.05),
+                kept: false,
+                passed_over: None,
+            },
+            SymmetryTried {
+                symmetry: "mirrors".into(),
+                object_f1: Some(0.8),
+                object_f1_se: Some(0.0),
+                kept: true,
+                passed_over: None,
+            },
+            SymmetryTried {
+                symmetry: "square".into(),
+                object_f1: None,
+                object_f1_se: None,
+                kept: false,
+                passed_over: Some("over the memory limit".into()),
+            },
+        ];
+        let text = chosen.to_json();
+        assert!(text.contains("\"format_version\": 5"), "{text}");
+        assert_eq!(Model::from_json(&text).unwrap(), chosen);
+        // Without a record, as before.
+        assert!(!plain.to_json().contains("symmetry_tried"));
+    }
+
     #[test]
     fn damaged_model_files_say_what_is_wrong() {
         assert!(Model::from_json(&edited(|_| {})).is_ok());
@@ -270,16 +334,42 @@ mod tests {
                 "training.criterion",
             ),
             (
-                edited(|v| v["format_version"] = 5.into()),
-                "format_version 5 is not known",
+                edited(|v| v["format_version"] = 6.into()),
+                "format_version 6 is not known",
+            ),
+            (
+                edited(|v| {
+                    v["format_version"] = 6.into();
+                    v["new_thing"] = 1.into();
+                    v.as_object_mut().unwrap().remove("reference");
+                }),
+                "format_version 6 is not known",
+            ),
+            (
+                edited(|v| {
+                    v["format_version"] = 4.into();
+                    v["training"]["symmetry_tried"] =
+                        serde_json::json!([{"symmetry": "none", "object_f1": 0.9, "kept": true}]);
+                }),
+                "training.symmetry_tried came with format_version 5, but the file says 4",
             ),
             (
                 edited(|v| {
                     v["format_version"] = 5.into();
-                    v["new_thing"] = 1.into();
-                    v.as_object_mut().unwrap().remove("reference");
+                    v["training"]["symmetry_tried"] =
+                        serde_json::json!([{"symmetry": "round", "kept": true}]);
                 }),
-                "format_version 5 is not known",
+                "\"round\" is not none, mirrors or square",
+            ),
+            (
+                edited(|v| {
+                    v["format_version"] = 5.into();
+                    v["training"]["symmetry_tried"] = serde_json::json!([
+                        {"symmetry": "none", "object_f1": 0.8, "kept": false},
+                        {"symmetry": "square", "object_f1": 0.9, "kept": true}
+                    ]);
+                }),
+                "keeps [\"square\"], but the model was trained under \"none\"",
             ),
             (
                 edited(|v| {
