@@ -76,6 +76,10 @@ pub struct Outcome {
     pub object_f1_se: f64,
     /// Where the object errors are (see [`Errors`]).
     pub errors: Errors,
+    /// The symmetry the model was trained under (`none`, `mirrors`,
+    /// `square`): the configuration's, or the one training kept when it
+    /// chose.
+    pub symmetry: String,
 }
 
 /// The object-level errors of a setting, by kind.
@@ -118,6 +122,11 @@ pub fn evaluate(name: &str, p: &LoomParams, sizes: Sizes, params: &TrainParams) 
     let model = learn::train(&train, params, &mut |_| {})?;
     let train_seconds = started.elapsed().as_secs_f64();
     let (nodes, depth) = (model.tree.nodes().len(), model.tree.depth());
+    let symmetry = model
+        .training
+        .symmetry
+        .clone()
+        .unwrap_or_else(|| "none".into());
     let settings = model.settings();
     let detector = Detector::new(model, settings);
     // As `score::score_frame` counts (generated frames have no unknown
@@ -174,6 +183,7 @@ pub fn evaluate(name: &str, p: &LoomParams, sizes: Sizes, params: &TrainParams) 
             / detecting.as_secs_f64().max(1e-9)
             / 1e6,
         errors,
+        symmetry,
         nodes,
         depth,
         train_pixels: train
@@ -477,6 +487,7 @@ mod tests {
             object_f1_se: 0.0,
             detect_mpx_s: 0.0,
             errors: Errors::default(),
+            symmetry: "none".into(),
         }
     }
 

@@ -1076,6 +1076,7 @@ fn the_suite_compares_two_trainings_draw_by_draw() {
             gini_alone["settings"][0]["pixel"]
         );
         diffs.push(f1(&draw["compared"]) - f1(draw));
+        assert_eq!(draw["settings"][0]["symmetry"], "none");
     }
     // The two trainings differ somewhere, so the comparison is not of a
     // training with itself.

@@ -390,14 +390,22 @@ fn print_comparison(c: &Comparison) -> Result<()> {
         "gained",
         "lost"
     );
+    // One draw has no spread to give an error from.
+    let se = |p: &PairedSpread| {
+        if c.draws > 1 {
+            format!("({:.3})", p.difference.se)
+        } else {
+            "(-)    ".to_string()
+        }
+    };
     let row = |name: &str, p: &PairedSpread| -> Result<()> {
         out!(
-            "{:<14} {:>6.3} {:>8.3} {:>+9.3} ({:.3}) {:>6} {:>5}",
+            "{:<14} {:>6.3} {:>8.3} {:>+9.3} {} {:>6} {:>5}",
             name,
             p.base.mean,
             p.compared.mean,
             p.difference.mean,
-            p.difference.se,
+            se(p),
             p.gains,
             p.losses
         );
@@ -422,6 +430,17 @@ fn run_draw(
 ) -> Result<Vec<Vec<Outcome>>> {
     let mut outcomes: Vec<Vec<Outcome>> = sides.iter().map(|_| Vec::new()).collect();
     let paired = sides.len() > 1;
+    // The symmetry each model was trained under, when any side has one.
+    let symmetric = sides
+        .iter()
+        .any(|x| x.params.choose_symmetry || !x.params.symmetry.is_none());
+    let sym = |s: &str| {
+        if symmetric {
+            format!(" {s:>8}")
+        } else {
+            String::new()
+        }
+    };
     // The side's name leads each row when two trainings are compared.
     let lead = |s: &str| {
         if paired {
@@ -432,7 +451,7 @@ fn run_draw(
     };
     if !a.json {
         out!(
-            "{}{:<14} {:>6} {:>6} {:>13} {:>6} {:>6} {:>9} {:>7} {:>6} {:>6} {:>5} {:>6} {:>7}",
+            "{}{:<14} {:>6} {:>6} {:>13} {:>6} {:>6} {:>9} {:>7} {:>6} {:>6} {:>5} {:>6} {:>7}{}",
             lead("training"),
             "setting",
             "obj P",
@@ -446,7 +465,8 @@ fn run_draw(
             "nodes",
             "depth",
             "Mpx/s",
-            "train s"
+            "train s",
+            sym("symmetry")
         );
     }
     for (k, &(name, p)) in chosen.iter().enumerate() {
@@ -476,7 +496,7 @@ fn run_draw(
             })?;
             if !a.json {
                 out!(
-                    "{}{:<14} {:>6.3} {:>6.3} {:>6.3} ({:.3}) {:>6.3} {:>6} {:>9} {:>7} {:>6} {:>6} {:>5} {:>6.0} {:>7.1}",
+                    "{}{:<14} {:>6.3} {:>6.3} {:>6.3} ({:.3}) {:>6.3} {:>6} {:>9} {:>7} {:>6} {:>6} {:>5} {:>6.0} {:>7.1}{}",
                     lead(side.name),
                     o.setting,
                     o.object.precision(),
@@ -491,7 +511,8 @@ fn run_draw(
                     o.nodes,
                     o.depth,
                     o.detect_mpx_s,
-                    o.train_seconds
+                    o.train_seconds,
+                    sym(&o.symmetry)
                 );
             }
             outcomes[j].push(o);

@@ -294,12 +294,27 @@ impl ModelFile {
                     self.format_version
                 )));
             }
-            for t in tried {
+            for (i, t) in tried.iter().enumerate() {
                 if t.symmetry != "none" && !SYMMETRIES.contains(&t.symmetry.as_str()) {
                     return Err(Error::bad_model(format!(
                         "training.symmetry_tried: {:?} is not none, mirrors or square",
                         t.symmetry
                     )));
+                }
+                if tried[..i].iter().any(|u| u.symmetry == t.symmetry) {
+                    return Err(Error::bad_model(format!(
+                        "training.symmetry_tried: {:?} is listed twice",
+                        t.symmetry
+                    )));
+                }
+                for (what, v) in [("object_f1", t.object_f1), ("object_f1_se", t.object_f1_se)] {
+                    if v.is_some_and(|v| !(0.0..=1.0).contains(&v)) {
+                        return Err(Error::bad_model(format!(
+                            "training.symmetry_tried: {}'s {what} {} is outside [0, 1]",
+                            t.symmetry,
+                            v.unwrap_or_default()
+                        )));
+                    }
                 }
             }
             let kept: Vec<&str> = tried

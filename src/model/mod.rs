@@ -373,6 +373,25 @@ mod tests {
             ),
             (
                 edited(|v| {
+                    v["format_version"] = 5.into();
+                    v["training"]["symmetry_tried"] = serde_json::json!([
+                        {"symmetry": "none", "object_f1": 0.8, "kept": true},
+                        {"symmetry": "none", "object_f1": 0.9, "kept": false}
+                    ]);
+                }),
+                "\"none\" is listed twice",
+            ),
+            (
+                edited(|v| {
+                    v["format_version"] = 5.into();
+                    v["training"]["symmetry_tried"] = serde_json::json!([
+                        {"symmetry": "none", "object_f1": 1.5, "kept": true}
+                    ]);
+                }),
+                "none's object_f1 1.5 is outside [0, 1]",
+            ),
+            (
+                edited(|v| {
                     v["format_version"] = 3.into();
                     v["smoothing"] = serde_json::json!({"radius": 1, "votes": 5});
                 }),
