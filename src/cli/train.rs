@@ -61,7 +61,7 @@ pub struct TrainArgs {
     /// The fabric's symmetries, to take every frame also mirrored and
     /// turned: none, mirrors (warp and weft differ) or square (alike); or
     /// choose, to train under each and keep the one the held-out frames
-    /// favour (15 to 20 times the training) [default: none].
+    /// favour (13 to 20 times the training) [default: none].
     #[arg(long, value_parser = parse_symmetry)]
     symmetry: Option<(Symmetry, bool)>,
     /// Most memory growing the trees may take, in MiB: over it for two

@@ -138,7 +138,7 @@ pub struct TrainParams {
     /// turned this way, for growing and for tuning ([`symmetry`]).
     pub symmetry: Symmetry,
     /// Train under each symmetry instead (`symmetry` is then ignored), and
-    /// keep the one the held-out frames favour ([`pick_symmetry`]): 15 to 20 times
+    /// keep the one the held-out frames favour ([`pick_symmetry`]): 13 to 20 times
     /// the training of `symmetry = none`.
     pub choose_symmetry: bool,
     /// Most memory, in bytes, that growing the trees may take, by the
