@@ -105,7 +105,7 @@ struct DrawsJson<'a> {
     comparison: Option<Comparison>,
     /// The draw that failed, when one did: the draws above finished.
     #[serde(skip_serializing_if = "Option::is_none")]
-    failed: Option<Failed>,
+    failed: Option<&'a Failed>,
 }
 
 #[derive(Serialize)]
@@ -258,11 +258,7 @@ pub fn run(a: SuiteArgs) -> Result<i32> {
                 summary: summaries[0].clone(),
                 compared_summary: summaries.get(1).cloned(),
                 comparison: comparison.clone(),
-                failed: failed.as_ref().map(|f| Failed {
-                    draw: f.draw,
-                    seed: f.seed,
-                    error: f.error.clone(),
-                }),
+                failed: failed.as_ref(),
             })?
         };
         out!("{text}");

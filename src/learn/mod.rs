@@ -1517,20 +1517,24 @@ pub(crate) mod tests {
         assert!(e.contains("memory limit must be above 0"), "{e}");
     }
 
+    /// Six loom frames of 80x56: wider than tall, so a transpose swaps
+    /// their sides.
+    fn wide_frames() -> Vec<LabelledFrame> {
+        let lp = crate::synth::LoomParams {
+            width: 80,
+            height: 56,
+            ..crate::synth::LoomParams::standard()
+        };
+        crate::suite::frames("f", &lp, 6, 6)
+    }
+
     /// Under a symmetry every frame also grows and tunes transformed: the
     /// model says so and reports the pixels labelled, not their copies;
     /// from frames or from a store of them (the daemon's retrain) it is
     /// the same model; and the file is a version 4 one that loads back.
     #[test]
     fn symmetric_training_is_the_same_from_frames_or_a_store() {
-        use crate::synth::LoomParams;
-        // Frames wider than tall: a transpose swaps their sides.
-        let lp = LoomParams {
-            width: 80,
-            height: 56,
-            ..LoomParams::standard()
-        };
-        let frames = crate::suite::frames("f", &lp, 6, 6);
+        let frames = wide_frames();
         let p = TrainParams {
             symmetry: Symmetry::Square,
             ..TrainParams::default()
@@ -1657,12 +1661,7 @@ pub(crate) mod tests {
     #[test]
     fn choosing_the_symmetry_keeps_a_candidate_as_trained_alone() {
         use crate::synth::LoomParams;
-        let lp = LoomParams {
-            width: 80,
-            height: 56,
-            ..LoomParams::standard()
-        };
-        let frames = crate::suite::frames("f", &lp, 6, 6);
+        let frames = wide_frames();
         let p = TrainParams {
             choose_symmetry: true,
             ..TrainParams::default()
@@ -1712,7 +1711,7 @@ pub(crate) mod tests {
             &LoomParams {
                 width: 160,
                 height: 96,
-                ..lp
+                ..LoomParams::standard()
             },
             6,
             6,

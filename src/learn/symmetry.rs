@@ -162,10 +162,10 @@ impl Symmetry {
         }
     }
 
-    /// Parses a `symmetry` setting: `none`, `mirrors` or `square`, or
-    /// `choose` (training tries each and keeps one; the symmetry returned
-    /// is then `None`, a placeholder training ignores). The second value
-    /// says whether to choose.
+    /// Parses a `symmetry` setting: `none`, `mirrors` or `square` (that
+    /// symmetry, not chosen), or `choose` (no symmetry fixed, `None`, and
+    /// chosen: training tries each and keeps one). The second value says
+    /// whether to choose.
     pub fn parse_setting(s: &str) -> Option<(Symmetry, bool)> {
         match s {
             "choose" => Some((Symmetry::None, true)),
